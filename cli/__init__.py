@@ -1,0 +1,1 @@
+"""Command-line layer of fieldfix (installed as fieldfix_cli)."""

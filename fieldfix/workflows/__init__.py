@@ -1,0 +1,1 @@
+"""File-level jobs: each reads inputs through fieldfix.io, calls the numeric core and writes outputs."""
