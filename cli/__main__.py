@@ -1,0 +1,5 @@
+"""``python -m fieldfix_cli`` runs the fieldfix command."""
+
+from fieldfix_cli.main import entry
+
+entry()

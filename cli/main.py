@@ -1,0 +1,153 @@
+"""The ``fieldfix`` command: a thin layer over the library.
+
+Each subcommand is a module of this package defining ``HELP`` (one line),
+``configure(parser)`` and ``run(args) -> dict``. The frame adds the common options,
+turns fieldfix errors into one line on standard error with exit status 2, prints the
+summary (as JSON with ``--json``), and makes SIGTERM interrupt cleanly so that atomic
+writers remove their temporary files.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+import signal
+import sys
+import traceback
+
+from fieldfix import __version__
+from fieldfix.errors import FieldfixError
+
+#: Subcommands in the order shown by --help.
+SUBCOMMANDS = ("fieldmap", "unwarp", "dropout", "plan", "report", "batch", "demo")
+
+CAUTION = ("Research software, not a medical device: inspect corrected images before they are used "
+           "for any decision about a person.")
+
+DESCRIPTION = f"""\
+fieldfix: B0 field maps from dual-echo gradient-echo data, EPI distortion correction along the
+phase-encode axis with Jacobian intensity correction, and susceptibility-dropout prediction for
+choosing a protocol.
+
+{CAUTION}
+
+Quantities need their units: 4.92ms, 0.5ms, 2.5mm, 15deg, 3T.
+"""
+
+EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse parser whose usage errors are one line and exit status 2."""
+
+    def error(self, message):
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
+def _load_subcommands():
+    modules = {}
+    for name in SUBCOMMANDS:
+        try:
+            modules[name] = importlib.import_module(f"fieldfix_cli.{name}")
+        except ModuleNotFoundError as err:
+            if err.name != f"fieldfix_cli.{name}":
+                raise
+    return modules
+
+
+def add_common_options(parser: argparse.ArgumentParser, *, out_required: bool = True) -> None:
+    """Options every subcommand takes."""
+    group = parser.add_argument_group("common options")
+    group.add_argument("--out", metavar="DIR", required=out_required, help="output folder (created if missing)")
+    group.add_argument("--overwrite", action="store_true",
+                       help="replace earlier fieldfix outputs in DIR (input files are never replaced)")
+    group.add_argument("--quiet", action="store_true", help="no progress bars and no summary text")
+    group.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
+    group.add_argument("--debug", action="store_true", help="show the full traceback of an error")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="fieldfix", description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter,
+                     epilog="Run 'fieldfix COMMAND --help' for the options of a command.")
+    parser.add_argument("--version", action="version", version=f"fieldfix {__version__}")
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name, module in _load_subcommands().items():
+        sub = subparsers.add_parser(name, help=module.HELP, description=f"{module.HELP}\n\n{CAUTION}",
+                                    formatter_class=argparse.RawDescriptionHelpFormatter)
+        module.configure(sub)
+        add_common_options(sub, out_required=getattr(module, "OUT_REQUIRED", True))
+        sub.set_defaults(_module=module)
+    return parser
+
+
+def format_summary(summary, indent: str = "") -> str:
+    """Readable multi-line text of a (nested) summary dict."""
+    lines = []
+    if isinstance(summary, dict):
+        for key, value in summary.items():
+            if isinstance(value, (dict, list)) and value:
+                lines.append(f"{indent}{key}:")
+                lines.append(format_summary(value, indent + "  "))
+            else:
+                lines.append(f"{indent}{key}: {_short(value)}")
+    elif isinstance(summary, list):
+        for item in summary:
+            if isinstance(item, dict):
+                lines.append(f"{indent}-")
+                lines.append(format_summary(item, indent + "  "))
+            else:
+                lines.append(f"{indent}- {_short(item)}")
+    return "\n".join(lines)
+
+
+def _short(value) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return str(value)
+
+
+def _raise_interrupt(signum, frame):
+    raise KeyboardInterrupt
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``fieldfix`` console script; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    args.progress = (not args.quiet) and sys.stderr.isatty()
+    args.command_line = "fieldfix " + " ".join(sys.argv[1:] if argv is None else list(argv))
+    previous = signal.signal(signal.SIGTERM, _raise_interrupt)
+    try:
+        summary = args._module.run(args)
+    except FieldfixError as err:
+        if args.debug:
+            traceback.print_exc()
+        print(f"fieldfix {args.command}: error: {err}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print(f"fieldfix {args.command}: interrupted; unfinished outputs were removed", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    status = EXIT_OK
+    if isinstance(summary, dict) and summary.get("exit_status") is not None:
+        status = int(summary.pop("exit_status"))
+    if args.json:
+        from fieldfix.io import _jsonable
+
+        print(json.dumps(_jsonable(summary), indent=2))
+    elif not args.quiet and summary:
+        print(format_summary(summary))
+    return status
+
+
+def entry() -> None:  # pragma: no cover - thin wrapper for python -m
+    sys.exit(main())
+
+
+if __name__ == "__main__":  # pragma: no cover
+    entry()

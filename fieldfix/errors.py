@@ -1,0 +1,65 @@
+"""Exceptions raised by fieldfix.
+
+Every error that a user can cause carries a message that names the problem and, when
+one is involved, the file. The command-line layer prints ``str(err)`` on one line and
+exits with status 2.
+
+Examples
+--------
+>>> from fieldfix.errors import InputError
+>>> str(InputError("contains NaN values", path="sub-01_phasediff.nii.gz"))
+'sub-01_phasediff.nii.gz: contains NaN values'
+"""
+
+from __future__ import annotations
+
+import os
+
+__all__ = [
+    "FieldfixError",
+    "InputError",
+    "UnitError",
+    "MetadataError",
+    "GeometryError",
+    "OutputError",
+]
+
+
+class FieldfixError(Exception):
+    """Base class of all errors fieldfix raises on purpose.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong, in one line.
+    path : str or os.PathLike, optional
+        The file the problem is about.
+    """
+
+    def __init__(self, message: str, path: str | os.PathLike | None = None):
+        self.message = " ".join(str(message).split())
+        self.path = os.fspath(path) if path is not None else None
+        super().__init__(str(self))
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.message}" if self.path else self.message
+
+
+class InputError(FieldfixError):
+    """An input file or value cannot be used as given."""
+
+
+class UnitError(InputError):
+    """A quantity has no unit, an unknown unit, or a unit of the wrong kind."""
+
+
+class MetadataError(InputError):
+    """Timing or geometry metadata is missing, implausible or contradictory."""
+
+
+class GeometryError(InputError):
+    """Grids do not overlap, shapes disagree, or shifts are implausibly large."""
+
+
+class OutputError(FieldfixError):
+    """An output cannot be written (it would replace an input, exists, or the write failed)."""

@@ -1,0 +1,563 @@
+"""Reading and writing images and JSON: the file edge of fieldfix.
+
+* :func:`load_image` opens NIfTI-1 and NIfTI-2 files (``.nii``, ``.nii.gz``) lazily through
+  nibabel and reads the BIDS JSON sidecar beside them.
+* :func:`save_image`, :func:`write_json` and :class:`StreamingWriter` write atomically: the
+  data go to a hidden temporary file in the target folder that is renamed into place only
+  when complete, so an interrupted or failed write leaves no partial output. None of them
+  replaces a file that is an input of the same job, and none replaces an existing file
+  unless asked to.
+* :class:`Provenance` records the fieldfix version, the command or call, the parameters and
+  every input's path and SHA-256; it is written as a JSON sidecar beside each output image.
+
+Examples
+--------
+>>> import numpy as np, tempfile, os
+>>> folder = tempfile.mkdtemp()
+>>> path = save_image(os.path.join(folder, "b0.nii.gz"), np.zeros((4, 4, 4)), np.eye(4))
+>>> load_image(path).shape
+(4, 4, 4)
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import gzip
+import hashlib
+import io
+import json
+import math
+import os
+import sys
+import tempfile
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import nibabel as nib
+import numpy as np
+
+from .errors import InputError, OutputError
+
+__all__ = [
+    "Image",
+    "load_image",
+    "read_sidecar",
+    "sidecar_path",
+    "image_stem",
+    "save_image",
+    "write_json",
+    "read_json",
+    "StreamingWriter",
+    "Provenance",
+    "sha256_file",
+    "output_paths_guard",
+    "NIFTI_INTENT_DISPVECT",
+]
+
+#: NIfTI-1 intent code for a displacement vector field (nifti1.h: NIFTI_INTENT_DISPVECT).
+NIFTI_INTENT_DISPVECT = 1006
+
+_NIFTI_SUFFIXES = (".nii.gz", ".nii")
+_READ_ERRORS = (OSError, EOFError, ValueError, zlib.error, gzip.BadGzipFile, nib.filebasedimages.ImageFileError)
+
+
+def _version() -> str:
+    from . import __version__
+
+    return __version__
+
+
+def image_stem(path: str | os.PathLike) -> str:
+    """File name without its NIfTI suffix: ``sub-01_bold.nii.gz`` -> ``sub-01_bold``."""
+    name = Path(path).name
+    for suffix in _NIFTI_SUFFIXES:
+        if name.endswith(suffix):
+            return name[: -len(suffix)]
+    return Path(name).stem
+
+
+def sidecar_path(path: str | os.PathLike) -> Path:
+    """Path of the JSON sidecar that belongs beside an image."""
+    path = Path(path)
+    return path.with_name(image_stem(path) + ".json")
+
+
+def read_json(path: str | os.PathLike) -> dict:
+    """Read a JSON object from a file; errors name the file."""
+    try:
+        with open(path, encoding="utf-8") as handle:
+            value = json.load(handle)
+    except FileNotFoundError:
+        raise InputError("file not found", path) from None
+    except json.JSONDecodeError as err:
+        raise InputError(f"not valid JSON ({err.msg} at line {err.lineno})", path) from None
+    except OSError as err:
+        raise InputError(f"cannot read ({err.strerror or err})", path) from None
+    if not isinstance(value, dict):
+        raise InputError("expected a JSON object", path)
+    return value
+
+
+def read_sidecar(path: str | os.PathLike) -> dict:
+    """The BIDS JSON sidecar beside an image as a dict, or ``{}`` when there is none."""
+    candidate = sidecar_path(path)
+    return read_json(candidate) if candidate.is_file() else {}
+
+
+@dataclass
+class Image:
+    """A NIfTI image opened lazily, with its BIDS sidecar.
+
+    Attributes
+    ----------
+    path : Path
+    nifti : nibabel image (Nifti1Image or Nifti2Image)
+    sidecar : dict
+        Contents of the JSON file beside the image (``{}`` if none).
+    """
+
+    path: Path
+    nifti: Any
+    sidecar: dict = field(default_factory=dict)
+
+    @property
+    def affine(self) -> np.ndarray:
+        """4x4 voxel-to-world (RAS+ mm) matrix."""
+        return np.asarray(self.nifti.affine, float)
+
+    @property
+    def header(self):
+        return self.nifti.header
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(int(n) for n in self.nifti.shape)
+
+    @property
+    def ndim(self) -> int:
+        return len(self.shape)
+
+    @property
+    def n_volumes(self) -> int:
+        """Number of volumes along the fourth axis (1 for a 3D image)."""
+        return self.shape[3] if self.ndim >= 4 else 1
+
+    @property
+    def zooms(self) -> tuple[float, ...]:
+        """Voxel sizes in mm (and the fourth-axis step as stored in the header)."""
+        return tuple(float(z) for z in self.header.get_zooms())
+
+    @property
+    def dataobj(self):
+        """nibabel's lazy array proxy (slicing it reads only what is needed)."""
+        return self.nifti.dataobj
+
+    @property
+    def tr_s(self) -> float | None:
+        """Repetition time in seconds: sidecar ``RepetitionTime`` if present, else the header."""
+        if "RepetitionTime" in self.sidecar:
+            try:
+                return float(self.sidecar["RepetitionTime"])
+            except (TypeError, ValueError):
+                raise InputError("RepetitionTime in the sidecar is not a number", sidecar_path(self.path)) from None
+        if self.ndim < 4:
+            return None
+        step = float(self.header.get_zooms()[3])
+        unit = self.header.get_xyzt_units()[1]
+        scale = {"msec": 1e-3, "usec": 1e-6}.get(unit, 1.0)
+        return step * scale if step > 0 else None
+
+    def _read(self, getter):
+        try:
+            return getter()
+        except MemoryError:
+            raise
+        except _READ_ERRORS as err:
+            raise InputError(f"cannot read image data, the file may be truncated or corrupt ({err})",
+                             self.path) from None
+
+    def get_fdata(self, dtype=np.float32) -> np.ndarray:
+        """All voxels as floating point, with the header's scaling applied."""
+        return self._read(lambda: np.asarray(self.nifti.dataobj, dtype=np.float64).astype(dtype, copy=False)
+                          if dtype != np.float64 else np.asarray(self.nifti.dataobj, dtype=np.float64))
+
+    def volume(self, t: int, dtype=np.float32) -> np.ndarray:
+        """Volume `t` of a 4D image (scaled), read through the proxy; `t` must be 0 for 3D."""
+        if self.ndim == 3:
+            if t != 0:
+                raise IndexError(t)
+            return self.get_fdata(dtype)
+        return self._read(lambda: np.asarray(self.nifti.dataobj[..., t], dtype=dtype))
+
+
+def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, sidecar: bool = True) -> Image:
+    """Open a NIfTI-1 or NIfTI-2 image lazily and read its sidecar.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        ``.nii`` or ``.nii.gz`` file.
+    ndim : iterable of int, optional
+        Accepted numbers of dimensions (for example ``(3,)`` or ``(3, 4)``); trailing
+        singleton axes beyond the third are dropped before the check.
+    sidecar : bool
+        Read the JSON beside the image.
+
+    Raises
+    ------
+    InputError
+        For a missing or unreadable file, a file that is not NIfTI, or a wrong number of dimensions.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError("file not found", path)
+    if not path.is_file():
+        raise InputError("not a file", path)
+    if not os.access(path, os.R_OK):
+        raise InputError("file is not readable (permission denied)", path)
+    try:
+        nifti = nib.load(str(path))
+    except _READ_ERRORS as err:
+        raise InputError(f"not a readable NIfTI image ({err})", path) from None
+    if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):
+        raise InputError(f"expected a NIfTI-1 or NIfTI-2 image, found {type(nifti).__name__}", path)
+    shape = nifti.shape
+    while len(shape) > 3 and shape[-1] == 1:
+        shape = shape[:-1]
+    if len(shape) != len(nifti.shape):
+        nifti = nib.funcs.squeeze_image(nifti)
+    if ndim is not None:
+        allowed = tuple(ndim)
+        if len(shape) not in allowed:
+            wanted = " or ".join(f"{n}D" for n in allowed)
+            raise InputError(f"image is {len(shape)}D with shape {tuple(shape)}; a {wanted} image is needed", path)
+    return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {})
+
+
+def sha256_file(path: str | os.PathLike, chunk_bytes: int = 1 << 20) -> str:
+    """SHA-256 hex digest of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(chunk_bytes), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+class Provenance:
+    """Where an output came from: fieldfix version, command, parameters, inputs and their hashes.
+
+    Input hashes are computed once, on first use, and shared by every output written
+    with the same object.
+
+    Parameters
+    ----------
+    command : str
+        The command line or library call that made the outputs.
+    parameters : dict
+        Parameters used, in SI units (names carry units).
+    inputs : sequence of paths
+    """
+
+    def __init__(self, command: str | None, parameters: dict | None = None, inputs: Sequence = ()):
+        self.command = command or "fieldfix (library call)"
+        self.parameters = dict(parameters or {})
+        self.inputs = [Path(p) for p in inputs if p is not None]
+        self._hashes: list[dict] | None = None
+
+    def input_records(self) -> list[dict]:
+        if self._hashes is None:
+            self._hashes = [{"path": str(p.resolve()), "sha256": sha256_file(p)} for p in self.inputs]
+        return self._hashes
+
+    def as_dict(self) -> dict:
+        return {
+            "GeneratedBy": {"Name": "fieldfix", "Version": _version()},
+            "Command": self.command,
+            "Parameters": _jsonable(self.parameters),
+            "Inputs": self.input_records(),
+            "Created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "Caution": "Research software, not a medical device. Inspect corrected images before any "
+                       "decision about a person.",
+        }
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return a.exists() and b.exists() and os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def output_paths_guard(paths: Iterable, inputs: Iterable = (), overwrite: bool = False) -> None:
+    """Refuse outputs that would replace an input, or an existing file unless `overwrite`.
+
+    Call it before any computation so that a refused job writes nothing.
+
+    Raises
+    ------
+    OutputError
+        Naming the first offending path.
+    """
+    inputs = [Path(p) for p in inputs if p is not None]
+    resolved_inputs = {p.resolve() for p in inputs}
+    for path in paths:
+        path = Path(path)
+        if path.resolve() in resolved_inputs or any(_same_file(path, p) for p in inputs):
+            raise OutputError("an input file has this output's name; inputs are never overwritten, "
+                              "choose another output folder", path)
+        if path.exists() and not overwrite:
+            raise OutputError("output exists; pass overwrite (--overwrite) to replace it", path)
+        if path.exists() and path.is_dir():
+            raise OutputError("output name is taken by a folder", path)
+
+
+@contextlib.contextmanager
+def _atomic_target(path: Path, inputs: Iterable, overwrite: bool):
+    """Yield a temporary path in the target folder; rename it onto `path` on success only."""
+    output_paths_guard([path], inputs, overwrite)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise OutputError(f"cannot create the output folder ({err.strerror or err})", path.parent) from None
+    suffix = ".nii.gz" if path.name.endswith(".nii.gz") else path.suffix
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + suffix, dir=path.parent)
+    os.close(handle)
+    temporary = Path(temporary)
+    try:
+        yield temporary
+        os.replace(temporary, path)
+    except OSError as err:
+        temporary.unlink(missing_ok=True)
+        raise OutputError(f"write failed ({err.strerror or err}); nothing was left behind", path) from None
+    except BaseException:
+        temporary.unlink(missing_ok=True)
+        raise
+
+
+def _jsonable(value):
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, np.ndarray):
+        return _jsonable(value.tolist())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def write_json(path: str | os.PathLike, obj: dict, *, inputs: Iterable = (), overwrite: bool = False) -> Path:
+    """Write a JSON object atomically (numpy values converted, non-finite floats as null)."""
+    path = Path(path)
+    text = json.dumps(_jsonable(obj), indent=2, sort_keys=False) + "\n"
+    with _atomic_target(path, inputs, overwrite) as temporary:
+        temporary.write_text(text, encoding="utf-8")
+    return path
+
+
+def _header_for(data_shape, affine, template, dtype, intent):
+    """A fresh NIfTI header of the template's flavour, carrying its units, codes and TR."""
+    klass = nib.Nifti2Image if isinstance(getattr(template, "nifti", template), nib.Nifti2Image) else nib.Nifti1Image
+    header = klass.header_class()
+    source = getattr(template, "nifti", template)
+    header.set_data_shape(data_shape)
+    header.set_data_dtype(dtype)
+    affine = np.asarray(affine, float)
+    if source is not None:
+        src_header = source.header
+        header.set_xyzt_units(*src_header.get_xyzt_units())
+        q_code = int(src_header["qform_code"]) or 1
+        s_code = int(src_header["sform_code"]) or 1
+        zooms = list(src_header.get_zooms())
+        if len(data_shape) >= 4 and len(zooms) >= 4 and len(data_shape) == len(zooms):
+            header.set_zooms(tuple(zooms[:3]) + tuple(zooms[3:len(data_shape)]))
+    else:
+        header.set_xyzt_units("mm", "sec")
+        q_code = s_code = 1
+    header.set_qform(affine, code=q_code)
+    header.set_sform(affine, code=s_code)
+    if intent is not None:
+        header.set_intent(intent)
+    header["scl_slope"] = 1.0
+    header["scl_inter"] = 0.0
+    return klass, header
+
+
+def save_image(
+    path: str | os.PathLike,
+    data: np.ndarray,
+    affine: np.ndarray,
+    *,
+    template=None,
+    intent=None,
+    dtype=np.float32,
+    inputs: Iterable = (),
+    overwrite: bool = False,
+    provenance: Provenance | None = None,
+    sidecar_extra: dict | None = None,
+) -> Path:
+    """Write an image atomically, with an optional provenance sidecar.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        ``.nii.gz`` or ``.nii``.
+    data : array
+        Written with `dtype` (no scaling); booleans become uint8.
+    affine : (4, 4) array
+    template : Image or nibabel image, optional
+        Supplies the flavour (NIfTI-1/2), spatial/temporal units, qform/sform codes and
+        the repetition time of 4D data.
+    intent : int or str, optional
+        NIfTI intent code, e.g. :data:`NIFTI_INTENT_DISPVECT` (vector in the fifth axis).
+    inputs : iterable of paths
+        Paths this output must never replace.
+    overwrite : bool
+        Replace an existing output (never an input).
+    provenance : Provenance, optional
+        Written, with `sidecar_extra`, as ``<stem>.json`` beside the image.
+
+    Returns
+    -------
+    Path
+    """
+    path = Path(path)
+    if not path.name.endswith(_NIFTI_SUFFIXES):
+        raise OutputError("image outputs must end in .nii or .nii.gz", path)
+    inputs = list(inputs)
+    if provenance is not None:
+        output_paths_guard([sidecar_path(path)], inputs, overwrite)
+    array = np.asarray(data)
+    if array.dtype == bool:
+        dtype = np.uint8
+    array = array.astype(dtype, copy=False)
+    klass, header = _header_for(array.shape, affine, template, array.dtype, intent)
+    image = klass(array, np.asarray(affine, float), header=header)
+    with _atomic_target(path, inputs, overwrite) as temporary:
+        nib.save(image, str(temporary))
+    if provenance is not None:
+        record = provenance.as_dict()
+        if sidecar_extra:
+            record.update(_jsonable(sidecar_extra))
+        write_json(sidecar_path(path), record, inputs=inputs, overwrite=True)
+    return path
+
+
+class StreamingWriter:
+    """Write a 4D image volume by volume, atomically, with bounded memory.
+
+    The header goes first, then each volume in turn; the file is renamed into place
+    only when the context exits cleanly after all volumes were written. On any error or
+    interruption (including KeyboardInterrupt) the temporary file is removed and no
+    output exists.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        ``.nii.gz`` (gzip level 1, nibabel's default) or ``.nii``.
+    shape : tuple of 4 ints
+    affine : (4, 4) array
+    template : Image or nibabel image, optional
+        As in :func:`save_image` (carries the repetition time).
+    dtype : numpy dtype
+    inputs, overwrite, provenance, sidecar_extra
+        As in :func:`save_image`.
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, os
+    >>> target = os.path.join(tempfile.mkdtemp(), "run.nii.gz")
+    >>> with StreamingWriter(target, (2, 2, 2, 3), np.eye(4)) as writer:
+    ...     for t in range(3):
+    ...         writer.write(np.full((2, 2, 2), t))
+    >>> load_image(target).shape
+    (2, 2, 2, 3)
+    """
+
+    def __init__(self, path, shape, affine, *, template=None, dtype=np.float32, inputs=(), overwrite=False,
+                 provenance: Provenance | None = None, sidecar_extra: dict | None = None):
+        self.path = Path(path)
+        if not self.path.name.endswith(_NIFTI_SUFFIXES):
+            raise OutputError("image outputs must end in .nii or .nii.gz", self.path)
+        if len(shape) != 4:
+            raise ValueError("StreamingWriter writes 4D images")
+        self.shape = tuple(int(n) for n in shape)
+        self.dtype = np.dtype(dtype)
+        self.affine = np.asarray(affine, float)
+        self.template = template
+        self.inputs = list(inputs)
+        self.overwrite = overwrite
+        self.provenance = provenance
+        self.sidecar_extra = sidecar_extra
+        self.written = 0
+        self._context = None
+        self._stream = None
+
+    def __enter__(self) -> "StreamingWriter":
+        if self.provenance is not None:
+            output_paths_guard([sidecar_path(self.path)], self.inputs, self.overwrite)
+        klass, header = _header_for(self.shape, self.affine, self.template, self.dtype, None)
+        offset = 544 if klass is nib.Nifti2Image else 352
+        header.set_data_offset(offset)
+        self._context = _atomic_target(self.path, self.inputs, self.overwrite)
+        temporary = self._context.__enter__()
+        try:
+            raw = open(temporary, "wb")
+            self._stream = gzip.GzipFile(fileobj=raw, mode="wb", compresslevel=1, mtime=0) \
+                if self.path.name.endswith(".gz") else raw
+            self._raw = raw
+            buffer = io.BytesIO()
+            header.write_to(buffer)  # nibabel writes the header and the empty extension flag
+            block = buffer.getvalue()
+            self._stream.write(block + b"\x00" * (offset - len(block)))
+        except BaseException:
+            self._close_streams()
+            self._context.__exit__(*sys.exc_info())
+            raise
+        return self
+
+    def write(self, volume: np.ndarray) -> None:
+        """Append the next 3D volume (cast to the writer's dtype)."""
+        volume = np.asarray(volume)
+        if volume.shape != self.shape[:3]:
+            raise ValueError(f"volume shape {volume.shape} does not match {self.shape[:3]}")
+        if self.written >= self.shape[3]:
+            raise ValueError("all volumes were written already")
+        self._stream.write(np.asarray(volume, dtype=self.dtype).tobytes(order="F"))
+        self.written += 1
+
+    def _close_streams(self):
+        for stream in (self._stream, getattr(self, "_raw", None)):
+            if stream is not None and not stream.closed:
+                stream.close()
+
+    def __exit__(self, exc_type, exc, tb):
+        error: BaseException | None = None
+        try:
+            self._close_streams()
+        except OSError as err:  # for example a full disk on the final flush
+            error = err
+        if exc_type is None and error is None and self.written != self.shape[3]:
+            error = OutputError(f"only {self.written} of {self.shape[3]} volumes were written", self.path)
+        if exc_type is None and error is None:
+            self._context.__exit__(None, None, None)  # the rename
+            if self.provenance is not None:
+                record = self.provenance.as_dict()
+                if self.sidecar_extra:
+                    record.update(_jsonable(self.sidecar_extra))
+                write_json(sidecar_path(self.path), record, inputs=self.inputs, overwrite=True)
+            return False
+        if exc_type is None:
+            exc_type, exc = type(error), error
+        # Removes the temporary file; turns an OSError into an OutputError naming the output.
+        self._context.__exit__(exc_type, exc, tb)
+        if error is not None:
+            raise error
+        return False

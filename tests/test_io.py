@@ -1,0 +1,252 @@
+"""NIfTI round trips through nibabel, sidecars, provenance and atomic writes."""
+
+import gzip
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from fieldfix.errors import InputError, OutputError
+from fieldfix.io import (
+    NIFTI_INTENT_DISPVECT,
+    Provenance,
+    StreamingWriter,
+    image_stem,
+    load_image,
+    output_paths_guard,
+    read_sidecar,
+    save_image,
+    sidecar_path,
+    write_json,
+)
+
+
+def _affine():
+    affine = np.diag([2.0, 2.5, 3.0, 1.0])
+    affine[:3, 3] = [-20, -30, -10]
+    return affine
+
+
+@pytest.mark.parametrize("klass", [nib.Nifti1Image, nib.Nifti2Image])
+@pytest.mark.parametrize("suffix", [".nii", ".nii.gz"])
+def test_load_keeps_affine_dtype_zooms_tr_and_scaling(tmp_path, klass, suffix):
+    data = np.arange(5 * 6 * 4 * 3, dtype=np.int16).reshape(5, 6, 4, 3)
+    image = klass(data, _affine())
+    image.header.set_zooms((2.0, 2.5, 3.0, 1.8))
+    image.header.set_xyzt_units("mm", "sec")
+    image.header.set_slope_inter(0.5, 10.0)
+    path = tmp_path / f"run{suffix}"
+    nib.save(image, path)
+    loaded = load_image(path)
+    assert loaded.shape == (5, 6, 4, 3)
+    assert np.allclose(loaded.affine, _affine())
+    assert loaded.zooms[:3] == (2.0, 2.5, 3.0)
+    assert loaded.tr_s == pytest.approx(1.8)
+    assert loaded.header.get_data_dtype() == np.int16
+    # Scaling is applied on read, like nibabel's own get_fdata (external reference).
+    expected = nib.load(path).get_fdata()
+    assert np.allclose(loaded.get_fdata(np.float64), expected)
+    assert np.allclose(loaded.volume(2), expected[..., 2])
+    assert expected[1, 0, 0, 0] == pytest.approx(0.5 * data[1, 0, 0, 0] + 10)
+
+
+def test_tr_in_milliseconds_and_from_sidecar(tmp_path):
+    image = nib.Nifti1Image(np.zeros((2, 2, 2, 2), np.float32), np.eye(4))
+    image.header.set_zooms((1, 1, 1, 2000.0))
+    image.header.set_xyzt_units("mm", "msec")
+    nib.save(image, tmp_path / "a.nii.gz")
+    assert load_image(tmp_path / "a.nii.gz").tr_s == pytest.approx(2.0)
+    (tmp_path / "a.json").write_text(json.dumps({"RepetitionTime": 1.5, "PhaseEncodingDirection": "j-"}))
+    loaded = load_image(tmp_path / "a.nii.gz")
+    assert loaded.tr_s == 1.5 and loaded.sidecar["PhaseEncodingDirection"] == "j-"
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.int16, np.uint8])
+def test_save_round_trip(tmp_path, dtype):
+    data = (np.random.default_rng(0).random((6, 5, 4)) * 100).astype(dtype)
+    path = save_image(tmp_path / "out.nii.gz", data, _affine(), dtype=dtype)
+    back = nib.load(path)
+    assert back.get_data_dtype() == dtype
+    assert np.array_equal(np.asanyarray(back.dataobj), data)
+    assert np.allclose(back.affine, _affine())
+    assert back.header["sform_code"] == 1 and back.header["qform_code"] == 1
+
+
+def test_save_keeps_template_tr_and_flavour(tmp_path):
+    template = nib.Nifti2Image(np.zeros((3, 3, 3, 4), np.float32), _affine())
+    template.header.set_zooms((2.0, 2.5, 3.0, 2.2))
+    nib.save(template, tmp_path / "t.nii")
+    loaded = load_image(tmp_path / "t.nii")
+    out = save_image(tmp_path / "o.nii.gz", np.ones((3, 3, 3, 4)), loaded.affine, template=loaded)
+    back = nib.load(out)
+    assert isinstance(back, nib.Nifti2Image)
+    assert back.header.get_zooms()[3] == pytest.approx(2.2)
+
+
+def test_displacement_intent_and_bool_masks(tmp_path):
+    field = np.zeros((3, 3, 3, 1, 3), np.float32)
+    out = save_image(tmp_path / "disp.nii.gz", field, np.eye(4), intent=NIFTI_INTENT_DISPVECT)
+    assert nib.load(out).header.get_intent()[0] == "vector" or nib.load(out).header["intent_code"] == 1006
+    mask = save_image(tmp_path / "mask.nii.gz", np.ones((2, 2, 2), bool), np.eye(4))
+    assert nib.load(mask).get_data_dtype() == np.uint8
+
+
+def test_provenance_sidecar_records_inputs_and_hashes(tmp_path):
+    source = tmp_path / "in.nii.gz"
+    nib.save(nib.Nifti1Image(np.ones((2, 2, 2), np.float32), np.eye(4)), source)
+    prov = Provenance("fieldfix test --x 1", {"readout_time_s": 0.0456}, [source])
+    out = save_image(tmp_path / "out" / "b0_hz.nii.gz", np.zeros((2, 2, 2)), np.eye(4), inputs=[source],
+                     provenance=prov, sidecar_extra={"Units": "Hz"})
+    record = json.loads(sidecar_path(out).read_text())
+    assert record["Command"] == "fieldfix test --x 1"
+    assert record["Parameters"] == {"readout_time_s": 0.0456}
+    assert record["Inputs"][0]["sha256"] == hashlib.sha256(source.read_bytes()).hexdigest()
+    assert record["GeneratedBy"]["Name"] == "fieldfix" and record["Units"] == "Hz"
+    assert "not a medical device" in record["Caution"]
+    assert read_sidecar(out)["Units"] == "Hz"
+
+
+def test_inputs_are_never_overwritten(tmp_path):
+    source = tmp_path / "b0_hz.nii.gz"
+    nib.save(nib.Nifti1Image(np.ones((2, 2, 2), np.float32), np.eye(4)), source)
+    before = source.read_bytes()
+    for overwrite in (False, True):
+        with pytest.raises(OutputError, match="inputs are never overwritten"):
+            save_image(source, np.zeros((2, 2, 2)), np.eye(4), inputs=[source], overwrite=overwrite)
+    assert source.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["b0_hz.nii.gz"]
+
+
+def test_existing_output_needs_overwrite(tmp_path):
+    path = tmp_path / "x.json"
+    write_json(path, {"a": 1})
+    with pytest.raises(OutputError, match="output exists"):
+        write_json(path, {"a": 2})
+    write_json(path, {"a": np.float32(2.5), "b": float("nan"), "c": np.arange(2)}, overwrite=True)
+    assert json.loads(path.read_text()) == {"a": 2.5, "b": None, "c": [0, 1]}
+
+
+def test_guard_checks_all_paths_before_anything_is_written(tmp_path):
+    (tmp_path / "b.nii.gz").write_bytes(b"x")
+    with pytest.raises(OutputError) as info:
+        output_paths_guard([tmp_path / "a.nii.gz", tmp_path / "b.nii.gz"], [])
+    assert "b.nii.gz" in str(info.value)
+
+
+def test_failed_write_leaves_nothing(tmp_path, monkeypatch):
+    def broken_save(image, filename):
+        with open(filename, "wb") as handle:
+            handle.write(b"partial")
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(nib, "save", broken_save)
+    with pytest.raises(OutputError, match="No space left on device"):
+        save_image(tmp_path / "b0_hz.nii.gz", np.zeros((2, 2, 2)), np.eye(4))
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_streaming_writer_equals_nibabel_save(tmp_path):
+    rng = np.random.default_rng(3)
+    data = rng.normal(size=(7, 6, 5, 9)).astype(np.float32)
+    template = nib.Nifti1Image(data, _affine())
+    template.header.set_zooms((2.0, 2.5, 3.0, 1.25))
+    nib.save(template, tmp_path / "in.nii.gz")
+    source = load_image(tmp_path / "in.nii.gz")
+    for suffix in (".nii.gz", ".nii"):
+        target = tmp_path / f"streamed{suffix}"
+        with StreamingWriter(target, data.shape, source.affine, template=source) as writer:
+            for t in range(data.shape[3]):
+                writer.write(source.volume(t))
+        back = nib.load(target)
+        assert np.array_equal(back.get_fdata(dtype=np.float32), data)
+        assert np.allclose(back.affine, _affine())
+        assert back.header.get_zooms()[3] == pytest.approx(1.25)
+    with gzip.open(tmp_path / "streamed.nii.gz") as handle:
+        assert len(handle.read()) == 352 + data.nbytes
+
+
+def test_streaming_writer_removes_partial_output_on_error(tmp_path):
+    target = tmp_path / "run.nii.gz"
+    with pytest.raises(KeyboardInterrupt):
+        with StreamingWriter(target, (2, 2, 2, 4), np.eye(4)) as writer:
+            writer.write(np.zeros((2, 2, 2)))
+            raise KeyboardInterrupt
+    assert list(tmp_path.iterdir()) == []
+    with pytest.raises(OutputError, match="only 1 of 4 volumes"):
+        with StreamingWriter(target, (2, 2, 2, 4), np.eye(4)) as writer:
+            writer.write(np.zeros((2, 2, 2)))
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_sigterm_during_streamed_write_leaves_no_file(tmp_path):
+    # A real process killed with SIGTERM while writing: the frame's handler turns SIGTERM into
+    # KeyboardInterrupt, and the writer removes its temporary file.
+    script = textwrap.dedent(f"""
+        import signal, sys, time, numpy as np
+        from fieldfix.io import StreamingWriter
+        def stop(signum, frame):
+            raise KeyboardInterrupt
+        signal.signal(signal.SIGTERM, stop)
+        try:
+            with StreamingWriter({str(tmp_path / 'run.nii.gz')!r}, (8, 8, 8, 1000), np.eye(4)) as writer:
+                for t in range(1000):
+                    writer.write(np.zeros((8, 8, 8)))
+                    if t == 2:
+                        print("writing", flush=True)
+                    time.sleep(0.01)
+        except KeyboardInterrupt:
+            sys.exit(130)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "writing"
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(timeout=30) == 130
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("content", [b"", b"not an image at all", b"\x1f\x8b\x08\x00garbage"])
+def test_not_nifti_is_a_clear_error(tmp_path, content):
+    path = tmp_path / "bad.nii.gz"
+    path.write_bytes(content)
+    with pytest.raises(InputError) as info:
+        load_image(path).get_fdata()
+    assert str(path) in str(info.value)
+
+
+def test_truncated_gzip_is_a_clear_error(tmp_path):
+    path = tmp_path / "cut.nii.gz"
+    nib.save(nib.Nifti1Image(np.random.default_rng(0).random((20, 20, 20)).astype(np.float32), np.eye(4)), path)
+    raw = path.read_bytes()
+    path.write_bytes(raw[: len(raw) // 2])
+    with pytest.raises(InputError, match="truncated or corrupt"):
+        load_image(path).get_fdata()
+
+
+def test_missing_and_wrong_dimensions(tmp_path):
+    with pytest.raises(InputError, match="file not found"):
+        load_image(tmp_path / "nope.nii.gz")
+    nib.save(nib.Nifti1Image(np.zeros((3, 3), np.float32), np.eye(4)), tmp_path / "flat.nii")
+    with pytest.raises(InputError, match="2D"):
+        load_image(tmp_path / "flat.nii", ndim=(3, 4))
+    nib.save(nib.Nifti1Image(np.zeros((3, 3, 3, 1), np.float32), np.eye(4)), tmp_path / "one.nii")
+    assert load_image(tmp_path / "one.nii", ndim=(3,)).shape == (3, 3, 3)
+
+
+def test_bad_sidecar_is_named(tmp_path):
+    nib.save(nib.Nifti1Image(np.zeros((2, 2, 2), np.float32), np.eye(4)), tmp_path / "a.nii.gz")
+    (tmp_path / "a.json").write_text("{not json")
+    with pytest.raises(InputError) as info:
+        load_image(tmp_path / "a.nii.gz")
+    assert "a.json" in str(info.value) and "not valid JSON" in str(info.value)
+
+
+def test_image_stem():
+    assert image_stem("x/sub-01_bold.nii.gz") == "sub-01_bold"
+    assert image_stem("a.nii") == "a"
