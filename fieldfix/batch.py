@@ -618,3 +618,1055 @@ def discover(bids_root: str | os.PathLike, participant_labels: Sequence[str] | N
         runs=runs,
         problems=problems,
     )
+
+
+# --------------------------------------------------------------------------------------
+# Task plan
+# --------------------------------------------------------------------------------------
+
+#: Bumped when the meaning of a task's outputs changes, so that old outputs are redone.
+TASK_FORMAT = 1
+
+
+@dataclass
+class Task:
+    """One unit of work of a batch.
+
+    Attributes
+    ----------
+    task_id : str
+        Unique, e.g. ``"fieldmap:sub-01_ses-1"`` or ``"unwarp:sub-01_ses-1_task-rest_bold"``.
+    kind : str
+        ``"fieldmap"``, ``"unwarp"``, ``"dropout"`` or ``"report"``.
+    subject, session : str
+    deps : tuple of str
+        Task ids whose results this task needs.
+    inputs : dict of str to str
+        Role to absolute path of the raw input files (hashed).
+    params : dict
+        JSON-serialisable parameters (hashed), SI units.
+    out_dir : str
+        Absolute folder of its derivatives.
+    source : str
+        BIDS file name whose entities the derivative names carry.
+    problems : list of str
+        Known reasons why the task cannot run; it then fails at once with them.
+    """
+
+    task_id: str
+    kind: str
+    subject: str
+    session: str
+    deps: tuple[str, ...]
+    inputs: dict[str, str]
+    params: dict
+    out_dir: str
+    source: str
+    problems: list[str] = field(default_factory=list)
+
+
+def _subject_folder(deriv: Path, subject: str, session: str) -> Path:
+    folder = deriv / f"sub-{subject}"
+    return folder / f"ses-{session}" if session else folder
+
+
+def _number(meta: dict, key: str) -> float | None:
+    value = meta.get(key)
+    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else None
+
+
+def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike) -> list[Task]:
+    """Turn an inventory into an ordered list of tasks with their dependencies.
+
+    One ``fieldmap`` task per field-map acquisition (also those with no target, so that
+    every acquisition gives a B0 map); per target run one ``unwarp`` and one ``dropout``
+    task waiting for it; per subject one ``report`` task waiting for all of that
+    subject's tasks. Acquisitions with known problems give a task that fails at once
+    with the problem as its reason (and so do runs whose timing metadata are missing).
+
+    Example
+    -------
+    >>> tasks = plan_tasks(discover("/data/study"), "/data/out")   # doctest: +SKIP
+    >>> tasks[0].task_id                                            # doctest: +SKIP
+    'fieldmap:sub-01_ses-1'
+    """
+    root = Path(inventory.root)
+    deriv = Path(out_dir).expanduser().resolve()
+    tasks: list[Task] = []
+    by_subject: dict[str, list[str]] = {}
+    for fm in inventory.fieldmaps:
+        if fm.kind == "unsupported":
+            continue
+        params: dict[str, Any] = {"kind": fm.kind}
+        meta = fm.metadata
+        if fm.kind == "phasediff":
+            params["echo_times_s"] = [_number(meta.get("phasediff", {}), "EchoTime1"),
+                                      _number(meta.get("phasediff", {}), "EchoTime2")]
+        elif fm.kind == "phase-pair":
+            params["echo_times_s"] = [_number(meta.get("phase1", {}), "EchoTime"),
+                                      _number(meta.get("phase2", {}), "EchoTime")]
+        elif fm.kind == "fieldmap":
+            params["units"] = meta.get("fieldmap", {}).get("Units")
+        task = Task(
+            task_id=f"fieldmap:{fm.key}", kind="fieldmap", subject=fm.subject,
+            session=fm.session, deps=(),
+            inputs={role: str(root / rel) for role, rel in sorted(fm.files.items())},
+            params=params,
+            out_dir=str(_subject_folder(deriv, fm.subject, fm.session) / "fmap"),
+            source=f"{fm.key}_fieldmap.nii.gz", problems=list(fm.problems),
+        )
+        tasks.append(task)
+        by_subject.setdefault(fm.subject, []).append(task.task_id)
+    fm_kinds = {fm.key: fm.kind for fm in inventory.fieldmaps}
+    for run in inventory.runs:
+        if run.fieldmap is None or fm_kinds.get(run.fieldmap) == "unsupported":
+            continue
+        name = parse_bids_name(run.path)
+        assert name is not None
+        stem = Path(run.path).name.split(".")[0]
+        meta = run.metadata
+        problems = []
+        pe = meta.get("PhaseEncodingDirection")
+        if not isinstance(pe, str) or not pe:
+            problems.append(f"{run.path}: sidecar has no PhaseEncodingDirection")
+        readout = _number(meta, "TotalReadoutTime")
+        spacing = _number(meta, "EffectiveEchoSpacing")
+        if readout is None and spacing is None:
+            problems.append(f"{run.path}: sidecar has neither TotalReadoutTime nor "
+                            "EffectiveEchoSpacing")
+        te = _number(meta, "EchoTime")
+        out = str(_subject_folder(deriv, run.subject, run.session) / run.datatype)
+        dep = (f"fieldmap:{run.fieldmap}",)
+        unwarp = Task(
+            task_id=f"unwarp:{stem}", kind="unwarp", subject=run.subject, session=run.session,
+            deps=dep, inputs={"run": str(root / run.path)},
+            params={"pe_code": pe, "readout_time_s": readout, "echo_spacing_s": spacing},
+            out_dir=out, source=Path(run.path).name, problems=problems,
+        )
+        dropout = Task(
+            task_id=f"dropout:{stem}", kind="dropout", subject=run.subject, session=run.session,
+            deps=dep, inputs={"run": str(root / run.path)},
+            params={"te_s": te, "slice_thickness_mm": _number(meta, "SliceThickness"),
+                    "slice_encoding_direction": meta.get("SliceEncodingDirection")},
+            out_dir=out, source=Path(run.path).name,
+            problems=[] if te is not None else [f"{run.path}: sidecar has no EchoTime"],
+        )
+        tasks.extend([unwarp, dropout])
+        by_subject.setdefault(run.subject, []).extend([unwarp.task_id, dropout.task_id])
+    for subject in inventory.subjects:
+        deps = tuple(by_subject.get(subject, ()))
+        if not deps:
+            continue
+        tasks.append(Task(
+            task_id=f"report:sub-{subject}", kind="report", subject=subject, session="",
+            deps=deps, inputs={}, params={},
+            out_dir=str(deriv / f"sub-{subject}" / "figures"),
+            source=f"sub-{subject}_report.html",
+        ))
+    ids = [t.task_id for t in tasks]
+    if len(set(ids)) != len(ids):  # e.g. the same run name in func/ and dwi/ is impossible
+        raise InputError("two tasks share a name; the dataset has duplicate file names",
+                         path=inventory.root)
+    return tasks
+
+
+# --------------------------------------------------------------------------------------
+# Running one task (in a worker process, a dask worker, or in-process)
+# --------------------------------------------------------------------------------------
+
+_MARKER_SUFFIX = ".fieldfix-task.json"
+_WORK_FOLDER = ".fieldfix-work"
+
+
+def _safe_id(task_id: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]", "-", task_id)
+
+
+def marker_path(task: Task) -> Path:
+    """Where a task's completion record (hash of inputs and parameters) is stored.
+
+    It sits beside the task's outputs, hidden (``.<source stem>_<kind>.fieldfix-task.json``).
+    """
+    stem = Path(task.source).name.split(".")[0]
+    return Path(task.out_dir) / f".{stem}_{task.kind}{_MARKER_SUFFIX}"
+
+
+def _file_digest(path: str) -> str:
+    from fieldfix.io import sha256_file
+
+    return sha256_file(path)
+
+
+def task_hash(task: Task, upstream: Mapping[str, Mapping]) -> str:
+    """SHA-256 over what determines a task's outputs.
+
+    Covers the task kind and format, the fieldfix version, the parameters, the bytes of
+    every raw input file, and the hashes of the tasks it depends on (whose outputs are a
+    function of their own inputs and parameters).
+    """
+    import hashlib
+
+    from fieldfix import __version__
+
+    record = {
+        "kind": task.kind,
+        "format": TASK_FORMAT,
+        "fieldfix": __version__,
+        "params": task.params,
+        "inputs": {role: _file_digest(p) for role, p in sorted(task.inputs.items())},
+        "upstream": {dep: upstream[dep].get("hash") for dep in sorted(upstream)},
+    }
+    text = json.dumps(record, sort_keys=True, default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _read_marker(path: Path) -> dict | None:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
+
+
+def _outputs_intact(marker: dict, deriv_root: Path) -> bool:
+    outputs = marker.get("outputs")
+    if not isinstance(outputs, dict) or not outputs:
+        return False
+    for info in outputs.values():
+        path = deriv_root / info.get("path", "")
+        try:
+            if path.stat().st_size != info.get("size"):
+                return False
+        except OSError:
+            return False
+    return True
+
+
+class _ThreadLimit:
+    """Keep numba to one thread while a task runs; tasks are the unit of parallelism."""
+
+    def __enter__(self):
+        self.previous = None
+        try:
+            import numba
+
+            self.previous = numba.get_num_threads()
+            numba.set_num_threads(1)
+        except Exception:  # numba missing or its threading layer unavailable
+            self.previous = None
+        return self
+
+    def __exit__(self, *exc):
+        if self.previous is not None:
+            import numba
+
+            numba.set_num_threads(self.previous)
+        return False
+
+
+def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
+                 command: str | None = None) -> dict:
+    """Run one task unless its outputs are finished and up to date; never raises.
+
+    Parameters
+    ----------
+    task : Task
+    upstream : mapping of task id to result dict
+        Results of the tasks in ``task.deps`` (only successful ones are passed).
+    deriv_root : str
+        Root of the derivatives dataset.
+    command : str, optional
+        Command line recorded in provenance sidecars.
+
+    Returns
+    -------
+    dict
+        ``task_id``, ``status`` (``"done"``, ``"reused"`` or ``"failed"``), ``reason``
+        (for failures), ``hash``, ``outputs`` (name -> path relative to ``deriv_root``),
+        ``summary`` (the workflow's summary) and ``seconds``.
+    """
+    import time
+    import traceback
+
+    start = time.perf_counter()
+    result: dict[str, Any] = {"task_id": task.task_id, "kind": task.kind,
+                              "subject": task.subject, "session": task.session}
+    deriv = Path(deriv_root)
+    try:
+        if task.problems:
+            raise InputError("; ".join(task.problems))
+        digest = task_hash(task, upstream)
+        result["hash"] = digest
+        mpath = marker_path(task)
+        marker = _read_marker(mpath)
+        if marker and marker.get("hash") == digest and _outputs_intact(marker, deriv):
+            result.update(status="reused", outputs={k: v["path"] for k, v in
+                                                    marker["outputs"].items()},
+                          summary=marker.get("summary", {}))
+        else:
+            if marker:  # stale: remove what the earlier run left before redoing
+                for info in (marker.get("outputs") or {}).values():
+                    (deriv / info.get("path", "")).unlink(missing_ok=True)
+                mpath.unlink(missing_ok=True)
+            with _ThreadLimit():
+                outputs, summary = _run_in_staging(task, upstream, deriv, command)
+            record = {
+                "task_id": task.task_id, "kind": task.kind, "hash": digest,
+                "format": TASK_FORMAT, "params": task.params, "inputs": task.inputs,
+                "upstream": {d: upstream[d].get("hash") for d in sorted(upstream)},
+                "outputs": outputs, "summary": _jsonable(summary),
+            }
+            from fieldfix.io import write_json
+
+            write_json(mpath, record, overwrite=True)
+            result.update(status="done", outputs={k: v["path"] for k, v in outputs.items()},
+                          summary=record["summary"])
+    except Exception as exc:  # isolation: every failure becomes a result with its reason
+        result.update(status="failed", reason=_reason(exc),
+                      traceback=traceback.format_exc(limit=20))
+    result["seconds"] = round(time.perf_counter() - start, 3)
+    return result
+
+
+def _jsonable(value):
+    from fieldfix.io import _jsonable as convert
+
+    return convert(value)
+
+
+def _reason(exc: BaseException) -> str:
+    from fieldfix.errors import FieldfixError
+
+    if isinstance(exc, FieldfixError):
+        return str(exc)
+    return f"{type(exc).__name__}: {exc}"
+
+
+def _run_in_staging(task: Task, upstream: Mapping[str, Mapping], deriv: Path,
+                    command: str | None) -> tuple[dict, dict]:
+    """Run the workflow into a private staging folder, then move outputs into place.
+
+    Returns (outputs, summary); outputs maps the workflow's own file name to
+    ``{"path": relative derivative path, "size": bytes}``.
+    """
+    import shutil
+    import uuid
+
+    staging = deriv / _WORK_FOLDER / f"{_safe_id(task.task_id)}-{uuid.uuid4().hex[:8]}"
+    staging.mkdir(parents=True, exist_ok=False)
+    try:
+        runner = _RUNNERS[task.kind]
+        summary = runner(task, upstream, deriv, staging, command)
+        out_dir = Path(task.out_dir)
+        out_dir.mkdir(parents=True, exist_ok=True)
+        outputs: dict[str, dict] = {}
+        source = parse_bids_name(task.source)
+        assert source is not None
+        for produced in sorted(p for p in staging.rglob("*") if p.is_file()):
+            native = produced.relative_to(staging).as_posix()
+            final = out_dir / _derivative_for(native, source, task.kind)
+            if produced.name.endswith(".json"):
+                _annotate_sidecar(produced, task)
+            os.replace(produced, final)
+            outputs[native] = {"path": final.relative_to(deriv).as_posix(),
+                               "size": final.stat().st_size}
+        summary = _relocate_paths(summary, staging, deriv, outputs)
+        return outputs, summary
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+
+
+_EXTENSIONS = (".nii.gz", ".nii", ".json", ".csv", ".tsv", ".png", ".svg", ".html", ".txt")
+
+
+def _derivative_for(native: str, source: BidsName, kind: str) -> str:
+    """BIDS derivative name for a workflow output called ``native``.
+
+    The workflow's own name (without extension, folders flattened) becomes the ``desc``
+    label; the summary and other generic files get the task kind in front so that two
+    tasks of the same run cannot collide.
+    """
+    base = native.replace("/", "-")
+    ext = next((e for e in _EXTENSIONS if base.endswith(e)), Path(base).suffix)
+    label = base[: len(base) - len(ext)] if ext else base
+    for own in (f"{source.stem()}_{source.suffix}", source.stem()):
+        if label.startswith(own + "_"):  # workflows put the run's own name in front
+            label = label[len(own) + 1:]
+            break
+    label = re.sub(r"[^a-zA-Z0-9]", "", label)
+    if not label or label.lower() in {"summary", "report", "provenance", "log", "index"}:
+        label = kind + (label or "output")
+    return derivative_name(source, desc=label, extension=ext)
+
+
+def _bids_uri(path: str) -> str:
+    """``bids:raw:<path from the raw dataset root>`` (the root is the parent of ``sub-*``)."""
+    parts = Path(path).parts
+    for i, part in enumerate(parts):
+        if part.startswith("sub-"):
+            return "bids:raw:" + "/".join(parts[i:])
+    return Path(path).as_uri()
+
+
+def _annotate_sidecar(path: Path, task: Task) -> None:
+    """Add batch provenance to a JSON sidecar written by a workflow."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return
+    if not isinstance(data, dict):
+        return
+    data.setdefault("Sources", [_bids_uri(p) for _, p in sorted(task.inputs.items())])
+    data["FieldfixBatch"] = {"TaskId": task.task_id, "TaskFormat": TASK_FORMAT}
+    path.write_text(json.dumps(data, indent=2) + "\n", encoding="utf-8")
+
+
+def _relocate_paths(value, staging: Path, deriv: Path, outputs: Mapping[str, dict]):
+    """Replace staging-folder paths inside a workflow summary by derivative paths."""
+    if isinstance(value, dict):
+        return {k: _relocate_paths(v, staging, deriv, outputs) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_relocate_paths(v, staging, deriv, outputs) for v in value]
+    if isinstance(value, Path):
+        value = str(value)
+    if isinstance(value, str) and str(staging) in value:
+        try:
+            native = Path(value).resolve().relative_to(staging.resolve()).as_posix()
+        except ValueError:
+            return value
+        if native in outputs:
+            return outputs[native]["path"]
+    return value
+
+
+# --------------------------------------------------------------------------------------
+# Executing a plan: worker processes or dask.distributed
+# --------------------------------------------------------------------------------------
+
+#: Environment for local worker processes: one thread each, the tasks are the parallelism.
+_WORKER_THREAD_ENV = {
+    "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1",
+    "NUMBA_NUM_THREADS": "1", "VECLIB_MAXIMUM_THREADS": "1",
+}
+
+
+class _InProcessExecutor:
+    """Runs each submitted call at once in this process (``jobs=1``); futures API only."""
+
+    def submit(self, fn, *args, **kwargs):
+        from concurrent.futures import Future
+
+        future: Future = Future()
+        try:
+            future.set_result(fn(*args, **kwargs))
+        except BaseException as exc:  # execute_task never raises; this is a last resort
+            future.set_exception(exc)
+        return future
+
+    def shutdown(self, wait=True, cancel_futures=False):
+        pass
+
+
+def _skipped(task: Task, reason: str) -> dict:
+    return {"task_id": task.task_id, "kind": task.kind, "subject": task.subject,
+            "session": task.session, "status": "skipped", "reason": reason, "seconds": 0.0}
+
+
+def execute_plan(tasks: Sequence[Task], executor, deriv_root: str, *, command: str | None = None,
+                 on_result=None) -> dict[str, dict]:
+    """Submit tasks to a :class:`concurrent.futures.Executor` as their dependencies finish.
+
+    Works with a :class:`~concurrent.futures.ProcessPoolExecutor` and with a dask
+    ``Client.get_executor()`` alike. A task whose dependency failed is skipped with that
+    reason (a report task needs only one of its dependencies to have succeeded).
+
+    Returns
+    -------
+    dict
+        Task id to result dict, in plan order.
+    """
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    order = [t.task_id for t in tasks]
+    pending = {t.task_id: t for t in tasks}
+    results: dict[str, dict] = {}
+    running: dict[Any, str] = {}
+
+    def record(result: dict) -> None:
+        results[result["task_id"]] = result
+        if on_result is not None:
+            on_result(result)
+
+    while pending or running:
+        changed = True
+        while changed:  # settle skips and submit everything ready
+            changed = False
+            for tid in list(pending):
+                task = pending[tid]
+                if any(d not in results for d in task.deps):
+                    continue
+                bad = [d for d in task.deps if results[d]["status"] not in ("done", "reused")]
+                ok = [d for d in task.deps if d not in bad]
+                if bad and (task.kind != "report" or not ok):
+                    del pending[tid]
+                    record(_skipped(task, "needs " + ", ".join(bad) + ", which did not finish"))
+                    changed = True
+                    continue
+                del pending[tid]
+                upstream = {d: _slim(results[d]) for d in ok}
+                future = executor.submit(execute_task, task, upstream, deriv_root, command)
+                running[future] = tid
+                changed = True
+        if not running:
+            break
+        done, _ = wait(list(running), return_when=FIRST_COMPLETED)
+        for future in done:
+            tid = running.pop(future)
+            try:
+                result = future.result()
+            except BaseException as exc:  # the worker died (killed, out of memory ...)
+                task = next(t for t in tasks if t.task_id == tid)
+                result = _skipped(task, "")
+                result.update(status="failed",
+                              reason=f"worker lost while running the task ({_reason(exc)})")
+            record(result)
+    return {tid: results[tid] for tid in order if tid in results}
+
+
+def _slim(result: dict) -> dict:
+    """What a downstream task needs from an upstream result."""
+    return {k: result.get(k) for k in ("task_id", "kind", "hash", "outputs", "summary", "status")}
+
+
+class _LocalPool:
+    """A spawn-context process pool whose workers run one thread each.
+
+    If a worker process dies hard (which breaks a :class:`ProcessPoolExecutor`), the
+    tasks it was running fail with that reason and a fresh pool takes the next ones.
+    """
+
+    def __init__(self, jobs: int):
+        self.jobs = jobs
+        self.pool = None
+        self._saved_env: dict[str, str | None] = {}
+
+    def __enter__(self):
+        # spawned children copy the environment when they start: set thread limits now
+        for key, value in _WORKER_THREAD_ENV.items():
+            self._saved_env[key] = os.environ.get(key)
+            os.environ[key] = value
+        return self
+
+    def _new(self):
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        return ProcessPoolExecutor(max_workers=self.jobs,
+                                   mp_context=multiprocessing.get_context("spawn"))
+
+    def submit(self, fn, *args, **kwargs):
+        from concurrent.futures.process import BrokenProcessPool
+
+        if self.pool is None:
+            self.pool = self._new()
+        try:
+            return self.pool.submit(fn, *args, **kwargs)
+        except BrokenProcessPool:
+            self.pool.shutdown(wait=False, cancel_futures=True)
+            self.pool = self._new()
+            return self.pool.submit(fn, *args, **kwargs)
+
+    def __exit__(self, *exc):
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+        for key, value in self._saved_env.items():
+            if value is None:
+                os.environ.pop(key, None)
+            else:
+                os.environ[key] = value
+        return False
+
+
+class _DaskExecutor:
+    """Connects to a dask.distributed scheduler and exposes its futures executor."""
+
+    def __init__(self, scheduler: str | None = None, scheduler_file: str | None = None):
+        self.scheduler = scheduler
+        self.scheduler_file = scheduler_file
+        self.client = None
+
+    def __enter__(self):
+        from fieldfix.errors import InputError as _InputError
+
+        try:
+            from distributed import Client
+        except ImportError as exc:  # pragma: no cover - dask[distributed] is a dependency
+            raise _InputError(f"dask.distributed is not installed ({exc})") from None
+        try:
+            if self.scheduler_file is not None:
+                if not Path(self.scheduler_file).is_file():
+                    raise _InputError("scheduler file not found", path=self.scheduler_file)
+                self.client = Client(scheduler_file=str(self.scheduler_file), timeout="30s")
+            else:
+                self.client = Client(self.scheduler, timeout="30s")
+        except (OSError, TimeoutError) as exc:
+            raise _InputError(f"cannot reach the dask scheduler ({exc})",
+                              path=self.scheduler or self.scheduler_file) from None
+        # pure=False: every submission runs (the resume logic lives in the tasks)
+        self.executor = self.client.get_executor(pure=False)
+        return self
+
+    def submit(self, fn, *args, **kwargs):
+        return self.executor.submit(fn, *args, **kwargs)
+
+    def __exit__(self, *exc):
+        if self.client is not None:
+            self.client.close()
+        return False
+
+
+# --------------------------------------------------------------------------------------
+# Derivatives dataset, group summary, the whole batch
+# --------------------------------------------------------------------------------------
+
+DERIVATIVE_NAME = "fieldfix"
+
+
+def write_dataset_description(deriv: Path, bids_root: Path) -> Path:
+    """Write (or check) ``dataset_description.json`` of the derivatives dataset.
+
+    Raises
+    ------
+    OutputError
+        When the folder already holds a dataset description not made by fieldfix.
+    """
+    from fieldfix import __version__
+    from fieldfix.errors import OutputError
+    from fieldfix.io import write_json
+
+    path = deriv / "dataset_description.json"
+    if path.is_file():
+        existing = _read_marker(path) or {}
+        names = [g.get("Name") for g in existing.get("GeneratedBy", []) if isinstance(g, dict)]
+        if DERIVATIVE_NAME not in names:
+            raise OutputError("this folder holds another dataset (its dataset_description.json "
+                              "was not written by fieldfix); choose another --out", path=path)
+    source_name = (_read_marker(bids_root / "dataset_description.json") or {}).get("Name")
+    description = {
+        "Name": f"fieldfix derivatives of {source_name}" if source_name else
+                "fieldfix derivatives",
+        "BIDSVersion": "1.9.0",
+        "DatasetType": "derivative",
+        "GeneratedBy": [{
+            "Name": DERIVATIVE_NAME,
+            "Version": __version__,
+            "Description": "B0 field maps in Hz, EPI runs unwarped along the phase-encode axis "
+                           "with Jacobian intensity correction, predicted dropout maps. Research "
+                           "software, not a medical device: inspect corrected images before any "
+                           "decision about a person.",
+        }],
+        "SourceDatasets": [{"URL": bids_root.as_uri()}],
+        "DatasetLinks": {"raw": bids_root.as_uri()},
+    }
+    write_json(path, description, overwrite=True)
+    return path
+
+
+#: Group-summary columns: (column, task kind, candidate keys in the workflow summary).
+_METRICS = (
+    ("max_shift_vox", "unwarp", ("max_abs_shift_vox", "max_shift_vox", "shift_max_vox",
+                                 "max_abs_vox")),
+    ("max_shift_mm", "unwarp", ("max_abs_shift_mm", "max_shift_mm", "shift_max_mm")),
+    ("dropout_percent", "dropout", ("dropout_percent", "dropout_pct", "percent_dropout",
+                                    "fraction_below_threshold_percent")),
+    ("alignment_gain", "report", ("alignment_gain", "edge_agreement_gain", "gain")),
+)
+
+
+def _find_number(summary, keys: Sequence[str]):
+    """First finite number under any of `keys`, searching nested dicts breadth-first."""
+    queue = [summary]
+    while queue:
+        item = queue.pop(0)
+        if isinstance(item, dict):
+            for key in keys:
+                value = item.get(key)
+                if isinstance(value, (int, float)) and not isinstance(value, bool) and \
+                        value == value and abs(value) != float("inf"):
+                    return float(value)
+            queue.extend(v for v in item.values() if isinstance(v, (dict, list)))
+        elif isinstance(item, list):
+            queue.extend(v for v in item if isinstance(v, (dict, list)))
+    return None
+
+
+def group_rows(inventory: Inventory, tasks: Sequence[Task], results: Mapping[str, dict]
+               ) -> list[dict]:
+    """One row per EPI run of the included subjects (also runs with no field map)."""
+    rows = []
+    for run in inventory.runs:
+        stem = Path(run.path).name.split(".")[0]
+        row: dict[str, Any] = {
+            "subject": run.subject, "session": run.session, "run": stem,
+            "fieldmap": run.fieldmap or "", "status": "",
+        }
+        statuses = []
+        for column, kind, keys in _METRICS:
+            tid = f"report:sub-{run.subject}" if kind == "report" else f"{kind}:{stem}"
+            res = results.get(tid)
+            value = None
+            if res is not None and res.get("status") in ("done", "reused"):
+                summary = res.get("summary") or {}
+                if kind == "report":
+                    summary = _run_entry(summary, stem)
+                value = _find_number(summary, keys)
+            if res is not None and kind != "report":
+                statuses.append(res.get("status"))
+            row[column] = value
+        if run.fieldmap is None:
+            row["status"] = "no field map"
+        elif not statuses:
+            row["status"] = "not planned"
+        elif all(s in ("done", "reused") for s in statuses):
+            row["status"] = "ok"
+        else:
+            row["status"] = "failed"
+        rows.append(row)
+    return rows
+
+
+def _run_entry(report_summary, stem: str):
+    """The part of a subject report's summary that concerns one run (or nothing)."""
+    if isinstance(report_summary, dict):
+        for value in report_summary.values():
+            if isinstance(value, list):
+                for item in value:
+                    if isinstance(item, dict) and any(
+                            isinstance(v, str) and stem in v for v in item.values()):
+                        return item
+            found = _run_entry(value, stem) if isinstance(value, dict) else None
+            if found:
+                return found
+    return {}
+
+
+def write_group_summary(deriv: Path, rows: Sequence[dict]) -> dict[str, str]:
+    """Write the group table (CSV and JSON) and a figure across subjects.
+
+    Returns the written paths relative to `deriv`.
+    """
+    import csv
+    import io as _stdio
+
+    from fieldfix.io import write_json
+
+    group = deriv / "group"
+    group.mkdir(parents=True, exist_ok=True)
+    columns = ["subject", "session", "run", "fieldmap", "status"] + [m[0] for m in _METRICS]
+    buffer = _stdio.StringIO()
+    writer = csv.DictWriter(buffer, fieldnames=columns, lineterminator="\n")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({c: ("" if row.get(c) is None else row.get(c)) for c in columns})
+    csv_path = group / "group_runs.csv"
+    tmp = group / ".group_runs.csv.part"
+    tmp.write_text(buffer.getvalue(), encoding="utf-8")
+    os.replace(tmp, csv_path)
+    json_path = write_json(group / "group_runs.json", {"columns": columns, "rows": list(rows)},
+                           overwrite=True)
+    written = {"csv": csv_path.relative_to(deriv).as_posix(),
+               "json": json_path.relative_to(deriv).as_posix()}
+    figure = _group_figure(rows)
+    if figure is not None:
+        png = group / "group_runs.png"
+        tmp = group / ".group_runs.png.part"
+        tmp.write_bytes(figure)
+        os.replace(tmp, png)
+        written["figure"] = png.relative_to(deriv).as_posix()
+    return written
+
+
+def _group_figure(rows: Sequence[dict]) -> bytes | None:
+    """Strip plots of each metric across subjects (one dot per run), PNG bytes."""
+    panels = [(col, title) for col, title in (
+        ("max_shift_vox", "maximum shift (voxels)"),
+        ("dropout_percent", "predicted dropout (% of voxels)"),
+        ("alignment_gain", "alignment gain (edge agreement after - before)"),
+    ) if any(r.get(col) is not None for r in rows)]
+    if not panels:
+        return None
+    import io as _stdio
+
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    from matplotlib.figure import Figure
+
+    subjects = sorted({r["subject"] for r in rows})
+    fig = Figure(figsize=(3.6 * len(panels), 3.2), layout="constrained")
+    for i, (col, title) in enumerate(panels):
+        ax = fig.add_subplot(1, len(panels), i + 1)
+        for x, subject in enumerate(subjects):
+            values = [r[col] for r in rows if r["subject"] == subject and r.get(col) is not None]
+            if values:
+                offsets = [x + 0.08 * (k - (len(values) - 1) / 2) for k in range(len(values))]
+                ax.plot(offsets, values, "o", color="#2f6f8f", markersize=6)
+        ax.set_xticks(range(len(subjects)), [f"sub-{s}" for s in subjects], rotation=45,
+                      ha="right", fontsize=8)
+        ax.set_xlim(-0.6, len(subjects) - 0.4)
+        ax.set_title(title, fontsize=9)
+        ax.grid(axis="y", alpha=0.3)
+    fig.suptitle("fieldfix batch: runs across subjects (research use only)", fontsize=10)
+    out = _stdio.BytesIO()
+    fig.savefig(out, format="png", dpi=100)
+    return out.getvalue()
+
+
+def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
+              participant_labels: Sequence[str] | None = None, jobs: int = 1,
+              scheduler: str | None = None, scheduler_file: str | os.PathLike | None = None,
+              command: str | None = None, progress: bool = False) -> dict:
+    """Correct a whole BIDS dataset into a fieldfix derivatives dataset.
+
+    Parameters
+    ----------
+    bids_root : path
+        The raw BIDS dataset.
+    out_dir : path
+        The derivatives folder (e.g. ``<bids_root>/derivatives/fieldfix``); created if
+        missing. Finished, up-to-date outputs in it are kept, not redone.
+    participant_labels : sequence of str, optional
+        Subjects to process (``"01"`` or ``"sub-01"``); all when None.
+    jobs : int
+        Worker processes on this machine (1 runs the tasks in this process).
+    scheduler : str, optional
+        Address of a dask.distributed scheduler (``tcp://host:8786``); the tasks then run
+        on its workers, which must see the same file system.
+    scheduler_file : path, optional
+        A dask scheduler file (as written by ``dask scheduler --scheduler-file``).
+    command : str, optional
+        Command line recorded in the provenance sidecars.
+    progress : bool
+        Show a progress bar over tasks on standard error.
+
+    Returns
+    -------
+    dict
+        Counts of tasks by status, every failure with its reason, runs with no field map,
+        field maps with no target, dataset remarks, written summary files, and
+        ``exit_status`` (0 all good, 1 something failed).
+
+    Raises
+    ------
+    InputError
+        Bad dataset, participants, or options (nothing is run).
+
+    Example
+    -------
+    >>> summary = run_batch("/data/study", "/data/study/derivatives/fieldfix", jobs=2)  # doctest: +SKIP
+    >>> summary["exit_status"], summary["failures"]                                   # doctest: +SKIP
+    (0, [])
+    """
+    import datetime as _dt
+    import logging
+    import shutil
+
+    from fieldfix.io import write_json
+
+    log = logging.getLogger(__name__)
+    if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
+        raise InputError(f"jobs must be a whole number of at least 1, got {jobs!r}")
+    if scheduler and scheduler_file:
+        raise InputError("give a scheduler address or a scheduler file, not both")
+    root = Path(bids_root).expanduser().resolve()
+    deriv = Path(out_dir).expanduser().resolve()
+    if deriv == root or (deriv.is_relative_to(root) and deriv.relative_to(root).parts[0]
+                         .startswith("sub-")):
+        raise InputError("the output folder must not be the dataset or one of its subject "
+                         "folders (use e.g. <dataset>/derivatives/fieldfix)", path=deriv)
+    inventory = discover(root, participant_labels)
+    tasks = plan_tasks(inventory, deriv)
+    deriv.mkdir(parents=True, exist_ok=True)
+    write_dataset_description(deriv, root)
+
+    started = _dt.datetime.now(_dt.timezone.utc)
+    bar = None
+    if progress:
+        from fieldfix._progress import progress_bar
+
+        bar = progress_bar(total=len(tasks), desc="batch tasks", enabled=True, unit="task")
+
+    def on_result(result: dict) -> None:
+        if result["status"] == "failed":
+            log.warning("%s failed: %s", result["task_id"], result.get("reason"))
+        if bar is not None:
+            bar.update(1)
+
+    if scheduler or scheduler_file:
+        backend: Any = _DaskExecutor(scheduler, str(scheduler_file) if scheduler_file else None)
+        mode = f"dask ({scheduler or scheduler_file})"
+    elif jobs > 1:
+        backend = _LocalPool(jobs)
+        mode = f"{jobs} local processes"
+    else:
+        backend = None
+        mode = "in this process"
+    try:
+        if backend is None:
+            results = execute_plan(tasks, _InProcessExecutor(), str(deriv), command=command,
+                                   on_result=on_result)
+        else:
+            with backend as executor:
+                results = execute_plan(tasks, executor, str(deriv), command=command,
+                                       on_result=on_result)
+    finally:
+        if bar is not None:
+            bar.close()
+        work = deriv / _WORK_FOLDER
+        if work.is_dir() and not any(work.iterdir()):
+            shutil.rmtree(work, ignore_errors=True)
+
+    counts = {s: 0 for s in ("done", "reused", "failed", "skipped")}
+    for res in results.values():
+        counts[res["status"]] = counts.get(res["status"], 0) + 1
+    failures = [
+        {"task": r["task_id"], "subject": f"sub-{r['subject']}", "status": r["status"],
+         "reason": r.get("reason", "")}
+        for r in results.values() if r["status"] in ("failed", "skipped")
+    ]
+    rows = group_rows(inventory, tasks, results)
+    group_files = write_group_summary(deriv, rows)
+
+    stamp = started.strftime("%Y%m%dT%H%M%SZ")
+    log_path = deriv / "logs" / f"batch_{stamp}.json"
+    write_json(log_path, {
+        "command": command, "started": started.isoformat(timespec="seconds"),
+        "finished": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "execution": mode, "counts": counts, "failures": failures,
+        "inventory": inventory.as_dict(),
+        "tasks": list(results.values()),
+    }, overwrite=True)
+
+    fm_problems = [
+        {"fieldmap": f.key, "kind": f.kind, "problems": f.problems}
+        for f in inventory.fieldmaps if f.kind == "unsupported"
+    ]
+    return {
+        "dataset": str(root),
+        "derivatives": str(deriv),
+        "execution": mode,
+        "subjects": [f"sub-{s}" for s in inventory.subjects],
+        "tasks": counts,
+        "failures": failures,
+        "runs_without_fieldmap": [
+            {"run": r.path, "reason": r.note} for r in inventory.runs_without_fieldmap
+        ],
+        "fieldmaps_without_target": [
+            {"fieldmap": f.key, "kind": f.kind, "other_targets": f.other_targets}
+            for f in inventory.fieldmaps_without_target
+        ],
+        "unsupported_fieldmaps": fm_problems,
+        "dataset_remarks": list(inventory.problems),
+        "group_summary": group_files,
+        "log": log_path.relative_to(deriv).as_posix(),
+        "exit_status": 1 if failures else 0,
+    }
+
+
+# --------------------------------------------------------------------------------------
+# Task runners: thin adapters from a Task to a workflow call writing into `staging`
+# --------------------------------------------------------------------------------------
+
+
+def _upstream_output(upstream: Mapping[str, Mapping], deriv: Path, endswith: str) -> Path:
+    for res in upstream.values():
+        for native, rel in sorted((res.get("outputs") or {}).items()):
+            if native.endswith(endswith):
+                return deriv / rel
+    from fieldfix.errors import InputError as _InputError
+
+    raise _InputError(f"the field-map task left no *{endswith} output")
+
+
+def _run_fieldmap_task(task: Task, upstream, deriv: Path, staging: Path, command):
+    from fieldfix.workflows.fieldmap import run_fieldmap
+
+    i, p = task.inputs, task.params
+    common = {"command": command}
+    if p["kind"] == "phasediff":
+        mags = tuple(i[m] for m in ("magnitude1", "magnitude2") if m in i)
+        return run_fieldmap(staging, phase_diff=i["phasediff"], magnitude=mags,
+                            echo_times_s=tuple(p["echo_times_s"]), **common)
+    if p["kind"] == "phase-pair":
+        return run_fieldmap(staging, phase=(i["phase1"], i["phase2"]),
+                            magnitude=(i["magnitude1"], i["magnitude2"]),
+                            echo_times_s=tuple(p["echo_times_s"]), **common)
+    if p["kind"] == "fieldmap":
+        return run_fieldmap(staging, b0=i["fieldmap"], magnitude=(i["magnitude"],), **common)
+    raise InputError(f"field maps of kind {p['kind']!r} are not supported")
+
+
+def _run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
+    from fieldfix.workflows.unwarp import run_unwarp
+
+    p = task.params
+    b0 = _upstream_output(upstream, deriv, "b0_hz.nii.gz")
+    timing = ({"readout_time_s": p["readout_time_s"]} if p.get("readout_time_s") is not None
+              else {"echo_spacing_s": p["echo_spacing_s"]})
+    return run_unwarp([task.inputs["run"]], b0, staging, pe_code=p["pe_code"], command=command,
+                      **timing)
+
+
+def _slice_thickness_mm(task: Task) -> float:
+    from fieldfix.io import load_image
+
+    p = task.params
+    if p.get("slice_thickness_mm"):
+        return float(p["slice_thickness_mm"])
+    axis = 2
+    direction = p.get("slice_encoding_direction")
+    if isinstance(direction, str) and direction[:1] in ("i", "j", "k"):
+        axis = "ijk".index(direction[0])
+    return float(load_image(task.inputs["run"]).zooms[axis])
+
+
+def _run_dropout_task(task: Task, upstream, deriv: Path, staging: Path, command):
+    from fieldfix.workflows.dropout import run_dropout
+
+    b0 = _upstream_output(upstream, deriv, "b0_hz.nii.gz")
+    return run_dropout(b0, staging, te_s=task.params["te_s"],
+                       thickness_mm=_slice_thickness_mm(task), command=command)
+
+
+def _run_report_task(task: Task, upstream, deriv: Path, staging: Path, command):
+    """Build the subject's report from its finished outputs.
+
+    The report reads workflow outputs by their own names; they are linked under those
+    names (with the acquisition or run as prefix) into a private folder first.
+    """
+    from fieldfix.report import build_report
+
+    gather = staging.parent / (staging.name + "-in")
+    gather.mkdir()
+    try:
+        for res in upstream.values():
+            source = res["task_id"].split(":", 1)[1]
+            for native, rel in (res.get("outputs") or {}).items():
+                name = native.replace("/", "-")
+                if res["kind"] in ("fieldmap", "dropout") or not name.startswith(source):
+                    name = f"{source}_{name}"
+                os.symlink(deriv / rel, gather / name)
+        return build_report(gather, out_dir=staging, command=command)
+    finally:
+        import shutil
+
+        shutil.rmtree(gather, ignore_errors=True)
+
+
+_RUNNERS = {
+    "fieldmap": _run_fieldmap_task,
+    "unwarp": _run_unwarp_task,
+    "dropout": _run_dropout_task,
+    "report": _run_report_task,
+}

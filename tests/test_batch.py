@@ -1,0 +1,149 @@
+"""Tests of fieldfix.batch: BIDS discovery, task plan, resume by hash, failure isolation,
+local and dask execution, and the ``fieldfix batch`` command.
+
+The BIDS terms checked here (IntendedFor relative to the subject folder, BIDS URIs
+``bids::<path>``, B0FieldIdentifier/B0FieldSource, the inheritance principle for
+sidecars, ``DatasetType: derivative`` with ``GeneratedBy``) follow the BIDS
+specification 1.9 (Gorgolewski et al. 2016, Scientific Data 3:160044, and the
+specification text, sections "Fieldmap data", "Common principles: the inheritance
+principle" and "BIDS Derivatives").
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+sys.path.insert(0, str(Path(__file__).parent))
+
+from _batch_dataset import build_dataset  # noqa: E402
+
+from fieldfix import batch  # noqa: E402
+from fieldfix.errors import InputError  # noqa: E402
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    return build_dataset(tmp_path_factory.mktemp("bids") / "study")
+
+
+# ----------------------------------------------------------------------------- discovery
+
+
+def test_parse_bids_name_and_derivative_name():
+    name = batch.parse_bids_name("sub-01_ses-2_task-rest_run-1_bold.nii.gz")
+    assert name.entity_dict == {"sub": "01", "ses": "2", "task": "rest", "run": "1"}
+    assert (name.suffix, name.extension) == ("bold", ".nii.gz")
+    assert batch.parse_bids_name("not a bids name.txt") is None
+    # desc goes after run (BIDS entity table order), suffix kept
+    assert batch.derivative_name(name, desc="b0_hz") == \
+        "sub-01_ses-2_task-rest_run-1_desc-b0hz_bold.nii.gz"
+
+
+def test_discover_finds_all_kinds_and_links(dataset):
+    inv = batch.discover(dataset)
+    assert inv.subjects == ["01", "02", "03"]
+    kinds = {f.key: f.kind for f in inv.fieldmaps}
+    assert kinds == {"sub-01_ses-1": "phasediff", "sub-01_ses-2": "phasediff",
+                     "sub-02": "phase-pair", "sub-02_acq-spare": "fieldmap",
+                     "sub-03": "phasediff"}
+    runs = {Path(r.path).name: r for r in inv.runs}
+    # IntendedFor as a path relative to the subject folder (ses-1) and as a BIDS URI (ses-2)
+    assert runs["sub-01_ses-1_task-rest_bold.nii.gz"].fieldmap == "sub-01_ses-1"
+    assert runs["sub-01_ses-2_task-rest_bold.nii.gz"].fieldmap == "sub-01_ses-2"
+    assert "IntendedFor" in runs["sub-01_ses-2_task-rest_bold.nii.gz"].note
+    # B0FieldSource -> B0FieldIdentifier
+    assert runs["sub-02_task-rest_bold.nii.gz"].fieldmap == "sub-02"
+    assert "B0FieldSource" in runs["sub-02_task-rest_bold.nii.gz"].note
+    # listed, not dropped
+    assert [r.path for r in inv.runs_without_fieldmap] == \
+        ["sub-02/func/sub-02_task-motor_bold.nii.gz"]
+    assert [f.key for f in inv.fieldmaps_without_target] == ["sub-02_acq-spare"]
+    # inheritance: echo time and readout of the rest runs come from the root sidecar
+    assert runs["sub-01_ses-1_task-rest_bold.nii.gz"].metadata["TotalReadoutTime"] == 0.03
+    assert inv.fieldmap("sub-01_ses-1").metadata["phasediff"]["EchoTime2"] == 0.00738
+    assert not inv.problems
+    json.dumps(inv.as_dict())  # serialisable for the summary
+
+
+def test_discover_participants_and_bad_roots(dataset, tmp_path):
+    inv = batch.discover(dataset, participant_labels=["sub-02"])
+    assert inv.subjects == ["02"]
+    assert {f.subject for f in inv.fieldmaps} == {"02"}
+    with pytest.raises(InputError, match="sub-09"):
+        batch.discover(dataset, participant_labels=["09"])
+    with pytest.raises(InputError, match="not a BIDS dataset"):
+        batch.discover(tmp_path)
+    with pytest.raises(InputError, match="not a folder"):
+        batch.discover(tmp_path / "missing")
+
+
+def _write(path: Path, meta: dict | None = None):
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_bytes(b"")  # discovery never opens images
+    if meta is not None:
+        path.with_name(path.name.replace(".nii.gz", ".json")).write_text(json.dumps(meta))
+
+
+def test_discover_problems_are_reported(tmp_path):
+    root = tmp_path / "ds"
+    (root / "sub-01").mkdir(parents=True)
+    (root / "dataset_description.json").write_text('{"Name": "x", "BIDSVersion": "1.9.0"}')
+    f = root / "sub-01" / "fmap"
+    # phase difference without magnitude and without EchoTime2; IntendedFor to nowhere
+    _write(f / "sub-01_acq-a_phasediff.nii.gz",
+           {"EchoTime1": 0.005, "IntendedFor": ["func/sub-01_task-x_bold.nii.gz",
+                                                "func/missing_bold.nii.gz",
+                                                "bids:other:sub-01/func/a_bold.nii.gz"]})
+    # reversed phase-encode pair: found but unsupported
+    _write(f / "sub-01_dir-AP_epi.nii.gz", {})
+    # two claims on one run: the usable acquisition wins
+    _write(f / "sub-01_acq-b_fieldmap.nii.gz", {"Units": "Hz", "B0FieldIdentifier": ["b"]})
+    _write(f / "sub-01_acq-b_magnitude.nii.gz", {})
+    _write(root / "sub-01" / "func" / "sub-01_task-x_bold.nii.gz",
+           {"B0FieldSource": "b", "PhaseEncodingDirection": "j"})
+    _write(root / "sub-01" / "anat" / "sub-01_T1w.nii.gz", {})
+    inv = batch.discover(root)
+    a = inv.fieldmap("sub-01_acq-a")
+    assert a.kind == "phasediff"
+    assert any("magnitude1" in p for p in a.problems)
+    assert any("EchoTime2" in p for p in a.problems)
+    assert inv.fieldmap("sub-01_dir-AP").kind == "unsupported"
+    run = inv.runs[0]
+    assert run.fieldmap == "sub-01_acq-b" and "also claimed by sub-01_acq-a" in run.note
+    text = " ".join(inv.problems)
+    assert "does not exist" in text and "another dataset" in text
+    # the broken acquisition gives a task that fails at once with its reasons
+    tasks = {t.task_id: t for t in batch.plan_tasks(inv, tmp_path / "out")}
+    assert tasks["fieldmap:sub-01_acq-a"].problems
+    assert "fieldmap:sub-01_dir-AP" not in tasks
+    assert any("TotalReadoutTime" in p for p in tasks["unwarp:sub-01_task-x_bold"].problems)
+    assert any("EchoTime" in p for p in tasks["dropout:sub-01_task-x_bold"].problems)
+
+
+def test_plan_dependencies_and_layout(dataset, tmp_path):
+    tasks = batch.plan_tasks(batch.discover(dataset), tmp_path / "deriv")
+    ids = [t.task_id for t in tasks]
+    assert len(ids) == len(set(ids))
+    by_id = {t.task_id: t for t in tasks}
+    # one field map per acquisition, also the one with no target
+    assert {i for i in ids if i.startswith("fieldmap:")} == {
+        "fieldmap:sub-01_ses-1", "fieldmap:sub-01_ses-2", "fieldmap:sub-02",
+        "fieldmap:sub-02_acq-spare", "fieldmap:sub-03"}
+    u = by_id["unwarp:sub-01_ses-2_task-rest_bold"]
+    assert u.deps == ("fieldmap:sub-01_ses-2",)
+    assert u.params["pe_code"] == "j-" and u.params["readout_time_s"] == 0.03
+    assert u.out_dir == str((tmp_path / "deriv" / "sub-01" / "ses-2" / "func").resolve())
+    assert by_id["dropout:sub-02_task-rest_bold"].params["te_s"] == 0.03
+    assert "unwarp:sub-02_task-motor_bold" not in by_id  # no field map: nothing to unwarp
+    report = by_id["report:sub-02"]
+    assert set(report.deps) == {"fieldmap:sub-02", "fieldmap:sub-02_acq-spare",
+                                "unwarp:sub-02_task-rest_bold", "dropout:sub-02_task-rest_bold"}
+    # every dependency precedes its dependant in the plan
+    pos = {t: k for k, t in enumerate(ids)}
+    assert all(pos[d] < pos[t.task_id] for t in tasks for d in t.deps)
