@@ -866,7 +866,7 @@ class _ThreadLimit:
 
 
 def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
-                 command: str | None = None) -> dict:
+                 command: str | None = None, redo: bool = False) -> dict:
     """Run one task unless its outputs are finished and up to date; never raises.
 
     Parameters
@@ -878,6 +878,8 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
         Root of the derivatives dataset.
     command : str, optional
         Command line recorded in provenance sidecars.
+    redo : bool
+        Run even when finished outputs with the same hash exist.
 
     Returns
     -------
@@ -900,7 +902,8 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
         result["hash"] = digest
         mpath = marker_path(task)
         marker = _read_marker(mpath)
-        if marker and marker.get("hash") == digest and _outputs_intact(marker, deriv):
+        if not redo and marker and marker.get("hash") == digest and \
+                _outputs_intact(marker, deriv):
             result.update(status="reused", outputs={k: v["path"] for k, v in
                                                     marker["outputs"].items()},
                           summary=marker.get("summary", {}))
@@ -1060,8 +1063,8 @@ class _InProcessExecutor:
         future: Future = Future()
         try:
             future.set_result(fn(*args, **kwargs))
-        except BaseException as exc:  # execute_task never raises; this is a last resort
-            future.set_exception(exc)
+        except Exception as exc:  # execute_task never raises; this is a last resort
+            future.set_exception(exc)  # (an interruption propagates to the caller)
         return future
 
     def shutdown(self, wait=True, cancel_futures=False):
@@ -1074,7 +1077,7 @@ def _skipped(task: Task, reason: str) -> dict:
 
 
 def execute_plan(tasks: Sequence[Task], executor, deriv_root: str, *, command: str | None = None,
-                 on_result=None) -> dict[str, dict]:
+                 on_result=None, redo: bool = False) -> dict[str, dict]:
     """Submit tasks to a :class:`concurrent.futures.Executor` as their dependencies finish.
 
     Works with a :class:`~concurrent.futures.ProcessPoolExecutor` and with a dask
@@ -1115,7 +1118,7 @@ def execute_plan(tasks: Sequence[Task], executor, deriv_root: str, *, command: s
                     continue
                 del pending[tid]
                 upstream = {d: _slim(results[d]) for d in ok}
-                future = executor.submit(execute_task, task, upstream, deriv_root, command)
+                future = executor.submit(execute_task, task, upstream, deriv_root, command, redo)
                 running[future] = tid
                 changed = True
         if not running:
@@ -1125,7 +1128,7 @@ def execute_plan(tasks: Sequence[Task], executor, deriv_root: str, *, command: s
             tid = running.pop(future)
             try:
                 result = future.result()
-            except BaseException as exc:  # the worker died (killed, out of memory ...)
+            except Exception as exc:  # the worker died (killed, out of memory ...)
                 task = next(t for t in tasks if t.task_id == tid)
                 result = _skipped(task, "")
                 result.update(status="failed",
@@ -1426,7 +1429,7 @@ def _group_figure(rows: Sequence[dict]) -> bytes | None:
 def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
               participant_labels: Sequence[str] | None = None, jobs: int = 1,
               scheduler: str | None = None, scheduler_file: str | os.PathLike | None = None,
-              command: str | None = None, progress: bool = False) -> dict:
+              command: str | None = None, progress: bool = False, redo: bool = False) -> dict:
     """Correct a whole BIDS dataset into a fieldfix derivatives dataset.
 
     Parameters
@@ -1449,6 +1452,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         Command line recorded in the provenance sidecars.
     progress : bool
         Show a progress bar over tasks on standard error.
+    redo : bool
+        Redo every task, even those whose finished outputs are up to date.
 
     Returns
     -------
@@ -1515,11 +1520,11 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
     try:
         if backend is None:
             results = execute_plan(tasks, _InProcessExecutor(), str(deriv), command=command,
-                                   on_result=on_result)
+                                   on_result=on_result, redo=redo)
         else:
             with backend as executor:
                 results = execute_plan(tasks, executor, str(deriv), command=command,
-                                       on_result=on_result)
+                                       on_result=on_result, redo=redo)
     finally:
         if bar is not None:
             bar.close()

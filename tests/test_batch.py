@@ -147,3 +147,151 @@ def test_plan_dependencies_and_layout(dataset, tmp_path):
     # every dependency precedes its dependant in the plan
     pos = {t: k for k, t in enumerate(ids)}
     assert all(pos[d] < pos[t.task_id] for t in tasks for d in t.deps)
+
+
+# ------------------------------------------------- the engine, with stand-in workflows
+# These stand-ins write small outputs under the workflows' own names; they let the
+# resume and isolation logic be checked apart from the numerics.
+
+
+def _fake_fieldmap(task, upstream, deriv, staging, command):
+    from fieldfix.io import Provenance, load_image, save_image
+
+    primary = next(task.inputs[r] for r in ("phasediff", "phase1", "fieldmap") if r in task.inputs)
+    img = load_image(primary)  # the broken file of sub-03 fails here
+    save_image(staging / "b0_hz.nii.gz", img.get_fdata() * 2.0, img.affine,
+               provenance=Provenance(command, task.params, [primary]))
+    return {"b0_hz": str(staging / "b0_hz.nii.gz")}
+
+
+def _fake_unwarp(task, upstream, deriv, staging, command):
+    from fieldfix.io import load_image, save_image
+
+    stem = Path(task.source).name.split(".")[0]
+    img = load_image(task.inputs["run"])
+    save_image(staging / f"{stem}_corrected.nii.gz", img.get_fdata(), img.affine)
+    return {"max_abs_shift_vox": 1.5, "corrected": str(staging / f"{stem}_corrected.nii.gz")}
+
+
+def _fake_dropout(task, upstream, deriv, staging, command):
+    from fieldfix.io import write_json
+
+    write_json(staging / "dropout.json", {"dropout_percent": 4.0})
+    return {"dropout_percent": 4.0}
+
+
+def _fake_report(task, upstream, deriv, staging, command):
+    (staging / "report.html").write_text("<html>" + " ".join(sorted(upstream)) + "</html>")
+    return {"runs": []}
+
+
+@pytest.fixture
+def fake_workflows(monkeypatch):
+    for kind, fn in (("fieldmap", _fake_fieldmap), ("unwarp", _fake_unwarp),
+                     ("dropout", _fake_dropout), ("report", _fake_report)):
+        monkeypatch.setitem(batch._RUNNERS, kind, fn)
+
+
+def _statuses(summary_log: Path) -> dict[str, str]:
+    record = json.loads(summary_log.read_text())
+    return {t["task_id"]: t["status"] for t in record["tasks"]}
+
+
+def test_isolation_resume_and_rehash(dataset, tmp_path, fake_workflows):
+    out = tmp_path / "deriv"
+    first = batch.run_batch(dataset, out, jobs=1, command="test")
+    assert first["exit_status"] == 1
+    failed = {f["task"]: f for f in first["failures"]}
+    # the broken subject fails alone, with the file and the problem named
+    assert set(failed) == {"fieldmap:sub-03", "unwarp:sub-03_task-rest_bold",
+                           "dropout:sub-03_task-rest_bold", "report:sub-03"}
+    assert failed["fieldmap:sub-03"]["status"] == "failed"
+    assert "sub-03_phasediff.nii.gz" in failed["fieldmap:sub-03"]["reason"]
+    assert failed["unwarp:sub-03_task-rest_bold"]["status"] == "skipped"
+    assert "fieldmap:sub-03" in failed["unwarp:sub-03_task-rest_bold"]["reason"]
+    assert first["tasks"]["done"] == 12 and first["tasks"]["failed"] == 1
+    assert first["runs_without_fieldmap"][0]["run"].endswith("sub-02_task-motor_bold.nii.gz")
+    assert first["fieldmaps_without_target"][0]["fieldmap"] == "sub-02_acq-spare"
+
+    # derivatives layout: description with GeneratedBy, BIDS names, sidecars with provenance
+    desc = json.loads((out / "dataset_description.json").read_text())
+    assert desc["DatasetType"] == "derivative" and desc["GeneratedBy"][0]["Name"] == "fieldfix"
+    b0 = out / "sub-01" / "ses-2" / "fmap" / "sub-01_ses-2_desc-b0hz_fieldmap.nii.gz"
+    corrected = out / "sub-01" / "ses-1" / "func" / "sub-01_ses-1_task-rest_desc-corrected_bold.nii.gz"
+    assert b0.is_file() and corrected.is_file()
+    side = json.loads(b0.with_name(b0.name.replace(".nii.gz", ".json")).read_text())
+    assert side["Sources"] == ["bids:raw:sub-01/ses-2/fmap/sub-01_ses-2_magnitude1.nii.gz",
+                               "bids:raw:sub-01/ses-2/fmap/sub-01_ses-2_magnitude2.nii.gz",
+                               "bids:raw:sub-01/ses-2/fmap/sub-01_ses-2_phasediff.nii.gz"]
+    assert side["FieldfixBatch"]["TaskId"] == "fieldmap:sub-01_ses-2"
+    assert side["Inputs"][0]["sha256"]  # provenance written by the workflow is kept
+    rows = {r["run"]: r for r in json.loads((out / "group" / "group_runs.json").read_text())["rows"]}
+    assert rows["sub-01_ses-1_task-rest_bold"]["max_shift_vox"] == 1.5
+    assert rows["sub-01_ses-1_task-rest_bold"]["dropout_percent"] == 4.0
+    assert rows["sub-02_task-motor_bold"]["status"] == "no field map"
+    assert rows["sub-03_task-rest_bold"]["status"] == "failed"
+    assert (out / "group" / "group_runs.png").read_bytes()[:4] == b"\x89PNG"
+    assert not (out / ".fieldfix-work").exists()
+
+    # unchanged inputs: nothing redone, files untouched
+    mtimes = {p: p.stat().st_mtime_ns for p in out.rglob("*.nii.gz")}
+    second = batch.run_batch(dataset, out, jobs=1)
+    assert second["tasks"]["done"] == 0 and second["tasks"]["reused"] == 12
+    assert mtimes == {p: p.stat().st_mtime_ns for p in out.rglob("*.nii.gz")}
+
+    # one output deleted: only that task is redone (its dependants keep their hash)
+    corrected.unlink()
+    third = batch.run_batch(dataset, out, jobs=1)
+    status = _statuses(out / third["log"])
+    assert [t for t, s in status.items() if s == "done"] == ["unwarp:sub-01_ses-1_task-rest_bold"]
+    assert corrected.is_file()
+
+    # a changed parameter (readout time in a run's own sidecar) redoes that unwarping and
+    # the report that shows it, nothing else
+    sidecar = dataset / "sub-02" / "func" / "sub-02_task-rest_bold.json"
+    original = sidecar.read_text()
+    try:
+        sidecar.write_text(json.dumps(json.loads(original) | {"TotalReadoutTime": 0.031}))
+        fourth = batch.run_batch(dataset, out, jobs=1)
+    finally:
+        sidecar.write_text(original)
+    status = _statuses(out / fourth["log"])
+    assert [t for t, s in status.items() if s == "done"] == ["unwarp:sub-02_task-rest_bold",
+                                                             "report:sub-02"]
+
+
+def test_interrupted_task_leaves_no_marker_and_is_redone(dataset, tmp_path, fake_workflows,
+                                                         monkeypatch):
+    out = tmp_path / "deriv"
+
+    def interrupted(task, upstream, deriv, staging, command):
+        (staging / "dropout.json").write_text("{}")  # half-written work
+        raise KeyboardInterrupt
+
+    monkeypatch.setitem(batch._RUNNERS, "dropout", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        batch.run_batch(dataset, out, jobs=1, participant_labels=["01"])
+    assert (out / "sub-01" / "ses-1" / "fmap" / ".sub-01_ses-1_fieldmap_fieldmap.fieldfix-task.json").is_file()
+    assert not list(out.rglob(".*dropout.fieldfix-task.json"))
+    assert not list((out / ".fieldfix-work").glob("*")) if (out / ".fieldfix-work").exists() else True
+    monkeypatch.setitem(batch._RUNNERS, "dropout", _fake_dropout)
+    resumed = batch.run_batch(dataset, out, jobs=1, participant_labels=["01"])
+    status = _statuses(out / resumed["log"])
+    assert resumed["exit_status"] == 0
+    assert status["fieldmap:sub-01_ses-1"] == "reused"
+    assert status["dropout:sub-01_ses-1_task-rest_bold"] == "done"
+
+
+def test_refuses_foreign_output_folder(dataset, tmp_path, fake_workflows):
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "dataset_description.json").write_text(
+        json.dumps({"Name": "x", "GeneratedBy": [{"Name": "another-tool"}]}))
+    from fieldfix.errors import OutputError
+
+    with pytest.raises(OutputError, match="another dataset"):
+        batch.run_batch(dataset, other)
+    with pytest.raises(InputError, match="subject"):
+        batch.run_batch(dataset, dataset / "sub-01" / "out")
+    with pytest.raises(InputError, match="jobs"):
+        batch.run_batch(dataset, tmp_path / "d", jobs=0)
