@@ -29,6 +29,7 @@ import io
 import json
 import math
 import os
+import struct
 import sys
 import tempfile
 import zlib
@@ -61,7 +62,14 @@ __all__ = [
 NIFTI_INTENT_DISPVECT = 1006
 
 _NIFTI_SUFFIXES = (".nii.gz", ".nii")
-_READ_ERRORS = (OSError, EOFError, ValueError, zlib.error, gzip.BadGzipFile, nib.filebasedimages.ImageFileError)
+# Everything nibabel raises for damaged or nonsensical files (a corrupt header can give
+# OverflowError from huge dimensions or an infinite offset, HeaderDataError from an unknown
+# data type code or an invalid scaling).
+_READ_ERRORS = (OSError, EOFError, ValueError, OverflowError, struct.error, zlib.error, gzip.BadGzipFile,
+                nib.filebasedimages.ImageFileError, nib.spatialimages.HeaderDataError,
+                nib.spatialimages.ImageDataError)
+#: Upper bound of the deflate compression ratio (RFC 1951 blocks cannot exceed about 1032:1).
+_MAX_DEFLATE_RATIO = 1032
 
 
 def _version() -> str:
@@ -180,9 +188,18 @@ class Image:
                              self.path) from None
 
     def get_fdata(self, dtype=np.float32) -> np.ndarray:
-        """All voxels as floating point, with the header's scaling applied."""
-        return self._read(lambda: np.asarray(self.nifti.dataobj, dtype=np.float64).astype(dtype, copy=False)
-                          if dtype != np.float64 else np.asarray(self.nifti.dataobj, dtype=np.float64))
+        """All voxels as floating point, with the header's scaling applied.
+
+        Values beyond the range of `dtype` become infinite (callers check for finite data).
+        """
+        def read():
+            values = np.asarray(self.nifti.dataobj, dtype=np.float64)
+            if dtype == np.float64:
+                return values
+            with np.errstate(over="ignore", invalid="ignore"):
+                return values.astype(dtype, copy=False)
+
+        return self._read(read)
 
     def volume(self, t: int, dtype=np.float32) -> np.ndarray:
         """Volume `t` of a 4D image (scaled), read through the proxy; `t` must be 0 for 3D."""
@@ -190,7 +207,11 @@ class Image:
             if t != 0:
                 raise IndexError(t)
             return self.get_fdata(dtype)
-        return self._read(lambda: np.asarray(self.nifti.dataobj[..., t], dtype=dtype))
+        def read():
+            with np.errstate(over="ignore", invalid="ignore"):
+                return np.asarray(self.nifti.dataobj[..., t], dtype=dtype)
+
+        return self._read(read)
 
 
 def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, sidecar: bool = True) -> Image:
@@ -221,20 +242,45 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
     try:
         nifti = nib.load(str(path))
     except _READ_ERRORS as err:
-        raise InputError(f"not a readable NIfTI image ({err})", path) from None
+        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):
         raise InputError(f"expected a NIfTI-1 or NIfTI-2 image, found {type(nifti).__name__}", path)
-    shape = nifti.shape
-    while len(shape) > 3 and shape[-1] == 1:
-        shape = shape[:-1]
-    if len(shape) != len(nifti.shape):
-        nifti = nib.funcs.squeeze_image(nifti)
+    try:
+        _check_data_size(path, nifti)
+        shape = nifti.shape
+        while len(shape) > 3 and shape[-1] == 1:
+            shape = shape[:-1]
+        if len(shape) != len(nifti.shape):
+            # Lazy: reshape the proxy (nibabel's squeeze_image would read every voxel).
+            nifti = type(nifti)(nifti.dataobj.reshape(shape), nifti.affine, nifti.header)
+    except _READ_ERRORS as err:
+        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if ndim is not None:
         allowed = tuple(ndim)
         if len(shape) not in allowed:
             wanted = " or ".join(f"{n}D" for n in allowed)
             raise InputError(f"image is {len(shape)}D with shape {tuple(shape)}; a {wanted} image is needed", path)
     return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {})
+
+
+def _one_line(err: BaseException) -> str:
+    return " ".join(str(err).split()) or type(err).__name__
+
+
+def _check_data_size(path: Path, nifti) -> None:
+    """Refuse a file too small to hold the data its header describes (truncated or corrupt)."""
+    header = nifti.header
+    shape = tuple(int(n) for n in header.get_data_shape())
+    if any(n < 0 for n in shape):
+        raise InputError(f"the header gives negative dimensions {shape}", path)
+    needed = int(header.get_data_offset()) + math.prod(shape) * header.get_data_dtype().itemsize
+    size = path.stat().st_size
+    compressed = path.name.endswith(".gz")
+    limit = size * _MAX_DEFLATE_RATIO if compressed else size
+    if needed > limit:
+        what = "cannot hold" if compressed else "is too small for"
+        raise InputError(f"the file {what} the {needed} bytes its header describes (shape {shape}, "
+                         f"{header.get_data_dtype()}); it is truncated or corrupt", path)
 
 
 def sha256_file(path: str | os.PathLike, chunk_bytes: int = 1 << 20) -> str:
