@@ -998,7 +998,7 @@ def _derivative_for(native: str, source: BidsName, kind: str) -> str:
             label = label[len(own) + 1:]
             break
     label = re.sub(r"[^a-zA-Z0-9]", "", label)
-    if not label or label.lower() in {"summary", "report", "provenance", "log", "index"}:
+    if not label or label.lower() in {"summary", "provenance", "log", "index"}:
         label = kind + (label or "output")
     return derivative_name(source, desc=label, extension=ext)
 
@@ -1662,11 +1662,25 @@ def _run_report_task(task: Task, upstream, deriv: Path, staging: Path, command):
                 if res["kind"] in ("fieldmap", "dropout") or not name.startswith(source):
                     name = f"{source}_{name}"
                 os.symlink(deriv / rel, gather / name)
-        return build_report(gather, out_dir=staging, command=command)
+        html = build_report(gather, out_path=staging,
+                            title=f"fieldfix batch report: sub-{task.subject}")
     finally:
         import shutil
 
         shutil.rmtree(gather, ignore_errors=True)
+    numbers = json.loads((Path(html).parent / "report.json").read_text(encoding="utf-8"))
+    runs = []
+    for run in numbers.get("runs", []):
+        before, after = run.get("edge_agreement_before"), run.get("edge_agreement_after")
+        runs.append({
+            "stem": run.get("stem"),
+            "edge_agreement_before": before,
+            "edge_agreement_after": after,
+            "alignment_gain": (after - before) if before is not None and after is not None
+            else None,
+        })
+    return {"runs": runs, "warnings": len(numbers.get("warnings", [])),
+            "html": str(html)}
 
 
 _RUNNERS = {
