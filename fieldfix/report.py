@@ -1346,6 +1346,7 @@ _CSS = """
 :root{--ink:#1d2430;--muted:#5b6472;--paper:#fbfaf7;--card:#ffffff;--line:#e3dfd6;--accent:#0f6e6e;
 --warn:#9a4b00;--warnbg:#fff4e5;--okbg:#eaf6ef;}
 *{box-sizing:border-box}
+[hidden]{display:none !important}
 body{margin:0;background:var(--paper);color:var(--ink);font:15px/1.45 system-ui,-apple-system,"Segoe UI",
 Roboto,"Helvetica Neue",Arial,sans-serif}
 header.top{background:var(--accent);color:#fff;padding:18px 28px 14px}
