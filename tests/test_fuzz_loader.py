@@ -1,0 +1,286 @@
+"""Random and mutated bytes into the NIfTI loader: a clean error naming the file, or a load.
+
+Every case must end in exactly one of two ways: ``load_image(path).get_fdata()`` returns an
+array of the shape the header describes, or it raises :class:`fieldfix.errors.InputError`
+whose message names the file. Any other exception type is a crash; a case that takes more
+than a few seconds is a hang. In-process cases are guarded by SIGALRM; the large seeded
+loop runs in a child process with a timeout, so even a hang in C code cannot stall the suite.
+"""
+
+from __future__ import annotations
+
+import gzip
+import json
+import logging
+import os
+import random
+import shutil
+import signal
+import struct
+import subprocess
+import sys
+import textwrap
+import warnings
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings, strategies as st
+
+from fieldfix.errors import InputError
+from fieldfix.io import load_image
+
+SCRIPT = shutil.which("fieldfix", path=str(Path(sys.executable).parent)) or shutil.which("fieldfix")
+CASE_TIMEOUT_S = 5
+
+# Structural fields of the NIfTI-1 header (offset, struct format), from nifti1.h:
+# sizeof_hdr, dim[0..7], intent_code, datatype, bitpix, pixdim[0..3], vox_offset, scl_slope,
+# scl_inter, qform_code, sform_code, quatern_b, srow_x[0], magic.
+HEADER_FIELDS = [(0, "<i"), (40, "<h"), (42, "<h"), (44, "<h"), (46, "<h"), (48, "<h"), (50, "<h"), (56, "<h"),
+                 (68, "<h"), (70, "<h"), (72, "<h"), (76, "<f"), (80, "<f"), (84, "<f"), (88, "<f"), (108, "<f"),
+                 (112, "<f"), (116, "<f"), (252, "<h"), (254, "<h"), (256, "<f"), (280, "<f"), (344, "4s")]
+INT_VALUES = [0, -1, 1, 2, 3, 4, 5, 7, 8, 16, 255, 256, 1000, 32767, -32768]
+FLOAT_VALUES = [0.0, -0.0, 1e-40, 1e38, 3e38, -1.0, float("nan"), float("inf"), float("-inf"), 352.0, 353.0, 1e10]
+MAGICS = [b"n+1\0", b"ni1\0", b"n+2\0", b"\0\0\0\0", b"xxxx"]
+
+SHAPE = (16, 16, 8)
+
+
+def _valid_image() -> nib.Nifti1Image:
+    data = (np.random.default_rng(0).random(SHAPE) * 1000).astype(np.int16)
+    image = nib.Nifti1Image(data, np.diag([2.0, 2.0, 3.0, 1.0]))
+    image.header.set_slope_inter(0.5, 1.0)
+    return image
+
+
+@pytest.fixture(scope="module")
+def valid_bytes(tmp_path_factory):
+    """Bytes of a valid small image as .nii and as .nii.gz."""
+    folder = tmp_path_factory.mktemp("valid")
+    out = {}
+    for suffix in (".nii", ".nii.gz"):
+        nib.save(_valid_image(), folder / f"v{suffix}")
+        out[suffix] = (folder / f"v{suffix}").read_bytes()
+    return out
+
+
+def _on_alarm(signum, frame):
+    raise TimeoutError("loader case took too long")
+
+
+def _check_case(path: Path) -> str:
+    """Load one file; return 'loaded' or 'refused'; let anything else propagate."""
+    previous = signal.signal(signal.SIGALRM, _on_alarm)
+    signal.alarm(CASE_TIMEOUT_S)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            data = load_image(path).get_fdata()
+    except InputError as err:
+        assert str(path) in str(err), f"the error does not name the file: {err}"
+        assert "\n" not in str(err)
+        return "refused"
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, previous)
+    assert isinstance(data, np.ndarray) and data.dtype == np.float32
+    return "loaded"
+
+
+@pytest.fixture(autouse=True)
+def _quiet_nibabel():
+    # nibabel logs header fix-ups ("sizeof_hdr should be 348") to stderr; irrelevant here.
+    logger = logging.getLogger("nibabel.global")
+    level = logger.level
+    logger.setLevel(logging.CRITICAL)
+    yield
+    logger.setLevel(level)
+
+
+def test_valid_files_load_with_scaling(tmp_path, valid_bytes):
+    # Sanity anchor: the unmutated bytes load and match nibabel's own scaled read.
+    for suffix, raw in valid_bytes.items():
+        path = tmp_path / f"ok{suffix}"
+        path.write_bytes(raw)
+        assert _check_case(path) == "loaded"
+        assert np.allclose(load_image(path).get_fdata(), nib.load(path).get_fdata(), rtol=1e-6)
+
+
+@pytest.mark.parametrize("suffix", [".nii", ".nii.gz"])
+@pytest.mark.parametrize("field", HEADER_FIELDS, ids=lambda f: f"offset{f[0]}")
+def test_each_header_field_with_extreme_values(tmp_path, valid_bytes, suffix, field):
+    """Every structural header field set to each extreme value: clean refusal or a load."""
+    offset, fmt = field
+    header = bytearray(gzip.decompress(valid_bytes[".nii.gz"]))
+    values = MAGICS if fmt == "4s" else FLOAT_VALUES if fmt == "<f" else \
+        [v for v in INT_VALUES if -2 ** 15 <= v < 2 ** 15] + ([2 ** 31 - 1, -2 ** 31] if fmt == "<i" else [])
+    outcomes = set()
+    for k, value in enumerate(values):
+        mutated = bytearray(header)
+        struct.pack_into(fmt, mutated, offset, value)
+        path = tmp_path / f"case{k}{suffix}"
+        path.write_bytes(gzip.compress(bytes(mutated)) if suffix == ".nii.gz" else bytes(mutated))
+        outcomes.add(_check_case(path))
+    assert outcomes <= {"loaded", "refused"}
+
+
+def test_header_claiming_more_data_than_the_file_holds(tmp_path, valid_bytes):
+    """A header describing a huge image in a tiny file is refused before anything is read."""
+    raw = bytearray(gzip.decompress(valid_bytes[".nii.gz"]))
+    struct.pack_into("<hhhh", raw, 40, 4, 30000, 30000, 30000)  # dim[0..3]: 2.7e13 voxels
+    for suffix, content in ((".nii", bytes(raw)), (".nii.gz", gzip.compress(bytes(raw)))):
+        path = tmp_path / f"huge{suffix}"
+        path.write_bytes(content)
+        with pytest.raises(InputError, match="truncated or corrupt") as info:
+            load_image(path)
+        assert str(path) in str(info.value)
+
+
+def test_trailing_singleton_axis_is_dropped_without_reading(tmp_path, monkeypatch):
+    """A 4D file with one volume opens as 3D lazily: no voxel is read by load_image."""
+    data = np.arange(4 * 5 * 3, dtype=np.int16).reshape(4, 5, 3, 1)
+    image = nib.Nifti1Image(data, np.eye(4))
+    image.header.set_slope_inter(2.0, -1.0)
+    path = tmp_path / "one.nii.gz"
+    nib.save(image, path)
+    calls = []
+    original = nib.arrayproxy.ArrayProxy.__array__
+    monkeypatch.setattr(nib.arrayproxy.ArrayProxy, "__array__",
+                        lambda self, *a, **k: calls.append(1) or original(self, *a, **k))
+    loaded = load_image(path, ndim=(3,))
+    assert calls == [] and loaded.shape == (4, 5, 3)
+    assert np.array_equal(loaded.get_fdata(), 2.0 * data[..., 0] - 1.0)
+
+
+def _mutate(raw: bytes, rng: random.Random) -> bytes:
+    """One random mutation of a file: flips, header pokes, truncation, splices or pure noise."""
+    kind = rng.choice(["flip", "header", "truncate", "noise", "splice", "inner-header"])
+    data = bytearray(raw)
+    if kind == "flip":
+        for _ in range(rng.randint(1, 20)):
+            data[rng.randrange(len(data))] = rng.randrange(256)
+    elif kind == "header":
+        for _ in range(rng.randint(1, 6)):
+            data[rng.randrange(min(352, len(data)))] = rng.randrange(256)
+    elif kind == "truncate":
+        data = data[: rng.randrange(len(data))]
+    elif kind == "noise":
+        data = bytearray(rng.randbytes(rng.randrange(4000)))
+    elif kind == "splice":
+        cut = rng.randrange(len(data))
+        data = data[:cut] + bytearray(rng.randbytes(rng.randrange(64))) + data[cut:]
+    else:  # poke the header inside the gzip stream and recompress, so the CRC stays valid
+        try:
+            inner = bytearray(gzip.decompress(bytes(data)))
+        except OSError:
+            inner = data
+        for _ in range(rng.randint(1, 4)):
+            offset, fmt = rng.choice(HEADER_FIELDS)
+            value = rng.choice(MAGICS if fmt == "4s" else FLOAT_VALUES if fmt == "<f" else
+                               [v for v in INT_VALUES if -2 ** 15 <= v < 2 ** 15])
+            struct.pack_into(fmt, inner, offset, value)
+        data = bytearray(gzip.compress(bytes(inner))) if raw[:2] == b"\x1f\x8b" else inner
+    return bytes(data)
+
+
+@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(seed=st.integers(0, 2 ** 32 - 1), suffix=st.sampled_from([".nii", ".nii.gz"]))
+def test_mutated_files_in_process(tmp_path, valid_bytes, seed, suffix):
+    path = tmp_path / f"mutated{suffix}"
+    path.write_bytes(_mutate(valid_bytes[suffix], random.Random(seed)))
+    assert _check_case(path) in {"loaded", "refused"}
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(content=st.binary(max_size=2048), suffix=st.sampled_from([".nii", ".nii.gz"]))
+def test_random_bytes_in_process(tmp_path, content, suffix):
+    path = tmp_path / f"random{suffix}"
+    path.write_bytes(content)
+    assert _check_case(path) == "refused"
+
+
+CHILD = textwrap.dedent("""
+    import json, logging, random, sys, warnings
+    from pathlib import Path
+    sys.path.insert(0, {tests!r})
+    logging.getLogger("nibabel.global").setLevel(logging.CRITICAL)
+    warnings.simplefilter("ignore")
+    from fieldfix.errors import InputError
+    from fieldfix.io import load_image
+    from test_fuzz_loader import _mutate
+    folder = Path({folder!r})
+    raws = {{s: (folder / ("v" + s)).read_bytes() for s in (".nii", ".nii.gz")}}
+    counts = {{"loaded": 0, "refused": 0}}
+    crashes = []
+    for case in range({n}):
+        rng = random.Random(case)
+        suffix = rng.choice([".nii", ".nii.gz"])
+        path = folder / ("case" + suffix)
+        path.write_bytes(_mutate(raws[suffix], rng))
+        try:
+            load_image(path).get_fdata()
+            counts["loaded"] += 1
+        except InputError as err:
+            counts["refused"] += 1
+            if str(path) not in str(err):
+                crashes.append([case, "InputError without the path", str(err)[:200]])
+        except BaseException as err:
+            crashes.append([case, type(err).__name__, str(err)[:200]])
+    print(json.dumps({{"counts": counts, "crashes": crashes}}))
+""")
+
+
+def test_seeded_mutation_loop_in_a_child_process(tmp_path):
+    """Many seeded mutations in a separate process with a timeout: no crash, no hang."""
+    for suffix in (".nii", ".nii.gz"):
+        nib.save(_valid_image(), tmp_path / f"v{suffix}")
+    code = CHILD.format(tests=str(Path(__file__).parent), folder=str(tmp_path), n=600)
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr[-2000:]
+    report = json.loads(result.stdout.strip().splitlines()[-1])
+    assert report["crashes"] == [], report["crashes"][:10]
+    # Both outcomes occur, so the loop really exercises the loader (not just refusing everything).
+    assert report["counts"]["loaded"] > 0 and report["counts"]["refused"] > 100
+
+
+# ---- through the command line: one line on stderr naming the file, exit status 2 ----
+
+def _cli_commands_reading_one_image(path: Path, out: Path) -> list[list[str]]:
+    """Invocations of subcommands that read `path` as their first image (only those installed)."""
+    from fieldfix_cli.main import _load_subcommands
+
+    available = _load_subcommands()
+    commands = []
+    if "unwarp" in available:
+        commands.append(["unwarp", str(path), "--b0", str(path), "--pe", "j-", "--readout-time", "30ms",
+                         "--out", str(out)])
+    if "fieldmap" in available:
+        commands.append(["fieldmap", "--phasediff", str(path), "--magnitude", str(path),
+                         "--echo-times", "4.92ms,7.38ms", "--out", str(out)])
+    return commands
+
+
+@pytest.mark.parametrize("case", range(6))
+def test_corrupt_files_through_the_cli(tmp_path, valid_bytes, case):
+    rng = random.Random(1000 + case)
+    suffix = ".nii.gz" if case % 2 else ".nii"
+    path = tmp_path / f"broken{suffix}"
+    content = [lambda r: r[: len(r) // 3], lambda r: b"plain text, not an image\n" * 20][case % 2](
+        valid_bytes[suffix]) if case < 2 else _mutate(valid_bytes[suffix], rng)
+    path.write_bytes(content)
+    try:
+        load_image(path).get_fdata()
+        pytest.skip("this mutation happens to load cleanly")
+    except InputError:
+        pass
+    commands = _cli_commands_reading_one_image(path, tmp_path / "out")
+    if not commands:
+        pytest.skip("no subcommand that reads an image is installed yet")
+    for argv in commands:
+        result = subprocess.run([SCRIPT, *argv], capture_output=True, text=True, timeout=60)
+        lines = result.stderr.strip().splitlines()
+        assert result.returncode == 2, (argv, result.stderr)
+        assert len(lines) == 1 and str(path) in lines[0], result.stderr
+        assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+        assert path.read_bytes() == content
