@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
+import logging
 import signal
 import sys
 import traceback
@@ -121,6 +122,12 @@ def main(argv=None) -> int:
     args.progress = (not args.quiet) and sys.stderr.isatty()
     args.command_line = "fieldfix " + " ".join(sys.argv[1:] if argv is None else list(argv))
     previous = signal.signal(signal.SIGTERM, _raise_interrupt)
+    # nibabel logs header fix-ups of damaged files ("sizeof_hdr should be 348 ...") to stderr;
+    # the error line names the problem, so keep stderr to that one line unless --debug.
+    nibabel_logger = logging.getLogger("nibabel.global")
+    nibabel_level = nibabel_logger.level
+    if not args.debug:
+        nibabel_logger.setLevel(logging.CRITICAL)
     try:
         summary = args._module.run(args)
     except FieldfixError as err:
@@ -133,6 +140,7 @@ def main(argv=None) -> int:
         return EXIT_INTERRUPTED
     finally:
         signal.signal(signal.SIGTERM, previous)
+        nibabel_logger.setLevel(nibabel_level)
     status = EXIT_OK
     if isinstance(summary, dict) and summary.get("exit_status") is not None:
         status = int(summary.pop("exit_status"))
