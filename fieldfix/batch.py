@@ -48,6 +48,10 @@ from typing import Any, Iterable, Mapping, Sequence
 
 from fieldfix.errors import InputError
 
+import logging as _logging
+
+_logging.getLogger(__name__).addHandler(_logging.NullHandler())
+
 __all__ = [
     "BidsName",
     "parse_bids_name",
@@ -1617,10 +1621,16 @@ def _run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
 
     p = task.params
     b0 = _upstream_output(upstream, deriv, "b0_hz.nii.gz")
+    try:
+        mask = _upstream_output(upstream, deriv, "b0_mask.nii.gz")
+    except InputError:
+        mask = None
     timing = ({"readout_time_s": p["readout_time_s"]} if p.get("readout_time_s") is not None
               else {"echo_spacing_s": p["echo_spacing_s"]})
-    return run_unwarp([task.inputs["run"]], b0, staging, pe_code=p["pe_code"], command=command,
-                      **timing)
+    # the metadata were resolved by the BIDS inheritance principle, so they win over the
+    # run's own sidecar (which may hold only part of them)
+    return run_unwarp([task.inputs["run"]], b0, staging, pe_code=p["pe_code"],
+                      timing_win="arguments", b0_mask_path=mask, command=command, **timing)
 
 
 def _slice_thickness_mm(task: Task) -> float:

@@ -68,13 +68,14 @@ def field_hz(shape=SHAPE, peak_hz=60.0, seed=0) -> np.ndarray:
 
 
 def distort(image: np.ndarray, b0_hz: np.ndarray, readout_s: float, pe_sign: int) -> np.ndarray:
-    """Forward EPI distortion along axis 1: intensity moves by shift = f*T voxels.
+    """Forward EPI distortion along axis 1: intensity moves by shift = f * T * N / (N - 1)
+    voxels (BIDS: TotalReadoutTime = EffectiveEchoSpacing x (N - 1), and the shift is
+    the field times the echo spacing times N lines).
 
-    Applies the Jacobian so that total intensity is conserved (common practice, no
-    source).
+    Splatting with linear weights conserves total intensity (common practice, no source).
     """
-    shift = pe_sign * b0_hz * readout_s
     ny = image.shape[1]
+    shift = pe_sign * b0_hz * readout_s * ny / (ny - 1)
     out = np.zeros_like(image, dtype=np.float64)
     # push each source voxel to its shifted position with linear splatting
     idx = np.indices(image.shape).astype(np.float64)
