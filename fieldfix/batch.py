@@ -1488,6 +1488,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         raise InputError(f"jobs must be a whole number of at least 1, got {jobs!r}")
     if scheduler and scheduler_file:
         raise InputError("give a scheduler address or a scheduler file, not both")
+    if scheduler_file is not None and not Path(scheduler_file).is_file():
+        raise InputError("scheduler file not found", path=scheduler_file)
     root = Path(bids_root).expanduser().resolve()
     deriv = Path(out_dir).expanduser().resolve()
     if deriv == root or (deriv.is_relative_to(root) and deriv.relative_to(root).parts[0]
