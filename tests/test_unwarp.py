@@ -206,3 +206,195 @@ def test_field_on_grid_through_affines():
     values, inside = field_on_grid(field, src_affine, (4, 12, 4), dst_affine)
     world_y = 3.0 + 2.0 * np.arange(12)
     assert np.allclose(values[1, :, 1][inside[1, :, 1]], 5.0 * world_y[inside[1, :, 1]])
+
+
+# ---------------------------------------------------------------------------------------
+# Workflow and command line (small synthetic NIfTI files)
+
+import json  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import nibabel as nib  # noqa: E402
+
+from fieldfix.errors import MetadataError, OutputError  # noqa: E402
+from fieldfix.io import load_image, save_image  # noqa: E402
+from fieldfix.workflows.unwarp import run_unwarp  # noqa: E402
+
+FIELDFIX = Path(sys.executable).with_name("fieldfix")
+
+
+def _write_run(path, data, affine, tr_s=2.0, sidecar=None):
+    image = nib.Nifti1Image(np.asarray(data, np.float32), affine)
+    image.header.set_xyzt_units("mm", "sec")
+    if np.asarray(data).ndim == 4:
+        image.header.set_zooms(tuple(image.header.get_zooms()[:3]) + (tr_s,))
+    nib.save(image, str(path))
+    if sidecar is not None:
+        Path(str(path).replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
+    return Path(path)
+
+
+@pytest.fixture
+def scene(tmp_path):
+    """A 4D run on an oblique-free 2.5 mm grid and a B0 map on a finer, offset grid."""
+    rng = np.random.default_rng(11)
+    shape = (10, 24, 4)
+    affine = np.diag([2.5, 2.5, 3.0, 1.0])
+    affine[:3, 3] = [-12.0, -30.0, -6.0]
+    base = _smooth_object(shape, 1)
+    data = base[..., None] * (1 + 0.05 * rng.standard_normal((1, 1, 1, 40))) + 0.01 * rng.random(shape + (40,))
+    run = _write_run(tmp_path / "sub-01_task-rest_bold.nii.gz", data, affine, tr_s=1.5,
+                     sidecar={"PhaseEncodingDirection": "j-", "TotalReadoutTime": 0.0345, "RepetitionTime": 1.5})
+    b0_affine = np.diag([1.25, 1.25, 1.5, 1.0])
+    b0_affine[:3, 3] = [-13.0, -31.0, -7.0]
+    grid = np.meshgrid(*[np.arange(n, dtype=float) for n in (22, 50, 10)], indexing="ij")
+    world_y = b0_affine[1, 1] * grid[1] + b0_affine[1, 3]
+    b0 = 40.0 * np.sin(world_y / 12.0) + 10.0
+    b0_path = save_image(tmp_path / "b0_hz.nii.gz", b0, b0_affine)
+    mask = np.zeros(b0.shape)
+    mask[3:-3, 5:-5, 1:-1] = 1
+    save_image(tmp_path / "b0_mask.nii.gz", mask, b0_affine)
+    return tmp_path, run, b0_path, data, affine
+
+
+def test_workflow_streamed_equals_loaded_whole(scene):
+    folder, run, b0_path, data, affine = scene
+    summaries = run_unwarp([run], b0_path, folder / "out", interp="cubic")
+    (summary,) = summaries
+    outputs = {k: Path(v) for k, v in summary["outputs"].items()}
+    corrected = load_image(outputs["corrected"])
+    assert corrected.shape == data.shape and np.allclose(corrected.affine, affine)
+    assert corrected.tr_s == pytest.approx(1.5) and corrected.header.get_data_dtype() == np.float32
+    shift = load_image(outputs["shift_vox"]).get_fdata(np.float64)
+    whole = unwarp_array(nib.load(str(run)).get_fdata(), shift, 1, interp="cubic")
+    assert np.allclose(corrected.get_fdata(), whole, atol=1e-5)
+    # Timing and direction came from the sidecar; the mask beside the B0 map was found.
+    assert summary["pe_code"] == "j-" and summary["timing"]["source"] == "sidecar"
+    assert summary["timing"]["echo_spacing_s"] == pytest.approx(0.0345 / 23)
+    assert summary["b0_mask"].endswith("b0_mask.nii.gz") and summary["n_volumes"] == 40
+    assert summary["pe_direction_world"] == "anterior to posterior"
+    # Shift = -field x spacing x 24 lines, field sampled through the affines at the run's voxel centres.
+    world_y = affine[1, 1] * np.arange(24) + affine[1, 3]
+    expected = -(40.0 * np.sin(world_y / 12.0) + 10.0) * (0.0345 / 23) * 24
+    assert np.allclose(shift[5, :, 2], expected, atol=0.02)
+    stored = json.loads(outputs["summary"].read_text())
+    assert stored["max_abs_shift_mm"] == pytest.approx(summary["max_abs_shift_mm"])
+    assert 0 < stored["max_abs_shift_mm"] <= np.abs(expected).max() * 2.5 + 1e-6
+    # Provenance sidecar beside each image.
+    record = json.loads(outputs["corrected"].with_name("sub-01_task-rest_bold_corrected.json").read_text())
+    assert record["Parameters"]["interp"] == "cubic" and len(record["Inputs"]) == 3
+
+
+def test_workflow_displacement_field_and_masks(scene):
+    folder, run, b0_path, data, affine = scene
+    (summary,) = run_unwarp(run, b0_path, folder / "out", prefix="x_")
+    outputs = {k: Path(v) for k, v in summary["outputs"].items()}
+    assert outputs["corrected"].name == "x_sub-01_task-rest_bold_corrected.nii.gz"
+    disp = nib.load(str(outputs["displacement_mm"]))
+    assert disp.header.get_intent()[0] == "displacement vector" and int(disp.header["intent_code"]) == 1006
+    assert disp.shape == (10, 24, 4, 1, 3)
+    shift = nib.load(str(outputs["shift_vox"])).get_fdata()
+    vectors = disp.get_fdata()[:, :, :, 0, :]
+    assert np.allclose(vectors[..., 1], 2.5 * shift, atol=1e-5) and np.allclose(vectors[..., [0, 2]], 0)
+    fold = nib.load(str(outputs["fold_mask"])).get_fdata()
+    jac = nib.load(str(outputs["jacobian"])).get_fdata()
+    assert np.array_equal(fold > 0, jac <= 0.1)
+
+
+def test_workflow_metadata_errors(scene):
+    folder, run, b0_path, data, affine = scene
+    with pytest.raises(MetadataError, match="contradicts") as err:
+        run_unwarp([run], b0_path, folder / "a", readout_time_s=0.05)
+    assert "bold" in str(err.value)
+    (summary,) = run_unwarp([run], b0_path, folder / "b", readout_time_s=0.05, timing_win="arguments")
+    assert summary["timing"]["readout_time_s"] == pytest.approx(0.05)
+    with pytest.raises(MetadataError, match="phase-encode"):
+        run_unwarp([run], b0_path, folder / "c", pe_code="j")
+    (summary,) = run_unwarp([run], b0_path, folder / "d", pe_code="j", timing_win="arguments")
+    assert summary["pe_code"] == "j"
+    # Outputs exist: refused without overwrite, nothing replaced.
+    with pytest.raises(OutputError):
+        run_unwarp([run], b0_path, folder / "d", pe_code="j", timing_win="arguments")
+    assert not (folder / "a").exists() or not any((folder / "a").iterdir())
+
+
+def test_workflow_refuses_huge_shifts_unless_forced(scene):
+    folder, run, b0_path, data, affine = scene
+    # 0.3 s readout (plausible bound) with +-50 Hz: up to 0.3 / 23 * 50 * 24 = 15.6 voxels > 24 / 4.
+    with pytest.raises(GeometryError, match="quarter") as err:
+        run_unwarp([run], b0_path, folder / "o", readout_time_s=0.3, timing_win="arguments")
+    assert "sub-01_task-rest_bold" in str(err.value)
+    (summary,) = run_unwarp([run], b0_path, folder / "o", readout_time_s=0.3, timing_win="arguments", force=True)
+    assert summary["max_abs_shift_vox"] > 6
+
+
+def test_workflow_several_runs_share_field_map(tmp_path):
+    affine = np.diag([2.0, 2.0, 2.0, 1.0])
+    shape = (8, 16, 3)
+    b0 = np.full(shape, 25.0)
+    b0_path = save_image(tmp_path / "field.nii.gz", b0, affine)
+    img = np.zeros(shape + (3,))
+    img[:, 8, :, :] = 1.0
+    runs = [
+        _write_run(tmp_path / "run1.nii.gz", img, affine, sidecar={"PhaseEncodingDirection": "j",
+                                                                  "EffectiveEchoSpacing": 0.0005}),
+        _write_run(tmp_path / "run2.nii.gz", img[..., 0], affine, sidecar={"PhaseEncodingDirection": "j-",
+                                                                          "EffectiveEchoSpacing": 0.0005}),
+    ]
+    summaries = run_unwarp(runs, b0_path, tmp_path / "out", jacobian=False)
+    assert [s["pe_code"] for s in summaries] == ["j", "j-"]
+    # 25 Hz x 0.5 ms x 16 lines = 0.2 voxel; the corrected line moves against the shift.
+    first = load_image(summaries[0]["outputs"]["corrected"]).get_fdata()
+    second = load_image(summaries[1]["outputs"]["corrected"]).get_fdata()
+    assert first.shape == shape + (3,) and second.shape == shape
+    profile1 = first[4, :, 1, 0]
+    profile2 = second[4, :, 1]
+    assert np.arange(16) @ profile1 / profile1.sum() == pytest.approx(8 - 0.2)
+    assert np.arange(16) @ profile2 / profile2.sum() == pytest.approx(8 + 0.2)
+
+
+def test_workflow_recovers_simulated_run(tmp_path):
+    # End to end with the acquisition simulator: known object, known field, j- encoding.
+    from fieldfix.simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
+
+    shape, oversample = (16, 32, 3), (2, 2, 2)
+    x, y, _ = np.meshgrid(*fine_coordinates(shape, oversample), indexing="ij")
+    obj = np.exp(-(((x - 7.5) / 4) ** 2 + ((y - 15.5) / 7) ** 2) / 2)
+    field = 50 * np.sin(2 * np.pi * y / 32 + 0.4) + 15
+    data, _ = simulate_epi_run(obj, field, 4, pe_code="j-", echo_spacing_s=0.0008, echo_time_s=0.03,
+                               oversample=oversample, noise_sd=0.002, rng=np.random.default_rng(0))
+    affine = np.diag([3.0, 3.0, 3.0, 1.0])
+    run = _write_run(tmp_path / "sim_bold.nii.gz", data, affine,
+                     sidecar=epi_sidecar("j-", 32, 0.0008, 0.03))
+    b0_path = save_image(tmp_path / "b0_hz.nii.gz",
+                         field.reshape(16, 2, 32, 2, 3, 2).mean(axis=(1, 3, 5)), affine)
+    (summary,) = run_unwarp([run], b0_path, tmp_path / "out", interp="cubic")
+    corrected = load_image(summary["outputs"]["corrected"]).get_fdata()
+    truth = obj.reshape(16, 2, 32, 2, 3, 2).mean(axis=(1, 3, 5))
+
+    def nrmse(a):
+        return np.sqrt(np.mean((a - truth) ** 2)) / np.sqrt(np.mean(truth ** 2))
+
+    assert nrmse(data[..., 0]) > 0.1
+    assert all(nrmse(corrected[..., t]) < 0.03 for t in range(4))
+
+
+def test_cli_end_to_end(scene):
+    folder, run, b0_path, data, affine = scene
+    out = folder / "cli_out"
+    done = subprocess.run([str(FIELDFIX), "unwarp", str(run), "--b0", str(b0_path), "--phase-encoding", "j-",
+                           "--readout-time", "34.5ms", "--interp", "linear", "--out", str(out), "--json"],
+                          capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    summary = json.loads(done.stdout)
+    assert summary["runs"][0]["readout_time_ms"] == pytest.approx(34.5)
+    for suffix in ("_corrected.nii.gz", "_shift_vox.nii.gz", "_jacobian.nii.gz", "_fold_mask.nii.gz",
+                   "_displacement_mm.nii.gz", "_unwarp.json"):
+        assert (out / f"sub-01_task-rest_bold{suffix}").is_file()
+    # A bare number has no unit: refused with exit status 2 and one error line.
+    bad = subprocess.run([str(FIELDFIX), "unwarp", str(run), "--b0", str(b0_path), "--readout-time", "34.5",
+                          "--out", str(folder / "bad")], capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
+    assert not (folder / "bad").exists()

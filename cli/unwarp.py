@@ -1,0 +1,62 @@
+"""``fieldfix unwarp``: correct EPI runs along the phase-encode axis with a B0 map."""
+
+from __future__ import annotations
+
+import argparse
+
+HELP = "unwarp EPI runs along the phase-encode axis with a B0 map (Hz), with Jacobian intensity correction"
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("runs", nargs="+", metavar="RUN", help="EPI runs (3D or 4D NIfTI) sharing one B0 map")
+    parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (undistorted space)")
+    parser.add_argument("--phase-encoding", metavar="CODE", default=None,
+                        help="BIDS phase-encode code: i, i-, j, j-, k or k- (default: the run's sidecar)")
+    timing = parser.add_mutually_exclusive_group()
+    timing.add_argument("--readout-time", metavar="TIME", default=None,
+                        help="total readout time with its unit, e.g. 45.6ms (default: the sidecar)")
+    timing.add_argument("--echo-spacing", metavar="TIME", default=None,
+                        help="effective echo spacing with its unit, e.g. 0.5ms (default: the sidecar)")
+    parser.add_argument("--timing-wins", choices=("arguments", "sidecar"), default=None,
+                        help="which source wins when the options contradict a sidecar (default: stop with an error)")
+    parser.add_argument("--interp", choices=("linear", "cubic", "sinc"), default="linear",
+                        help="interpolation along the phase-encode axis (default: linear)")
+    parser.add_argument("--no-jacobian", action="store_true", help="skip the Jacobian intensity correction")
+    parser.add_argument("--b0-mask", metavar="MASK", default=None,
+                        help="mask of the B0 map, for the statistics (default: b0_mask beside the B0 map if present)")
+    parser.add_argument("--force", action="store_true",
+                        help="correct even when shifts exceed a quarter of the field of view")
+    parser.add_argument("--prefix", default="", help="prepended to every output file name")
+    parser.epilog = (
+        "Shift in voxels = field (Hz) x effective echo spacing (s) x phase-encode lines; with a total "
+        "readout time, echo spacing = readout time / (lines - 1). For each RUN, --out receives "
+        "<stem>_corrected.nii.gz, _shift_vox, _jacobian, _fold_mask, _displacement_mm (NIfTI vector "
+        "field, world mm) and <stem>_unwarp.json."
+    )
+
+
+def run(args) -> dict:
+    from fieldfix.units import parse_time_s
+    from fieldfix.workflows.unwarp import CAUTION, run_unwarp
+
+    readout_time_s = parse_time_s(args.readout_time) if args.readout_time is not None else None
+    echo_spacing_s = parse_time_s(args.echo_spacing) if args.echo_spacing is not None else None
+    summaries = run_unwarp(
+        args.runs, args.b0, args.out, pe_code=args.phase_encoding, readout_time_s=readout_time_s,
+        echo_spacing_s=echo_spacing_s, timing_win=args.timing_wins, interp=args.interp,
+        jacobian=not args.no_jacobian, b0_mask_path=args.b0_mask, force=args.force, prefix=args.prefix,
+        overwrite=args.overwrite, progress=args.progress, command=getattr(args, "command_line", None),
+    )
+    runs = []
+    for item in summaries:
+        runs.append({
+            "run": item["run"],
+            "corrected": item["outputs"]["corrected"],
+            "phase_encoding": f"{item['pe_code']} ({item['pe_direction_world']})",
+            "readout_time_ms": item["timing"]["readout_time_s"] * 1e3,
+            "max_abs_shift_mm": item["max_abs_shift_mm"],
+            "percent_shifted_over_1_voxel": item["percent_shifted_over_1_voxel"],
+            "folded_voxels": item["folded_voxels"],
+            "volumes": item["n_volumes"],
+        })
+    return {"runs": runs, "caution": CAUTION}
