@@ -119,8 +119,9 @@ def _prepare(wrapped, mask):
             m = m[..., None]
         if m.shape != arr.shape:
             raise ValueError(f"mask shape {m.shape} does not match phase shape {arr.shape}")
+    original = arr
     arr, m = _k.prepare_nb(np.ascontiguousarray(arr), np.ascontiguousarray(m))
-    return arr, m, squeeze
+    return arr, m, squeeze, original
 
 
 def reliability(wrapped_rad, mask=None):
@@ -130,7 +131,7 @@ def reliability(wrapped_rad, mask=None):
     differences over 13 directions; here only directions whose neighbours lie in the
     mask count, scaled up to 13 terms.
     """
-    arr, m, squeeze = _prepare(wrapped_rad, mask)
+    arr, m, squeeze, _ = _prepare(wrapped_rad, mask)
     d = _k.second_difference_nb(arr, m, _k.DIRECTIONS)
     with np.errstate(divide="ignore"):
         r = np.where(np.isfinite(d), 1.0 / d, 0.0)
@@ -169,11 +170,12 @@ def _place_regions(wrapped, multiple, mask, labels, n_regions):
         placed = np.concatenate([placed, idx_region])
 
 
-def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=None):
+def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=None, outside=None):
     """Apply region and global rules to integer ``multiple`` and build the result.
 
     ``smooth`` (non-congruent Laplacian only) replaces the phase inside the mask by a
-    smooth estimate shifted by the same global multiple.
+    smooth estimate shifted by the same global multiple; ``outside`` gives the values
+    returned outside the mask (the input re-wrapped).
     """
     multiple = np.where(mask, multiple, 0).astype(np.int64)
     if n_regions is None or n_regions > 1:
@@ -188,6 +190,8 @@ def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=Non
         out = wrapped + TWO_PI * multiple
     else:
         out = np.where(mask, smooth + TWO_PI * (multiple - np.rint((smooth - wrapped) / TWO_PI)), wrapped)
+    if outside is not None and not mask.all():
+        out = np.where(mask, out, wrap_phase(outside))
     n_changed = int(np.count_nonzero(multiple))
     if squeeze:
         out, mask, multiple = out[..., 0], mask[..., 0], multiple[..., 0]
@@ -216,7 +220,7 @@ def unwrap_quality(wrapped_rad, mask=None):
     >>> bool(np.allclose(res.phase, truth)), res.n_regions
     (True, 1)
     """
-    arr, m, squeeze = _prepare(wrapped_rad, mask)
+    arr, m, squeeze, original = _prepare(wrapped_rad, mask)
     dval = _k.second_difference_nb(arr, m, _k.DIRECTIONS)
     a, b, keys = _k.edges_nb(m, dval, _k.N_KEYS)
     del dval
@@ -227,7 +231,8 @@ def unwrap_quality(wrapped_rad, mask=None):
     # edges join 6-neighbours only, so union-find groups are the 6-connected regions
     n_regions = int(np.count_nonzero(m.ravel() & (roots == np.arange(roots.size))))
     del roots
-    return _finish(arr, multiple.reshape(arr.shape), m, squeeze, "quality", n_regions=n_regions)
+    return _finish(arr, multiple.reshape(arr.shape), m, squeeze, "quality", n_regions=n_regions,
+                   outside=original)
 
 
 def _axis_pairs(mask):
@@ -304,7 +309,7 @@ def _solve_masked_poisson(rhs, mask, pairs, *, rtol, maxiter):
     return x, it
 
 
-def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, rtol=1e-4, maxiter=50):
+def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, refinements=2, rtol=1e-4, maxiter=50):
     """Laplacian unwrap (Schofield and Zhu 2003, Optics Letters 28(14):1194).
 
     Schofield and Zhu write the Laplacian of the true phase as
@@ -324,6 +329,10 @@ def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, rtol=1e-4, maxit
         If True (default) round ``(estimate - wrapped) / 2pi`` to integers so the output
         differs from the input by whole multiples of 2*pi; if False return the smooth
         least-squares estimate itself (anchored to the data).
+    refinements : int
+        Extra passes on the wrapped residual ``wrap(p - estimate)``: ``sin`` underestimates
+        steep phase steps, and the residual is flatter, so each pass recovers part of
+        what the previous one missed.
     rtol, maxiter : float, int
         Stopping rule of the conjugate-gradient solver.
 
@@ -340,14 +349,18 @@ def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, rtol=1e-4, maxit
     >>> bool(np.allclose(d, d.flat[0]))
     True
     """
-    arr, m, squeeze = _prepare(wrapped_rad, mask)
+    arr, m, squeeze, original = _prepare(wrapped_rad, mask)
     pairs = _axis_pairs(m)
-    rhs = np.zeros_like(arr)
-    for lo, hi, ok in pairs:
-        d = np.where(ok, np.sin(arr[hi] - arr[lo]), 0.0)
-        rhs[lo] += d
-        rhs[hi] -= d
-    est, _ = _solve_masked_poisson(rhs, m, pairs, rtol=rtol, maxiter=maxiter)
+    est = np.zeros_like(arr)
+    for _ in range(1 + max(int(refinements), 0)):
+        resid = wrap_phase(arr - est) if est.any() else arr
+        rhs = np.zeros_like(arr)
+        for lo, hi, ok in pairs:
+            d = np.where(ok, np.sin(resid[hi] - resid[lo]), 0.0)
+            rhs[lo] += d
+            rhs[hi] -= d
+        step, _ = _solve_masked_poisson(rhs, m, pairs, rtol=rtol, maxiter=maxiter)
+        est = est + step
     # each region's solution has its own arbitrary constant: anchor it to the data
     labels, n_regions = ndi.label(m)
     if n_regions == 1:
@@ -357,7 +370,7 @@ def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, rtol=1e-4, maxit
             est[idx] += np.median(wrap_phase(arr[idx] - est[idx]))
     k = np.rint((est - arr) / TWO_PI).astype(np.int64)
     return _finish(arr, k, m, squeeze, "laplacian", smooth=None if congruent else est,
-                   n_regions=n_regions)
+                   n_regions=n_regions, outside=original)
 
 
 def unwrap(wrapped_rad, mask=None, method="quality"):

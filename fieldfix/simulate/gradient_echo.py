@@ -143,7 +143,7 @@ def smooth_random_phase(shape, *, amplitude_rad=np.pi, smoothness_vox=6.0, rng=N
 
 
 def simulate_gradient_echo(b0_hz, echo_times_s, *, magnitude=None, t2star_s=0.04, receiver_phase_rad=None,
-                           snr=30.0, rng=None):
+                           snr=30.0, frequency_adjust=True, rng=None):
     """Simulate complex gradient-echo images at several echo times.
 
     Parameters
@@ -160,6 +160,10 @@ def simulate_gradient_echo(b0_hz, echo_times_s, *, magnitude=None, t2star_s=0.04
         Echo-independent phase offset; default a smooth random map of amplitude pi.
     snr : float or None
         Mean first-echo magnitude in the object over the noise sigma; None for no noise.
+    frequency_adjust : bool
+        Subtract the median field inside the object first, as the scanner's centre
+        frequency adjustment does (common practice, no source); the returned
+        ``b0_hz`` is the adjusted field.
     rng : numpy.random.Generator or int or None
         Source of randomness (seed allowed).
 
@@ -177,6 +181,8 @@ def simulate_gradient_echo(b0_hz, echo_times_s, *, magnitude=None, t2star_s=0.04
     if mag.shape != shape:
         raise ValueError(f"magnitude shape {mag.shape} differs from field shape {shape}")
     obj = mag > 0
+    if frequency_adjust and obj.any():
+        b0_hz = b0_hz - np.median(b0_hz[obj])
     phi0 = (smooth_random_phase(shape, amplitude_rad=np.pi, rng=gen)
             if receiver_phase_rad is None else np.asarray(receiver_phase_rad, dtype=np.float64))
     decay0 = 1.0 if t2star_s is None else np.exp(-tes[0] / np.asarray(t2star_s, dtype=np.float64))
