@@ -973,6 +973,22 @@ def _provenance_inputs(image_path: Path) -> list[Path]:
     return out
 
 
+def _summary_paths(summary_path: Path | None) -> dict[str, Path]:
+    """Existing files the unwarp summary names: the distorted ``run``, ``b0_map``, ``b0_mask``."""
+    if summary_path is None:
+        return {}
+    try:
+        summary = json.loads(summary_path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    out = {}
+    for key in ("run", "b0_map", "b0_mask"):
+        value = summary.get(key) if isinstance(summary, dict) else None
+        if isinstance(value, str) and Path(value).is_file():
+            out[key] = Path(value)
+    return out
+
+
 def _nifti_stem(path: Path) -> str:
     from .io import image_stem
 
@@ -1024,17 +1040,29 @@ def find_outputs(folder: str | os.PathLike) -> ReportSources:
                 return candidate if candidate.is_file() else None
 
             corrected = folder / name
+            summary_path = find("_unwarp.json")
+            named = _summary_paths(summary_path)
             provenance = _provenance_inputs(corrected)
-            distorted = next((p for p in provenance if _nifti_stem(p) == stem and p.is_file()), None)
-            if distorted is None:  # a run whose file name differs from the stem: any other 4D/3D input
-                distorted = next((p for p in provenance if not p.name.endswith(_FIELD_SUFFIX) and p.is_file()
+            distorted = named.get("run")
+            if distorted is None:
+                distorted = next((p for p in provenance if _nifti_stem(p) == stem and p.is_file()), None)
+            if distorted is None:  # a run whose file name differs from the stem: an input that is no field map
+                distorted = next((p for p in provenance if "b0_" not in p.name and p.is_file()
                                   and p.name.endswith((".nii", ".nii.gz"))), None)
+            field_map = _match_field_map(sources.field_maps, [named["b0_map"]] if "b0_map" in named else provenance,
+                                         stem)
+            if field_map is None and "b0_map" in named:
+                field_map = FieldMapFiles.beside(named["b0_map"])
+            if field_map is not None and field_map.mask is None and "b0_mask" in named:
+                field_map.mask = named["b0_mask"]
             sources.runs.append(RunFiles(
                 stem=stem, corrected=corrected, shift_vox=find("_shift_vox.nii.gz"), jacobian=find("_jacobian.nii.gz"),
                 fold_mask=find("_fold_mask.nii.gz"), displacement_mm=find("_displacement_mm.nii.gz"),
-                summary=find("_unwarp.json"), distorted=distorted,
-                field_map=_match_field_map(sources.field_maps, provenance, stem),
+                summary=summary_path, distorted=distorted, field_map=field_map,
             ))
+            if field_map is not None and all(f.b0_hz.resolve() != field_map.b0_hz.resolve()
+                                             for f in sources.field_maps):
+                sources.field_maps.append(field_map)  # a B0 map kept in another folder
     prefixes = {n[: -len("retention.nii.gz")] for n in names if n.endswith("retention.nii.gz")}
     prefixes |= {n[: -len("dropout.json")] for n in names if n.endswith("dropout.json")}
     for prefix in sorted(prefixes):
@@ -1209,7 +1237,7 @@ def _run_part(run: RunFiles, index: int, dpi: int, with_figures: bool):
     mask = None
     mask_source = "none"
     if fmap is not None and fmap.mask is not None:
-        resampled = _on_grid(fmap.mask, shape, affine, order=1)
+        resampled = _on_grid(fmap.mask, shape, affine, order=0)  # nearest, as the unwarp workflow does
         mask = resampled > 0.5
         mask_source = "b0_mask resampled onto the EPI grid"
     if mask is None or not mask.any():

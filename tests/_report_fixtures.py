@@ -53,9 +53,11 @@ def shift_vox_of(field: np.ndarray) -> np.ndarray:
 
 
 def distort(image: np.ndarray, shift_vox: np.ndarray) -> np.ndarray:
-    """Move signal along j by `shift_vox` (pull from y - shift: adequate for smooth shifts)."""
-    i, j, k = np.meshgrid(*(np.arange(n, dtype=float) for n in SHAPE), indexing="ij")
-    return ndimage.map_coordinates(image, [i, j - shift_vox, k], order=1, mode="nearest")
+    """What an EPI acquisition shows: signal moved along j by `shift_vox`, conserving signal
+    (compression brightens), through the project's forward model."""
+    from fieldfix.unwarp import distort as forward
+
+    return forward(image, shift_vox, 1)
 
 
 def write_outputs(
@@ -98,10 +100,8 @@ def write_outputs(
 
     # The distorted run (in raw/) and the correction (in out/).
     distorted = distort(anat, shift)
-    corrected = distort(anat, -shift) if wrong_polarity else anat.copy()
-    # the wrongly corrected run is distorted twice over: pull the distorted image further
-    if wrong_polarity:
-        corrected = distort(distorted, shift)
+    # A perfect correction gives the anatomy back; one with the wrong polarity doubles the distortion.
+    corrected = distort(distorted, shift) if wrong_polarity else anat.copy()
     epi_scale = 7.0  # EPI intensities differ from the magnitude's (the measure must not care)
     run = np.stack([epi_scale * distorted + rng.normal(0, 1.0, SHAPE) for _ in range(n_volumes)], axis=-1)
     fixed = np.stack([epi_scale * corrected + rng.normal(0, 1.0, SHAPE) for _ in range(n_volumes)], axis=-1)

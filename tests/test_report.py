@@ -420,3 +420,30 @@ def test_cli_report_through_the_console_script(tmp_path):
     assert again.returncode == 2 and "overwrite" in again.stderr
     missing = subprocess.run([script, "report", str(tmp_path / "absent")], capture_output=True, text=True, timeout=60)
     assert missing.returncode == 2 and len(missing.stderr.strip().splitlines()) == 1
+
+
+# ---------------------------------------------------------------- a real workflow output
+
+
+def test_report_of_a_real_unwarp_output(tmp_path):
+    unwarp = pytest.importorskip("fieldfix.workflows.unwarp")
+    expected = write_outputs(tmp_path, with_dropout=False, with_plan=False)
+    raw = tmp_path / "raw" / f"{expected['stem']}.nii.gz"
+    out = tmp_path / "unwarped"
+    summaries = unwarp.run_unwarp([raw], expected["out"] / "b0_hz.nii.gz", out, pe_code="j-",
+                                  echo_spacing_s=0.0005)
+    page = rp.build_report(out)
+    data = json.loads(page.with_name("report.json").read_text())
+    run, workflow = data["runs"][0], summaries[0]
+    # The B0 map lives in another folder: found through the unwarp summary, shown too.
+    assert data["field_maps"][0]["file"] == str(expected["out"] / "b0_hz.nii.gz")
+    assert run["distorted"] == str(raw)
+    assert run["mask_source"].startswith("b0_mask")
+    # Same numbers as the workflow's own summary (same mask, same shift map).
+    assert run["max_abs_shift_mm"] == pytest.approx(workflow["max_abs_shift_mm"], rel=1e-6)
+    assert run["percent_over_one_voxel"] == pytest.approx(workflow["percent_shifted_over_1_voxel"])
+    assert run["folded_voxels"] == workflow["folded_voxels"]
+    assert run["timing"]["echo_spacing_s"] == pytest.approx(0.0005)
+    # The real correction moves EPI edges towards the anatomy.
+    assert run["edge_agreement_after"] > run["edge_agreement_before"] + 0.01
+    assert not {"edges_worse", "edges_unchanged"} & {w["code"] for w in data["warnings"]}
