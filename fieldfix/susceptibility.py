@@ -57,6 +57,8 @@ __all__ = [
     "b0_direction_from_pitch",
     "dipole_kernel",
     "field_from_susceptibility",
+    "head_extent_mm",
+    "head_labels_at",
     "head_model",
     "susceptibility_from_labels",
     "shim_basis",
@@ -469,6 +471,42 @@ def _head_parts(scale: float):
     # The brain is cut flat below, as the skull base is: nothing of it below this height.
     brain_floor_mm = -38.0 * s
     return outer, skull, inner, csf, brain, cavities, brain_floor_mm
+
+
+def head_labels_at(x, y, z, scale: float = 1.0) -> np.ndarray:
+    """Label of the procedural head at world points (mm, RAS+, head centre at the origin).
+
+    Parameters
+    ----------
+    x, y, z : array_like
+        Coordinates in mm (broadcastable).
+    scale : float
+        Uniform size factor of the head.
+
+    Returns
+    -------
+    ndarray uint8
+        Values from ``HEAD_LABELS``.
+
+    Example
+    -------
+    >>> int(head_labels_at(0.0, 0.0, 30.0)) == HEAD_LABELS["brain"]
+    True
+    """
+    x, y, z = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (x, y, z)))
+    return _labels_at(x, y, z, float(scale))
+
+
+def head_extent_mm(scale: float = 1.0) -> np.ndarray:
+    """Half-widths (mm) of the box that holds the procedural head, per world axis.
+
+    Example
+    -------
+    >>> head_extent_mm(1.0).tolist()
+    [76.0, 96.0, 100.0]
+    """
+    outer = _head_parts(float(scale))[0]
+    return np.abs(np.asarray(outer.center)) + np.asarray(outer.semi_axes)
 
 
 def _labels_at(x, y, z, scale: float) -> np.ndarray:

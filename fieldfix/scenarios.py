@@ -1,0 +1,646 @@
+"""Invented sample scenarios: a definition file -> a deterministic BIDS-style dataset with ground truth.
+
+A scenario definition (JSON, every quantity with its unit) describes an invented study: the field
+strength, the head's position in the magnet, a gradient-echo field map and one or more EPI runs.
+:func:`generate_scenario` builds from it, for each subject (and session):
+
+* the modelled B0 map: the procedural head of :mod:`fieldfix.susceptibility` (scalp, skull, brain,
+  sinuses, ear canals, mastoid cells), its field by the Fourier dipole kernel for the head's pitch,
+  shimmed to second order inside the brain;
+* field-map echoes from :mod:`fieldfix.simulate.gradient_echo`, written either as a phase difference
+  (``phasediff`` + ``magnitude1``/``magnitude2``, sidecar with ``EchoTime1``/``EchoTime2``) or as
+  two phases (``phase1``/``phase2`` + magnitudes, each with its ``EchoTime``); phase in radians;
+* EPI runs from :mod:`fieldfix.simulate.epi` (k-space line by line, through-slice integration, small
+  rigid motion, noise), sidecars with ``PhaseEncodingDirection``, ``TotalReadoutTime``,
+  ``EffectiveEchoSpacing``, ``EchoTime``, ``RepetitionTime``; the field map's ``IntendedFor`` lists
+  them (paths relative to the subject folder);
+* ground truth under ``derivatives/scenario-truth/``: the B0 map in Hz on the field-map grid and on
+  each run's grid, brain masks, the region-of-interest mask when the scenario names one, and an
+  undistorted reference volume of each run (the same simulation with zero field), plus
+  ``manifest.json`` listing every file (paths relative to the dataset root).
+
+Everything random comes from ``numpy.random.SeedSequence([seed, subject, session])``, so the same
+definition and seed give the same data arrays, whatever else has run before.
+
+Definition keys (see ``sample_scenarios/*/scenario.json``)::
+
+    name, title                      text
+    field_strength                   "3T"
+    subjects                         number of subjects (labels 01, 02, ...) or a list of labels
+    sessions                         0 (no session level), a number, or a list of labels
+    head.pitch, head.roll            "6deg"  mean head orientation (see b0_direction_from_pitch)
+    head.pitch_jitter                "4deg"  per-session standard deviation
+    head.scale, head.scale_jitter    1.0, 0.03  head size factor and its per-subject sd
+    head.shim_order                  2
+    model.voxel_size                 "2.5mm" grid of the susceptibility model (covers the head)
+    fieldmap.kind                    "phasediff" or "phase-pair"
+    fieldmap.echo_times              ["4.92ms", "7.38ms"]
+    fieldmap.voxel_size, .shape, .center   grid ("4mm", [48, 56, 36], ["0mm", "0mm", "10mm"])
+    fieldmap.snr, fieldmap.t2star    40, "40ms"
+    runs[]                           task, voxel_size, shape, center, phase_encoding_direction ("j-"),
+                                     echo_spacing, echo_time, repetition_time, volumes,
+                                     acceleration, partial_fourier, t2star, noise (fraction of
+                                     brain signal), motion_translation ("0.3mm"), motion_rotation
+    roi                              optional {name, center, semi_axes}: an ellipsoid, cut to brain
+
+Research software, not a medical device; the scenarios and all their data are invented.
+
+Example
+-------
+>>> from fieldfix.scenarios import generate_scenario, scenario_path    # doctest: +SKIP
+>>> root = generate_scenario(scenario_path("orbitofrontal-3t"), "/tmp/ofc3t")  # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+from scipy import ndimage
+
+from . import susceptibility as sus
+from .errors import InputError, OutputError
+from .geometry import parse_pe_code
+from .io import save_image, write_json
+from .simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
+from .simulate.gradient_echo import simulate_gradient_echo
+from .units import parse_angle_deg, parse_field_t, parse_length_mm, parse_time_s
+
+__all__ = [
+    "GENERATOR_VERSION",
+    "SAMPLE_SCENARIOS_DIR",
+    "generate_scenario",
+    "list_scenarios",
+    "load_definition",
+    "load_manifest",
+    "scenario_path",
+    "tissue_image",
+]
+
+#: Bumped whenever the generator's output for a given definition and seed changes.
+GENERATOR_VERSION = 1
+
+#: The repository's folder of sample scenarios (present in a source checkout).
+SAMPLE_SCENARIOS_DIR = Path(__file__).resolve().parent.parent / "sample_scenarios"
+
+TRUTH_DIR = Path("derivatives") / "scenario-truth"
+
+_DEFAULTS = {
+    "subjects": 1,
+    "sessions": 0,
+    "head": {"pitch": "0deg", "roll": "0deg", "pitch_jitter": "0deg", "scale": 1.0,
+             "scale_jitter": 0.0, "shim_order": 2},
+    "model": {"voxel_size": "2.5mm"},
+    "fieldmap": {"kind": "phasediff", "echo_times": ["4.92ms", "7.38ms"], "voxel_size": "4mm",
+                 "shape": [48, 56, 40], "center": ["0mm", "0mm", "5mm"], "snr": 40.0, "t2star": "40ms"},
+    "run": {"task": "rest", "voxel_size": "3mm", "shape": [64, 64, 36], "center": ["0mm", "0mm", "15mm"],
+            "phase_encoding_direction": "j-", "echo_spacing": "0.5ms", "echo_time": "30ms",
+            "repetition_time": "2s", "volumes": 4, "acceleration": 1, "partial_fourier": 1.0,
+            "t2star": "45ms", "noise": 0.02, "motion_translation": "0mm", "motion_rotation": "0deg"},
+}
+
+
+# ---------------------------------------------------------------------------------------------
+# Definitions
+# ---------------------------------------------------------------------------------------------
+
+
+def list_scenarios() -> list[str]:
+    """Names of the sample scenarios shipped in ``sample_scenarios/``.
+
+    Example
+    -------
+    >>> "orbitofrontal-3t" in list_scenarios()
+    True
+    """
+    if not SAMPLE_SCENARIOS_DIR.is_dir():
+        return []
+    return sorted(p.parent.name for p in SAMPLE_SCENARIOS_DIR.glob("*/scenario.json"))
+
+
+def scenario_path(name_or_path: str | os.PathLike) -> Path:
+    """Definition file of a scenario given by name, folder or file path.
+
+    Raises
+    ------
+    InputError
+        When nothing matches; the message lists the known scenario names.
+    """
+    p = Path(name_or_path)
+    if p.is_file():
+        return p
+    if p.is_dir() and (p / "scenario.json").is_file():
+        return p / "scenario.json"
+    candidate = SAMPLE_SCENARIOS_DIR / str(name_or_path) / "scenario.json"
+    if candidate.is_file():
+        return candidate
+    known = ", ".join(list_scenarios()) or "none found"
+    raise InputError(f"no scenario named {str(name_or_path)!r} (known: {known})")
+
+
+def _merge(base: dict, over: dict) -> dict:
+    out = copy.deepcopy(base)
+    for k, v in over.items():
+        if isinstance(v, dict) and isinstance(out.get(k), dict):
+            out[k] = _merge(out[k], v)
+        else:
+            out[k] = copy.deepcopy(v)
+    return out
+
+
+def load_definition(definition_or_path) -> dict:
+    """Read and validate a scenario definition; returns it with defaults filled in.
+
+    Parameters
+    ----------
+    definition_or_path : dict, str or PathLike
+        A definition dict, a path to its JSON file or folder, or a sample scenario's name.
+
+    Returns
+    -------
+    dict
+        The definition with parsed SI values under the key ``"_parsed"``.
+
+    Raises
+    ------
+    InputError, UnitError
+        Naming the file and the bad key.
+    """
+    source = None
+    if isinstance(definition_or_path, dict):
+        raw = definition_or_path
+    else:
+        source = scenario_path(definition_or_path)
+        try:
+            raw = json.loads(source.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as err:
+            raise InputError(f"cannot read the scenario definition ({err})", source) from None
+    if not isinstance(raw, dict) or "name" not in raw:
+        raise InputError("a scenario definition is a JSON object with at least a 'name'", source)
+    d = _merge({k: v for k, v in _DEFAULTS.items() if k != "run"}, raw)
+    d["runs"] = [_merge(_DEFAULTS["run"], r) for r in raw.get("runs", [{}])]
+    try:
+        d["_parsed"] = _parse(d)
+    except InputError as err:
+        raise type(err)(str(err.args[0]) if err.args else str(err), source) from None
+    except (TypeError, ValueError, KeyError) as err:
+        raise InputError(f"bad scenario definition: {err}", source) from None
+    d["_source"] = str(source) if source else None
+    return d
+
+
+def _vec_mm(values, what) -> np.ndarray:
+    if len(values) != 3:
+        raise InputError(f"{what} needs three values")
+    return np.array([parse_length_mm(v) for v in values], float)
+
+
+def _shape(values, what) -> tuple[int, int, int]:
+    if len(values) != 3 or any(int(v) != v or int(v) < 2 for v in values):
+        raise InputError(f"{what} must be three integers >= 2")
+    return tuple(int(v) for v in values)
+
+
+def _voxel(value, what) -> np.ndarray:
+    if isinstance(value, (list, tuple)):
+        return _vec_mm(value, what)
+    return np.full(3, parse_length_mm(value))
+
+
+def _labels(spec, prefix_width: int = 2) -> list[str]:
+    if isinstance(spec, (list, tuple)):
+        labels = [str(s) for s in spec]
+        if any(not s.isalnum() for s in labels):
+            raise InputError("subject and session labels must be letters and digits")
+        return labels
+    n = int(spec)
+    if n < 0:
+        raise InputError("the number of subjects/sessions cannot be negative")
+    return [str(i + 1).zfill(prefix_width) for i in range(n)]
+
+
+def _parse(d: dict) -> dict:
+    head = d["head"]
+    fm = d["fieldmap"]
+    if fm["kind"] not in ("phasediff", "phase-pair"):
+        raise InputError("fieldmap.kind must be 'phasediff' or 'phase-pair'")
+    tes = [parse_time_s(t) for t in fm["echo_times"]]
+    if len(tes) != 2 or not 0 < tes[0] < tes[1]:
+        raise InputError("fieldmap.echo_times must be two increasing echo times")
+    p = {
+        "field_t": parse_field_t(d["field_strength"]),
+        "subjects": _labels(d["subjects"]),
+        "sessions": _labels(d["sessions"], 1) if d["sessions"] else [],
+        "pitch_deg": parse_angle_deg(head["pitch"]),
+        "roll_deg": parse_angle_deg(head["roll"]),
+        "pitch_jitter_deg": parse_angle_deg(head["pitch_jitter"]),
+        "scale": float(head["scale"]),
+        "scale_jitter": float(head["scale_jitter"]),
+        "shim_order": int(head["shim_order"]),
+        "model_voxel_mm": _voxel(d["model"]["voxel_size"], "model.voxel_size"),
+        "fieldmap": {
+            "kind": fm["kind"],
+            "echo_times_s": tes,
+            "voxel_mm": _voxel(fm["voxel_size"], "fieldmap.voxel_size"),
+            "shape": _shape(fm["shape"], "fieldmap.shape"),
+            "center_mm": _vec_mm(fm["center"], "fieldmap.center"),
+            "snr": float(fm["snr"]),
+            "t2star_s": parse_time_s(fm["t2star"]),
+        },
+        "runs": [],
+        "roi": None,
+    }
+    if not p["subjects"]:
+        raise InputError("a scenario needs at least one subject")
+    if p["shim_order"] not in (0, 1, 2):
+        raise InputError("head.shim_order must be 0, 1 or 2")
+    tasks = set()
+    for i, r in enumerate(d["runs"]):
+        task = str(r["task"])
+        if not task.isalnum() or task in tasks:
+            raise InputError(f"runs[{i}].task must be a unique word of letters and digits")
+        tasks.add(task)
+        parse_pe_code(r["phase_encoding_direction"])
+        run = {
+            "task": task,
+            "voxel_mm": _voxel(r["voxel_size"], f"runs[{i}].voxel_size"),
+            "shape": _shape(r["shape"], f"runs[{i}].shape"),
+            "center_mm": _vec_mm(r["center"], f"runs[{i}].center"),
+            "pe_code": str(r["phase_encoding_direction"]),
+            "echo_spacing_s": parse_time_s(r["echo_spacing"]),
+            "echo_time_s": parse_time_s(r["echo_time"]),
+            "repetition_time_s": parse_time_s(r["repetition_time"]),
+            "volumes": int(r["volumes"]),
+            "acceleration": int(r["acceleration"]),
+            "partial_fourier": float(r["partial_fourier"]),
+            "t2star_s": parse_time_s(r["t2star"]),
+            "noise": float(r["noise"]),
+            "motion_translation_mm": parse_length_mm(r["motion_translation"]),
+            "motion_rotation_deg": parse_angle_deg(r["motion_rotation"]),
+        }
+        if run["volumes"] < 1:
+            raise InputError(f"runs[{i}].volumes must be at least 1")
+        p["runs"].append(run)
+    if "roi" in d and d["roi"]:
+        roi = d["roi"]
+        name = str(roi.get("name", "roi"))
+        if not name.isalnum():
+            raise InputError("roi.name must be letters and digits")
+        p["roi"] = {"name": name, "center_mm": _vec_mm(roi["center"], "roi.center"),
+                    "semi_axes_mm": _vec_mm(roi["semi_axes"], "roi.semi_axes")}
+    return p
+
+
+def _definition_hash(d: dict) -> str:
+    public = {k: v for k, v in d.items() if not k.startswith("_")}
+    return hashlib.sha256(json.dumps(public, sort_keys=True).encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------------------------
+# Images of the invented head
+# ---------------------------------------------------------------------------------------------
+
+# Relative signal of each label in T2*-weighted EPI and gradient-echo magnitude images (an invented
+# contrast that looks plausible: CSF bright, skull and air dark; common practice, no source).
+_TISSUE_SIGNAL = {
+    "air": 0.0, "scalp": 0.55, "skull": 0.05, "csf": 1.3, "brain": 0.9, "frontal_sinus": 0.0,
+    "sphenoid_sinus": 0.0, "ethmoid_cells": 0.0, "ear_canal": 0.0, "mastoid_cells": 0.0,
+    "soft_tissue": 0.5,
+}
+
+
+def tissue_image(x, y, z, scale: float = 1.0) -> np.ndarray:
+    """Relative magnitude of the invented head at world points (mm), with inner structure.
+
+    Brain carries a darker white-matter core and bright ventricles so that distortion and its
+    correction are visible.
+
+    Example
+    -------
+    >>> float(tissue_image(0.0, 0.0, 200.0))
+    0.0
+    """
+    x, y, z = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (x, y, z)))
+    labels = sus.head_labels_at(x, y, z, scale)
+    lut = np.zeros(256)
+    for name, value in _TISSUE_SIGNAL.items():
+        lut[sus.HEAD_LABELS[name]] = value
+    img = lut[labels]
+    brain = labels == sus.HEAD_LABELS["brain"]
+    s = float(scale)
+    wm = ((x / (42 * s)) ** 2 + ((y + 5 * s) / (58 * s)) ** 2 + ((z - 20 * s) / (40 * s)) ** 2) <= 1
+    img[brain & wm] = 0.65
+    for side in (-1, 1):
+        vent = (((x - side * 9 * s) / (6 * s)) ** 2 + ((y + 5 * s) / (28 * s)) ** 2
+                + ((z - 22 * s) / (9 * s)) ** 2) <= 1
+        img[brain & vent] = 1.3
+    return img
+
+
+def _grid_affine(voxel_mm, shape, center_mm) -> np.ndarray:
+    aff = np.diag([*np.asarray(voxel_mm, float), 1.0])
+    aff[:3, 3] = np.asarray(center_mm, float) - np.asarray(voxel_mm, float) * (np.asarray(shape) - 1) / 2
+    return aff
+
+
+def _world(affine, index_axes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """World coordinates of the grid given by per-axis fractional index arrays."""
+    i, j, k = np.meshgrid(*index_axes, indexing="ij")
+    a = affine
+    return (a[0, 0] * i + a[0, 1] * j + a[0, 2] * k + a[0, 3],
+            a[1, 0] * i + a[1, 1] * j + a[1, 2] * k + a[1, 3],
+            a[2, 0] * i + a[2, 1] * j + a[2, 2] * k + a[2, 3])
+
+
+def _sample(volume, affine, x, y, z, order=1) -> np.ndarray:
+    inv = np.linalg.inv(affine)
+    coords = [inv[r, 0] * x + inv[r, 1] * y + inv[r, 2] * z + inv[r, 3] for r in range(3)]
+    return ndimage.map_coordinates(volume, coords, order=order, mode="nearest")
+
+
+# ---------------------------------------------------------------------------------------------
+# Generation
+# ---------------------------------------------------------------------------------------------
+
+
+def _bids_stem(sub: str, ses: str | None) -> str:
+    return f"sub-{sub}" + (f"_ses-{ses}" if ses else "")
+
+
+def _bids_dir(sub: str, ses: str | None) -> Path:
+    return Path(f"sub-{sub}") / (f"ses-{ses}" if ses else "")
+
+
+def _model_field(p: dict, scale: float, pitch_deg: float):
+    """Shimmed B0 map (Hz) of the head on the model grid, with the model."""
+    vox = p["model_voxel_mm"]
+    half = sus.head_extent_mm(scale) + 12.0
+    shape = tuple(int(np.ceil(2 * h / v)) + 1 for h, v in zip(half, vox))
+    hm = sus.head_model(shape, tuple(vox), scale=scale, supersample=2)
+    b_dir = sus.b0_direction_from_pitch(pitch_deg, p["roll_deg"])
+    raw = sus.field_from_susceptibility(hm.chi_ppm, hm.affine, field_t=p["field_t"], b0_direction=b_dir,
+                                        workers=1)
+    b0, _ = sus.shim_field(raw, hm.brain_mask, hm.affine, order=p["shim_order"])
+    return b0, hm
+
+
+def _roi_mask(p, scale, x, y, z, brain):
+    roi = p["roi"]
+    if roi is None:
+        return None
+    c = roi["center_mm"] * scale
+    a = roi["semi_axes_mm"] * scale
+    inside = ((x - c[0]) / a[0]) ** 2 + ((y - c[1]) / a[1]) ** 2 + ((z - c[2]) / a[2]) ** 2 <= 1
+    return inside & brain
+
+
+def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.SeedSequence,
+                  scale: float, overwrite: bool) -> dict:
+    rng = np.random.default_rng(seq)
+    pitch = p["pitch_deg"] + (rng.normal(0, p["pitch_jitter_deg"]) if p["pitch_jitter_deg"] > 0 else 0.0)
+    pitch = float(np.round(pitch, 3))
+    b0_model, hm = _model_field(p, scale, pitch)
+    stem = _bids_stem(sub, ses)
+    rel_dir = _bids_dir(sub, ses)
+    truth_dir = TRUTH_DIR / rel_dir
+    field_t = p["field_t"]
+    entry = {"subject": sub, "session": ses or "", "pitch_deg": pitch, "head_scale": scale,
+             "runs": [], "fieldmap": {}, "truth": {}}
+
+    def save(rel, data, affine, dtype=np.float32, sidecar=None, template=None):
+        save_image(root / rel, data, affine, dtype=dtype, overwrite=overwrite, template=template)
+        if sidecar is not None:
+            write_json(root / (str(rel)[: -len(".nii.gz")] + ".json"), sidecar, overwrite=overwrite)
+        return str(rel)
+
+    # --- EPI runs (first, so the field map can name them in IntendedFor) ---
+    intended = []
+    for run in p["runs"]:
+        aff = _grid_affine(run["voxel_mm"], run["shape"], run["center_mm"])
+        # Two sub-samples along the phase-encode axis (field variation within a voxel) and along
+        # the slice (through-slice dephasing); the readout needs none in this signal model.
+        pe_axis, _ = parse_pe_code(run["pe_code"])
+        slice_axis = 2 if pe_axis != 2 else 1
+        factors = tuple(2 if a in (pe_axis, slice_axis) else 1 for a in range(3))
+        fine_axes = fine_coordinates(run["shape"], factors)
+        fx, fy, fz = _world(aff, fine_axes)
+        obj_fine = tissue_image(fx, fy, fz, scale)
+        b0_fine = _sample(b0_model, hm.affine, fx, fy, fz)
+        b0_fine[obj_fine <= 0] = 0.0  # no signal there; keeps the air's extreme values out
+        n_pe = run["shape"][pe_axis]
+        options = dict(pe_code=run["pe_code"], echo_spacing_s=run["echo_spacing_s"],
+                       echo_time_s=run["echo_time_s"], oversample=factors, acceleration=run["acceleration"],
+                       partial_fourier=run["partial_fourier"], t2star_s=run["t2star_s"])
+        mean_vox = float(np.mean(run["voxel_mm"]))
+        data, motion = simulate_epi_run(
+            obj_fine, b0_fine, run["volumes"], noise_sd=run["noise"],
+            translation_sd_vox=run["motion_translation_mm"] / mean_vox,
+            rotation_sd_deg=run["motion_rotation_deg"], rng=rng, **options)
+        reference, _ = simulate_epi_run(obj_fine, np.zeros_like(b0_fine), 1, **options)
+        scale_signal = 1000.0  # scanner-like numbers
+        bold_rel = rel_dir / "func" / f"{stem}_task-{run['task']}_bold.nii.gz"
+        sidecar = epi_sidecar(run["pe_code"], n_pe, run["echo_spacing_s"], run["echo_time_s"],
+                              run["acceleration"])
+        sidecar.update({"TaskName": run["task"], "RepetitionTime": run["repetition_time_s"],
+                        "MagneticFieldStrength": field_t,
+                        "SliceThickness": float(run["voxel_mm"][2]),
+                        "PartialFourier": run["partial_fourier"]})
+        save(bold_rel, data * scale_signal, aff, sidecar=sidecar,
+             template=_tr_template(aff, run["repetition_time_s"]))
+        intended.append(str(bold_rel.relative_to(Path(f"sub-{sub}"))))
+        # truth on the run grid
+        cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run["shape"]])
+        b0_run = _sample(b0_model, hm.affine, cx, cy, cz)
+        labels_run = sus.head_labels_at(cx, cy, cz, scale)
+        brain_run = labels_run == sus.HEAD_LABELS["brain"]
+        tstem = f"{stem}_task-{run['task']}"
+        rec = {
+            "task": run["task"],
+            "bold": str(bold_rel),
+            "pe_code": run["pe_code"],
+            "total_readout_time_s": sidecar["TotalReadoutTime"],
+            "effective_echo_spacing_s": sidecar["EffectiveEchoSpacing"],
+            "echo_time_s": run["echo_time_s"],
+            "slice_thickness_mm": float(run["voxel_mm"][2]),
+            "motion": motion.round(6).tolist(),
+            "truth_b0_hz": save(truth_dir / "func" / f"{tstem}_desc-truth_fieldmap.nii.gz", b0_run, aff,
+                                sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),
+            "brain_mask": save(truth_dir / "func" / f"{tstem}_desc-brain_mask.nii.gz", brain_run, aff,
+                               dtype=np.uint8),
+            "undistorted": save(truth_dir / "func" / f"{tstem}_desc-undistorted_bold.nii.gz",
+                                reference[..., 0] * scale_signal, aff),
+        }
+        roi = _roi_mask(p, scale, cx, cy, cz, brain_run)
+        if roi is not None:
+            rec["roi_mask"] = save(truth_dir / "func" / f"{tstem}_desc-{p['roi']['name']}_mask.nii.gz",
+                                   roi, aff, dtype=np.uint8)
+        entry["runs"].append(rec)
+
+    # --- field map ---
+    fm = p["fieldmap"]
+    aff = _grid_affine(fm["voxel_mm"], fm["shape"], fm["center_mm"])
+    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in fm["shape"]])
+    b0_fm = _sample(b0_model, hm.affine, cx, cy, cz).astype(np.float64)
+    magnitude = tissue_image(cx, cy, cz, scale)
+    gre = simulate_gradient_echo(b0_fm, fm["echo_times_s"], magnitude=magnitude, t2star_s=fm["t2star_s"],
+                                 snr=fm["snr"], rng=rng)
+    te1, te2 = fm["echo_times_s"]
+    fdir = rel_dir / "fmap"
+    common = {"MagneticFieldStrength": field_t, "IntendedFor": intended}
+    files = {}
+    mags = gre.magnitudes()
+    files["magnitude1"] = save(fdir / f"{stem}_magnitude1.nii.gz", mags[0] * 1000.0, aff,
+                               sidecar={"EchoTime": te1, "MagneticFieldStrength": field_t})
+    files["magnitude2"] = save(fdir / f"{stem}_magnitude2.nii.gz", mags[1] * 1000.0, aff,
+                               sidecar={"EchoTime": te2, "MagneticFieldStrength": field_t})
+    if fm["kind"] == "phasediff":
+        dphi = np.angle(gre.echoes[1] * np.conj(gre.echoes[0]))
+        files["phasediff"] = save(fdir / f"{stem}_phasediff.nii.gz", dphi, aff,
+                                  sidecar={"EchoTime1": te1, "EchoTime2": te2, "Units": "rad", **common})
+    else:
+        phases = gre.phases_rad()
+        files["phase1"] = save(fdir / f"{stem}_phase1.nii.gz", phases[0], aff,
+                               sidecar={"EchoTime": te1, "Units": "rad", **common})
+        files["phase2"] = save(fdir / f"{stem}_phase2.nii.gz", phases[1], aff,
+                               sidecar={"EchoTime": te2, "Units": "rad", **common})
+    entry["fieldmap"] = {"kind": fm["kind"], "echo_times_s": [te1, te2], "files": files}
+    brain_fm = sus.head_labels_at(cx, cy, cz, scale) == sus.HEAD_LABELS["brain"]
+    entry["truth"] = {
+        "b0_hz": save(truth_dir / "fmap" / f"{stem}_desc-truth_fieldmap.nii.gz", b0_fm, aff,
+                      sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
+        "brain_mask": save(truth_dir / "fmap" / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff,
+                           dtype=np.uint8),
+    }
+    roi = _roi_mask(p, scale, cx, cy, cz, brain_fm)
+    if roi is not None:
+        entry["truth"]["roi_mask"] = save(truth_dir / "fmap" / f"{stem}_desc-{p['roi']['name']}_mask.nii.gz",
+                                          roi, aff, dtype=np.uint8)
+    brain_b0 = b0_fm[brain_fm]
+    entry["truth"]["brain_b0_hz_percentiles"] = {
+        "p1": float(np.percentile(brain_b0, 1)), "p50": float(np.percentile(brain_b0, 50)),
+        "p99": float(np.percentile(brain_b0, 99))}
+    return entry
+
+
+def _tr_template(affine, tr_s: float):
+    """A tiny 4D NIfTI whose header carries the voxel sizes and the repetition time."""
+    import nibabel as nib
+
+    header = nib.Nifti1Header()
+    header.set_data_shape((1, 1, 1, 1))
+    header.set_zooms((*np.sqrt((np.asarray(affine)[:3, :3] ** 2).sum(0)), float(tr_s)))
+    header.set_xyzt_units("mm", "sec")
+    return nib.Nifti1Image(np.zeros((1, 1, 1, 1), np.float32), affine, header)
+
+
+def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int = 0, overwrite: bool = False,
+                      sessions=None) -> Path:
+    """Build a BIDS-style dataset with ground truth from a scenario definition.
+
+    Parameters
+    ----------
+    definition_or_path : dict, str or PathLike
+        Definition dict, its JSON file or folder, or the name of a sample scenario.
+    out_root : str or PathLike
+        Dataset folder to create (must be empty or absent unless ``overwrite``).
+    subjects : int or list of str, optional
+        Overrides the definition's subjects: a number (labels 01, 02, ...) or labels.
+    seed : int
+        Seed of all randomness; the same definition and seed give the same data arrays.
+    overwrite : bool
+        Replace files of an earlier generation in ``out_root``.
+    sessions : int or list of str, optional
+        Overrides the definition's sessions (0 for none).
+
+    Returns
+    -------
+    Path
+        ``out_root``; ``derivatives/scenario-truth/manifest.json`` lists every file written.
+
+    Raises
+    ------
+    InputError
+        Bad definition.
+    OutputError
+        ``out_root`` holds files and ``overwrite`` is false.
+    """
+    d = load_definition(definition_or_path)
+    p = d["_parsed"]
+    if subjects is not None:
+        p["subjects"] = _labels(subjects)
+        if not p["subjects"]:
+            raise InputError("a scenario needs at least one subject")
+    if sessions is not None:
+        p["sessions"] = _labels(sessions, 1) if sessions else []
+    seed = int(seed)
+    root = Path(out_root)
+    if root.exists() and not root.is_dir():
+        raise OutputError("the dataset folder is a file", root)
+    if root.is_dir() and any(root.iterdir()) and not overwrite:
+        raise OutputError("the dataset folder is not empty; pass overwrite to regenerate", root)
+    root.mkdir(parents=True, exist_ok=True)
+
+    public = {k: v for k, v in d.items() if not k.startswith("_")}
+    write_json(root / "dataset_description.json", {
+        "Name": f"fieldfix sample scenario: {d.get('title', d['name'])}",
+        "BIDSVersion": "1.9.0",
+        "DatasetType": "raw",
+        "GeneratedBy": [{"Name": "fieldfix", "Description": "invented sample scenario (synthetic data)"}],
+    }, overwrite=overwrite)
+    write_json(root / TRUTH_DIR / "dataset_description.json", {
+        "Name": "ground truth of the invented scenario",
+        "BIDSVersion": "1.9.0",
+        "DatasetType": "derivative",
+        "GeneratedBy": [{"Name": "fieldfix", "Description": "modelled field and references"}],
+    }, overwrite=overwrite)
+    entries = []
+    rows = ["participant_id\thead_scale"]
+    for i, sub in enumerate(p["subjects"]):
+        sub_rng = np.random.default_rng(np.random.SeedSequence([seed, i]))
+        scale = p["scale"] * (1.0 + (sub_rng.normal(0, p["scale_jitter"]) if p["scale_jitter"] > 0 else 0.0))
+        scale = float(np.round(scale, 4))
+        rows.append(f"sub-{sub}\t{scale}")
+        for j, ses in enumerate(p["sessions"] or [None]):
+            seq = np.random.SeedSequence([seed, i, j + 1])
+            entries.append(_generate_one(p, d, root, sub, ses, seq, scale, overwrite))
+    _write_text(root / "participants.tsv", "\n".join(rows) + "\n", overwrite)
+    manifest = {
+        "scenario": d["name"],
+        "title": d.get("title", d["name"]),
+        "generator_version": GENERATOR_VERSION,
+        "definition_sha256": _definition_hash(d),
+        "definition": public,
+        "seed": seed,
+        "field_strength_t": p["field_t"],
+        "roi_name": p["roi"]["name"] if p["roi"] else None,
+        "entries": entries,
+    }
+    write_json(root / TRUTH_DIR / "manifest.json", manifest, overwrite=overwrite)
+    return root
+
+
+def _write_text(path: Path, text: str, overwrite: bool) -> None:
+    if path.exists() and not overwrite:
+        raise OutputError("output exists; pass overwrite to replace it", path)
+    tmp = path.with_name(f".{path.name}.part")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def load_manifest(root) -> dict:
+    """The manifest written by :func:`generate_scenario` (paths relative to ``root``).
+
+    Raises
+    ------
+    InputError
+        When ``root`` holds no generated scenario.
+    """
+    path = Path(root) / TRUTH_DIR / "manifest.json"
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        raise InputError("not a generated scenario (no readable manifest)", path) from None

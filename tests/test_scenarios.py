@@ -1,0 +1,164 @@
+"""Tests of the scenario generator: determinism, BIDS layout and sidecars, ground truth consistency."""
+
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from fieldfix import scenarios
+from fieldfix.errors import InputError, OutputError, UnitError
+from fieldfix.units import GAMMA_HZ_PER_T  # noqa: F401  (imported to check the constants module exists)
+
+TINY = {
+    "name": "tiny-test",
+    "title": "tiny invented test scenario",
+    "field_strength": "3T",
+    "head": {"pitch": "5deg", "pitch_jitter": "3deg", "scale_jitter": 0.02},
+    "model": {"voxel_size": "6mm"},
+    "fieldmap": {"kind": "phasediff", "echo_times": ["4.92ms", "7.38ms"], "voxel_size": "8mm",
+                 "shape": [22, 26, 26], "center": ["0mm", "0mm", "0mm"], "snr": 200, "t2star": "40ms"},
+    "runs": [{"task": "rest", "voxel_size": "8mm", "shape": [20, 24, 8], "center": ["0mm", "0mm", "-10mm"],
+              "phase_encoding_direction": "j-", "echo_spacing": "0.6ms", "echo_time": "30ms",
+              "repetition_time": "2s", "volumes": 2, "noise": 0.01, "motion_translation": "0.5mm"}],
+    "roi": {"name": "orbitofrontal", "center": ["0mm", "45mm", "-27mm"],
+            "semi_axes": ["24mm", "20mm", "12mm"]},
+}
+
+
+def _arrays(root: Path) -> dict:
+    return {str(p.relative_to(root)): np.asanyarray(nib.load(p).dataobj)
+            for p in sorted(root.rglob("*.nii.gz"))}
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    root = tmp_path_factory.mktemp("scen") / "ds"
+    scenarios.generate_scenario(TINY, root, seed=7)
+    return root
+
+
+def test_layout_and_sidecars(tiny):
+    m = scenarios.load_manifest(tiny)
+    assert m["scenario"] == "tiny-test" and m["seed"] == 7
+    (entry,) = m["entries"]
+    assert (tiny / "dataset_description.json").is_file()
+    assert (tiny / "participants.tsv").read_text().startswith("participant_id")
+    files = entry["fieldmap"]["files"]
+    assert set(files) == {"phasediff", "magnitude1", "magnitude2"}
+    pd_json = json.loads((tiny / files["phasediff"].replace(".nii.gz", ".json")).read_text())
+    assert pd_json["EchoTime1"] == pytest.approx(0.00492) and pd_json["EchoTime2"] == pytest.approx(0.00738)
+    (run,) = entry["runs"]
+    # IntendedFor is relative to the subject folder and names the run that exists
+    assert pd_json["IntendedFor"] == ["func/sub-01_task-rest_bold.nii.gz"]
+    assert (tiny / "sub-01" / pd_json["IntendedFor"][0]).is_file()
+    bold = tiny / run["bold"]
+    side = json.loads(bold.with_name(bold.name.replace(".nii.gz", ".json")).read_text())
+    assert side["PhaseEncodingDirection"] == "j-"
+    # TotalReadoutTime = effective echo spacing x (PE lines - 1) (BIDS definition)
+    assert side["TotalReadoutTime"] == pytest.approx(0.0006 * 23)
+    assert side["RepetitionTime"] == 2.0
+    img = nib.load(bold)
+    assert img.shape == (20, 24, 8, 2)
+    assert img.header.get_zooms()[3] == pytest.approx(2.0)
+    for key in ("truth_b0_hz", "brain_mask", "undistorted", "roi_mask"):
+        assert (tiny / run[key]).is_file(), key
+    roi = np.asanyarray(nib.load(tiny / run["roi_mask"]).dataobj) > 0
+    brain = np.asanyarray(nib.load(tiny / run["brain_mask"]).dataobj) > 0
+    assert roi.any() and not (roi & ~brain).any()
+
+
+def test_deterministic_same_seed_same_arrays(tiny, tmp_path):
+    again = scenarios.generate_scenario(TINY, tmp_path / "again", seed=7)
+    a, b = _arrays(tiny), _arrays(again)
+    assert a.keys() == b.keys() and len(a) >= 10
+    for k in a:
+        assert a[k].tobytes() == b[k].tobytes(), k
+    other = scenarios.generate_scenario(TINY, tmp_path / "other", seed=8)
+    c = _arrays(other)
+    bold = "sub-01/func/sub-01_task-rest_bold.nii.gz"
+    assert a[bold].tobytes() != c[bold].tobytes()
+
+
+def test_phasediff_encodes_the_true_field(tiny):
+    # The field follows from the phase gained between the two echo times (fact of the trade):
+    # b0 = dphi / (2 pi dTE), valid where |b0| < 1 / (2 dTE) (no wrap).
+    entry = scenarios.load_manifest(tiny)["entries"][0]
+    dphi = nib.load(tiny / entry["fieldmap"]["files"]["phasediff"]).get_fdata()
+    truth = nib.load(tiny / entry["truth"]["b0_hz"]).get_fdata()
+    brain = nib.load(tiny / entry["truth"]["brain_mask"]).get_fdata() > 0
+    dte = 0.00738 - 0.00492
+    ok = brain & (np.abs(truth) < 0.4 / dte)
+    est = dphi / (2 * np.pi * dte)
+    assert ok.sum() > 100
+    assert np.median(np.abs(est[ok] - truth[ok])) < 3.0
+
+
+def test_epi_shows_distortion_relative_to_reference(tiny):
+    entry = scenarios.load_manifest(tiny)["entries"][0]
+    run = entry["runs"][0]
+    bold = nib.load(tiny / run["bold"]).get_fdata()[..., 0]
+    ref = nib.load(tiny / run["undistorted"]).get_fdata()
+    assert bold.shape == ref.shape
+    # same object, so similar total signal, but not the same image
+    assert abs(bold.sum() / ref.sum() - 1) < 0.15
+    assert np.abs(bold - ref).max() > 0.2 * ref.max()
+
+
+def test_multi_subject_sessions_and_batch_discovery(tmp_path):
+    root = scenarios.generate_scenario(TINY | {"fieldmap": TINY["fieldmap"] | {"kind": "phase-pair"}},
+                                       tmp_path / "multi", subjects=2, sessions=2, seed=1)
+    m = scenarios.load_manifest(root)
+    assert [(e["subject"], e["session"]) for e in m["entries"]] == [("01", "1"), ("01", "2"), ("02", "1"),
+                                                                     ("02", "2")]
+    # the same subject keeps its head size; sessions differ in pitch (repositioning)
+    assert m["entries"][0]["head_scale"] == m["entries"][1]["head_scale"]
+    assert m["entries"][0]["pitch_deg"] != m["entries"][1]["pitch_deg"]
+    p1 = json.loads((root / "sub-02/ses-2/fmap/sub-02_ses-2_phase1.json").read_text())
+    assert p1["EchoTime"] == pytest.approx(0.00492)
+    assert p1["IntendedFor"] == ["ses-2/func/sub-02_ses-2_task-rest_bold.nii.gz"]
+    batch = pytest.importorskip("fieldfix.batch")
+    inv = batch.discover(root)
+    kinds = sorted(f.kind for f in inv.fieldmaps)
+    assert kinds == ["phase-pair"] * 4
+    assert all(len(f.targets) == 1 and not f.problems for f in inv.fieldmaps)
+
+
+def test_definition_errors(tmp_path):
+    with pytest.raises(UnitError):
+        scenarios.load_definition(TINY | {"field_strength": "3"})
+    bad = json.loads(json.dumps(TINY))
+    bad["fieldmap"]["echo_times"] = ["7ms", "5ms"]
+    with pytest.raises(InputError, match="increasing"):
+        scenarios.load_definition(bad)
+    bad = json.loads(json.dumps(TINY))
+    bad["fieldmap"]["kind"] = "spin-echo"
+    with pytest.raises(InputError, match="kind"):
+        scenarios.load_definition(bad)
+    with pytest.raises(InputError, match="no scenario named"):
+        scenarios.scenario_path("no-such-scenario")
+    f = tmp_path / "broken.json"
+    f.write_text("{not json")
+    with pytest.raises(InputError) as err:
+        scenarios.load_definition(f)
+    assert str(f) in str(err.value)
+
+
+def test_refuses_non_empty_folder(tmp_path):
+    (tmp_path / "x").mkdir()
+    (tmp_path / "x" / "keep.txt").write_text("mine")
+    with pytest.raises(OutputError):
+        scenarios.generate_scenario(TINY, tmp_path / "x")
+    assert (tmp_path / "x" / "keep.txt").read_text() == "mine"
+
+
+def test_sample_scenarios_are_valid():
+    names = scenarios.list_scenarios()
+    assert len(names) >= 2
+    for name in names:
+        d = scenarios.load_definition(name)
+        folder = scenarios.scenario_path(name).parent
+        readme = (folder / "README.md").read_text()
+        assert "invented" in readme.lower()
+        assert d["_parsed"]["runs"], name
