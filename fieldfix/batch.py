@@ -970,15 +970,24 @@ def _run_in_staging(task: Task, upstream: Mapping[str, Mapping], deriv: Path,
         outputs: dict[str, dict] = {}
         source = parse_bids_name(task.source)
         assert source is not None
-        for produced in sorted(p for p in staging.rglob("*") if p.is_file()):
-            native = produced.relative_to(staging).as_posix()
-            final = out_dir / _derivative_for(native, source, task.kind)
-            if produced.name.endswith(".json"):
-                _annotate_sidecar(produced, task)
-            os.replace(produced, final)
-            outputs[native] = {"path": final.relative_to(deriv).as_posix(),
-                               "size": final.stat().st_size}
-        summary = _relocate_paths(summary, staging, deriv, outputs)
+        produced = sorted(p for p in staging.rglob("*") if p.is_file())
+        finals = {p.relative_to(staging).as_posix():
+                  out_dir / _derivative_for(p.relative_to(staging).as_posix(), source, task.kind)
+                  for p in produced}
+        if len(set(finals.values())) != len(finals):
+            raise InputError(f"two outputs of {task.task_id} map to the same derivative name")
+        absolute = {native: str(final) for native, final in finals.items()}
+        for path in produced:
+            native = path.relative_to(staging).as_posix()
+            if path.name.endswith(".json"):
+                is_sidecar = any(path.with_name(path.name[:-5] + ext).is_file()
+                                 for ext in (".nii.gz", ".nii"))
+                _rewrite_json(path, task, staging, absolute, is_sidecar)
+            os.replace(path, finals[native])
+            outputs[native] = {"path": finals[native].relative_to(deriv).as_posix(),
+                               "size": finals[native].stat().st_size}
+        summary = _relocate_paths(summary, staging,
+                                  {k: v["path"] for k, v in outputs.items()})
         return outputs, summary
     finally:
         shutil.rmtree(staging, ignore_errors=True)
@@ -1016,34 +1025,35 @@ def _bids_uri(path: str) -> str:
     return Path(path).as_uri()
 
 
-def _annotate_sidecar(path: Path, task: Task) -> None:
-    """Add batch provenance to a JSON sidecar written by a workflow."""
+def _rewrite_json(path: Path, task: Task, staging: Path, finals: Mapping[str, str],
+                  is_sidecar: bool) -> None:
+    """Point staging paths in a workflow's JSON at the final outputs; for a sidecar, add
+    the BIDS ``Sources`` and the batch task."""
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return
-    if not isinstance(data, dict):
-        return
-    data.setdefault("Sources", [_bids_uri(p) for _, p in sorted(task.inputs.items())])
-    data["FieldfixBatch"] = {"TaskId": task.task_id, "TaskFormat": TASK_FORMAT}
+    data = _relocate_paths(data, staging, finals)
+    if is_sidecar and isinstance(data, dict):
+        data.setdefault("Sources", [_bids_uri(p) for _, p in sorted(task.inputs.items())])
+        data["FieldfixBatch"] = {"TaskId": task.task_id, "TaskFormat": TASK_FORMAT}
     path.write_text(json.dumps(data, indent=2) + "\n", encoding="utf-8")
 
 
-def _relocate_paths(value, staging: Path, deriv: Path, outputs: Mapping[str, dict]):
+def _relocate_paths(value, staging: Path, finals: Mapping[str, str]):
     """Replace staging-folder paths inside a workflow summary by derivative paths."""
     if isinstance(value, dict):
-        return {k: _relocate_paths(v, staging, deriv, outputs) for k, v in value.items()}
+        return {k: _relocate_paths(v, staging, finals) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_relocate_paths(v, staging, deriv, outputs) for v in value]
+        return [_relocate_paths(v, staging, finals) for v in value]
     if isinstance(value, Path):
         value = str(value)
     if isinstance(value, str) and str(staging) in value:
         try:
-            native = Path(value).resolve().relative_to(staging.resolve()).as_posix()
+            native = Path(value).relative_to(staging).as_posix()
         except ValueError:
             return value
-        if native in outputs:
-            return outputs[native]["path"]
+        return finals.get(native, value)
     return value
 
 
