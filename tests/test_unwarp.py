@@ -84,11 +84,12 @@ def test_sinc_interpolation_of_band_limited_signal():
 def test_gather_kernel_equals_numpy_reference():
     rng = np.random.default_rng(2)
     for source_dtype in (np.float32, np.float64):
-        source = rng.standard_normal(500).astype(source_dtype)
-        index = rng.integers(0, 500, (300, 4)).astype(np.int32)
-        weight = rng.standard_normal((300, 4)).astype(np.float32)
-        assert np.allclose(kernels.gather(source, index, weight), kernels.gather_reference(source, index, weight),
-                           rtol=1e-5, atol=1e-5)
+        for taps in (1, 2, 3, 4, 8):  # fixed-tap kernels (2, 4, 8) and the generic one
+            source = rng.standard_normal(500).astype(source_dtype)
+            index = rng.integers(0, 500, (300, taps)).astype(np.int32)
+            weight = rng.standard_normal((300, taps)).astype(np.float32)
+            assert np.allclose(kernels.gather(source, index, weight),
+                               kernels.gather_reference(source, index, weight), rtol=1e-5, atol=1e-5)
     index64 = rng.integers(0, 500, (50, 2))
     weight = rng.random((50, 2)).astype(np.float32)
     source = rng.random(500).astype(np.float32)
