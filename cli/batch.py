@@ -25,6 +25,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("bids_root", metavar="BIDS_ROOT", help="the raw BIDS dataset")
     parser.add_argument("--participant-label", nargs="+", metavar="LABEL", default=None,
                         help="subjects to process (01 or sub-01); all by default")
+    parser.add_argument("--no-report", action="store_true",
+                        help="skip the per-subject reports (the group summary is still written)")
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--jobs", type=_positive_int, default=1, metavar="N",
                        help="worker processes on this machine (default 1: in this process)")
@@ -60,7 +62,7 @@ def run(args) -> dict:
             args.bids_root, args.out, participant_labels=args.participant_label,
             jobs=args.jobs, scheduler=args.scheduler, scheduler_file=args.scheduler_file,
             command=getattr(args, "command_line", None), progress=args.progress,
-            redo=args.overwrite,
+            redo=args.overwrite, reports=not args.no_report,
         )
     finally:
         if handler is not None:

@@ -679,13 +679,21 @@ def _number(meta: dict, key: str) -> float | None:
     return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else None
 
 
-def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike) -> list[Task]:
+def _phase_units(meta: dict) -> str | None:
+    """Phase units from a sidecar's BIDS ``Units`` (None: let the workflow detect them)."""
+    units = str(meta.get("Units") or "").strip().lower()
+    return {"rad": "rad", "radian": "rad", "radians": "rad", "deg": "deg", "degree": "deg",
+            "degrees": "deg"}.get(units)
+
+
+def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: bool = True
+               ) -> list[Task]:
     """Turn an inventory into an ordered list of tasks with their dependencies.
 
     One ``fieldmap`` task per field-map acquisition (also those with no target, so that
     every acquisition gives a B0 map); per target run one ``unwarp`` and one ``dropout``
     task waiting for it; per subject one ``report`` task waiting for all of that
-    subject's tasks. Acquisitions with known problems give a task that fails at once
+    subject's tasks (unless `reports` is False). Acquisitions with known problems give a task that fails at once
     with the problem as its reason (and so do runs whose timing metadata are missing).
 
     Example
@@ -706,11 +714,14 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike) -> list[Task]:
         if fm.kind == "phasediff":
             params["echo_times_s"] = [_number(meta.get("phasediff", {}), "EchoTime1"),
                                       _number(meta.get("phasediff", {}), "EchoTime2")]
+            params["phase_units"] = _phase_units(meta.get("phasediff", {}))
         elif fm.kind == "phase-pair":
             params["echo_times_s"] = [_number(meta.get("phase1", {}), "EchoTime"),
                                       _number(meta.get("phase2", {}), "EchoTime")]
+            params["phase_units"] = _phase_units(meta.get("phase1", {}))
         elif fm.kind == "fieldmap":
             params["units"] = meta.get("fieldmap", {}).get("Units")
+            params["field_strength_t"] = _number(meta.get("fieldmap", {}), "MagneticFieldStrength")
         task = Task(
             task_id=f"fieldmap:{fm.key}", kind="fieldmap", subject=fm.subject,
             session=fm.session, deps=(),
@@ -757,7 +768,7 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike) -> list[Task]:
         )
         tasks.extend([unwarp, dropout])
         by_subject.setdefault(run.subject, []).extend([unwarp.task_id, dropout.task_id])
-    for subject in inventory.subjects:
+    for subject in inventory.subjects if reports else ():
         deps = tuple(by_subject.get(subject, ()))
         if not deps:
             continue
@@ -1443,7 +1454,8 @@ def _group_figure(rows: Sequence[dict]) -> bytes | None:
 def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
               participant_labels: Sequence[str] | None = None, jobs: int = 1,
               scheduler: str | None = None, scheduler_file: str | os.PathLike | None = None,
-              command: str | None = None, progress: bool = False, redo: bool = False) -> dict:
+              command: str | None = None, progress: bool = False, redo: bool = False,
+              reports: bool = True) -> dict:
     """Correct a whole BIDS dataset into a fieldfix derivatives dataset.
 
     Parameters
@@ -1468,6 +1480,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         Show a progress bar over tasks on standard error.
     redo : bool
         Redo every task, even those whose finished outputs are up to date.
+    reports : bool
+        Build a report per subject (the slowest task; off for quick reruns).
 
     Returns
     -------
@@ -1507,7 +1521,7 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         raise InputError("the output folder must not be the dataset or one of its subject "
                          "folders (use e.g. <dataset>/derivatives/fieldfix)", path=deriv)
     inventory = discover(root, participant_labels)
-    tasks = plan_tasks(inventory, deriv)
+    tasks = plan_tasks(inventory, deriv, reports=reports)
     deriv.mkdir(parents=True, exist_ok=True)
     write_dataset_description(deriv, root)
 
@@ -1614,17 +1628,28 @@ def _run_fieldmap_task(task: Task, upstream, deriv: Path, staging: Path, command
     from fieldfix.workflows.fieldmap import run_fieldmap
 
     i, p = task.inputs, task.params
+    # echo times were resolved by the BIDS inheritance principle: they win
     common = {"command": command}
     if p["kind"] == "phasediff":
         mags = tuple(i[m] for m in ("magnitude1", "magnitude2") if m in i)
         return run_fieldmap(staging, phase_diff=i["phasediff"], magnitude=mags,
-                            echo_times_s=tuple(p["echo_times_s"]), **common)
+                            echo_times_s=tuple(p["echo_times_s"]), echo_times_win="arguments",
+                            phase_units=p.get("phase_units"), **common)
     if p["kind"] == "phase-pair":
         return run_fieldmap(staging, phase=(i["phase1"], i["phase2"]),
                             magnitude=(i["magnitude1"], i["magnitude2"]),
-                            echo_times_s=tuple(p["echo_times_s"]), **common)
+                            echo_times_s=tuple(p["echo_times_s"]), echo_times_win="arguments",
+                            phase_units=p.get("phase_units"), **common)
     if p["kind"] == "fieldmap":
-        return run_fieldmap(staging, b0=i["fieldmap"], magnitude=(i["magnitude"],), **common)
+        units = str(p.get("units") or "")
+        b0_units = {"hz": "hz", "rad/s": "rad/s", "rad s-1": "rad/s", "t": "T",
+                    "ppm": "ppm"}.get(units.strip().lower())
+        if b0_units is None:
+            raise InputError(f"field map Units {units!r} not understood (Hz, rad/s, T or ppm)",
+                             path=i["fieldmap"])
+        return run_fieldmap(staging, b0=i["fieldmap"], b0_units=b0_units,
+                            magnitude=(i["magnitude"],),
+                            field_strength_t=p.get("field_strength_t"), **common)
     raise InputError(f"field maps of kind {p['kind']!r} are not supported")
 
 
