@@ -125,12 +125,19 @@ def _ngf_terms(image, reference, affine, mask):
     mask = np.asarray(mask, bool)
     if mask.shape != image.shape:
         raise InputError(f"mask shape {mask.shape} differs from image shape {image.shape}")
+    # Work in the mask's bounding box padded by one voxel: central differences inside the
+    # mask then see the same neighbours as on the whole grid, so the result is unchanged.
+    box = tuple(slice(0, n) for n in image.shape)
+    if mask.any() and not mask.all():
+        hits = np.nonzero(mask)
+        box = tuple(slice(max(int(h.min()) - 1, 0), min(int(h.max()) + 2, n)) for h, n in zip(hits, image.shape))
+    image, reference, mask = image[box], reference[box], mask[box]
     n_i = _normalised_gradients(image, affine, mask)
     n_r = _normalised_gradients(reference, affine, mask)
     cross = np.sum(n_i * n_r, axis=-1) ** 2
     self_i = np.sum(n_i * n_i, axis=-1) ** 2
     self_r = np.sum(n_r * n_r, axis=-1) ** 2
-    return cross, self_i, self_r, mask
+    return cross, self_i, self_r, mask, box
 
 
 def edge_agreement(image: np.ndarray, reference: np.ndarray, affine: np.ndarray, mask: np.ndarray | None = None) -> float:
@@ -167,7 +174,7 @@ def edge_agreement(image: np.ndarray, reference: np.ndarray, affine: np.ndarray,
     >>> round(edge_agreement(i, j, np.eye(4)), 6)  # perpendicular ramps
     0.0
     """
-    cross, self_i, self_r, mask = _ngf_terms(image, reference, affine, mask)
+    cross, self_i, self_r, mask, _ = _ngf_terms(image, reference, affine, mask)
     denominator = math.sqrt(float(self_i[mask].sum()) * float(self_r[mask].sum()))
     if denominator == 0.0:
         return float("nan")
@@ -188,11 +195,13 @@ def edge_agreement_by_slice(
     >>> edge_agreement_by_slice(i + j, i + j, np.eye(4)).round(6).tolist()
     [1.0, 1.0, 1.0, 1.0, 1.0]
     """
-    cross, self_i, self_r, mask = _ngf_terms(image, reference, affine, mask)
+    n_slices = np.shape(image)[axis]
+    cross, self_i, self_r, mask, box = _ngf_terms(image, reference, affine, mask)
     other = tuple(a for a in range(3) if a != axis)
-    c = np.where(mask, cross, 0.0).sum(axis=other)
-    si = np.where(mask, self_i, 0.0).sum(axis=other)
-    sr = np.where(mask, self_r, 0.0).sum(axis=other)
+    c, si, sr = np.zeros(n_slices), np.zeros(n_slices), np.zeros(n_slices)
+    c[box[axis]] = np.where(mask, cross, 0.0).sum(axis=other)
+    si[box[axis]] = np.where(mask, self_i, 0.0).sum(axis=other)
+    sr[box[axis]] = np.where(mask, self_r, 0.0).sum(axis=other)
     denominator = np.sqrt(si * sr)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(denominator > 0, c / np.where(denominator > 0, denominator, 1.0), np.nan)
@@ -377,7 +386,9 @@ def collect_warnings(numbers: dict) -> list[dict]:
     any run has folded voxels in the mask; the field-map mask covers less than
     ``LOW_COVERAGE_FRACTION`` of the bright magnitude; a run's edge agreement drops by more
     than ``EDGE_WORSE_TOLERANCE`` after correction, or stays no better while shifts exceed a
-    voxel, or some slices get worse.
+    voxel, or some slices get worse. The edge rules use the agreement in the shifted region
+    (``edge_agreement_shifted_*``, where |shift| > 0.5 voxel) when it is given, since a
+    local correction barely changes the whole-mask value.
 
     Parameters
     ----------
@@ -452,6 +463,10 @@ def _run_warnings(run: dict) -> list[dict]:
             }
         )
     before, after = run.get("edge_agreement_before"), run.get("edge_agreement_after")
+    region = "the mask"
+    if run.get("edge_agreement_shifted_before") is not None and run.get("edge_agreement_shifted_after") is not None:
+        before, after = run["edge_agreement_shifted_before"], run["edge_agreement_shifted_after"]
+        region = "the shifted region"
     if before is not None and after is not None:
         if after < before - EDGE_WORSE_TOLERANCE:
             warnings.append(
@@ -459,7 +474,7 @@ def _run_warnings(run: dict) -> list[dict]:
                     "code": "edges_worse",
                     "where": stem,
                     "message": (
-                        f"Edge agreement with the reference fell from {before:.3f} to {after:.3f} after "
+                        f"Edge agreement with the reference in {region} fell from {before:.3f} to {after:.3f} after "
                         "correction: check the phase-encode direction, polarity and readout time."
                     ),
                 }
@@ -470,7 +485,7 @@ def _run_warnings(run: dict) -> list[dict]:
                     "code": "edges_unchanged",
                     "where": stem,
                     "message": (
-                        f"Edge agreement barely changed ({before:.3f} before, {after:.3f} after) although "
+                        f"Edge agreement in {region} barely changed ({before:.3f} before, {after:.3f} after) although "
                         f"{run['percent_over_one_voxel']:.1f}% of voxels moved by more than one voxel."
                     ),
                 }
@@ -1092,6 +1107,8 @@ def find_outputs(folder: str | os.PathLike) -> ReportSources:
 
 _SLICE_WORSE_TOLERANCE = 0.02  # per-slice drop that counts as worse (ours; slices are noisier)
 _SLICE_MIN_VOXELS = 20
+SHIFTED_REGION_VOX = 0.5  # |shift| above which a voxel counts as moved by the correction (ours)
+_SHIFTED_REGION_MIN_VOXELS = 50
 _MAX_RUN_FIGURES = 8  # runs beyond this get numbers only, keeping the page small
 
 
@@ -1204,7 +1221,9 @@ def _field_map_part(fmap: FieldMapFiles, index: int, dpi: int):
         mask = None
     magnitude = _volume(fmap.magnitude)[1] if fmap.magnitude else None
     summary = _read_json_quiet(fmap.summary)
-    unaliased = _as_half_width(_find_value(summary, r"unaliased"))
+    unaliased = _as_half_width(_find_value(summary, r"^unaliased_range(_hz)?$"))
+    if unaliased is None:
+        unaliased = _as_half_width(_find_value(summary, r"^unaliased"))
     echo_times = _find_value(summary, r"echo_times?(_s)?$")
     voxel_volume = float(np.prod(np.sqrt((image.affine[:3, :3] ** 2).sum(axis=0))))
     numbers = {
@@ -1269,6 +1288,8 @@ def _run_part(run: RunFiles, index: int, dpi: int, with_figures: bool):
         numbers["folded_voxels"] = int(np.count_nonzero(fold & mask))
     numbers["edge_agreement_before"] = None
     numbers["edge_agreement_after"] = None
+    numbers["edge_agreement_shifted_before"] = None
+    numbers["edge_agreement_shifted_after"] = None
     numbers["slices_worse"] = []
     region = ndimage.binary_dilation(mask, iterations=2)
     if reference is not None and np.ptp(reference) > 0:
@@ -1282,6 +1303,16 @@ def _run_part(run: RunFiles, index: int, dpi: int, with_figures: bool):
             numbers["slices_worse"] = [int(k) for k in np.nonzero(worse)[0]]
             numbers["edge_agreement_before_by_slice"] = [_finite_float(v) for v in per_before]
             numbers["edge_agreement_after_by_slice"] = [_finite_float(v) for v in per_after]
+        # Where the correction moved something: the measure over the whole mask dilutes a
+        # local fix (most voxels barely move), so it is also given where |shift| > 0.5 voxel.
+        if shift_vox is not None and shift_vox.shape == shape:
+            moved = ndimage.binary_dilation(mask & (np.abs(shift_vox) > SHIFTED_REGION_VOX), iterations=2) & region
+            numbers["shifted_region_voxels"] = int(moved.sum())
+            if moved.sum() >= _SHIFTED_REGION_MIN_VOXELS:
+                numbers["edge_agreement_shifted_after"] = _finite_float(edge_agreement(after, reference, affine, moved))
+                if before is not None:
+                    numbers["edge_agreement_shifted_before"] = _finite_float(
+                        edge_agreement(before, reference, affine, moved))
 
     section = _Section(title=f"Run {run.stem}")
     arrays = {"after": after, "before": before, "reference": reference, "affine": affine, "mask": mask,
@@ -1440,7 +1471,9 @@ _CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-sr
 EDGE_METHOD = ("Edge agreement: normalised gradient fields (Haber and Modersitzki 2006, MICCAI) between the EPI "
                "volume and the field-map magnitude resampled onto the EPI grid, inside the mask dilated by two voxels; "
                "0 = edges perpendicular or absent, 1 = all edges parallel (normalisation ours). Higher after than "
-               "before means the correction moved EPI edges towards the anatomy.")
+               "before means the correction moved EPI edges towards the anatomy. 'Where shifted' restricts the "
+               "measure to voxels moved by more than half a voxel (dilated by two voxels), where a local "
+               "correction shows.")
 
 
 def _data_uri(png: bytes) -> str:
@@ -1501,7 +1534,9 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
                  ("Voxels shifted > 1 voxel", f"{p}.percent_over_one_voxel", "{:.1f}", "%"),
                  ("Folded voxels in mask", f"{p}.folded_voxels", "{:d}", ""),
                  ("Edge agreement before", f"{p}.edge_agreement_before", "{:.3f}", ""),
-                 ("Edge agreement after", f"{p}.edge_agreement_after", "{:.3f}", "")]
+                 ("Edge agreement after", f"{p}.edge_agreement_after", "{:.3f}", ""),
+                 ("Edge agreement where shifted, before", f"{p}.edge_agreement_shifted_before", "{:.3f}", ""),
+                 ("Edge agreement where shifted, after", f"{p}.edge_agreement_shifted_after", "{:.3f}", "")]
         cards.append((f"Run {run.get('stem', '')}", rows))
     for i, drop in enumerate(report.get("dropout", [])):
         p = f"dropout.{i}"
@@ -1788,7 +1823,7 @@ def build_report(
         report["warnings"] = collect_warnings(report)
         panels = _summary_panels(field_arrays, run_arrays, dropout_arrays)
         summary_png = figure_png(summary_figure(panels, title=report["report"]["title"]), dpi=max(dpi, 150)) \
-            if panels else None
+            if panels else next((p.png.read_bytes() for p in sources.plans if p.png is not None), None)
         from .io import _jsonable
 
         report = _jsonable(report)  # the page shows exactly what report.json holds

@@ -78,13 +78,15 @@ def test_edge_agreement_is_between_zero_and_one(seed):
     assert 0.0 <= value <= 1.0 + 1e-12
 
 
-def _ngf_reference(a, b, spacing):
+def _ngf_reference(a, b, spacing, mask=None):
     """Independent plain-numpy NGF (Haber and Modersitzki 2006) on an axis-aligned grid."""
+    mask = np.ones(a.shape, bool) if mask is None else mask
 
     def normalised(x):
         g = np.stack(np.gradient(x, *spacing), axis=-1)
         size = np.sqrt((g**2).sum(-1))
-        eps = np.median(size[size > 0])
+        inside = size[mask]
+        eps = np.median(inside[inside > 0])
         return g / np.sqrt(size**2 + eps**2)[..., None]
 
     na, nb = normalised(a), normalised(b)
@@ -101,6 +103,19 @@ def test_edge_agreement_by_slice_against_plain_numpy():
     assert np.allclose(per_slice, expected, rtol=1e-10)
     whole = cross.sum() / np.sqrt(self_a.sum() * self_b.sum())
     assert rp.edge_agreement(moved, anat, affine()) == pytest.approx(whole, rel=1e-10)
+
+
+def test_edge_agreement_in_a_small_mask_against_plain_numpy_on_the_whole_grid():
+    # The implementation crops to the mask's bounding box; the reference does not.
+    anat = anatomy()
+    moved = np.roll(anat, 1, axis=1) + np.random.default_rng(2).normal(0, 1.0, anat.shape)
+    mask = np.zeros(anat.shape, bool)
+    mask[3:9, 15:25, 0:4] = True  # touches the grid edge along k
+    cross, self_a, self_b = _ngf_reference(moved, anat, (2.5, 2.5, 3.0), mask)
+    expected = cross[mask].sum() / np.sqrt(self_a[mask].sum() * self_b[mask].sum())
+    assert rp.edge_agreement(moved, anat, affine(), mask) == pytest.approx(expected, rel=1e-10)
+    per_slice = rp.edge_agreement_by_slice(moved, anat, affine(), mask)
+    assert np.isnan(per_slice[4:]).all() and np.isfinite(per_slice[:4]).all()
 
 
 def test_edge_agreement_rejects_mismatched_shapes():
@@ -159,6 +174,14 @@ def test_collect_warnings_rules():
              "percent_over_one_voxel": 12.0},
             {"stem": "c", "folded_voxels": 0, "edge_agreement_before": 0.80, "edge_agreement_after": 0.90,
              "percent_over_one_voxel": 12.0},
+            # whole mask barely changes, but the shifted region improves: no warning
+            {"stem": "d", "edge_agreement_before": 0.80, "edge_agreement_after": 0.801,
+             "edge_agreement_shifted_before": 0.55, "edge_agreement_shifted_after": 0.75,
+             "percent_over_one_voxel": 3.0},
+            # the shifted region gets worse although the whole mask looks fine
+            {"stem": "e", "edge_agreement_before": 0.80, "edge_agreement_after": 0.80,
+             "edge_agreement_shifted_before": 0.70, "edge_agreement_shifted_after": 0.60,
+             "percent_over_one_voxel": 3.0},
         ],
     }
     found = {(w["code"], w["where"]) for w in rp.collect_warnings(numbers)}
@@ -169,6 +192,7 @@ def test_collect_warnings_rules():
         ("edges_disagree_slices", "a"),
         ("folds", "b"),
         ("edges_unchanged", "b"),
+        ("edges_worse", "e"),
     }
     assert rp.collect_warnings({"field_maps": [{"mask_coverage": 0.9}], "runs": [{"stem": "c"}]}) == []
 
@@ -314,6 +338,10 @@ def test_correction_raises_edge_agreement(built):
     _, _, data = built
     run = data["runs"][0]
     assert run["edge_agreement_after"] > run["edge_agreement_before"] + 0.02
+    # Where voxels moved, the gain is larger than over the whole mask.
+    assert run["shifted_region_voxels"] >= 50
+    gain_shifted = run["edge_agreement_shifted_after"] - run["edge_agreement_shifted_before"]
+    assert gain_shifted > run["edge_agreement_after"] - run["edge_agreement_before"]
     assert run["slices_worse"] == []
     codes = {w["code"] for w in data["warnings"]}
     assert codes == {"field_beyond_unaliased_range", "folds"}
