@@ -148,3 +148,161 @@ def test_outliers_are_found_and_replaced():
     res = b0_from_map(spiky, "Hz", reject_outliers=True, extend=False)
     for s in spots:
         assert abs(res.b0_hz[s] - f[s]) < 2.0
+
+
+# ---------------------------------------------------------------------------------------------
+# workflow and command line on small synthetic NIfTI files
+# ---------------------------------------------------------------------------------------------
+import json  # noqa: E402
+import shutil  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import nibabel as nib  # noqa: E402
+
+from fieldfix.errors import MetadataError  # noqa: E402
+from fieldfix.workflows.fieldmap import run_fieldmap  # noqa: E402
+from fieldfix_cli.main import main as cli_main  # noqa: E402
+
+SCRIPT = shutil.which("fieldfix", path=str(Path(sys.executable).parent)) or shutil.which("fieldfix")
+SMALL = (32, 32, 20)
+AFFINE = np.diag([3.0, 3.0, 3.0, 1.0])
+TES = (4.92e-3, 7.38e-3)
+
+
+def _save(path, data, sidecar=None):
+    nib.save(nib.Nifti1Image(np.asarray(data), AFFINE), str(path))
+    if sidecar is not None:
+        Path(str(path).replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
+    return str(path)
+
+
+@pytest.fixture(scope="module")
+def acquisition(tmp_path_factory):
+    """Two echoes stored as 12-bit counts (0..4095) with magnitudes and BIDS sidecars."""
+    folder = tmp_path_factory.mktemp("fmap")
+    d = simulate_gradient_echo(head_field_hz(SMALL, amplitude_hz=300.0), TES, snr=40.0, rng=7)
+    files = {"phase": [], "magnitude": [], "real": [], "imag": []}
+    for n, (z, te) in enumerate(zip(d.echoes, TES), start=1):
+        counts = np.mod(np.round(np.angle(z) / TWO_PI * 4096), 4096).astype(np.int16)
+        files["phase"].append(_save(folder / f"sub-01_phase{n}.nii.gz", counts, {"EchoTime": te}))
+        files["magnitude"].append(_save(folder / f"sub-01_magnitude{n}.nii.gz",
+                                        (1000 * np.abs(z)).astype(np.float32), {"EchoTime": te}))
+        files["real"].append(_save(folder / f"sub-01_real{n}.nii.gz", z.real.astype(np.float32), {"EchoTime": te}))
+        files["imag"].append(_save(folder / f"sub-01_imag{n}.nii.gz", z.imag.astype(np.float32)))
+    dphi_deg = np.degrees(np.angle(d.echoes[1] * np.conj(d.echoes[0]))).astype(np.float32)
+    files["phasediff"] = _save(folder / "sub-01_phasediff.nii.gz", dphi_deg,
+                               {"EchoTime1": TES[0], "EchoTime2": TES[1]})
+    return d, files, folder
+
+
+def _cycles_off(b0_hz, truth, mask):
+    return int(np.count_nonzero(np.round((b0_hz - truth)[mask] * (TES[1] - TES[0]))))
+
+
+def _cli(*args):
+    assert SCRIPT, "the fieldfix console script is not installed"
+    return subprocess.run([SCRIPT, "fieldmap", *args], capture_output=True, text=True, timeout=300)
+
+
+def test_cli_end_to_end_phase_counts_with_sidecars(acquisition, tmp_path):
+    d, files, _ = acquisition
+    out = tmp_path / "out"
+    result = _cli("--phase", *files["phase"], "--magnitude", *files["magnitude"], "--out", str(out), "--json")
+    assert result.returncode == 0, result.stderr
+    summary = json.loads(result.stdout)
+    for name in ("b0_hz.nii.gz", "b0_mask.nii.gz", "b0_magnitude.nii.gz", "b0_summary.json",
+                 "b0_hz.json", "b0_mask.json", "b0_magnitude.json"):
+        assert (out / name).is_file(), name
+    b0 = nib.load(str(out / "b0_hz.nii.gz")).get_fdata()
+    mask = nib.load(str(out / "b0_mask.nii.gz")).get_fdata() > 0
+    np.testing.assert_allclose(nib.load(str(out / "b0_hz.nii.gz")).affine, AFFINE)
+    assert np.all(np.isfinite(b0)) and np.any(b0[~mask] != 0)  # extended beyond the mask
+    assert _cycles_off(b0, d.b0_hz, mask) == 0
+    err = (b0 - d.b0_hz)[ndi.binary_erosion(mask, iterations=2)]
+    assert np.sqrt(np.mean(err**2)) < 2.0
+    assert [p["units"] for p in summary["phase_units"]] == ["counts4096", "counts4096"]
+    assert summary["echo_times_s"] == list(TES) and summary["echo_times_source"] == "sidecar"
+    assert summary["unaliased_range_hz"] == pytest.approx(1 / (2 * (TES[1] - TES[0])))
+    assert summary["mask_volume_ml"] == pytest.approx(mask.sum() * 27 / 1000)
+    assert summary["voxels_offset_changed"] > 0
+    saved = json.loads((out / "b0_summary.json").read_text())
+    assert saved["field_percentiles_hz"]["p50"] == pytest.approx(np.median(b0[mask]), abs=1e-3)
+    provenance = json.loads((out / "b0_hz.json").read_text())
+    assert provenance["Units"] == "Hz" and len(provenance["Inputs"]) == 4
+    # a second run refuses to overwrite, one error line, exit 2
+    again = _cli("--phase", *files["phase"], "--magnitude", *files["magnitude"], "--out", str(out))
+    assert again.returncode == 2 and len(again.stderr.strip().splitlines()) == 1
+
+
+def test_cli_echo_time_contradiction_needs_a_winner(acquisition, tmp_path, capsys):
+    _, files, _ = acquisition
+    base = ["--phase", *files["phase"], "--magnitude", *files["magnitude"], "--echo-times", "5ms", "7.5ms"]
+    bad = _cli(*base, "--out", str(tmp_path / "a"))
+    assert bad.returncode == 2 and "contradict" in bad.stderr and len(bad.stderr.strip().splitlines()) == 1
+    assert not (tmp_path / "a" / "b0_hz.nii.gz").exists()
+    capsys.readouterr()
+    assert cli_main(["fieldmap", *base, "--prefer", "sidecar", "--out", str(tmp_path / "b"), "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["echo_times_s"] == list(TES) and summary["echo_times_source"].startswith("sidecar")
+    assert cli_main(["fieldmap", *base, "--prefer", "cli", "--out", str(tmp_path / "c"), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["echo_times_s"] == [5e-3, 7.5e-3]
+
+
+def test_phase_difference_real_imag_and_ready_map_agree(acquisition, tmp_path):
+    d, files, _ = acquisition
+    ref = run_fieldmap(tmp_path / "ref", phase=files["phase"], magnitude=files["magnitude"], smooth_mm=0.0,
+                       reject_outliers=False, prefix="sub-01_")
+    assert Path(ref["outputs"]["b0_hz"]).name == "sub-01_b0_hz.nii.gz"
+    ref_b0 = nib.load(ref["outputs"]["b0_hz"]).get_fdata()
+    mask = nib.load(ref["outputs"]["mask"]).get_fdata() > 0
+    # phase difference stored in degrees, echo times from EchoTime1/EchoTime2, in-process CLI
+    status = cli_main(["fieldmap", "--phase-diff", files["phasediff"], "--magnitude", files["magnitude"][0],
+                       "--mask", ref["outputs"]["mask"], "--smooth", "0mm", "--keep-outliers", "--out",
+                       str(tmp_path / "pd"), "--quiet"])
+    assert status == 0
+    pd_b0 = nib.load(str(tmp_path / "pd" / "b0_hz.nii.gz")).get_fdata()
+    pd_summary = json.loads((tmp_path / "pd" / "b0_summary.json").read_text())
+    assert pd_summary["phase_units"][0]["units"] == "deg"
+    # integer phase counts versus float degrees: quantisation of pi/4096 per echo at most
+    bound = 2 * (np.pi / 4096) / (TWO_PI * (TES[1] - TES[0])) + 0.01
+    assert np.max(np.abs(pd_b0 - ref_b0)[mask]) < bound
+    # real + imaginary, echo times given explicitly
+    status = cli_main(["fieldmap", "--real", *files["real"], "--imag", *files["imag"], "--echo-times", "4.92ms",
+                       "7.38ms", "--mask", ref["outputs"]["mask"], "--smooth", "0mm", "--keep-outliers",
+                       "--out", str(tmp_path / "ri"), "--quiet"])
+    assert status == 0
+    ri_b0 = nib.load(str(tmp_path / "ri" / "b0_hz.nii.gz")).get_fdata()
+    assert np.max(np.abs(ri_b0 - ref_b0)[mask]) < bound
+    # ready map in rad/s, with a ppm copy
+    rads = _save(tmp_path / "map_rads.nii.gz", (ref_b0 * TWO_PI).astype(np.float32))
+    summary = run_fieldmap(tmp_path / "map", b0=rads, b0_units="rad/s", mask=ref["outputs"]["mask"],
+                           smooth_mm=0.0, reject_outliers=False, field_strength_t=3.0, also_units=["ppm"])
+    map_b0 = nib.load(summary["outputs"]["b0_hz"]).get_fdata()
+    np.testing.assert_allclose(map_b0[mask], ref_b0[mask], atol=1e-3)
+    ppm = nib.load(summary["outputs"]["b0_ppm"]).get_fdata()
+    gamma = scipy.constants.physical_constants["proton gyromag. ratio in MHz/T"][0]
+    np.testing.assert_allclose(ppm[mask], map_b0[mask] / (gamma * 3.0), rtol=1e-5, atol=1e-6)
+
+
+def test_workflow_refusals(acquisition, tmp_path):
+    _, files, folder = acquisition
+    # no echo times anywhere
+    bare = [_save(tmp_path / f"p{n}.nii.gz", nib.load(p).get_fdata().astype(np.int16))
+            for n, p in enumerate(files["phase"])]
+    flat = _save(tmp_path / "m.nii.gz", np.ones(SMALL, np.float32))
+    with pytest.raises(MetadataError, match="no echo times"):
+        run_fieldmap(tmp_path / "o1", phase=bare, magnitude=[flat])
+    # a phase image whose values fit no convention is refused with a hint to give the units
+    narrow = _save(tmp_path / "narrow.nii.gz", np.full(SMALL, 0.3, np.float32) + np.linspace(0, 1, SMALL[2]))
+    with pytest.raises(UnitError, match="phase units"):
+        run_fieldmap(tmp_path / "o2", phase=[narrow, narrow], magnitude=files["magnitude"][:1],
+                     echo_times_s=TES)
+    # mixing input kinds
+    with pytest.raises(Exception, match="exactly one kind"):
+        run_fieldmap(tmp_path / "o3", phase=files["phase"], phase_diff=files["phasediff"])
+    result = _cli("--phase", narrow, narrow, "--magnitude", files["magnitude"][0], "--echo-times", "4.92ms",
+                  "7.38ms", "--out", str(tmp_path / "o4"))
+    assert result.returncode == 2 and "phase units" in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1

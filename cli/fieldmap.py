@@ -1,0 +1,82 @@
+"""``fieldfix fieldmap``: gradient-echo field-map images -> B0 map in Hz."""
+
+from __future__ import annotations
+
+import argparse
+
+HELP = "make a B0 map in Hz from dual-/multi-echo gradient-echo images, with 3D phase unwrapping"
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    src = parser.add_argument_group("inputs (one kind)")
+    src.add_argument("--phase", nargs="+", metavar="P", default=[],
+                     help="phase image per echo (radians, degrees or scanner integer counts)")
+    src.add_argument("--magnitude", nargs="+", metavar="M", default=[],
+                     help="magnitude image per echo, or one for all echoes")
+    src.add_argument("--real", nargs="+", metavar="RE", default=[], help="real part per echo")
+    src.add_argument("--imag", nargs="+", metavar="IM", default=[], help="imaginary part per echo")
+    src.add_argument("--phase-diff", metavar="PD", default=None,
+                     help="phase-difference image (echo 2 minus echo 1); needs --magnitude or --mask")
+    src.add_argument("--b0", metavar="MAP", default=None, help="ready field map, converted to Hz and extended")
+    src.add_argument("--b0-units", choices=("hz", "rad/s", "ppm", "T"), default=None,
+                     help="units of --b0 (default: the sidecar's Units)")
+    opts = parser.add_argument_group("options")
+    opts.add_argument("--echo-times", nargs="+", metavar="TIME", default=None,
+                      help="echo times with units, e.g. 4.92ms 7.38ms (default: BIDS sidecars)")
+    opts.add_argument("--prefer", choices=("cli", "sidecar"), default=None,
+                      help="which echo times win when --echo-times contradicts the sidecars "
+                           "(default: stop with an error)")
+    opts.add_argument("--phase-units", choices=("rad", "deg", "counts4096", "counts8192"), default=None,
+                      help="phase convention (default: detected per image; ambiguous images are refused)")
+    opts.add_argument("--mask", metavar="MASK", default=None,
+                      help="mask on the field-map grid (default: from the magnitude)")
+    opts.add_argument("--smooth", metavar="FWHM", default="4mm",
+                      help="masked smoothing width (FWHM) with unit, 0mm for none (default: 4mm)")
+    opts.add_argument("--unwrap", choices=("quality", "laplacian"), default="quality",
+                      help="spatial unwrapping: quality-guided (default) or Laplacian (for very noisy data)")
+    opts.add_argument("--field-strength", metavar="FIELD", default=None,
+                      help="main field, e.g. 3T (needed for ppm)")
+    opts.add_argument("--also", nargs="+", choices=("rad/s", "ppm"), default=[],
+                      help="also write the map in these units")
+    opts.add_argument("--keep-outliers", action="store_true", help="do not replace outlier voxels")
+    opts.add_argument("--prefix", default="", help="prepended to every output file name")
+    parser.epilog = (
+        "Field (Hz) = phase gained between the echoes / (2 pi x echo spacing), unambiguous within "
+        "+-1/(2 x spacing) before unwrapping. --out receives b0_hz.nii.gz (extended beyond the mask), "
+        "b0_mask.nii.gz, b0_magnitude.nii.gz and b0_summary.json."
+    )
+
+
+def run(args) -> dict:
+    from fieldfix.units import parse_field_t, parse_length_mm, parse_time_s
+    from fieldfix.workflows.fieldmap import CAUTION, run_fieldmap
+
+    echo_times_s = [parse_time_s(t) for t in args.echo_times] if args.echo_times else None
+    field_t = parse_field_t(args.field_strength) if args.field_strength else None
+    smooth_mm = parse_length_mm(args.smooth)
+    win = {"cli": "arguments", "sidecar": "sidecar", None: None}[args.prefer]
+    summary = run_fieldmap(
+        args.out, phase=args.phase, magnitude=args.magnitude, real=args.real, imag=args.imag,
+        phase_diff=args.phase_diff, b0=args.b0, b0_units=args.b0_units, echo_times_s=echo_times_s,
+        echo_times_win=win, phase_units=args.phase_units, mask=args.mask, smooth_mm=smooth_mm,
+        unwrap_method=args.unwrap, field_strength_t=field_t, also_units=args.also,
+        reject_outliers=not args.keep_outliers, prefix=args.prefix, overwrite=args.overwrite,
+        progress=args.progress, command=getattr(args, "command_line", None),
+    )
+    if getattr(args, "json", False):
+        return summary
+    pct = summary["field_percentiles_hz"]
+    short = {
+        "b0_map": summary["outputs"]["b0_hz"],
+        "input": summary["input_kind"],
+        "echo_times_ms": [round(t * 1e3, 4) for t in summary["echo_times_s"]] if summary["echo_times_s"] else None,
+        "echo_times_from": summary["echo_times_source"],
+        "unaliased_range_hz": summary["unaliased_range_hz"],
+        "phase_units": [f"{p['units']} ({p['how']})" for p in summary["phase_units"]],
+        "mask_volume_ml": summary["mask_volume_ml"],
+        "field_hz_p5_p50_p95": [pct["p5"], pct["p50"], pct["p95"]],
+        "voxels_offset_changed": summary["voxels_offset_changed"],
+        "outlier_voxels": summary["outlier_voxels"],
+        "caution": CAUTION,
+    }
+    return {k: v for k, v in short.items() if v is not None}
