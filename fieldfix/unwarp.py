@@ -172,7 +172,10 @@ def _mirror(index: np.ndarray, n: int) -> np.ndarray:
     if n == 1:
         return np.zeros_like(index)
     period = 2 * (n - 1)
-    index = np.mod(index, period)
+    if index.min() < -(n - 1) or index.max() > period:  # several reflections (tiny axes)
+        index = np.mod(index, period)
+        return np.where(index >= n, period - index, index)
+    index = np.abs(index)  # one reflection at each end
     return np.where(index >= n, period - index, index)
 
 

@@ -399,3 +399,14 @@ def test_cli_end_to_end(scene):
                           "--out", str(folder / "bad")], capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
     assert not (folder / "bad").exists()
+
+
+def test_mirror_indices_match_scipy_mirror_mode():
+    # scipy.ndimage 'mirror' mode (d c b | a b c d | c b a) on tiny and ordinary axes.
+    from fieldfix.unwarp import _mirror
+
+    for n in (1, 2, 3, 7):
+        index = np.arange(-15, 22)
+        signal = np.arange(n, dtype=float) * 10
+        expected = ndimage.map_coordinates(signal, [index.astype(float)], order=0, mode="mirror")
+        assert np.array_equal(signal[_mirror(index, n)], expected)
