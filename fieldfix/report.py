@@ -68,6 +68,7 @@ __all__ = [
     "retention_statistics",
     "collect_warnings",
     "symmetric_limit",
+    "display_slices",
     "field_map_figure",
     "shift_figure",
     "jacobian_figure",
@@ -564,10 +565,40 @@ class _Panels:
     slices: list[int]
 
     @classmethod
-    def for_grid(cls, shape, affine, mask=None, n_slices: int = 5) -> "_Panels":
+    def for_grid(cls, shape, affine, mask=None, n_slices: int = 5, slices=None) -> "_Panels":
         probe = np.zeros(tuple(shape[:3]), bool) if mask is None else np.asarray(mask, bool)
         ras, zooms = _display_orientation(probe, affine)
-        return cls(zooms=zooms, slices=_pick_slices(ras if mask is not None else None, n_slices, ras.shape[2]))
+        if slices is None:
+            slices = _pick_slices(ras if mask is not None else None, n_slices, ras.shape[2])
+        return cls(zooms=zooms, slices=list(slices))
+
+
+def display_slices(volume_shape, affine, mask=None, *, n_slices: int = 5, focus=None) -> list[int]:
+    """Axial display slices (RAS order) spread over the mask, one of them where |focus| peaks.
+
+    Figures of one run share these so that the panels line up. `focus` (for example the
+    shift map) makes sure the slice with the largest |focus| inside the mask is shown.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> focus = np.zeros((4, 4, 20)); focus[1, 1, 2] = 9.0
+    >>> 2 in display_slices(focus.shape, np.eye(4), focus=focus)
+    True
+    """
+    probe = np.ones(tuple(volume_shape[:3]), bool) if mask is None else np.asarray(mask, bool)
+    ras, _ = _display_orientation(probe, affine)
+    slices = _pick_slices(ras, n_slices, ras.shape[2])
+    if focus is not None:
+        strength = np.abs(np.nan_to_num(_display_orientation(np.asarray(focus, float), affine)[0]))
+        strength = np.where(ras, strength, 0.0).max(axis=(0, 1))
+        if strength.max() > 0:
+            peak = int(np.argmax(strength))
+            if peak not in slices:
+                nearest = min(range(len(slices)), key=lambda n: abs(slices[n] - peak))
+                slices[nearest] = peak
+        slices = sorted(set(slices))
+    return slices
 
 
 def _new_figure(n_columns: int, aspect: float, *, colourbar: bool = True, width_in: float = 1.9):
@@ -652,13 +683,14 @@ def field_map_figure(
     *,
     limit_hz: float | None = None,
     n_slices: int = 5,
+    slices: list[int] | None = None,
     title: str = "B0 field map",
 ):
     """Axial slices of a B0 map in Hz on a diverging colour map with symmetric limits.
 
     The colour map is 'coolwarm' (Moreland 2009, "Diverging color maps for scientific
     visualization", ISVC), whose CIELAB lightness is symmetric about zero; the limits are
-    ``[-L, L]`` with ``L = symmetric_limit(field in mask)`` unless `limit_hz` is given.
+    ``[-L, L]`` with ``L = symmetric_limit(field in mask, 99.9)`` unless `limit_hz` is given.
     Voxels outside `mask` are drawn in a dark neutral so that zero field is not confused
     with "no data".
 
@@ -676,14 +708,14 @@ def field_map_figure(
     """
     field_hz = np.asarray(field_hz, float)
     inside = field_hz[np.asarray(mask, bool)] if mask is not None else field_hz
-    limit = float(limit_hz) if limit_hz is not None else symmetric_limit(inside)
-    panels = _Panels.for_grid(field_hz.shape, affine, mask, n_slices)
+    limit = float(limit_hz) if limit_hz is not None else symmetric_limit(inside, 99.9)
+    panels = _Panels.for_grid(field_hz.shape, affine, mask, n_slices, slices)
     return _slice_row(field_hz, affine, panels=panels, cmap=_DIVERGING, vmin=-limit, vmax=limit,
                       label="field (Hz)", title=title, mask=mask)
 
 
 def shift_figure(shift_mm: np.ndarray, affine: np.ndarray, mask: np.ndarray | None = None, *, n_slices: int = 5,
-                 title: str = "Shift along the phase-encode axis"):
+                 slices: list[int] | None = None, title: str = "Shift along the phase-encode axis"):
     """Axial slices of the signed phase-encode shift in millimetres (symmetric limits).
 
     Examples
@@ -695,14 +727,14 @@ def shift_figure(shift_mm: np.ndarray, affine: np.ndarray, mask: np.ndarray | No
     """
     shift_mm = np.asarray(shift_mm, float)
     inside = shift_mm[np.asarray(mask, bool)] if mask is not None else shift_mm
-    limit = symmetric_limit(inside)
-    panels = _Panels.for_grid(shift_mm.shape, affine, mask, n_slices)
+    limit = symmetric_limit(inside, 99.9)
+    panels = _Panels.for_grid(shift_mm.shape, affine, mask, n_slices, slices)
     return _slice_row(shift_mm, affine, panels=panels, cmap=_DIVERGING, vmin=-limit, vmax=limit,
                       label="shift (mm)", title=title, mask=mask)
 
 
 def jacobian_figure(jacobian: np.ndarray, affine: np.ndarray, mask: np.ndarray | None = None, *,
-                    fold_mask: np.ndarray | None = None, n_slices: int = 5, title: str = "Jacobian (intensity factor)"):
+                    fold_mask: np.ndarray | None = None, n_slices: int = 5, slices: list[int] | None = None, title: str = "Jacobian (intensity factor)"):
     """Axial slices of the Jacobian, centred on 1, with folded voxels overlaid in green.
 
     The limits are ``[1 - d, 1 + d]`` with ``d = symmetric_limit(jacobian - 1)``.
@@ -717,13 +749,13 @@ def jacobian_figure(jacobian: np.ndarray, affine: np.ndarray, mask: np.ndarray |
     jacobian = np.asarray(jacobian, float)
     inside = jacobian[np.asarray(mask, bool)] if mask is not None else jacobian
     half = symmetric_limit(inside - 1.0)
-    panels = _Panels.for_grid(jacobian.shape, affine, mask, n_slices)
+    panels = _Panels.for_grid(jacobian.shape, affine, mask, n_slices, slices)
     return _slice_row(jacobian, affine, panels=panels, cmap=_DIVERGING, vmin=1 - half, vmax=1 + half,
                       label="Jacobian", title=title, mask=mask, overlay=fold_mask)
 
 
 def retention_figure(retention: np.ndarray, affine: np.ndarray, mask: np.ndarray | None = None, *,
-                     label: str = "retention", n_slices: int = 5, title: str = "Predicted signal retention"):
+                     label: str = "retention", n_slices: int = 5, slices: list[int] | None = None, title: str = "Predicted signal retention"):
     """Axial slices of a retention or BOLD-sensitivity map on a 0 to 1 sequential scale.
 
     Examples
@@ -734,7 +766,7 @@ def retention_figure(retention: np.ndarray, affine: np.ndarray, mask: np.ndarray
     (0.0, 1.0)
     """
     retention = np.asarray(retention, float)
-    panels = _Panels.for_grid(retention.shape, affine, mask, n_slices)
+    panels = _Panels.for_grid(retention.shape, affine, mask, n_slices, slices)
     return _slice_row(retention, affine, panels=panels, cmap=_SEQUENTIAL, vmin=0.0, vmax=1.0,
                       label=label, title=title, mask=mask)
 
@@ -782,7 +814,7 @@ def outline_level(reference: np.ndarray) -> float | None:
 
 
 def epi_outline_figure(epi: np.ndarray, reference: np.ndarray, affine: np.ndarray, *, limits=None, panels_mask=None,
-                       n_slices: int = 5, title: str = "EPI"):
+                       n_slices: int = 5, slices: list[int] | None = None, title: str = "EPI"):
     """Axial slices of an EPI volume in grey with the reference anatomy's outline on top.
 
     The outline is the Otsu iso-contour of `reference` (for example the field-map
@@ -799,7 +831,7 @@ def epi_outline_figure(epi: np.ndarray, reference: np.ndarray, affine: np.ndarra
     """
     epi = np.asarray(epi, float)
     lo, hi = limits if limits is not None else intensity_limits(epi)
-    panels = _Panels.for_grid(epi.shape, affine, panels_mask, n_slices)
+    panels = _Panels.for_grid(epi.shape, affine, panels_mask, n_slices, slices)
     return _slice_row(epi, affine, panels=panels, cmap="gray", vmin=lo, vmax=hi, label=None, title=title,
                       outline=reference, outline_level=outline_level(reference))
 
@@ -1238,7 +1270,8 @@ def _field_map_part(fmap: FieldMapFiles, index: int, dpi: int):
                           and magnitude.shape == mask.shape else None),
     }
     section = _Section(title=f"Field map {fmap.prefix + 'b0_hz'}")
-    fig = field_map_figure(field_hz, image.affine, mask)
+    fig = field_map_figure(field_hz, image.affine, mask,
+                           slices=display_slices(field_hz.shape, image.affine, mask, focus=field_hz))
     limit = fig.axes[0].images[0].get_clim()[1]
     numbers["figure_limit_hz"] = float(limit)
     section.figures.append({"id": f"field{index}", "png": figure_png(fig, dpi=dpi),
@@ -1325,12 +1358,14 @@ def _run_part(run: RunFiles, index: int, dpi: int, with_figures: bool):
         return numbers, section, arrays
     limits = intensity_limits(*(v for v in (before, after) if v is not None), mask=mask)
     arrays["limits"] = limits
+    slices = display_slices(shape, affine, mask, focus=shift_vox if shift_vox is not None and
+                            shift_vox.shape == shape else None)
     outline_note = ("amber outline: field-map magnitude (Otsu level)" if reference is not None
                     else "no reference anatomy found")
-    after_png = figure_png(epi_outline_figure(after, reference, affine, limits=limits, panels_mask=mask,
+    after_png = figure_png(epi_outline_figure(after, reference, affine, limits=limits, slices=slices,
                                               title=f"{run.stem}: after correction"), dpi=dpi)
     if before is not None:
-        before_png = figure_png(epi_outline_figure(before, reference, affine, limits=limits, panels_mask=mask,
+        before_png = figure_png(epi_outline_figure(before, reference, affine, limits=limits, slices=slices,
                                                    title=f"{run.stem}: before correction"), dpi=dpi)
         section.figures.append({"id": f"run{index}-compare", "before": before_png, "after": after_png,
                                 "caption": f"EPI volume 0 before and after correction, same grey scale; {outline_note}. "
@@ -1339,12 +1374,13 @@ def _run_part(run: RunFiles, index: int, dpi: int, with_figures: bool):
         section.figures.append({"id": f"run{index}-after", "png": after_png,
                                 "caption": f"Corrected EPI volume 0; {outline_note} (the distorted input was not found)."})
     if arrays["shift_mm"] is not None:
-        section.figures.append({"id": f"run{index}-shift", "png": figure_png(shift_figure(arrays["shift_mm"], affine, mask),
+        section.figures.append({"id": f"run{index}-shift", "png": figure_png(shift_figure(arrays["shift_mm"], affine, mask, slices=slices),
                                                                              dpi=dpi),
                                 "caption": "Signed shift along the phase-encode axis in mm, inside the mask."})
     if jacobian is not None and jacobian.shape == shape:
         section.figures.append({"id": f"run{index}-jacobian",
-                                "png": figure_png(jacobian_figure(jacobian, affine, mask, fold_mask=fold), dpi=dpi),
+                                "png": figure_png(jacobian_figure(jacobian, affine, mask, fold_mask=fold, slices=slices),
+                                                  dpi=dpi),
                                 "caption": "Jacobian intensity factor (1 = no change); green: folded voxels."})
     return numbers, section, arrays
 
@@ -1371,6 +1407,8 @@ def _dropout_part(drop: DropoutFiles, index: int, dpi: int):
         arrays[key] = (values, image.affine, mask)
         section.figures.append({"id": f"dropout{index}-{key}",
                                 "png": figure_png(retention_figure(values, image.affine, mask, label=label,
+                                                                   slices=display_slices(values.shape, image.affine, mask,
+                                                                                         focus=1.0 - values),
                                                                    title=f"Predicted {label}"), dpi=dpi),
                                 "caption": f"Predicted {label} (1 = no loss) inside the mask."})
     return numbers, section, arrays
@@ -1659,14 +1697,14 @@ def _summary_panels(field_arrays: list[dict], run_arrays: list[dict], dropout_ar
     panels = []
     if field_arrays:
         a = field_arrays[0]
+        k = display_slices(a["field_hz"].shape, a["affine"], a["mask"], n_slices=1, focus=a["field_hz"])[0]
         panels.append({"volume": a["field_hz"], "affine": a["affine"], "mask": a["mask"], "label": "B0 field",
-                       "cmap": _DIVERGING, "vmin": -a["limit"], "vmax": a["limit"], "units": "Hz"})
+                       "cmap": _DIVERGING, "vmin": -a["limit"], "vmax": a["limit"], "units": "Hz", "slice": k})
     if run_arrays:
         a = run_arrays[0]
         lo, hi = a.get("limits") or intensity_limits(a["after"], mask=a["mask"])
         level = outline_level(a["reference"]) if a["reference"] is not None else None
-        z = np.nonzero(np.any(_display_orientation(a["mask"], a["affine"])[0], axis=(0, 1)))[0]
-        k = int((z.min() + z.max()) // 2) if z.size else None
+        k = display_slices(a["after"].shape, a["affine"], a["mask"], n_slices=1, focus=a["shift_mm"])[0]
         if a["before"] is not None:
             panels.append({"volume": a["before"], "affine": a["affine"], "label": "EPI before", "cmap": "gray",
                            "vmin": lo, "vmax": hi, "units": None, "outline": a["reference"], "outline_level": level,
@@ -1675,7 +1713,7 @@ def _summary_panels(field_arrays: list[dict], run_arrays: list[dict], dropout_ar
                        "vmin": lo, "vmax": hi, "units": None, "outline": a["reference"], "outline_level": level,
                        "slice": k})
         if a["shift_mm"] is not None:
-            limit = symmetric_limit(a["shift_mm"][a["mask"]])
+            limit = symmetric_limit(a["shift_mm"][a["mask"]], 99.9)
             panels.append({"volume": a["shift_mm"], "affine": a["affine"], "mask": a["mask"], "label": "Shift",
                            "cmap": _DIVERGING, "vmin": -limit, "vmax": limit, "units": "mm", "slice": k})
     if dropout_arrays:
