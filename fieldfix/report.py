@@ -1246,6 +1246,20 @@ class _Section:
     figures: list = field(default_factory=list)  # dicts: id, caption, png or before/after
 
 
+def _phase_units_text(value) -> str | None:
+    """A short text for the detected phase units, whatever shape the summary gives them."""
+    if value is None or value == [] or value == {}:
+        return None
+    if isinstance(value, str):
+        return value
+    if isinstance(value, dict):
+        found = _find_value(value, r"detected|^units?$|name")
+        return str(found) if found is not None else json.dumps(value, sort_keys=True)
+    if isinstance(value, list):
+        return ", ".join(filter(None, (_phase_units_text(v) for v in value))) or None
+    return str(value)
+
+
 def _field_map_part(fmap: FieldMapFiles, index: int, dpi: int):
     image, field_hz = _volume(fmap.b0_hz)
     mask = (_volume(fmap.mask)[1] > 0) if fmap.mask else None
@@ -1265,7 +1279,8 @@ def _field_map_part(fmap: FieldMapFiles, index: int, dpi: int):
         **field_statistics(field_hz, mask, voxel_volume_mm3=voxel_volume, unaliased_hz=unaliased),
         "unaliased_range_hz": unaliased,
         "echo_times_s": echo_times,
-        "phase_units": _find_value(summary, r"phase_units?"),
+        "phase_units": _phase_units_text(_find_value(summary, r"phase_units?")),
+        "voxels_offset_changed": _find_value(summary, r"offset_changed"),
         "mask_coverage": (mask_coverage(mask, magnitude) if mask is not None and magnitude is not None
                           and magnitude.shape == mask.shape else None),
     }
@@ -1561,6 +1576,8 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
         rows += [("Unaliased range \u00b1", f"{p}.unaliased_range_hz", "{:.1f}", "Hz"),
                  ("Mask voxels beyond it", f"{p}.voxels_beyond_unaliased", "{:d}", ""),
                  ("Echo times", f"{p}.echo_times_s", "{:.5g}", "s"),
+                 ("Phase units detected", f"{p}.phase_units", "{}", ""),
+                 ("Voxels whose 2\u03c0 offset was changed", f"{p}.voxels_offset_changed", "{:d}", ""),
                  ("Mask volume", f"{p}.mask_volume_ml", "{:.1f}", "ml"),
                  ("Mask coverage of bright magnitude", f"{p}.mask_coverage", "{:.1%}", "")]
         cards.append((f"Field map {fmap.get('name', '')}", rows))

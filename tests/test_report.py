@@ -475,3 +475,25 @@ def test_report_of_a_real_unwarp_output(tmp_path):
     # The real correction moves EPI edges towards the anatomy.
     assert run["edge_agreement_after"] > run["edge_agreement_before"] + 0.01
     assert not {"edges_worse", "edges_unchanged"} & {w["code"] for w in data["warnings"]}
+
+
+def test_report_of_real_fieldmap_and_unwarp_outputs(tmp_path):
+    fieldmap = pytest.importorskip("fieldfix.workflows.fieldmap")
+    unwarp = pytest.importorskip("fieldfix.workflows.unwarp")
+    synthetic = write_outputs(tmp_path / "synthetic", with_dropout=False, with_plan=False)
+    out = tmp_path / "derived"
+    fm = fieldmap.run_fieldmap(out, b0=synthetic["out"] / "b0_hz.nii.gz", b0_units="Hz",
+                               magnitude=[synthetic["out"] / "b0_magnitude.nii.gz"], smooth_mm=0.0)
+    raw = tmp_path / "synthetic" / "raw" / f"{synthetic['stem']}.nii.gz"
+    unwarp.run_unwarp([raw], out / "b0_hz.nii.gz", out, pe_code="j-", echo_spacing_s=0.0005)
+    data = json.loads(rp.build_report(out).with_name("report.json").read_text())
+    fmap = data["field_maps"][0]
+    # Our percentiles (from the images) equal the field-map workflow's own (from its arrays).
+    for key, value in fm["field_percentiles_hz"].items():
+        if key in fmap["percentiles_hz"]:
+            assert fmap["percentiles_hz"][key] == pytest.approx(value, abs=1e-3), key
+    assert fmap["mask_volume_ml"] == pytest.approx(fm["mask_volume_ml"])
+    assert fmap["voxels_offset_changed"] == fm["voxels_offset_changed"]
+    run = data["runs"][0]
+    assert run["field_map"] == "b0_hz" and run["mask_source"].startswith("b0_mask")
+    assert run["edge_agreement_shifted_after"] > run["edge_agreement_shifted_before"]
