@@ -383,7 +383,7 @@ def _model_field(p: dict, scale: float, pitch_deg: float):
     hm = sus.head_model(shape, tuple(vox), scale=scale, supersample=2)
     b_dir = sus.b0_direction_from_pitch(pitch_deg, p["roll_deg"])
     raw = sus.field_from_susceptibility(hm.chi_ppm, hm.affine, field_t=p["field_t"], b0_direction=b_dir,
-                                        workers=1)
+                                        workers=-1)
     b0, _ = sus.shim_field(raw, hm.brain_mask, hm.affine, order=p["shim_order"])
     return b0, hm
 
