@@ -10,6 +10,7 @@ writers remove their temporary files.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import json
 import logging
@@ -19,6 +20,7 @@ import traceback
 
 from fieldfix import __version__
 from fieldfix.errors import FieldfixError
+from fieldfix.io import output_transaction
 
 #: Subcommands in the order shown by --help.
 SUBCOMMANDS = ("fieldmap", "unwarp", "dropout", "plan", "report", "batch", "demo")
@@ -128,8 +130,13 @@ def main(argv=None) -> int:
     nibabel_level = nibabel_logger.level
     if not args.debug:
         nibabel_logger.setLevel(logging.CRITICAL)
+    # All or nothing: when a command fails or is interrupted half-way, the outputs it already
+    # put in place are removed again (and files it replaced restored). batch keeps finished
+    # jobs of a failed batch on purpose (it resumes), so it opts out.
+    all_or_nothing = getattr(args._module, "ALL_OR_NOTHING", args.command != "batch")
     try:
-        summary = args._module.run(args)
+        with output_transaction() if all_or_nothing else contextlib.nullcontext():
+            summary = args._module.run(args)
     except FieldfixError as err:
         if args.debug:
             traceback.print_exc()

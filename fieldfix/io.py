@@ -22,6 +22,7 @@ Examples
 from __future__ import annotations
 
 import contextlib
+import contextvars
 import datetime as _dt
 import gzip
 import hashlib
@@ -55,6 +56,7 @@ __all__ = [
     "Provenance",
     "sha256_file",
     "output_paths_guard",
+    "output_transaction",
     "NIFTI_INTENT_DISPVECT",
 ]
 
@@ -360,6 +362,74 @@ def output_paths_guard(paths: Iterable, inputs: Iterable = (), overwrite: bool =
             raise OutputError("output name is taken by a folder", path)
 
 
+#: Files put in place inside the active :func:`output_transaction`: (final path, set-aside previous file).
+_TRANSACTION: contextvars.ContextVar[list | None] = contextvars.ContextVar("fieldfix_output_transaction",
+                                                                          default=None)
+
+
+@contextlib.contextmanager
+def output_transaction():
+    """All-or-nothing outputs: files written inside the block are removed again if it fails.
+
+    Every file that :func:`save_image`, :func:`write_json` or :class:`StreamingWriter` puts
+    in place inside the block is recorded; a file it replaces (with ``overwrite``) is first
+    set aside. When the block raises (any exception, KeyboardInterrupt included), the new
+    files are removed and the replaced ones restored, so a job that fails half-way leaves the
+    output folder as it was; on success the set-aside files are deleted. A block inside an
+    active transaction joins it.
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, os
+    >>> folder = tempfile.mkdtemp()
+    >>> try:
+    ...     with output_transaction():
+    ...         _ = write_json(os.path.join(folder, "a.json"), {"a": 1})
+    ...         raise RuntimeError("a later step fails")
+    ... except RuntimeError:
+    ...     pass
+    >>> os.listdir(folder)
+    []
+    """
+    if _TRANSACTION.get() is not None:
+        yield
+        return
+    records: list = []
+    token = _TRANSACTION.set(records)
+    try:
+        yield
+    except BaseException:
+        _TRANSACTION.reset(token)
+        for final, previous in reversed(records):
+            with contextlib.suppress(OSError):
+                if previous is not None:
+                    os.replace(previous, final)
+                else:
+                    final.unlink(missing_ok=True)
+        raise
+    _TRANSACTION.reset(token)
+    for _, previous in records:
+        if previous is not None:
+            with contextlib.suppress(OSError):
+                previous.unlink()
+
+
+def _put_in_place(temporary: Path, path: Path) -> None:
+    """Rename a finished temporary file onto `path`, recording it in an active transaction."""
+    records = _TRANSACTION.get()
+    if records is None:
+        os.replace(temporary, path)
+        return
+    previous = None
+    if path.exists():
+        handle, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".previous", dir=path.parent)
+        os.close(handle)
+        previous = Path(name)
+        os.replace(path, previous)
+    records.append((path, previous))
+    os.replace(temporary, path)
+
+
 @contextlib.contextmanager
 def _atomic_target(path: Path, inputs: Iterable, overwrite: bool):
     """Yield a temporary path in the target folder; rename it onto `path` on success only."""
@@ -374,7 +444,7 @@ def _atomic_target(path: Path, inputs: Iterable, overwrite: bool):
     temporary = Path(temporary)
     try:
         yield temporary
-        os.replace(temporary, path)
+        _put_in_place(temporary, path)
     except OSError as err:
         temporary.unlink(missing_ok=True)
         raise OutputError(f"write failed ({err.strerror or err}); nothing was left behind", path) from None
