@@ -1,0 +1,438 @@
+"""Protocol planning: sweep candidate protocols over a B0 map and rank them.
+
+For every protocol (slice thickness x echo time x tilt x phase-encode polarity x z-shim
+moment) the signal metric of :mod:`fieldfix.dropout` is evaluated in every voxel of a
+brain mask: the through-plane retention at the nominal TE, or, when the phase-encode
+timing is given, the BOLD sensitivity (Weiskopf et al. 2006, NeuroImage 33:493-504).
+Each protocol is summarised by the median and the percentage of voxels under a threshold
+(default 0.5) in the region of interest (ROI) and in the whole brain mask, and by its
+scan-time consequence: the number of slices needed to cover the extent of the coverage
+mask along the slice normal (with the slice gap) and the shortest TR for a given time
+per slice.
+
+Ranking: ROI median (descending), then ROI percentage under the threshold, brain median,
+brain percentage under the threshold, TR. The recommendation takes, among protocols
+whose TR fits `max_tr_s`, those within `tolerance` of the best ROI median and picks the
+one with the fewest brain voxels under the threshold, then the shortest TR.
+
+Research software, not a medical device: predictions are a planning aid.
+
+Examples
+--------
+>>> slices_to_cover(120.0, 2.5, 0.25)
+44
+>>> shortest_tr_s(44, 0.05)
+2.2
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import _dropout_kernels as kernels
+from .dropout import (
+    SliceFrame,
+    acquisition_window_s,
+    field_gradient_hz_per_mm,
+    frame_from_orientation,
+    slice_profile,
+    zshim_cyc_per_mm,
+)
+from .errors import GeometryError, InputError
+
+__all__ = [
+    "Protocol",
+    "protocol_grid",
+    "mask_extent_mm",
+    "slices_to_cover",
+    "shortest_tr_s",
+    "sweep",
+    "rank",
+    "recommend",
+    "plot_tradeoffs",
+    "CSV_COLUMNS",
+]
+
+_WORLD_WORDS = {"x": ("left", "right"), "y": ("posterior", "anterior"), "z": ("inferior", "superior")}
+
+#: Columns of the ranked table, in order.
+CSV_COLUMNS = ("rank", "thickness_mm", "te_ms", "tilt_deg", "pe_polarity", "pe_direction", "zshim_mtms_per_m",
+               "metric", "roi_median", "roi_pct_below", "brain_median", "brain_pct_below", "n_slices", "tr_s",
+               "fits_tr")
+
+
+@dataclass(frozen=True)
+class Protocol:
+    """One candidate protocol.
+
+    Attributes
+    ----------
+    thickness_mm, te_s, tilt_deg : float
+    pe_sign : int
+        +1 or -1 (BIDS polarity of the phase-encode axis), 0 when not modelled.
+    zshim_mtms_per_m : float
+        Z-shim moment along the slice normal (mT*ms/m).
+    """
+
+    thickness_mm: float
+    te_s: float
+    tilt_deg: float
+    pe_sign: int = 0
+    zshim_mtms_per_m: float = 0.0
+
+    def label(self) -> str:
+        """Short description, e.g. ``'2.5 mm, TE 30 ms, tilt -10 deg, PE +'``."""
+        text = f"{self.thickness_mm:g} mm, TE {self.te_s * 1e3:g} ms, tilt {self.tilt_deg:g} deg"
+        if self.pe_sign:
+            text += f", PE {'+' if self.pe_sign > 0 else '-'}"
+        if self.zshim_mtms_per_m:
+            text += f", z-shim {self.zshim_mtms_per_m:g} mT*ms/m"
+        return text
+
+
+def protocol_grid(thickness_mm, te_s, tilt_deg, pe_signs=(1, -1), zshim_mtms_per_m=(0.0,)) -> list[Protocol]:
+    """All combinations of the given values (duplicates removed, order kept).
+
+    Example
+    -------
+    >>> len(protocol_grid([2.0, 3.0], [0.025, 0.03], [-10.0, 0.0, 10.0]))
+    24
+    """
+    values = [list(dict.fromkeys(float(v) for v in seq)) for seq in (thickness_mm, te_s, tilt_deg)]
+    signs = list(dict.fromkeys(int(s) for s in pe_signs))
+    shims = list(dict.fromkeys(float(z) for z in zshim_mtms_per_m))
+    for name, seq in zip(("thickness", "echo time", "tilt"), values):
+        if not seq:
+            raise InputError(f"the sweep needs at least one {name}")
+    if any(v <= 0 for v in values[0]):
+        raise InputError("slice thicknesses must be positive")
+    if any(v <= 0 for v in values[1]):
+        raise InputError("echo times must be positive")
+    if any(s not in (-1, 0, 1) for s in signs) or not signs:
+        raise InputError("phase-encode polarities must be +1 or -1 (or 0 for none)")
+    return [Protocol(d, te, tilt, s, z) for d, te, tilt, s, z in itertools.product(*values, signs, shims)]
+
+
+def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> float:
+    """Extent of a mask along a world direction (mm), voxel size included.
+
+    The spread of the voxel-centre projections plus the projected size of one voxel.
+
+    Example
+    -------
+    >>> m = np.zeros((4, 4, 10), bool); m[1:3, 1:3, 2:8] = True
+    >>> mask_extent_mm(m, np.diag([2.0, 2.0, 2.0, 1.0]), np.array([0.0, 0.0, 1.0]))
+    12.0
+    """
+    idx = np.argwhere(mask)
+    if idx.size == 0:
+        return 0.0
+    affine = np.asarray(affine, float)
+    normal = np.asarray(normal, float)
+    proj_axes = affine[:3, :3].T @ normal  # mm along normal per index step
+    along = idx @ proj_axes
+    return float(along.max() - along.min() + np.abs(proj_axes).sum())
+
+
+def slices_to_cover(extent_mm: float, thickness_mm: float, gap_mm: float = 0.0) -> int:
+    """Slices needed so that n slices with gaps span `extent_mm`: ``n*d + (n-1)*gap >= extent``."""
+    if thickness_mm <= 0 or gap_mm < 0:
+        raise InputError("the slice thickness must be positive and the gap non-negative")
+    if extent_mm <= 0:
+        return 0
+    return max(1, int(math.ceil((extent_mm + gap_mm) / (thickness_mm + gap_mm) - 1e-9)))
+
+
+def shortest_tr_s(n_slices: int, time_per_slice_s: float, multiband: int = 1) -> float:
+    """Shortest TR: slices acquired one excitation group after another."""
+    if time_per_slice_s <= 0 or multiband < 1:
+        raise InputError("the time per slice must be positive and the multiband factor at least 1")
+    return float(f"{math.ceil(n_slices / multiband) * time_per_slice_s:.12g}")
+
+
+def _pe_direction(axis: str, sign: int) -> str:
+    if sign == 0:
+        return ""
+    low, high = _WORLD_WORDS[axis]
+    return f"{low} to {high}" if sign > 0 else f"{high} to {low}"
+
+
+def sweep(
+    b0_hz: np.ndarray,
+    affine: np.ndarray,
+    roi_mask: np.ndarray,
+    brain_mask: np.ndarray | None = None,
+    *,
+    thickness_mm,
+    te_s,
+    tilt_deg,
+    pe_signs=(1, -1),
+    zshim_mtms_per_m=(0.0,),
+    orientation: str = "axial",
+    pe_world_axis: str = "y",
+    inplane_mm: float = 3.0,
+    pe_lines: int = 64,
+    echo_spacing_s: float | None = None,
+    partial_fourier: float = 1.0,
+    profile: str = "rect",
+    tbw: float = 4.0,
+    threshold: float = 0.5,
+    slice_gap_mm: float = 0.0,
+    time_per_slice_s: float = 0.06,
+    multiband: int = 1,
+    max_tr_s: float | None = None,
+    coverage: str = "brain",
+    engine: str = "numba",
+) -> list[dict]:
+    """Evaluate a sweep of protocols over a B0 map.
+
+    Parameters
+    ----------
+    b0_hz : (X, Y, Z) array
+        B0 map in Hz, smooth and extended a little past the brain.
+    affine : (4, 4) array
+    roi_mask, brain_mask : (X, Y, Z) bool arrays
+        Region of interest and whole-brain mask on the B0 grid (the ROI is added to the
+        brain mask). Without a brain mask, voxels with a finite, non-zero field are used.
+    thickness_mm, te_s, tilt_deg : sequences of float
+        Values to sweep (mm, s, degrees; tilt convention of :func:`fieldfix.dropout.tilt_rotation`).
+    pe_signs : sequence of {+1, -1}
+        Phase-encode polarities (used only with `echo_spacing_s`).
+    zshim_mtms_per_m : sequence of float
+        Z-shim moments along the slice normal (mT*ms/m).
+    orientation, pe_world_axis, inplane_mm, pe_lines
+        Slice geometry of the candidate protocols (see :func:`fieldfix.dropout.frame_from_orientation`).
+    echo_spacing_s : float, optional
+        Effective echo spacing. When given, the metric is the BOLD sensitivity, else the
+        through-plane retention at the nominal TE (and the polarity is not swept).
+    partial_fourier : float
+    profile, tbw : slice profile ('rect', 'gaussian', 'rf') and RF time-bandwidth product.
+    threshold : float
+        Voxels with a metric below it count as lost.
+    slice_gap_mm, time_per_slice_s, multiband
+        Scan-time arithmetic.
+    max_tr_s : float, optional
+        Marks protocols whose TR exceeds it (``fits_tr`` False).
+    coverage : {'brain', 'roi'}
+        Which mask the slices must cover.
+    engine : {'numba', 'numpy'}
+        Numba kernel or the plain-numpy reference.
+
+    Returns
+    -------
+    list of dict, one per protocol, ranked (see :func:`rank`).
+    """
+    b0_hz = np.asarray(b0_hz, float)
+    roi = np.asarray(roi_mask, bool)
+    if roi.shape != b0_hz.shape:
+        raise GeometryError(f"the ROI mask has shape {roi.shape}, the B0 map {b0_hz.shape}")
+    if not roi.any():
+        raise InputError("the ROI mask is empty")
+    if brain_mask is None:
+        brain = np.isfinite(b0_hz) & (b0_hz != 0)
+    else:
+        brain = np.asarray(brain_mask, bool)
+        if brain.shape != b0_hz.shape:
+            raise GeometryError(f"the brain mask has shape {brain.shape}, the B0 map {b0_hz.shape}")
+    brain = brain | roi
+    if not np.isfinite(b0_hz[brain]).all():
+        raise InputError("the B0 map has non-finite values inside the masks")
+    if coverage not in ("brain", "roi"):
+        raise InputError(f"coverage must be 'brain' or 'roi', got {coverage!r}")
+    if engine not in ("numba", "numpy"):
+        raise InputError(f"engine must be 'numba' or 'numpy', got {engine!r}")
+    if not 0.0 < threshold:
+        raise InputError("the threshold must be positive")
+    use_pe = echo_spacing_s is not None
+    protocols = protocol_grid(thickness_mm, te_s, tilt_deg, pe_signs if use_pe else (0,), zshim_mtms_per_m)
+    if use_pe and 0 in {p.pe_sign for p in protocols}:
+        raise InputError("with an echo spacing, phase-encode polarities must be +1 or -1")
+    prof = slice_profile(profile, tbw=tbw)
+
+    tilts = list(dict.fromkeys(p.tilt_deg for p in protocols))
+    frames: list[SliceFrame] = [frame_from_orientation(orientation, t, pe_world_axis=pe_world_axis,
+                                                       inplane_mm=inplane_mm, pe_lines=pe_lines) for t in tilts]
+    grad = field_gradient_hz_per_mm(np.where(np.isfinite(b0_hz), b0_hz, 0.0), affine)[brain]  # (n, 3)
+    gn = np.stack([grad @ f.normal for f in frames])
+    gpe = np.stack([grad @ f.pe_step_mm for f in frames])
+    gro = np.stack([grad @ f.ro_step_mm for f in frames])
+    del grad
+    roi_in_brain = roi[brain]
+
+    tilt_index = np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64)
+    signs = np.array([p.pe_sign for p in protocols], np.int64)
+    tes = np.array([p.te_s for p in protocols])
+    thick = np.array([p.thickness_mm for p in protocols])
+    zs = np.array([zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols])
+    mode = 1 if use_pe else 0
+    t_pe = pe_lines * echo_spacing_s if use_pe else 0.0
+    if use_pe:
+        start, end = acquisition_window_s(1.0, echo_spacing_s, pe_lines, partial_fourier)
+        before, after = 1.0 - start, end - 1.0
+    else:
+        before = after = 0.0
+    if engine == "numba":
+        stats = kernels.sweep_stats(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
+                                    before, after, prof.table, prof.step, prof.tail == "sinc", threshold)
+    else:
+        stats = kernels.sweep_stats_reference(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
+                                              t_pe, before, after, prof.retention, threshold)
+
+    cover = brain if coverage == "brain" else roi
+    extents = [mask_extent_mm(cover, affine, f.normal) for f in frames]
+    metric = "bold_sensitivity" if use_pe else "retention"
+    rows = []
+    for p, ti, st in zip(protocols, tilt_index, stats):
+        n_slices = slices_to_cover(extents[ti], p.thickness_mm, slice_gap_mm)
+        tr = shortest_tr_s(n_slices, time_per_slice_s, multiband)
+        rows.append({
+            "protocol": p.label(),
+            "thickness_mm": p.thickness_mm,
+            "te_s": p.te_s,
+            "te_ms": float(f"{p.te_s * 1e3:.9g}"),
+            "tilt_deg": p.tilt_deg,
+            "pe_sign": p.pe_sign,
+            "pe_polarity": {1: "+", -1: "-", 0: "none"}[p.pe_sign],
+            "pe_direction": _pe_direction(pe_world_axis, p.pe_sign),
+            "zshim_mtms_per_m": p.zshim_mtms_per_m,
+            "metric": metric,
+            "roi_median": float(st[0]),
+            "roi_pct_below": float(st[1]),
+            "brain_median": float(st[2]),
+            "brain_pct_below": float(st[3]),
+            "coverage_mm": extents[ti],
+            "n_slices": n_slices,
+            "tr_s": tr,
+            "fits_tr": bool(max_tr_s is None or tr <= max_tr_s + 1e-12),
+        })
+    return rank(rows)
+
+
+def _rank_key(row: dict):
+    return (-row["roi_median"], row["roi_pct_below"], -row["brain_median"], row["brain_pct_below"], row["tr_s"],
+            row["thickness_mm"], row["te_s"], abs(row["tilt_deg"]))
+
+
+def rank(rows: list[dict]) -> list[dict]:
+    """Rows sorted best first, each with its 1-based ``rank``."""
+    ordered = sorted((dict(r) for r in rows), key=_rank_key)
+    for i, row in enumerate(ordered, 1):
+        row["rank"] = i
+    return ordered
+
+
+def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0.5) -> tuple[dict, str]:
+    """Pick one protocol and give the reason in one sentence.
+
+    Among rows that fit the TR limit (all rows if none does), those whose ROI median is
+    within `tolerance` of the best are candidates; the one with the fewest brain voxels
+    under the threshold wins, then the shortest TR, then the higher ROI median.
+
+    Returns
+    -------
+    (row, reason)
+    """
+    if not rows:
+        raise InputError("no protocols to choose from")
+    pool = [r for r in rows if r.get("fits_tr", True)]
+    limited = bool(pool) and len(pool) < len(rows)
+    if not pool:
+        pool = list(rows)
+    best = max(r["roi_median"] for r in pool)
+    candidates = [r for r in pool if r["roi_median"] >= best - tolerance]
+    choice = min(candidates, key=lambda r: (r["brain_pct_below"], r["tr_s"], -r["roi_median"], _rank_key(r)))
+    what = "BOLD sensitivity" if choice["metric"] == "bold_sensitivity" else "signal retention"
+    reason = (f"{choice['protocol']} keeps a median {what} of {choice['roi_median']:.2f} in the region of interest "
+              f"({choice['roi_pct_below']:.1f}% of its voxels under {threshold:g}), within {tolerance:g} of the best "
+              f"of {len(pool)} {'protocols fitting the TR limit' if limited else 'protocols'}, with the fewest "
+              f"whole-brain voxels under {threshold:g} ({choice['brain_pct_below']:.1f}%) among those and "
+              f"{choice['n_slices']} slices at TR {choice['tr_s']:.2f} s.")
+    return choice, reason
+
+
+# --------------------------------------------------------------------------- figure
+
+_PALETTE = ("#264653", "#2a9d8f", "#e9c46a", "#f4a261", "#e76f51", "#8d5a97", "#6a994e", "#577590")
+
+
+def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = None, title: str | None = None):
+    """Trade-off figure of a sweep: ROI metric against tilt, echo time and TR.
+
+    Three panels: (a) ROI median against tilt and (b) against echo time, one line per
+    slice thickness at the recommended protocol's other settings; (c) every protocol's
+    ROI median against its shortest TR, coloured by thickness, triangle markers by
+    phase-encode polarity, the recommended protocol ringed. Uses matplotlib's Agg canvas
+    directly (no global backend change); imported only when called.
+
+    Parameters
+    ----------
+    rows : list of dict
+        Output of :func:`sweep`.
+    path : str or Path, optional
+        Where to write a PNG.
+    recommended : dict, optional
+        Row to highlight (default: the first row).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    if not rows:
+        raise InputError("no protocols to plot")
+    rec = recommended or rows[0]
+    metric = "BOLD sensitivity" if rec["metric"] == "bold_sensitivity" else "retention"
+    thicknesses = sorted({r["thickness_mm"] for r in rows})
+    colour = {d: _PALETTE[i % len(_PALETTE)] for i, d in enumerate(thicknesses)}
+
+    fig = Figure(figsize=(12.0, 4.2), dpi=100)
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(1, 3)
+
+    def same(r, keys):
+        return all(r[k] == rec[k] for k in keys)
+
+    for ax, xkey, others, xlabel in (
+        (axes[0], "tilt_deg", ("te_s", "pe_sign", "zshim_mtms_per_m"), "slice tilt (deg)"),
+        (axes[1], "te_ms", ("tilt_deg", "pe_sign", "zshim_mtms_per_m"), "echo time (ms)"),
+    ):
+        for d in thicknesses:
+            sel = sorted((r for r in rows if r["thickness_mm"] == d and same(r, others)), key=lambda r: r[xkey])
+            if sel:
+                ax.plot([r[xkey] for r in sel], [r["roi_median"] for r in sel], "-o", color=colour[d], ms=3.5,
+                        lw=1.6, label=f"{d:g} mm")
+        ax.axvline(rec[xkey], color="#999999", lw=0.8, ls=":")
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel(f"ROI median {metric}")
+        ax.grid(True, color="#e6e6e6", lw=0.6)
+    axes[0].legend(title="thickness", fontsize=8, title_fontsize=8, frameon=False)
+    axes[0].set_title("(a) against tilt", loc="left", fontsize=10)
+    axes[1].set_title("(b) against echo time", loc="left", fontsize=10)
+
+    ax = axes[2]
+    for sign, marker in ((1, "^"), (-1, "v"), (0, "o")):
+        for d in thicknesses:
+            sel = [r for r in rows if r["thickness_mm"] == d and r["pe_sign"] == sign]
+            if sel:
+                ax.scatter([r["tr_s"] for r in sel], [r["roi_median"] for r in sel], s=14, marker=marker,
+                           color=colour[d], alpha=0.7, linewidths=0)
+    ax.scatter([rec["tr_s"]], [rec["roi_median"]], s=140, facecolors="none", edgecolors="#111111", linewidths=1.4)
+    ax.annotate("recommended", (rec["tr_s"], rec["roi_median"]), xytext=(8, -14), textcoords="offset points",
+                fontsize=8)
+    ax.set_xlabel("shortest TR (s)")
+    ax.set_ylabel(f"ROI median {metric}")
+    ax.set_title("(c) every protocol (\u25b2 PE +, \u25bc PE \u2212)", loc="left", fontsize=10)
+    ax.grid(True, color="#e6e6e6", lw=0.6)
+    fig.suptitle(title or f"Protocol trade-offs; recommended: {rec['protocol']}", fontsize=11)
+    fig.text(0.995, 0.005, "fieldfix prediction for planning; research software, not a medical device",
+             ha="right", va="bottom", fontsize=7, color="#777777")
+    fig.tight_layout(rect=(0, 0.02, 1, 0.95))
+    if path is not None:
+        fig.savefig(str(path), dpi=100)
+    return fig
