@@ -348,3 +348,87 @@ def test_bad_inputs_are_refused():
         dp.acquisition_window_s(0.03, 5e-4, 64, 0.4)
     with pytest.raises(InputError):
         dp.frame_from_orientation("axial", pe_world_axis="z")
+
+
+# --------------------------------------------------------------------------- workflow and command line
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import nibabel as nib
+
+FIELDFIX = str(Path(sys.executable).with_name("fieldfix"))
+
+
+def _write_nifti(path, data, affine, sidecar=None):
+    nib.save(nib.Nifti1Image(np.asarray(data, np.float32), affine), str(path))
+    if sidecar is not None:
+        Path(str(path).replace(".nii.gz", ".json")).write_text(json.dumps(sidecar))
+    return path
+
+
+def _linear_b0_files(tmp_path, g_world=(0.0, 2.0, 6.0)):
+    affine = _oblique_affine(voxel=(3.0, 3.0, 3.0), angles_deg=(0.0, 0.0, 0.0), origin=(-30.0, -30.0, -20.0))
+    shape = (20, 20, 14)
+    b0 = _linear_field(g_world)(_world(affine, shape))
+    b0_path = _write_nifti(tmp_path / "b0_hz.nii.gz", b0, affine)
+    return affine, shape, b0, b0_path
+
+
+def test_run_dropout_writes_maps_matching_formula(tmp_path):
+    from fieldfix.errors import OutputError
+    from fieldfix.workflows.dropout import run_dropout
+
+    affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
+    epi_affine = np.diag([3.0, 3.0, 3.0, 1.0])
+    epi_affine[:3, 3] = (-30.0, -30.0, -20.0)
+    like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((20, 20, 14, 2)), epi_affine,
+                        {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
+    out = tmp_path / "out"
+    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like, prefix="s1_")
+    ret = nib.load(out / "s1_retention.nii.gz").get_fdata()
+    bs = nib.load(out / "s1_bold_sensitivity.nii.gz").get_fdata()
+    assert (out / "s1_dropout.json").exists() and (out / "s1_retention.json").exists()
+    # linear field: g_n = 6 Hz/mm, dF per PE voxel = 2 * 3 = 6 Hz, polarity -1
+    u = 6.0 * 0.03 * 3.0
+    assert np.allclose(ret[2:-2, 2:-2, 2:-2], abs(np.sinc(u)), atol=1e-5)
+    te_l = 0.03 / (1 - 6.0 * 20 * 0.0005)  # Q = -1 * 6 Hz * 20 lines (this grid) * 0.5 ms
+    assert np.allclose(bs[2:-2, 2:-2, 2:-2], abs(np.sinc(6.0 * te_l * 3.0)) * te_l / 0.03, atol=1e-5)
+    assert summary["parameters"]["pe_code"] == "j-"
+    assert summary["pe_direction_world"] == "anterior to posterior"
+    assert summary["retention"]["median"] == pytest.approx(abs(np.sinc(u)), abs=1e-5)
+    with pytest.raises(OutputError):
+        run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like, prefix="s1_")
+
+
+def test_run_dropout_needs_echo_spacing_with_phase_encoding(tmp_path):
+    from fieldfix.errors import MetadataError
+    from fieldfix.workflows.dropout import run_dropout
+
+    _, _, _, b0_path = _linear_b0_files(tmp_path)
+    with pytest.raises(MetadataError):
+        run_dropout(b0_path, tmp_path / "o", te_s=0.03, thickness_mm=3.0, pe_code="j")
+    assert not (tmp_path / "o" / "retention.nii.gz").exists()
+
+
+def test_cli_dropout_end_to_end(tmp_path):
+    _, _, _, b0_path = _linear_b0_files(tmp_path)
+    out = tmp_path / "cli"
+    proc = subprocess.run([FIELDFIX, "dropout", "--b0", str(b0_path), "--te", "30ms", "--thickness", "3mm",
+                           "--slice-axis", "k", "--tilt", "-15deg", "--phase-encoding", "j-", "--echo-spacing",
+                           "0.5ms", "--zshim", "-0.5mT*ms/m", "--out", str(out), "--json"],
+                          capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads(proc.stdout)
+    assert set(summary["outputs"]) == {"retention", "bold_sensitivity", "summary"}
+    for path in summary["outputs"].values():
+        assert Path(path).exists()
+    saved = json.loads((out / "dropout.json").read_text())
+    assert saved["parameters"]["tilt_deg"] == -15.0
+    assert saved["frame"]["slice_normal_world"][1] == pytest.approx(np.sin(np.deg2rad(15.0)), abs=1e-6)
+    # a bare number is refused with one error line and status 2
+    bad = subprocess.run([FIELDFIX, "dropout", "--b0", str(b0_path), "--te", "30", "--thickness", "3mm",
+                          "--out", str(tmp_path / "bad")], capture_output=True, text=True, timeout=240)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1 and "unit" in bad.stderr

@@ -250,3 +250,71 @@ def test_sweep_refuses_bad_input():
         plan.sweep(b0, affine, roi, thickness_mm=[-2.0], te_s=[0.03], tilt_deg=[0.0])
     with pytest.raises(InputError):
         plan.sweep(b0, affine, roi, thickness_mm=[2.0], te_s=[0.03], tilt_deg=[0.0], engine="gpu")
+
+
+# --------------------------------------------------------------------------- workflow and command line
+
+import csv
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import nibabel as nib
+
+FIELDFIX = str(Path(sys.executable).with_name("fieldfix"))
+
+
+def _scenario_files(tmp_path):
+    affine, xyz, b0, roi, brain, *_ = _sphere_scenario()
+    paths = {}
+    for name, data in (("b0", b0), ("roi", roi), ("brain", brain)):
+        paths[name] = tmp_path / f"{name}.nii.gz"
+        nib.save(nib.Nifti1Image(data.astype(np.float32), affine), str(paths[name]))
+    return paths
+
+
+def test_run_plan_writes_table_json_and_figure(tmp_path):
+    from fieldfix.errors import OutputError
+    from fieldfix.workflows.plan import run_plan
+
+    p = _scenario_files(tmp_path)
+    out = tmp_path / "out"
+    summary = run_plan(p["b0"], out, roi_path=p["roi"], brain_mask_path=p["brain"], te_s=[0.025, 0.03],
+                       thickness_mm=[2.0, 3.0], tilt_deg=[-10.0, 0.0, 10.0], echo_spacing_s=5e-4, prefix="x_")
+    with open(out / "x_plan.csv", newline="") as handle:
+        table = list(csv.DictReader(handle))
+    assert len(table) == 24 == summary["protocols"]
+    assert [int(r["rank"]) for r in table] == list(range(1, 25))
+    medians = [float(r["roi_median"]) for r in table]
+    assert medians == sorted(medians, reverse=True)
+    saved = json.loads((out / "x_plan.json").read_text())
+    assert saved["reason"] == summary["reason"] and len(saved["rows"]) == 24
+    assert len(saved["provenance"]["Inputs"][0]["sha256"]) == 64
+    assert (out / "x_plan.png").read_bytes()[:4] == b"\x89PNG"
+    assert summary["recommended"]["thickness_mm"] == 2.0
+    with pytest.raises(OutputError):
+        run_plan(p["b0"], out, roi_path=p["roi"], te_s=[0.03], thickness_mm=[2.0], prefix="x_")
+
+
+def test_cli_plan_end_to_end(tmp_path):
+    p = _scenario_files(tmp_path)
+    out = tmp_path / "cli"
+    proc = subprocess.run([FIELDFIX, "plan", "--b0", str(p["b0"]), "--roi", str(p["roi"]), "--brain-mask",
+                           str(p["brain"]), "--te", "25ms,30ms,35ms", "--thickness", "2mm,2.5mm,3mm", "--tilt",
+                           "-30deg:30deg:10deg", "--echo-spacing", "0.5ms", "--partial-fourier", "6/8", "--out",
+                           str(out), "--json"], capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads(proc.stdout)
+    assert summary["protocols"] == 3 * 3 * 7 * 2
+    assert summary["metric"] == "bold_sensitivity"
+    assert summary["reason"].endswith(".")
+    for key in ("csv", "json", "figure"):
+        assert Path(summary["outputs"][key]).exists()
+    # no ROI voxels overlap -> one-line error, status 2
+    empty = tmp_path / "empty.nii.gz"
+    nib.save(nib.Nifti1Image(np.zeros((4, 4, 4), np.float32), np.eye(4) * 3 + np.diag([0, 0, 0, -2])), str(empty))
+    bad = subprocess.run([FIELDFIX, "plan", "--b0", str(p["b0"]), "--roi", str(empty), "--te", "30ms",
+                          "--thickness", "2mm", "--out", str(tmp_path / "bad")], capture_output=True, text=True,
+                         timeout=240)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1
