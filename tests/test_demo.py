@@ -98,5 +98,11 @@ def test_sample_scenario_end_to_end(tmp_path):
     n = summary["checks_against_truth"]
     assert summary["steps"]["field map"]["status"] == "done"
     assert n["b0_error_vs_truth_median_hz"] < 3.0
-    # unwarping brings the region above the sinuses closer to the undistorted simulation
-    assert n["roi_error_after"] < n["roi_error_before"]
+    # unwarping puts edges back where the undistorted simulation has them; the region above the
+    # sinuses loses signal to dropout (fact of the trade), but keeps most of it at 3 T
+    assert n["edge_agreement_after"] > n["edge_agreement_before"]
+    assert 0.4 < n["roi_signal_kept"] < 0.98
+    # the dropout workflow's prediction (sinc of the through-slice gradient) agrees with the EPI
+    # simulation's sub-slice integration of the same field, independently computed
+    if "dropout_roi_mean_retention" in n:
+        assert abs(n["dropout_roi_mean_retention"] - n["roi_signal_kept"]) < 0.1

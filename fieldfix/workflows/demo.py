@@ -29,7 +29,7 @@ import numpy as np
 
 from .. import scenarios
 from .._progress import progress_bar
-from ..errors import FieldfixError, InputError, OutputError
+from ..errors import InputError, OutputError
 from ..geometry import resample_to_grid
 from ..io import load_image, write_json
 
@@ -189,11 +189,14 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
 
     # --- dropout and plan ---
     if b0_path.is_file():
-        dr = step("dropout", "dropout", "run_dropout", lambda fn: _call_dropout(fn, b0_path, run, root, out, common))
+        dr = step("dropout", "dropout", "run_dropout",
+                  lambda fn: _call_dropout(fn, b0_path, run, entry, root, out, common))
         if dr is not None:
-            numbers.update(_dropout_numbers(dr))
-        pl = step("plan", "plan", "run_plan", lambda fn: _call_plan(fn, b0_path, run, root, out, common))
+            steps["dropout"]["outputs"] = [dr.get("outputs", {}).get("retention")]
+            numbers.update(_dropout_numbers(dr, out, entry, root))
+        pl = step("plan", "plan", "run_plan", lambda fn: _call_plan(fn, b0_path, run, entry, root, out, common))
         if pl is not None:
+            steps["plan"]["outputs"] = [pl.get("outputs", {}).get("csv")]
             numbers.update(_plan_numbers(pl))
     else:
         steps["dropout"] = {"status": "skipped", "reason": "no B0 map"}
@@ -238,20 +241,28 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
 def _unwarp_numbers(root: Path, run: dict, bold: Path, corrected: Path) -> dict:
     """First volume before and after unwarping, compared with the undistorted simulation.
 
-    The number is the median absolute difference from the undistorted simulation inside the
-    scenario's region of interest, as a fraction of the reference's median there.  Signal lost to
-    through-slice dephasing cannot be brought back by unwarping, so it never reaches zero.
+    * ``edge_agreement_before`` / ``_after``: agreement of image edges with those of the undistorted
+      simulation (normalised gradient fields, :func:`fieldfix.report.edge_agreement`) over the head;
+      1 means every edge in place.
+    * ``roi_signal_kept``: mean of the corrected image in the scenario's region of interest over
+      the mean of the undistorted simulation there; what is missing was lost to through-slice
+      dephasing (dropout), which no unwarping can bring back.
     """
-    ref = load_image(root / run["undistorted"]).get_fdata(np.float64)
+    from ..report import edge_agreement
+
+    ref_img = load_image(root / run["undistorted"])
+    ref = ref_img.get_fdata(np.float64)
     before = load_image(bold).volume(0).astype(np.float64)
     after = load_image(corrected).volume(0).astype(np.float64)
-    nums = {}
+    head = ref > 0.1 * np.percentile(ref, 99)
+    nums = {
+        "edge_agreement_before": round(float(edge_agreement(before, ref, ref_img.affine, head)), 3),
+        "edge_agreement_after": round(float(edge_agreement(after, ref, ref_img.affine, head)), 3),
+    }
     if "roi_mask" in run:
         roi = load_image(root / run["roi_mask"]).get_fdata() > 0
-        if roi.any():
-            level = float(np.median(ref[roi]))
-            nums["roi_error_before"] = round(float(np.median(np.abs(before - ref)[roi])) / level, 3)
-            nums["roi_error_after"] = round(float(np.median(np.abs(after - ref)[roi])) / level, 3)
+        if roi.any() and ref[roi].mean() > 0:
+            nums["roi_signal_kept"] = round(float(after[roi].mean() / ref[roi].mean()), 3)
     return nums
 
 
@@ -269,17 +280,53 @@ def _call_fieldmap(fn, files, entry, out, common):
     return fn(out, phase=[files["phase1"], files["phase2"]], magnitude=mags, field_strength_t=field_t, **common)
 
 
-def _call_dropout(fn, b0_path, run, root, out, common):
-    raise FieldfixError("dropout workflow wiring pending")
+def _call_dropout(fn, b0_path, run, entry, root, out, common):
+    """Retention for the scenario's own protocol, slice geometry and timing from the run."""
+    return fn(b0_path, out, te_s=float(run["echo_time_s"]), thickness_mm=float(run["slice_thickness_mm"]),
+              like_path=root / run["bold"], mask_path=root / entry["truth"]["brain_mask"], **common)
 
 
-def _call_plan(fn, b0_path, run, root, out, common):
-    raise FieldfixError("plan workflow wiring pending")
+# Protocols the demo's plan compares: echo time, slice thickness and slice tilt around the usual
+# choices (common practice, no source), both phase-encode polarities.
+PLAN_TE_S = (0.025, 0.030, 0.035)
+PLAN_THICKNESS_MM = (2.0, 3.0)
+PLAN_TILT_DEG = (-20.0, -10.0, 0.0, 10.0, 20.0)
 
 
-def _dropout_numbers(result) -> dict:
-    return {}
+def _call_plan(fn, b0_path, run, entry, root, out, common):
+    truth = entry["truth"]
+    if "roi_mask" not in truth:
+        raise InputError("the scenario names no region of interest, so there is nothing to plan for")
+    pe_lines = int(round(run["total_readout_time_s"] / run["effective_echo_spacing_s"])) + 1
+    bold = load_image(root / run["bold"])
+    inplane = float(np.mean(np.sort(bold.zooms[:3])[:2]))
+    return fn(b0_path, out, roi_path=root / truth["roi_mask"], brain_mask_path=root / truth["brain_mask"],
+              te_s=PLAN_TE_S, thickness_mm=PLAN_THICKNESS_MM, tilt_deg=PLAN_TILT_DEG, pe_signs=(1, -1),
+              echo_spacing_s=float(run["effective_echo_spacing_s"]), pe_lines=pe_lines, inplane_mm=inplane,
+              **common)
 
 
-def _plan_numbers(result) -> dict:
-    return {}
+def _dropout_numbers(result: dict, out: Path, entry: dict, root: Path) -> dict:
+    nums = {}
+    retention = result.get("retention") or {}
+    if retention.get("median") is not None:
+        nums["dropout_brain_median_retention"] = round(float(retention["median"]), 3)
+        nums["dropout_brain_percent_below_half"] = round(float(retention["pct_below"]), 1)
+    path = (result.get("outputs") or {}).get("retention")
+    if path and "roi_mask" in entry["truth"]:
+        ret = load_image(path).get_fdata(np.float64)
+        roi = load_image(root / entry["truth"]["roi_mask"]).get_fdata() > 0
+        if roi.shape == ret.shape and roi.any():
+            nums["dropout_roi_mean_retention"] = round(float(ret[roi].mean()), 3)
+    return nums
+
+
+def _plan_numbers(result: dict) -> dict:
+    rec = result.get("recommended") or {}
+    nums = {"plan_protocols_compared": int(result.get("protocols", 0))}
+    if rec:
+        nums["plan_recommended"] = str(rec.get("protocol"))
+        if rec.get("roi_median") is not None:
+            nums["plan_recommended_roi_median"] = round(float(rec["roi_median"]), 3)
+        nums["plan_reason"] = str(result.get("reason", ""))
+    return nums
