@@ -762,7 +762,9 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: boo
             task_id=f"dropout:{stem}", kind="dropout", subject=run.subject, session=run.session,
             deps=dep, inputs={"run": str(root / run.path)},
             params={"te_s": te, "slice_thickness_mm": _number(meta, "SliceThickness"),
-                    "slice_encoding_direction": meta.get("SliceEncodingDirection")},
+                    "slice_encoding_direction": meta.get("SliceEncodingDirection"),
+                    "pe_code": pe if isinstance(pe, str) and pe else None,
+                    "readout_time_s": readout, "echo_spacing_s": spacing},
             out_dir=out, source=Path(run.path).name,
             problems=[] if te is not None else [f"{run.path}: sidecar has no EchoTime"],
         )
@@ -1670,25 +1672,49 @@ def _run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
                       timing_win="arguments", b0_mask_path=mask, command=command, **timing)
 
 
-def _slice_thickness_mm(task: Task) -> float:
+def _run_geometry(task: Task) -> tuple[float, int, float | None]:
+    """Slice thickness (mm), slice axis and effective echo spacing (s) of the task's run.
+
+    Thickness: ``SliceThickness`` when the sidecar has it, else the voxel size across
+    slices. Echo spacing: ``EffectiveEchoSpacing``, else ``TotalReadoutTime / (N - 1)``
+    with N the voxels along the phase-encode axis (the BIDS definition of
+    TotalReadoutTime).
+    """
+    from fieldfix.geometry import parse_pe_code
     from fieldfix.io import load_image
 
     p = task.params
-    if p.get("slice_thickness_mm"):
-        return float(p["slice_thickness_mm"])
+    image = load_image(task.inputs["run"], sidecar=False)
     axis = 2
     direction = p.get("slice_encoding_direction")
-    if isinstance(direction, str) and direction[:1] in ("i", "j", "k"):
-        axis = "ijk".index(direction[0])
-    return float(load_image(task.inputs["run"]).zooms[axis])
+    if isinstance(direction, str) and direction.strip():
+        axis = parse_pe_code(direction)[0]
+    thickness = float(p["slice_thickness_mm"]) if p.get("slice_thickness_mm") else \
+        float(image.zooms[axis])
+    spacing = p.get("echo_spacing_s")
+    if spacing is None and p.get("readout_time_s") is not None and p.get("pe_code"):
+        n_lines = image.shape[parse_pe_code(p["pe_code"])[0]]
+        spacing = float(p["readout_time_s"]) / (n_lines - 1)
+    return thickness, axis, spacing
 
 
 def _run_dropout_task(task: Task, upstream, deriv: Path, staging: Path, command):
     from fieldfix.workflows.dropout import run_dropout
 
     b0 = _upstream_output(upstream, deriv, "b0_hz.nii.gz")
-    return run_dropout(b0, staging, te_s=task.params["te_s"],
-                       thickness_mm=_slice_thickness_mm(task), command=command)
+    try:
+        mask = _upstream_output(upstream, deriv, "b0_mask.nii.gz")
+    except InputError:
+        mask = None
+    thickness, axis, spacing = _run_geometry(task)
+    pe = task.params.get("pe_code") if spacing is not None else None
+    summary = run_dropout(b0, staging, te_s=task.params["te_s"], thickness_mm=thickness,
+                          like_path=task.inputs["run"], slice_axis=axis, pe_code=pe,
+                          echo_spacing_s=spacing, mask_path=mask, command=command)
+    retention = summary.get("retention") if isinstance(summary, dict) else None
+    if isinstance(retention, dict):
+        summary["dropout_percent"] = retention.get("pct_below")
+    return summary
 
 
 def _run_report_task(task: Task, upstream, deriv: Path, staging: Path, command):

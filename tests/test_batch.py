@@ -246,8 +246,8 @@ def test_isolation_resume_and_rehash(dataset, tmp_path, fake_workflows):
     assert [t for t, s in status.items() if s == "done"] == ["unwarp:sub-01_ses-1_task-rest_bold"]
     assert corrected.is_file()
 
-    # a changed parameter (readout time in a run's own sidecar) redoes that unwarping and
-    # the report that shows it, nothing else
+    # a changed parameter (readout time in a run's own sidecar) redoes the tasks that use
+    # it (unwarping, BOLD sensitivity) and the report that shows them, nothing else
     sidecar = dataset / "sub-02" / "func" / "sub-02_task-rest_bold.json"
     original = sidecar.read_text()
     try:
@@ -257,6 +257,7 @@ def test_isolation_resume_and_rehash(dataset, tmp_path, fake_workflows):
         sidecar.write_text(original)
     status = _statuses(out / fourth["log"])
     assert [t for t, s in status.items() if s == "done"] == ["unwarp:sub-02_task-rest_bold",
+                                                             "dropout:sub-02_task-rest_bold",
                                                              "report:sub-02"]
 
 
@@ -295,3 +296,152 @@ def test_refuses_foreign_output_folder(dataset, tmp_path, fake_workflows):
         batch.run_batch(dataset, dataset / "sub-01" / "out")
     with pytest.raises(InputError, match="jobs"):
         batch.run_batch(dataset, tmp_path / "d", jobs=0)
+
+
+# ------------------------------------------------------ real workflows, all three backends
+
+
+def _images(out: Path) -> dict[str, Path]:
+    return {p.relative_to(out).as_posix(): p for p in out.rglob("*.nii.gz")
+            if ".fieldfix-work" not in p.parts}
+
+
+def _files(out: Path) -> set[str]:
+    return {p.relative_to(out).as_posix() for p in out.rglob("*")
+            if p.is_file() and p.parts[len(out.parts)] != "logs" and "figures" not in p.parts}
+
+
+@pytest.fixture(scope="module")
+def three_runs(dataset, tmp_path_factory):
+    """The dataset corrected with jobs=1, jobs=2 and a dask LocalCluster of two processes."""
+    from distributed import LocalCluster
+
+    base = tmp_path_factory.mktemp("backends")
+    # reports (the slowest task, and time-stamped) are made once, in the jobs=1 run
+    summaries = {
+        "jobs1": batch.run_batch(dataset, base / "jobs1", jobs=1),
+        "jobs2": batch.run_batch(dataset, base / "jobs2", jobs=2, reports=False),
+    }
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as cluster:
+        summaries["dask"] = batch.run_batch(dataset, base / "dask", reports=False,
+                                            scheduler=cluster.scheduler_address)
+    return base, summaries
+
+
+def test_backends_give_identical_outputs(three_runs):
+    import nibabel as nib
+
+    base, summaries = three_runs
+    modes = {k: s["execution"] for k, s in summaries.items()}
+    assert modes["jobs2"] == "2 local processes" and modes["dask"].startswith("dask")
+    reference = _images(base / "jobs1")
+    assert len(reference) > 20
+    for mode in ("jobs2", "dask"):
+        assert _files(base / mode) == _files(base / "jobs1"), mode
+        for rel, path in reference.items():
+            a, b = nib.load(path), nib.load(base / mode / rel)
+            assert np.array_equal(a.affine, b.affine), (mode, rel)
+            assert np.array_equal(np.asanyarray(a.dataobj), np.asanyarray(b.dataobj)), (mode, rel)
+        def rows(folder):  # the alignment gain comes from the reports, made in jobs1 only
+            table = json.loads((folder / "group" / "group_runs.json").read_text())["rows"]
+            return [{k: v for k, v in r.items() if k != "alignment_gain"} for r in table]
+
+        assert rows(base / mode) == rows(base / "jobs1")
+        no_reports = dict(summaries["jobs1"]["tasks"])
+        no_reports["done"] -= 2  # sub-01 and sub-02 reports
+        no_reports["skipped"] -= 1  # sub-03 report
+        assert summaries[mode]["tasks"] == no_reports
+    # the task hashes (inputs + parameters) agree as well
+    for marker in (base / "jobs1").rglob("*.fieldfix-task.json"):
+        rel = marker.relative_to(base / "jobs1")
+        if "figures" in rel.parts:
+            continue
+        assert json.loads(marker.read_text())["hash"] == \
+            json.loads((base / "dask" / rel).read_text())["hash"]
+
+
+def test_broken_subject_fails_alone_with_real_workflows(three_runs):
+    base, summaries = three_runs
+    for mode, summary in summaries.items():
+        assert summary["exit_status"] == 1
+        assert {f["subject"] for f in summary["failures"]} == {"sub-03"}, mode
+        reasons = {f["task"]: f["reason"] for f in summary["failures"]}
+        assert "sub-03_phasediff.nii.gz" in reasons["fieldmap:sub-03"]
+        assert "truncated or corrupt" in reasons["fieldmap:sub-03"]
+        assert summary["tasks"]["failed"] == 1
+        assert summary["tasks"]["skipped"] == (3 if mode == "jobs1" else 2)
+    out = base / "jobs1"
+    # every other run corrected, with a B0 map per acquisition (also the untargeted one)
+    assert (out / "sub-02" / "fmap" / "sub-02_acq-spare_desc-b0hz_fieldmap.nii.gz").is_file()
+    for run in ("sub-01/ses-1/func/sub-01_ses-1_task-rest", "sub-01/ses-2/func/sub-01_ses-2_task-rest",
+                "sub-02/func/sub-02_task-rest"):
+        assert (out / f"{run}_desc-corrected_bold.nii.gz").is_file(), run
+    assert not list((out / "sub-02").rglob("*task-motor*"))  # no field map: not touched
+    assert (out / "sub-01" / "figures" / "sub-01_desc-report_report.html").is_file()
+    rows = {r["run"]: r for r in json.loads((out / "group" / "group_runs.json").read_text())["rows"]}
+    # shift in voxels = field (Hz) x total readout time (s) -- common practice, no source.
+    # The invented field peaks near 60-70 Hz plus an 8 Hz gradient, readout 30 ms: ~2 voxels.
+    for stem in ("sub-01_ses-1_task-rest_bold", "sub-02_task-rest_bold"):
+        assert 1.0 < rows[stem]["max_shift_vox"] < 3.5, rows[stem]
+        assert rows[stem]["dropout_percent"] is not None
+        assert rows[stem]["status"] == "ok"
+    assert rows["sub-02_task-motor_bold"]["status"] == "no field map"
+    assert rows["sub-03_task-rest_bold"]["status"] == "failed"
+
+
+def _cli(*args, **kwargs):
+    import subprocess
+
+    exe = Path(sys.executable).with_name("fieldfix")
+    return subprocess.run([str(exe), "batch", *map(str, args)], capture_output=True, text=True,
+                          timeout=120, **kwargs)
+
+
+def test_cli_interrupted_batch_resumes_without_redoing(dataset, tmp_path):
+    import signal
+    import subprocess
+    import time
+
+    out = tmp_path / "deriv"
+    exe = Path(sys.executable).with_name("fieldfix")
+    proc = subprocess.Popen([str(exe), "batch", str(dataset), "--out", str(out),
+                             "--participant-label", "01", "--no-report", "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and proc.poll() is None:
+        if list(out.rglob("*.fieldfix-task.json")):
+            break
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    interrupted = proc.returncode == 130
+    if interrupted:
+        assert "interrupted" in err
+    finished_before = {m.name: m.stat().st_mtime_ns for m in out.rglob("*.fieldfix-task.json")}
+    assert finished_before  # at least the first field map was finished before the signal
+    assert not list((out / ".fieldfix-work").glob("*")) if (out / ".fieldfix-work").exists() else True
+
+    rerun = _cli(dataset, "--out", out, "--participant-label", "01", "--no-report", "--json")
+    assert rerun.returncode == 0, rerun.stderr
+    summary = json.loads(rerun.stdout)
+    statuses = _statuses(out / summary["log"])
+    assert set(statuses.values()) <= {"done", "reused"} and len(statuses) == 6
+    # finished work was not redone: same markers, untouched
+    for name, mtime in finished_before.items():
+        marker = next(out.rglob(name))
+        assert marker.stat().st_mtime_ns == mtime
+        assert statuses[json.loads(marker.read_text())["task_id"]] == "reused"
+    if interrupted:
+        assert "done" in statuses.values()
+
+
+def test_cli_exit_status_and_options(dataset, tmp_path):
+    bad = _cli(tmp_path / "nowhere", "--out", tmp_path / "o")
+    assert bad.returncode == 2 and "BIDS root is not a folder" in bad.stderr
+    both = _cli(dataset, "--out", tmp_path / "o", "--jobs", "2", "--scheduler", "tcp://x:1")
+    assert both.returncode == 2 and "not allowed with" in both.stderr
+    missing = _cli(dataset, "--out", tmp_path / "o", "--scheduler-file", tmp_path / "none.json")
+    assert missing.returncode == 2 and "scheduler file not found" in missing.stderr
+    help_text = _cli("--help").stdout
+    assert "--participant-label" in help_text and "not a medical device" in help_text
