@@ -191,6 +191,21 @@ def fieldmap_case(pattern, names="pd", pd_kw=None, mag_kw=None, extra=(), before
     return build
 
 
+def report_case(pattern, names, make_folder: Callable):
+    def build(folder: Path) -> Case:
+        target = folder / "results"
+        inputs = make_folder(target) or []
+        named = [target / n if n else target for n in names]
+        return Case(["report", target, "--out", folder / "out"], pattern, named, inputs)
+    return build
+
+
+def _truncated_b0_folder(target: Path):
+    path = make_b0(target)
+    path.write_bytes(_truncate(path.read_bytes()))
+    return [path]
+
+
 def _replace(key, content: bytes | None = None, *, directory=False, remove=False):
     def mutate(folder, paths):
         path = paths[key]
@@ -340,6 +355,9 @@ REFUSALS = [
     pytest.param(unwarp_case(r"not valid JSON", names=["sub-01_task-rest_bold.json"],
                              before=lambda folder, paths: (folder / "sub-01_task-rest_bold.json").write_text("{oops")),
                  id="unwarp-sidecar-not-json"),
+    pytest.param(report_case(r"not found", [""], lambda target: None), id="report-folder-missing"),
+    pytest.param(report_case(r"truncated or corrupt", ["b0_hz.nii.gz"], _truncated_b0_folder),
+                 id="report-truncated-b0"),
     # ---- implausible shifts --------------------------------------------------------------------
     pytest.param(unwarp_case(r"exceed a quarter of the field of view", b0_kw={"values": field_hz(peak_hz=300.0)}),
                  id="unwarp-shift-over-quarter-fov"),

@@ -253,15 +253,15 @@ def _cli_commands_reading_one_image(path: Path, out: Path) -> list[list[str]]:
     available = _load_subcommands()
     commands = []
     if "unwarp" in available:
-        commands.append(["unwarp", str(path), "--b0", str(path), "--pe", "j-", "--readout-time", "30ms",
+        commands.append(["unwarp", str(path), "--b0", str(path), "--phase-encoding", "j-", "--readout-time", "30ms",
                          "--out", str(out)])
     if "fieldmap" in available:
-        commands.append(["fieldmap", "--phasediff", str(path), "--magnitude", str(path),
-                         "--echo-times", "4.92ms,7.38ms", "--out", str(out)])
+        commands.append(["fieldmap", "--phase-diff", str(path), "--magnitude", str(path),
+                         "--echo-times", "4.92ms", "7.38ms", "--out", str(out)])
     return commands
 
 
-@pytest.mark.parametrize("case", range(6))
+@pytest.mark.parametrize("case", range(4))
 def test_corrupt_files_through_the_cli(tmp_path, valid_bytes, case):
     rng = random.Random(1000 + case)
     suffix = ".nii.gz" if case % 2 else ".nii"
