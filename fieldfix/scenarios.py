@@ -329,7 +329,7 @@ def tissue_image(x, y, z, scale: float = 1.0) -> np.ndarray:
     lut = np.zeros(256)
     for name, value in _TISSUE_SIGNAL.items():
         lut[sus.HEAD_LABELS[name]] = value
-    img = lut[labels]
+    img = np.array(lut[labels], dtype=float)
     brain = labels == sus.HEAD_LABELS["brain"]
     s = float(scale)
     wm = ((x / (42 * s)) ** 2 + ((y + 5 * s) / (58 * s)) ** 2 + ((z - 20 * s) / (40 * s)) ** 2) <= 1
