@@ -107,8 +107,12 @@ class UnwarpTables:
     shape : tuple of int, the volume shape
     pe_axis : int
     interp : str
-    index : (n_voxels, taps) int32/int64, flat (C-order) source positions
+    index : (n_voxels, taps) int32/int64, flat source positions in `layout` order
     weight : (n_voxels, taps) float32, interpolation weight times intensity weight
+    layout : {'C', 'F'}
+        Memory order of the volumes the tables index: rows and flat positions follow it.
+        NIfTI volumes read through nibabel are Fortran-ordered; using ``'F'`` for them
+        avoids a transposing copy on the way in and on the way out.
     """
 
     shape: tuple
@@ -116,6 +120,7 @@ class UnwarpTables:
     interp: str
     index: np.ndarray
     weight: np.ndarray
+    layout: str = "C"
 
     @property
     def nbytes(self) -> int:
@@ -216,11 +221,13 @@ def interpolate_along_axis(volume: np.ndarray, positions: np.ndarray, axis: int,
     within half a voxel outside, zero further out). Useful as a reference and for
     one-off resampling.
     """
-    tables = _build(np.asarray(positions, float), axis, interp, None)
+    tables = _build(np.asarray(positions, float), axis, interp, None, "C")
     return apply_tables(tables, volume)
 
 
-def _build(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None) -> UnwarpTables:
+def _build(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None, layout: str) -> UnwarpTables:
+    if layout not in ("C", "F"):
+        raise InputError(f"layout must be 'C' or 'F', got {layout!r}")
     shape = position.shape
     n = shape[axis]
     ok = (position >= -0.5) & (position <= n - 0.5)
@@ -229,19 +236,27 @@ def _build(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | Non
     weights = np.where(ok[..., None], weights, 0.0)
     if scale is not None:
         weights = weights * scale[..., None]
-    strides = np.array([int(np.prod(shape[a + 1:])) for a in range(len(shape))])
-    flat = np.arange(int(np.prod(shape))).reshape(shape)
+    size = int(np.prod(shape))
+    if layout == "C":
+        strides = [int(np.prod(shape[a + 1:])) for a in range(len(shape))]
+    else:
+        strides = [int(np.prod(shape[:a])) for a in range(len(shape))]
+    flat = np.arange(size).reshape(shape, order=layout)  # flat position of every voxel
     own = np.indices(shape, sparse=True)[axis]
-    base = flat - own * strides[axis]  # flat index of the line's first voxel
-    dtype = np.int32 if flat.size < 2**31 else np.int64
+    base = flat - own * strides[axis]  # flat position of the line's first voxel
+    dtype = np.int32 if size < 2**31 else np.int64
     index = (base[..., None] + along * strides[axis]).astype(dtype)
     taps = index.shape[-1]
+    if layout == "F":  # rows in Fortran order of the voxels
+        index = index.transpose(2, 1, 0, 3)
+        weights = weights.transpose(2, 1, 0, 3)
     return UnwarpTables(
         shape=tuple(shape),
         pe_axis=int(axis),
         interp=interp,
         index=np.ascontiguousarray(index.reshape(-1, taps)),
         weight=np.ascontiguousarray(weights.reshape(-1, taps), dtype=np.float32),
+        layout=layout,
     )
 
 
@@ -252,6 +267,7 @@ def build_tables(
     interp: str = "linear",
     jacobian: bool = True,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
+    layout: str = "C",
 ) -> UnwarpTables:
     """Compute the index/weight tables of the pull-back for one shift map.
 
@@ -263,6 +279,9 @@ def build_tables(
     jacobian : bool
         Multiply by the Jacobian intensity weight (floor in folded voxels).
     jacobian_floor : float
+    layout : {'C', 'F'}
+        Memory order of the volumes the tables will be applied to (either works with
+        any volume; the matching one avoids a copy).
 
     Returns
     -------
@@ -276,12 +295,14 @@ def build_tables(
     own = np.indices(shift_vox.shape, sparse=True)[pe_axis]
     position = own + shift_vox
     scale = intensity_weight(jacobian_from_shift(shift_vox, pe_axis), jacobian_floor) if jacobian else None
-    return _build(position, pe_axis, interp, scale)
+    return _build(position, pe_axis, interp, scale, layout)
 
 
-def _prefilter(volume: np.ndarray, axis: int) -> np.ndarray:
-    """1D cubic B-spline prefilter along one axis (mirror boundary), float64."""
-    return ndimage.spline_filter1d(np.asarray(volume, np.float64), order=3, axis=axis, mode="mirror")
+def _prefilter(volume: np.ndarray, axis: int, layout: str) -> np.ndarray:
+    """1D cubic B-spline prefilter along one axis (mirror boundary), float64 in `layout` order."""
+    out = np.empty(volume.shape, np.float64, order=layout)
+    ndimage.spline_filter1d(volume, order=3, axis=axis, mode="mirror", output=out)
+    return out
 
 
 def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
@@ -290,23 +311,30 @@ def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | Non
     Parameters
     ----------
     tables : UnwarpTables
-    volume : (X, Y, Z) array, the distorted volume on the tables' grid
-    out : (X, Y, Z) float32 C-contiguous array, optional
+    volume : (X, Y, Z) array, the distorted volume on the tables' grid (any memory order;
+        one in the tables' layout is used without a copy)
+    out : (X, Y, Z) float32 array contiguous in the tables' layout, optional
 
     Returns
     -------
-    (X, Y, Z) float32 array
+    (X, Y, Z) float32 array, contiguous in the tables' layout
     """
     volume = np.asarray(volume)
+    layout = tables.layout
     if volume.shape != tables.shape:
         raise GeometryError(f"volume shape {volume.shape} does not match the tables' grid {tables.shape}")
     if tables.interp == "cubic":
-        source = _prefilter(volume, tables.pe_axis).ravel()
+        source = _prefilter(volume, tables.pe_axis, layout).ravel(order=layout)
     else:
-        source = volume.ravel() if volume.dtype in (np.float32, np.float64) else volume.astype(np.float32).ravel()
+        if volume.dtype not in (np.float32, np.float64):
+            volume = volume.astype(np.float32)
+        source = volume.ravel(order=layout)  # a view when the volume is already in that order
     if out is None:
-        out = np.empty(tables.shape, np.float32)
-    kernels.gather(source, tables.index, tables.weight, out.reshape(-1))
+        out = np.empty(tables.shape, np.float32, order=layout)
+    flat_out = out.ravel(order=layout)
+    if out.dtype != np.float32 or not np.shares_memory(flat_out, out):
+        raise ValueError(f"out must be a float32 array contiguous in {layout!r} order")
+    kernels.gather(source, tables.index, tables.weight, flat_out)
     return out
 
 
@@ -346,13 +374,15 @@ def unwarp_array(
     Returns float32 of the same shape.
     """
     data = np.asarray(data)
-    tables = build_tables(shift_vox, pe_axis, interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor)
+    layout = "F" if data.flags.f_contiguous and not data.flags.c_contiguous else "C"
+    tables = build_tables(shift_vox, pe_axis, interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor,
+                          layout=layout)
     if data.ndim == 3:
         return apply_tables(tables, data)
     if data.ndim != 4:
         raise GeometryError(f"expected a 3D volume or a 4D run, got {data.ndim} dimensions")
-    out = np.empty(data.shape, np.float32)
-    volume_out = np.empty(tables.shape, np.float32)
+    out = np.empty(data.shape, np.float32, order=layout)
+    volume_out = np.empty(tables.shape, np.float32, order=layout)
     for t in range(data.shape[3]):
         out[..., t] = apply_tables(tables, data[..., t], volume_out)
     return out

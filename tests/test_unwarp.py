@@ -410,3 +410,47 @@ def test_mirror_indices_match_scipy_mirror_mode():
         signal = np.arange(n, dtype=float) * 10
         expected = ndimage.map_coordinates(signal, [index.astype(float)], order=0, mode="mirror")
         assert np.array_equal(signal[_mirror(index, n)], expected)
+
+
+@pytest.mark.parametrize("interp", ["linear", "cubic", "sinc"])
+def test_fortran_layout_tables_give_the_same_voxels(interp):
+    rng = np.random.default_rng(9)
+    shape = (5, 12, 4)
+    shift = rng.uniform(-2, 2, shape)
+    volume = rng.random(shape)
+    reference = apply_tables(build_tables(shift, 1, interp=interp), volume)
+    tables_f = build_tables(shift, 1, interp=interp, layout="F")
+    for candidate in (np.asfortranarray(volume), np.ascontiguousarray(volume)):
+        out = apply_tables(tables_f, candidate)
+        assert out.flags.f_contiguous and np.array_equal(out, reference)
+    with pytest.raises(ValueError):
+        apply_tables(tables_f, volume, out=np.empty(shape, np.float32))  # C-ordered buffer for F tables
+
+
+def test_workflow_failure_mid_run_leaves_no_partial_output(scene, monkeypatch):
+    import fieldfix.workflows.unwarp as workflow
+    from fieldfix.io import StreamingWriter
+
+    folder, run, b0_path, data, affine = scene
+    calls = {"n": 0}
+    original = workflow.apply_tables
+
+    def failing(tables, volume, out=None):
+        calls["n"] += 1
+        if calls["n"] == 5:
+            raise RuntimeError("simulated failure while unwarping")
+        return original(tables, volume, out)
+
+    monkeypatch.setattr(workflow, "apply_tables", failing)
+    with pytest.raises(RuntimeError, match="simulated"):
+        run_unwarp([run], b0_path, folder / "fail1")
+    assert not any((folder / "fail1").glob("*corrected*"))
+    monkeypatch.setattr(workflow, "apply_tables", original)
+
+    def failing_write(self, volume):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(StreamingWriter, "write", failing_write)
+    with pytest.raises(OutputError, match="No space left"):
+        run_unwarp([run], b0_path, folder / "fail2")
+    assert not any((folder / "fail2").glob("*corrected*"))

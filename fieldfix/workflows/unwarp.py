@@ -23,6 +23,8 @@ for any decision about a person.
 from __future__ import annotations
 
 import os
+import queue
+import threading
 from pathlib import Path
 
 import nibabel as nib
@@ -80,6 +82,46 @@ def output_names(run_path: str | os.PathLike, out_dir: str | os.PathLike, prefix
     """
     stem = prefix + image_stem(run_path)
     return {key: Path(out_dir) / (stem + suffix) for key, suffix in _SUFFIXES.items()}
+
+
+class _BackgroundWriter:
+    """Feed a StreamingWriter from a second thread through a short queue.
+
+    Compressing the output (zlib releases the GIL) then overlaps with reading,
+    decompressing and unwarping the next volumes. At most `depth` volumes wait in the
+    queue, so memory stays at a few volumes. An error in the writing thread is raised in
+    the caller at the next :meth:`put` or at :meth:`close`; :meth:`close` always waits for
+    the thread, so the writer's context can then clean up.
+    """
+
+    def __init__(self, writer: StreamingWriter, depth: int = 2):
+        self._writer = writer
+        self._queue: queue.Queue = queue.Queue(maxsize=depth)
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._work, name="fieldfix-writer", daemon=True)
+        self._thread.start()
+
+    def _work(self) -> None:
+        while True:
+            item = self._queue.get()
+            if item is None:
+                return
+            if self._error is None:  # after a failure, keep draining so the caller never blocks
+                try:
+                    self._writer.write(item)
+                except BaseException as err:  # noqa: BLE001 - handed to the caller
+                    self._error = err
+
+    def put(self, volume: np.ndarray) -> None:
+        if self._error is not None:
+            raise self._error
+        self._queue.put(volume)
+
+    def close(self) -> None:
+        self._queue.put(None)
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
 
 
 def _sequential(image: Image) -> Image:
@@ -307,8 +349,9 @@ def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_p
     maps = shift_maps(field, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines, inside=covered,
                       jacobian_floor=jacobian_floor)
     _check_shift_size(maps, mask, image.path, b0.path, force)
+    # NIfTI volumes come Fortran-ordered from nibabel and are written the same way.
     tables = build_tables(maps.shift_vox, maps.pe_axis, interp=interp, jacobian=jacobian,
-                          jacobian_floor=jacobian_floor)
+                          jacobian_floor=jacobian_floor, layout="F")
 
     parameters = {
         "pe_code": code,
@@ -330,10 +373,13 @@ def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_p
         n_volumes = image.shape[3]
         with StreamingWriter(paths["corrected"], image.shape, affine, template=image, inputs=inputs,
                              overwrite=overwrite, provenance=provenance) as writer:
-            buffer = np.empty(grid, np.float32)
-            for t in progress_bar(range(n_volumes), total=n_volumes, desc=image_stem(image.path),
-                                  enabled=progress, unit="vol"):
-                writer.write(apply_tables(tables, source.volume(t), buffer))
+            background = _BackgroundWriter(writer)
+            try:
+                for t in progress_bar(range(n_volumes), total=n_volumes, desc=image_stem(image.path),
+                                      enabled=progress, unit="vol"):
+                    background.put(apply_tables(tables, source.volume(t)))
+            finally:
+                background.close()
     else:
         n_volumes = 1
         save_image(paths["corrected"], apply_tables(tables, source.volume(0)), affine, template=image,
