@@ -206,6 +206,38 @@ def _truncated_b0_folder(target: Path):
     return [path]
 
 
+def dropout_case(pattern, names="b0", b0_kw=None, extra=(), before: Callable | None = None,
+                 te="30ms", thickness="3mm"):
+    def build(folder: Path) -> Case:
+        paths = {"b0": make_b0(folder, **(b0_kw or {}))}
+        if before is not None:
+            before(folder, paths)
+        named = [paths.get(n, n) for n in ([names] if isinstance(names, str) else names)]
+        argv = ["dropout", "--b0", paths["b0"], "--te", te, "--thickness", thickness, "--out", folder / "out",
+                *[str(paths.get(a, a)) if isinstance(a, str) else a for a in extra]]
+        return Case(argv, pattern, named, [*paths.values(), *folder.glob("*.json")])
+    return build
+
+
+def plan_case(pattern, names="roi", b0_kw=None, roi=None, roi_affine=None, extra=(), te="25ms,30ms",
+              thickness="2mm,3mm"):
+    def build(folder: Path) -> Case:
+        paths = {"b0": make_b0(folder, **(b0_kw or {})),
+                 "roi": write_image(folder / "roi.nii.gz", (head() > 0) & (field_hz() > 20) if roi is None else roi,
+                                    roi_affine, dtype=np.uint8)}
+        named = [paths.get(n, n) for n in ([names] if isinstance(names, str) else names)]
+        argv = ["plan", "--b0", paths["b0"], "--roi", paths["roi"], "--te", te, "--thickness", thickness,
+                "--out", folder / "out", *extra]
+        return Case(argv, pattern, named, list(paths.values()))
+    return build
+
+
+def _add_like(data=None, affine=None, sidecar=None):
+    def mutate(folder, paths):
+        paths["like"] = make_run(folder, name="like_bold.nii.gz", data=data, affine=affine, sidecar=sidecar)
+    return mutate
+
+
 def _replace(key, content: bytes | None = None, *, directory=False, remove=False):
     def mutate(folder, paths):
         path = paths[key]
@@ -358,6 +390,39 @@ REFUSALS = [
     pytest.param(report_case(r"not found", [""], lambda target: None), id="report-folder-missing"),
     pytest.param(report_case(r"truncated or corrupt", ["b0_hz.nii.gz"], _truncated_b0_folder),
                  id="report-truncated-b0"),
+    # ---- dropout and plan ----------------------------------------------------------------------
+    # NaN outside the brain mask is background by design (dropout.py); inside the mask it is refused.
+    pytest.param(dropout_case(r"non-finite values inside the mask", b0_kw={"values": with_nan(field_hz())},
+                              before=_add_mask(head() > 0), extra=("--mask", "mask")), id="dropout-b0-nan-in-mask"),
+    pytest.param(dropout_case(r"2D", b0_kw={"values": field_hz()[..., 3]}), id="dropout-b0-2d"),
+    pytest.param(dropout_case(r"not a readable NIfTI", before=_replace("b0", b"GIF89a" + bytes(400))),
+                 id="dropout-b0-not-nifti"),
+    pytest.param(dropout_case(r"no unit", names=[], te="30"), id="dropout-te-no-unit"),
+    pytest.param(dropout_case(r"echo time|TE|positive", names=[], te=" -30ms"), id="dropout-te-negative"),
+    pytest.param(dropout_case(r"echo time|TE|implausible|plausible", names=[], te="30000ms"),
+                 id="dropout-te-seconds-given-as-ms",
+                 marks=_xfail("fieldfix/workflows/dropout.py run_dropout: the echo time is only checked to be "
+                              "positive; 30000ms (a value in seconds written as ms) is accepted")),
+    pytest.param(dropout_case(r"thickness|positive", names=[], thickness="0mm"), id="dropout-thickness-zero"),
+    pytest.param(dropout_case(r"does not overlap|overlap", names="like",
+                              before=_add_like(affine=grid_affine(offset_mm=(0, 0, 1000))),
+                              extra=("--like", "like", "--echo-spacing", "0.5ms")),
+                 id="dropout-like-no-overlap",
+                 marks=_xfail("fieldfix/workflows/dropout.py run_dropout: a --like EPI 1 m away from the B0 map is "
+                              "used for its geometry without any overlap check (exit 0, no warning)")),
+    pytest.param(dropout_case(r"unknown phase-encode code", names=["'x'"], extra=("--phase-encoding", "x",
+                                                                               "--echo-spacing", "0.5ms")),
+                 id="dropout-pe-code-unknown"),
+    pytest.param(dropout_case(r"empty", names="mask", before=_add_mask(np.zeros(SHAPE)), extra=("--mask", "mask")),
+                 id="dropout-mask-empty",
+                 marks=_xfail("fieldfix/workflows/dropout.py load_mask_on_grid/run_dropout: an all-zero --mask is "
+                              "accepted (exit 0, statistics over no voxels)")),
+    pytest.param(plan_case(r"empty", roi=np.zeros(SHAPE)), id="plan-roi-empty"),
+    pytest.param(plan_case(r"NaN|infinite|finite", names="b0", b0_kw={"values": with_nan(field_hz())}),
+                 id="plan-b0-nan"),
+    pytest.param(plan_case(r"does not overlap", roi=np.ones(SHAPE),
+                           roi_affine=grid_affine(offset_mm=(1000, 0, 0))), id="plan-roi-no-overlap"),
+    pytest.param(plan_case(r"no unit", names=[], te="25,30"), id="plan-te-no-unit"),
     # ---- implausible shifts --------------------------------------------------------------------
     pytest.param(unwarp_case(r"exceed a quarter of the field of view", b0_kw={"values": field_hz(peak_hz=300.0)}),
                  id="unwarp-shift-over-quarter-fov"),
