@@ -212,7 +212,7 @@ def _isochromat_bs(field, centre, normal, pe_unit, pe_voxel_mm, pe_sign, te_s, t
     i = int(np.argmax(coarse))
     if i in (0, t_coarse.size - 1):
         return 0.0  # no echo within reach
-    t_fine = np.linspace(t_coarse[i - 1], t_coarse[i + 1], 81)
+    t_fine = np.linspace(t_coarse[i - 1], t_coarse[i + 1], 41)
     s_fine = signal(t_fine)
     j = int(np.argmax(s_fine))
     t_echo = t_fine[j]
