@@ -110,8 +110,9 @@ def protocol_grid(thickness_mm, te_s, tilt_deg, pe_signs=(1, -1), zshim_mtms_per
             raise InputError(f"the sweep needs at least one {name}")
     if any(v <= 0 for v in values[0]):
         raise InputError("slice thicknesses must be positive")
-    if any(v <= 0 for v in values[1]):
-        raise InputError("echo times must be positive")
+    if any(v <= 0 or v > 0.5 for v in values[1]):
+        raise InputError("echo times must be positive and at most 0.5 s (longer ones are almost always a unit "
+                         "mistake)")
     if any(s not in (-1, 0, 1) for s in signs) or not signs:
         raise InputError("phase-encode polarities must be +1 or -1 (or 0 for none)")
     return [Protocol(d, te, tilt, s, z) for d, te, tilt, s, z in itertools.product(*values, signs, shims)]

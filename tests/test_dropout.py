@@ -432,3 +432,21 @@ def test_cli_dropout_end_to_end(tmp_path):
     bad = subprocess.run([FIELDFIX, "dropout", "--b0", str(b0_path), "--te", "30", "--thickness", "3mm",
                           "--out", str(tmp_path / "bad")], capture_output=True, text=True, timeout=240)
     assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1 and "unit" in bad.stderr
+
+
+def test_run_dropout_refuses_implausible_te_empty_mask_and_distant_epi(tmp_path):
+    from fieldfix.errors import GeometryError, InputError
+    from fieldfix.workflows.dropout import run_dropout
+
+    affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
+    with pytest.raises(InputError, match="implausible"):
+        run_dropout(b0_path, tmp_path / "a", te_s=30.0, thickness_mm=3.0)
+    empty = _write_nifti(tmp_path / "mask.nii.gz", np.zeros(shape), affine)
+    with pytest.raises(InputError, match="empty"):
+        run_dropout(b0_path, tmp_path / "b", te_s=0.03, thickness_mm=3.0, mask_path=empty)
+    far = np.diag([3.0, 3.0, 3.0, 1.0])
+    far[:3, 3] = (0.0, 0.0, 1000.0)
+    like = _write_nifti(tmp_path / "far.nii.gz", np.ones((20, 20, 14)), far)
+    with pytest.raises(GeometryError, match="overlap"):
+        run_dropout(b0_path, tmp_path / "c", te_s=0.03, thickness_mm=3.0, like_path=like)
+    assert not any((tmp_path / d).exists() and any((tmp_path / d).iterdir()) for d in "abc")

@@ -22,10 +22,13 @@ import numpy as np
 
 from ..dropout import PROFILES, acquisition_window_s, dropout_maps, frame_from_affine, slice_profile, zshim_cyc_per_mm
 from ..errors import GeometryError, InputError, MetadataError
-from ..geometry import parse_pe_code, pe_world_direction, resample_to_grid, same_grid
+from ..geometry import overlap_fraction, parse_pe_code, pe_world_direction, resample_to_grid, same_grid
 from ..io import Provenance, load_image, output_paths_guard, save_image, sidecar_path, write_json
 
-__all__ = ["run_dropout", "load_mask_on_grid", "CAUTION"]
+__all__ = ["run_dropout", "load_mask_on_grid", "CAUTION", "MAX_TE_S"]
+
+#: Longest echo time accepted (s); longer values are almost always a unit mistake.
+MAX_TE_S = 0.5
 
 CAUTION = ("Research software, not a medical device: predicted dropout maps are a planning aid and must be "
            "checked against acquired images before any decision about a person.")
@@ -37,12 +40,17 @@ def load_mask_on_grid(path, shape, affine, *, what: str = "mask") -> np.ndarray:
     data = image.get_fdata(np.float32)
     if not np.isfinite(data).all():
         raise InputError(f"the {what} contains non-finite values", path)
+    if not (data > 0.5).any():
+        raise InputError(f"the {what} is empty (no voxel above 0.5)", path)
     if same_grid(image.shape, image.affine, shape, affine):
         return data > 0.5
     values, inside = resample_to_grid(data, image.affine, shape, affine, order=0, outside=0.0)
     if not inside.any():
         raise GeometryError(f"the {what} does not overlap the B0 map", path)
-    return (values > 0.5) & inside
+    mask = (values > 0.5) & inside
+    if not mask.any():
+        raise InputError(f"the {what} is empty on the B0 grid", path)
+    return mask
 
 
 def _stats(values: np.ndarray, mask: np.ndarray, threshold: float) -> dict:
@@ -120,6 +128,9 @@ def run_dropout(
     out_dir = Path(out_dir)
     if not te_s > 0:
         raise InputError(f"the echo time must be positive, got {te_s}")
+    if te_s > MAX_TE_S:
+        raise InputError(f"echo time {te_s:g} s is implausible for a gradient-echo protocol (at most "
+                         f"{MAX_TE_S:g} s); check the unit")
     if not thickness_mm > 0:
         raise InputError(f"the slice thickness must be positive, got {thickness_mm}")
     if profile not in PROFILES:
@@ -134,6 +145,9 @@ def run_dropout(
     like = load_image(like_path, ndim=(3, 4)) if like_path is not None else None
     sidecar = like.sidecar if like is not None else {}
     geometry_src = like if like is not None else b0_img
+    if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, b0_img.affine) == 0.0:
+        raise GeometryError("the EPI image does not overlap the B0 map; check that both are in the same "
+                            "scanner space", like_path)
 
     if slice_axis is None:
         code = sidecar.get("SliceEncodingDirection")
