@@ -26,45 +26,94 @@ __all__ = ["gather", "gather_reference", "splat_lines", "splat_lines_reference"]
 _MIN_WIDTH = 1e-9
 
 
-@njit(parallel=True, cache=True)
-def _gather_kernel(source, index, weight, out):  # pragma: no cover - compiled
-    n, taps = index.shape
-    for v in prange(n):
-        acc = 0.0
-        for t in range(taps):
-            acc += weight[v, t] * source[index[v, t]]
-        out[v] = acc
+@njit(cache=True, inline="always")
+def _row(source, index, weight, v):  # pragma: no cover - compiled
+    acc = 0.0
+    for t in range(index.shape[1]):
+        acc += np.float64(weight[v, t]) * source[index[v, t]]
+    return acc
 
 
 # Fixed tap counts let the compiler unroll the inner loop (two to three times faster).
+@njit(cache=True, inline="always")
+def _row2(source, index, weight, v):  # pragma: no cover - compiled
+    return np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
+
+
+@njit(cache=True, inline="always")
+def _row4(source, index, weight, v):  # pragma: no cover - compiled
+    acc = np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
+    return acc + np.float64(weight[v, 2]) * source[index[v, 2]] + np.float64(weight[v, 3]) * source[index[v, 3]]
+
+
+@njit(cache=True, inline="always")
+def _row8(source, index, weight, v):  # pragma: no cover - compiled
+    acc = 0.0
+    for t in range(8):
+        acc += np.float64(weight[v, t]) * source[index[v, t]]
+    return acc
+
+
+# Parallel loops (prange over voxels) and their single-threaded twins. The twins serve
+# callers that already run one job per core (several processes), where extra threads
+# would only compete for the same cores.
 @njit(parallel=True, cache=True)
-def _gather2(source, index, weight, out):  # pragma: no cover - compiled
+def _gather_parallel(source, index, weight, out):  # pragma: no cover - compiled
     for v in prange(index.shape[0]):
-        out[v] = np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
+        out[v] = _row(source, index, weight, v)
 
 
 @njit(parallel=True, cache=True)
-def _gather4(source, index, weight, out):  # pragma: no cover - compiled
+def _gather2_parallel(source, index, weight, out):  # pragma: no cover - compiled
     for v in prange(index.shape[0]):
-        acc = np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
-        acc += np.float64(weight[v, 2]) * source[index[v, 2]] + np.float64(weight[v, 3]) * source[index[v, 3]]
-        out[v] = acc
+        out[v] = _row2(source, index, weight, v)
 
 
 @njit(parallel=True, cache=True)
-def _gather8(source, index, weight, out):  # pragma: no cover - compiled
+def _gather4_parallel(source, index, weight, out):  # pragma: no cover - compiled
     for v in prange(index.shape[0]):
-        acc = 0.0
-        for t in range(8):
-            acc += np.float64(weight[v, t]) * source[index[v, t]]
-        out[v] = acc
+        out[v] = _row4(source, index, weight, v)
 
 
-_FIXED = {2: _gather2, 4: _gather4, 8: _gather8}
+@njit(parallel=True, cache=True)
+def _gather8_parallel(source, index, weight, out):  # pragma: no cover - compiled
+    for v in prange(index.shape[0]):
+        out[v] = _row8(source, index, weight, v)
 
 
-def gather(source: np.ndarray, index: np.ndarray, weight: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
-    """Apply a (voxels x taps) index/weight table to a flat source volume (numba, parallel).
+@njit(cache=True)
+def _gather_serial(source, index, weight, out):  # pragma: no cover - compiled
+    for v in range(index.shape[0]):
+        out[v] = _row(source, index, weight, v)
+
+
+@njit(cache=True)
+def _gather2_serial(source, index, weight, out):  # pragma: no cover - compiled
+    for v in range(index.shape[0]):
+        out[v] = _row2(source, index, weight, v)
+
+
+@njit(cache=True)
+def _gather4_serial(source, index, weight, out):  # pragma: no cover - compiled
+    for v in range(index.shape[0]):
+        out[v] = _row4(source, index, weight, v)
+
+
+@njit(cache=True)
+def _gather8_serial(source, index, weight, out):  # pragma: no cover - compiled
+    for v in range(index.shape[0]):
+        out[v] = _row8(source, index, weight, v)
+
+
+_KERNELS = {
+    True: ({2: _gather2_parallel, 4: _gather4_parallel, 8: _gather8_parallel}, _gather_parallel),
+    False: ({2: _gather2_serial, 4: _gather4_serial, 8: _gather8_serial}, _gather_serial),
+}
+
+
+def gather(source: np.ndarray, index: np.ndarray, weight: np.ndarray, out: np.ndarray | None = None, *,
+           parallel: bool = True) -> np.ndarray:
+    """Apply a (voxels x taps) index/weight table to a flat source volume (numba).
 
     Parameters
     ----------
@@ -72,6 +121,9 @@ def gather(source: np.ndarray, index: np.ndarray, weight: np.ndarray, out: np.nd
     index : (N, T) int32 or int64 array of positions in `source`
     weight : (N, T) float32 array
     out : (N,) float32 array, optional
+    parallel : bool
+        Use all numba threads (prange over voxels); False runs on one thread, which is
+        faster when other processes already occupy the cores.
 
     Returns
     -------
@@ -81,7 +133,8 @@ def gather(source: np.ndarray, index: np.ndarray, weight: np.ndarray, out: np.nd
         out = np.empty(index.shape[0], np.float32)
     index = np.ascontiguousarray(index)
     weight = np.ascontiguousarray(weight)
-    _FIXED.get(index.shape[1], _gather_kernel)(np.ascontiguousarray(source), index, weight, out)
+    fixed, generic = _KERNELS[bool(parallel)]
+    fixed.get(index.shape[1], generic)(np.ascontiguousarray(source), index, weight, out)
     return out
 
 

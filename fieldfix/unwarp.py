@@ -305,7 +305,8 @@ def _prefilter(volume: np.ndarray, axis: int, layout: str) -> np.ndarray:
     return out
 
 
-def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | None = None, *,
+                 parallel: bool = True) -> np.ndarray:
     """Unwarp one 3D volume with precomputed tables (numba kernel, parallel).
 
     Parameters
@@ -314,6 +315,9 @@ def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | Non
     volume : (X, Y, Z) array, the distorted volume on the tables' grid (any memory order;
         one in the tables' layout is used without a copy)
     out : (X, Y, Z) float32 array contiguous in the tables' layout, optional
+    parallel : bool
+        Run the kernel on all numba threads (False: one thread, for callers that already
+        run one process per core).
 
     Returns
     -------
@@ -334,7 +338,7 @@ def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | Non
     flat_out = out.ravel(order=layout)
     if out.dtype != np.float32 or not np.shares_memory(flat_out, out):
         raise ValueError(f"out must be a float32 array contiguous in {layout!r} order")
-    kernels.gather(source, tables.index, tables.weight, flat_out)
+    kernels.gather(source, tables.index, tables.weight, flat_out, parallel=parallel)
     return out
 
 

@@ -88,8 +88,10 @@ def test_gather_kernel_equals_numpy_reference():
             source = rng.standard_normal(500).astype(source_dtype)
             index = rng.integers(0, 500, (300, taps)).astype(np.int32)
             weight = rng.standard_normal((300, taps)).astype(np.float32)
-            assert np.allclose(kernels.gather(source, index, weight),
-                               kernels.gather_reference(source, index, weight), rtol=1e-5, atol=1e-5)
+            reference = kernels.gather_reference(source, index, weight)
+            for parallel in (True, False):
+                assert np.allclose(kernels.gather(source, index, weight, parallel=parallel), reference,
+                                   rtol=1e-5, atol=1e-5)
     index64 = rng.integers(0, 500, (50, 2))
     weight = rng.random((50, 2)).astype(np.float32)
     source = rng.random(500).astype(np.float32)
@@ -344,7 +346,7 @@ def test_workflow_several_runs_share_field_map(tmp_path):
         _write_run(tmp_path / "run2.nii.gz", img[..., 0], affine, sidecar={"PhaseEncodingDirection": "j-",
                                                                           "EffectiveEchoSpacing": 0.0005}),
     ]
-    summaries = run_unwarp(runs, b0_path, tmp_path / "out", jacobian=False)
+    summaries = run_unwarp(runs, b0_path, tmp_path / "out", jacobian=False, parallel=False)
     assert [s["pe_code"] for s in summaries] == ["j", "j-"]
     # 25 Hz x 0.5 ms x 16 lines = 0.2 voxel; the corrected line moves against the shift.
     first = load_image(summaries[0]["outputs"]["corrected"]).get_fdata()
@@ -435,11 +437,11 @@ def test_workflow_failure_mid_run_leaves_no_partial_output(scene, monkeypatch):
     calls = {"n": 0}
     original = workflow.apply_tables
 
-    def failing(tables, volume, out=None):
+    def failing(tables, volume, out=None, **options):
         calls["n"] += 1
         if calls["n"] == 5:
             raise RuntimeError("simulated failure while unwarping")
-        return original(tables, volume, out)
+        return original(tables, volume, out, **options)
 
     monkeypatch.setattr(workflow, "apply_tables", failing)
     with pytest.raises(RuntimeError, match="simulated"):

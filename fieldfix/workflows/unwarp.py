@@ -217,6 +217,7 @@ def run_unwarp(
     progress: bool = False,
     command: str | None = None,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
+    parallel: bool = True,
 ) -> list[dict]:
     """Unwarp one or more EPI runs that share one B0 map.
 
@@ -256,6 +257,9 @@ def run_unwarp(
         Recorded in the provenance sidecars.
     jacobian_floor : float
         Jacobian at or below which voxels count as folded.
+    parallel : bool
+        Run the unwarping kernel on all numba threads; pass False when several jobs
+        already share the cores (e.g. one process per core in a batch).
 
     Returns
     -------
@@ -330,12 +334,12 @@ def run_unwarp(
         summaries.append(_unwarp_one(
             image, code, code_source, timing, b0, b0_hz, mask_values, mask_path, paths, inputs=inputs,
             interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor, force=force, overwrite=overwrite,
-            progress=progress, command=command))
+            progress=progress, command=command, parallel=parallel))
     return summaries
 
 
 def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_path, paths, *, inputs, interp,
-                jacobian, jacobian_floor, force, overwrite, progress, command) -> dict:
+                jacobian, jacobian_floor, force, overwrite, progress, command, parallel) -> dict:
     grid = image.shape[:3]
     affine = image.affine
     field, covered = resample_to_grid(b0_hz, b0.affine, grid, affine, order=1)
@@ -377,12 +381,13 @@ def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_p
             try:
                 for t in progress_bar(range(n_volumes), total=n_volumes, desc=image_stem(image.path),
                                       enabled=progress, unit="vol"):
-                    background.put(apply_tables(tables, source.volume(t)))
+                    background.put(apply_tables(tables, source.volume(t), parallel=parallel))
             finally:
                 background.close()
     else:
         n_volumes = 1
-        save_image(paths["corrected"], apply_tables(tables, source.volume(0)), affine, template=image,
+        save_image(paths["corrected"], apply_tables(tables, source.volume(0), parallel=parallel), affine,
+                   template=image,
                    inputs=inputs, overwrite=overwrite, provenance=provenance)
     del source
 
