@@ -257,12 +257,16 @@ def sweep(
     tilts = list(dict.fromkeys(p.tilt_deg for p in protocols))
     frames: list[SliceFrame] = [frame_from_orientation(orientation, t, pe_world_axis=pe_world_axis,
                                                        inplane_mm=inplane_mm, pe_lines=pe_lines) for t in tilts]
-    grad = field_gradient_hz_per_mm(np.where(np.isfinite(b0_hz), b0_hz, 0.0), affine)[brain]  # (n, 3)
+    # Brain voxels with the ROI first: the kernel wants the ROI as a leading block (no copy then).
+    idx = np.flatnonzero(brain.ravel())
+    in_roi = roi.ravel()[idx]
+    idx = np.concatenate([idx[in_roi], idx[~in_roi]])
+    grad = field_gradient_hz_per_mm(np.where(np.isfinite(b0_hz), b0_hz, 0.0), affine).reshape(-1, 3)[idx]
     gn = np.stack([grad @ f.normal for f in frames])
     gpe = np.stack([grad @ f.pe_step_mm for f in frames])
     gro = np.stack([grad @ f.ro_step_mm for f in frames])
     del grad
-    roi_in_brain = roi[brain]
+    roi_in_brain = roi.ravel()[idx]
 
     tilt_index = np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64)
     signs = np.array([p.pe_sign for p in protocols], np.int64)
