@@ -326,7 +326,21 @@ def three_runs(dataset, tmp_path_factory):
                       dashboard_address=None) as cluster:
         summaries["dask"] = batch.run_batch(dataset, base / "dask", reports=False,
                                             scheduler=cluster.scheduler_address)
+        # the same cluster through a scheduler file: everything finished is reused
+        # (written by hand: the file 'dask scheduler --scheduler-file' writes has these keys)
+        (base / "scheduler.json").write_text(json.dumps(
+            {"type": "Scheduler", "address": cluster.scheduler_address}))
+        summaries["dask_again"] = batch.run_batch(dataset, base / "dask", reports=False,
+                                                  scheduler_file=base / "scheduler.json")
     return base, summaries
+
+
+def test_dask_rerun_through_scheduler_file_reuses_everything(three_runs):
+    _, summaries = three_runs
+    again = summaries["dask_again"]
+    assert again["execution"].startswith("dask") and "scheduler.json" in again["execution"]
+    assert again["tasks"]["done"] == 0
+    assert again["tasks"]["reused"] == summaries["dask"]["tasks"]["done"]
 
 
 def test_backends_give_identical_outputs(three_runs):
@@ -364,6 +378,8 @@ def test_backends_give_identical_outputs(three_runs):
 def test_broken_subject_fails_alone_with_real_workflows(three_runs):
     base, summaries = three_runs
     for mode, summary in summaries.items():
+        if mode == "dask_again":
+            continue
         assert summary["exit_status"] == 1
         assert {f["subject"] for f in summary["failures"]} == {"sub-03"}, mode
         reasons = {f["task"]: f["reason"] for f in summary["failures"]}
