@@ -903,12 +903,14 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
     dict
         ``task_id``, ``status`` (``"done"``, ``"reused"`` or ``"failed"``), ``reason``
         (for failures), ``hash``, ``outputs`` (name -> path relative to ``deriv_root``),
-        ``summary`` (the workflow's summary) and ``seconds``.
+        ``summary`` (the workflow's summary), ``seconds`` (wall) and ``cpu_seconds``
+        (CPU time of the process while it ran).
     """
     import time
     import traceback
 
     start = time.perf_counter()
+    cpu_start = time.process_time()
     result: dict[str, Any] = {"task_id": task.task_id, "kind": task.kind,
                               "subject": task.subject, "session": task.session}
     deriv = Path(deriv_root)
@@ -946,6 +948,7 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
         result.update(status="failed", reason=_reason(exc),
                       traceback=traceback.format_exc(limit=20))
     result["seconds"] = round(time.perf_counter() - start, 3)
+    result["cpu_seconds"] = round(time.process_time() - cpu_start, 3)
     return result
 
 
