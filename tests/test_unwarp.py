@@ -456,3 +456,16 @@ def test_workflow_failure_mid_run_leaves_no_partial_output(scene, monkeypatch):
     with pytest.raises(OutputError, match="No space left"):
         run_unwarp([run], b0_path, folder / "fail2")
     assert not any((folder / "fail2").glob("*corrected*"))
+
+
+def test_workflow_checks_every_run_before_writing(tmp_path):
+    affine = np.eye(4)
+    shape = (6, 16, 2)
+    b0_path = save_image(tmp_path / "field.nii.gz", np.full(shape, 100.0), affine)
+    fine = _write_run(tmp_path / "fine.nii.gz", np.ones(shape + (2,)), affine,
+                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.005})  # 0.53 voxel
+    huge = _write_run(tmp_path / "huge.nii.gz", np.ones(shape + (2,)), affine,
+                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.06})  # 6.4 voxels > 16 / 4
+    with pytest.raises(GeometryError, match="huge.nii.gz"):
+        run_unwarp([fine, huge], b0_path, tmp_path / "out")
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())

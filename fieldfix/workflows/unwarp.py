@@ -161,11 +161,6 @@ def _resolve_pe_code(pe_code, image: Image, timing_win) -> tuple[str, str]:
                         image.path)
 
 
-def _load_b0(b0_path) -> Image:
-    b0 = load_image(b0_path, ndim=(3,))
-    return b0
-
-
 def _b0_values(b0: Image) -> np.ndarray:
     values = b0.get_fdata(np.float64)
     if not np.all(np.isfinite(values)):
@@ -289,7 +284,7 @@ def run_unwarp(
                          "with different prefixes)")
     out_dir = Path(out_dir)
     b0_path = Path(b0_path)
-    b0 = _load_b0(b0_path)
+    b0 = load_image(b0_path, ndim=(3,))
     b0_hz = _b0_values(b0)
     mask_path = _find_mask(b0_path, b0_mask_path)
     mask_values = None
@@ -327,19 +322,22 @@ def run_unwarp(
                                     sidecar=image.sidecar, timing_win=timing_win)
         except MetadataError as err:
             raise MetadataError(err.message, image.path) from None
-        plans.append((image, code, code_source, timing))
+        # Shift maps and their size check, for every run before any output is written.
+        maps, mask = _maps_on_run_grid(image, code, timing, b0, b0_hz, mask_values, jacobian_floor)
+        _check_shift_size(maps, mask, image.path, b0.path, force)
+        plans.append((image, code, code_source, timing, maps, mask))
 
     summaries = []
-    for (image, code, code_source, timing), paths in zip(plans, names):
+    for (image, code, code_source, timing, maps, mask), paths in zip(plans, names):
         summaries.append(_unwarp_one(
-            image, code, code_source, timing, b0, b0_hz, mask_values, mask_path, paths, inputs=inputs,
+            image, code, code_source, timing, maps, mask, b0, mask_path, paths, inputs=inputs,
             interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor, force=force, overwrite=overwrite,
             progress=progress, command=command, parallel=parallel))
     return summaries
 
 
-def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_path, paths, *, inputs, interp,
-                jacobian, jacobian_floor, force, overwrite, progress, command, parallel) -> dict:
+def _maps_on_run_grid(image, code, timing, b0, b0_hz, mask_values, jacobian_floor):
+    """B0 map resampled onto the run's grid through the affines, turned into shift maps."""
     grid = image.shape[:3]
     affine = image.affine
     field, covered = resample_to_grid(b0_hz, b0.affine, grid, affine, order=1)
@@ -352,7 +350,13 @@ def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_p
         mask = covered
     maps = shift_maps(field, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines, inside=covered,
                       jacobian_floor=jacobian_floor)
-    _check_shift_size(maps, mask, image.path, b0.path, force)
+    return maps, mask
+
+
+def _unwarp_one(image, code, code_source, timing, maps, mask, b0, mask_path, paths, *, inputs, interp,
+                jacobian, jacobian_floor, force, overwrite, progress, command, parallel) -> dict:
+    affine = image.affine
+    covered = maps.inside
     # NIfTI volumes come Fortran-ordered from nibabel and are written the same way.
     tables = build_tables(maps.shift_vox, maps.pe_axis, interp=interp, jacobian=jacobian,
                           jacobian_floor=jacobian_floor, layout="F")
@@ -387,8 +391,7 @@ def _unwarp_one(image, code, code_source, timing, b0, b0_hz, mask_values, mask_p
     else:
         n_volumes = 1
         save_image(paths["corrected"], apply_tables(tables, source.volume(0), parallel=parallel), affine,
-                   template=image,
-                   inputs=inputs, overwrite=overwrite, provenance=provenance)
+                   template=image, inputs=inputs, overwrite=overwrite, provenance=provenance)
     del source
 
     common = dict(template=image, inputs=inputs, overwrite=overwrite, provenance=provenance)
