@@ -238,6 +238,14 @@ def _add_like(data=None, affine=None, sidecar=None):
     return mutate
 
 
+def simple_case(argv_of, pattern, names_of, make=None):
+    """A command given only paths inside the case folder (demo, batch)."""
+    def build(folder: Path) -> Case:
+        inputs = make(folder) if make else []
+        return Case(argv_of(folder), pattern, names_of(folder), inputs or [])
+    return build
+
+
 def _replace(key, content: bytes | None = None, *, directory=False, remove=False):
     def mutate(folder, paths):
         path = paths[key]
@@ -400,29 +408,30 @@ REFUSALS = [
     pytest.param(dropout_case(r"no unit", names=[], te="30"), id="dropout-te-no-unit"),
     pytest.param(dropout_case(r"echo time|TE|positive", names=[], te=" -30ms"), id="dropout-te-negative"),
     pytest.param(dropout_case(r"echo time|TE|implausible|plausible", names=[], te="30000ms"),
-                 id="dropout-te-seconds-given-as-ms",
-                 marks=_xfail("fieldfix/workflows/dropout.py run_dropout: the echo time is only checked to be "
-                              "positive; 30000ms (a value in seconds written as ms) is accepted")),
+                 id="dropout-te-seconds-given-as-ms"),
     pytest.param(dropout_case(r"thickness|positive", names=[], thickness="0mm"), id="dropout-thickness-zero"),
     pytest.param(dropout_case(r"does not overlap|overlap", names="like",
                               before=_add_like(affine=grid_affine(offset_mm=(0, 0, 1000))),
                               extra=("--like", "like", "--echo-spacing", "0.5ms")),
-                 id="dropout-like-no-overlap",
-                 marks=_xfail("fieldfix/workflows/dropout.py run_dropout: a --like EPI 1 m away from the B0 map is "
-                              "used for its geometry without any overlap check (exit 0, no warning)")),
+                 id="dropout-like-no-overlap"),
     pytest.param(dropout_case(r"unknown phase-encode code", names=["'x'"], extra=("--phase-encoding", "x",
                                                                                "--echo-spacing", "0.5ms")),
                  id="dropout-pe-code-unknown"),
     pytest.param(dropout_case(r"empty", names="mask", before=_add_mask(np.zeros(SHAPE)), extra=("--mask", "mask")),
-                 id="dropout-mask-empty",
-                 marks=_xfail("fieldfix/workflows/dropout.py load_mask_on_grid/run_dropout: an all-zero --mask is "
-                              "accepted (exit 0, statistics over no voxels)")),
+                 id="dropout-mask-empty"),
     pytest.param(plan_case(r"empty", roi=np.zeros(SHAPE)), id="plan-roi-empty"),
     pytest.param(plan_case(r"NaN|infinite|finite", names="b0", b0_kw={"values": with_nan(field_hz())}),
                  id="plan-b0-nan"),
     pytest.param(plan_case(r"does not overlap", roi=np.ones(SHAPE),
                            roi_affine=grid_affine(offset_mm=(1000, 0, 0))), id="plan-roi-no-overlap"),
     pytest.param(plan_case(r"no unit", names=[], te="25,30"), id="plan-te-no-unit"),
+    pytest.param(simple_case(lambda f: ["demo", "--scenario", "no-such-scenario", "--out", f / "out"],
+                             r"no scenario named 'no-such-scenario'", lambda f: []), id="demo-unknown-scenario"),
+    pytest.param(simple_case(lambda f: ["batch", f / "dataset", "--out", f / "out"], r"not a BIDS dataset",
+                             lambda f: [f / "dataset"], make=lambda f: (f / "dataset").mkdir()),
+                 id="batch-not-bids"),
+    pytest.param(simple_case(lambda f: ["batch", f / "missing", "--out", f / "out"], r"not a folder",
+                             lambda f: [f / "missing"]), id="batch-root-missing"),
     # ---- implausible shifts --------------------------------------------------------------------
     pytest.param(unwarp_case(r"exceed a quarter of the field of view", b0_kw={"values": field_hz(peak_hz=300.0)}),
                  id="unwarp-shift-over-quarter-fov"),
