@@ -1445,6 +1445,13 @@ def _group_figure(rows: Sequence[dict]) -> bytes | None:
             if values:
                 offsets = [x + 0.08 * (k - (len(values) - 1) / 2) for k in range(len(values))]
                 ax.plot(offsets, values, "o", color="#2f6f8f", markersize=6)
+        if col != "alignment_gain":  # shifts and percentages: from zero
+            top = max([r[col] for r in rows if r.get(col) is not None] + [0.0])
+            ax.set_ylim(bottom=0.0, top=top * 1.15 if top > 0 else 1.0)
+        for x, subject in enumerate(subjects):
+            if any(r["subject"] == subject and r["status"] == "failed" for r in rows):
+                ax.annotate("failed", (x, 0.02), xycoords=("data", "axes fraction"),
+                            ha="center", fontsize=7, color="#a03030")
         ax.set_xticks(range(len(subjects)), [f"sub-{s}" for s in subjects], rotation=45,
                       ha="right", fontsize=8)
         ax.set_xlim(-0.6, len(subjects) - 0.4)
