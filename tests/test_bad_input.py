@@ -363,6 +363,9 @@ REFUSALS = [
     pytest.param(unwarp_case(r"contradicts the sidecar.*say which one wins", extra=("--readout-time", "45ms")),
                  id="unwarp-readout-contradicts-sidecar"),
     pytest.param(unwarp_case(r"no unit", names=[], extra=("--readout-time", "30")), id="unwarp-readout-no-unit"),
+    pytest.param(unwarp_case(r"not allowed with", names=["--echo-spacing"],
+                             extra=("--readout-time", "30ms", "--echo-spacing", "2ms")),
+                 id="unwarp-readout-and-spacing-both-given"),
     # ---- phase-encode codes ---------------------------------------------------------------------
     pytest.param(unwarp_case(r"unknown phase-encode code", names=["'y'"], extra=("--phase-encoding", "y")),
                  id="unwarp-pe-code-unknown-cli"),
@@ -378,6 +381,8 @@ REFUSALS = [
                  id="unwarp-b0-4d"),
     pytest.param(fieldmap_case(r"2D", pd_kw={"values": phasediff_rad()[..., 3]}),
                  id="fieldmap-phase-2d"),
+    pytest.param(fieldmap_case(r"differs from .*share one grid", names="mag",
+                               mag_kw={"affine": grid_affine(offset_mm=(5, 0, 0))}), id="fieldmap-grids-differ"),
     # ---- broken files and paths ----------------------------------------------------------------
     pytest.param(unwarp_case(r"truncated or corrupt", before=_replace("run", _truncate)), id="unwarp-run-truncated"),
     pytest.param(unwarp_case(r"truncated or corrupt|not a readable", names="b0", before=_replace("b0", _truncate)),
