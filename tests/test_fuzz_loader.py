@@ -54,6 +54,14 @@ def _valid_image() -> nib.Nifti1Image:
     return image
 
 
+def _valid_nifti2_run() -> nib.Nifti2Image:
+    """A small 4D NIfTI-2 run with scaling (NIfTI-2 has 64-bit dimensions and offsets)."""
+    data = (np.random.default_rng(1).random(SHAPE + (3,)) * 1000).astype(np.int16)
+    image = nib.Nifti2Image(data, np.diag([2.0, 2.0, 3.0, 1.0]))
+    image.header.set_slope_inter(2.0, -5.0)
+    return image
+
+
 @pytest.fixture(scope="module")
 def valid_bytes(tmp_path_factory):
     """Bytes of a valid small image as .nii and as .nii.gz."""
@@ -86,6 +94,14 @@ def _check_case(path: Path) -> str:
         signal.signal(signal.SIGALRM, previous)
     assert isinstance(data, np.ndarray) and data.dtype == np.float32
     return "loaded"
+
+
+def _read_all(path):
+    """What the commands do: open, read everything, and read the last volume of a 4D image."""
+    image = load_image(path)
+    image.get_fdata()
+    if image.ndim == 4:
+        image.volume(image.shape[3] - 1)
 
 
 @pytest.fixture(autouse=True)
@@ -209,17 +225,19 @@ CHILD = textwrap.dedent("""
     from fieldfix.errors import InputError
     from fieldfix.io import load_image
     from test_fuzz_loader import _mutate
+    from test_fuzz_loader import _read_all
     folder = Path({folder!r})
-    raws = {{s: (folder / ("v" + s)).read_bytes() for s in (".nii", ".nii.gz")}}
+    raws = {{(s, k): (folder / (k + s)).read_bytes() for s in (".nii", ".nii.gz") for k in ("v", "v2")}}
     counts = {{"loaded": 0, "refused": 0}}
     crashes = []
     for case in range({n}):
         rng = random.Random(case)
         suffix = rng.choice([".nii", ".nii.gz"])
+        kind = rng.choice(["v", "v2"])
         path = folder / ("case" + suffix)
-        path.write_bytes(_mutate(raws[suffix], rng))
+        path.write_bytes(_mutate(raws[suffix, kind], rng))
         try:
-            load_image(path).get_fdata()
+            _read_all(path)
             counts["loaded"] += 1
         except InputError as err:
             counts["refused"] += 1
@@ -232,9 +250,10 @@ CHILD = textwrap.dedent("""
 
 
 def test_seeded_mutation_loop_in_a_child_process(tmp_path):
-    """Many seeded mutations in a separate process with a timeout: no crash, no hang."""
+    """Many seeded mutations (NIfTI-1 3D and NIfTI-2 4D) in a child process with a timeout."""
     for suffix in (".nii", ".nii.gz"):
         nib.save(_valid_image(), tmp_path / f"v{suffix}")
+        nib.save(_valid_nifti2_run(), tmp_path / f"v2{suffix}")
     code = CHILD.format(tests=str(Path(__file__).parent), folder=str(tmp_path), n=600)
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr[-2000:]
@@ -290,3 +309,98 @@ def test_corrupt_files_through_the_cli(tmp_path, valid_bytes, case):
         assert len(lines) == 1 and str(path) in lines[0], result.stderr
         assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
         assert path.read_bytes() == content
+
+
+# ---- sidecar values of any JSON type: a clean refusal or a run, never a crash ----
+
+json_values = st.recursive(
+    st.none() | st.booleans() | st.integers(-10 ** 6, 10 ** 6) | st.floats(allow_nan=False)
+    | st.sampled_from(["j-", "i", "k-", "AP", "", "0.03", "30ms", "nan"]),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=3), inner, max_size=2),
+    max_leaves=4,
+)
+SIDECAR_KEYS = ["PhaseEncodingDirection", "TotalReadoutTime", "EffectiveEchoSpacing", "RepetitionTime",
+                "ReconMatrixPE"]
+
+
+@pytest.fixture(scope="module")
+def unwarp_inputs(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("sidecar-fuzz")
+    affine = np.diag([2.5, 2.5, 2.5, 1.0])
+    run = folder / "run.nii.gz"
+    nib.save(nib.Nifti1Image(np.random.default_rng(2).random(SHAPE + (2,)).astype(np.float32), affine), run)
+    b0 = folder / "b0_hz.nii.gz"
+    nib.save(nib.Nifti1Image(np.full(SHAPE, 10.0, np.float32), affine), b0)
+    return folder, run, b0
+
+
+VALID_SIDECAR = {"PhaseEncodingDirection": "j-", "TotalReadoutTime": 0.03, "EffectiveEchoSpacing": 0.002,
+                 "RepetitionTime": 2.0, "ReconMatrixPE": SHAPE[1]}
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(changes=st.dictionaries(st.sampled_from([k for k in SIDECAR_KEYS if k != "ReconMatrixPE"]),
+                               json_values | st.just("<absent>"), min_size=1, max_size=2))
+def test_sidecar_values_of_any_type_into_unwarp(unwarp_inputs, capsys, changes):
+    """A valid sidecar with one or two values replaced by any JSON value (or removed)."""
+    _check_unwarp_with_sidecar(unwarp_inputs, capsys, changes)
+
+
+@pytest.mark.xfail(strict=True, raises=(TypeError, ValueError),
+                   reason="fieldfix/workflows/unwarp.py run_unwarp: int(ReconMatrixPE) crashes with TypeError/"
+                          "ValueError (a traceback, not a clean error) when the sidecar value is not a number")
+@pytest.mark.parametrize("value", ["j-", [], {"a": 1}], ids=["text", "list", "object"])
+def test_sidecar_recon_matrix_of_any_type_into_unwarp(unwarp_inputs, capsys, value):
+    _check_unwarp_with_sidecar(unwarp_inputs, capsys, {"ReconMatrixPE": value})
+
+
+def _check_unwarp_with_sidecar(unwarp_inputs, capsys, changes):
+    from fieldfix_cli.main import main
+
+    folder, run, b0 = unwarp_inputs
+    sidecar = {**VALID_SIDECAR, **changes}
+    sidecar = {k: v for k, v in sidecar.items() if v != "<absent>"}
+    (folder / "run.json").write_text(json.dumps(sidecar))
+    out = folder / "out"
+    if out.exists():
+        shutil.rmtree(out)
+    status = main(["unwarp", str(run), "--b0", str(b0), "--out", str(out)])
+    err = capsys.readouterr().err
+    assert status in (0, 2), err
+    if status == 2:
+        lines = err.strip().splitlines()
+        assert len(lines) == 1 and "error:" in lines[0], err
+        assert not out.exists() or list(out.iterdir()) == []
+    else:
+        assert (out / "run_corrected.nii.gz").is_file()
+
+
+@pytest.fixture(scope="module")
+def fieldmap_inputs(tmp_path_factory):
+    from test_bad_input import make_magnitude, make_phasediff
+
+    folder = tmp_path_factory.mktemp("echo-fuzz")
+    return folder, make_phasediff(folder), make_magnitude(folder)
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(changes=st.dictionaries(st.sampled_from(["EchoTime1", "EchoTime2"]), json_values | st.just("<absent>"),
+                               min_size=1, max_size=2))
+def test_echo_time_values_of_any_type_into_fieldmap(fieldmap_inputs, capsys, changes):
+    from fieldfix_cli.main import main
+
+    folder, phasediff, magnitude = fieldmap_inputs
+    sidecar = {**{"EchoTime1": 0.00492, "EchoTime2": 0.00738}, **changes}
+    (folder / "sub-01_phasediff.json").write_text(json.dumps({k: v for k, v in sidecar.items() if v != "<absent>"}))
+    out = folder / "out"
+    if out.exists():
+        shutil.rmtree(out)
+    status = main(["fieldmap", "--phase-diff", str(phasediff), "--magnitude", str(magnitude), "--out", str(out)])
+    err = capsys.readouterr().err
+    assert status in (0, 2), err
+    if status == 2:
+        lines = err.strip().splitlines()
+        assert len(lines) == 1 and "error:" in lines[0], err
+        assert not out.exists() or list(out.iterdir()) == []
+    else:
+        assert (out / "b0_hz.nii.gz").is_file()
