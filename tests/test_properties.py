@@ -162,3 +162,34 @@ def test_quantity_lists_round_trip(values, dimension):
     values = [v * scale for v in values]
     text = ",".join(format_quantity(v, dimension) for v in values)
     assert parse_quantity_list(text, dimension) == pytest.approx(values, rel=1e-5, abs=1e-9)
+
+
+@settings(max_examples=300)
+@given(st.text(max_size=20) | st.from_regex(r"\s*[-+]?\d{0,4}\.?\d{0,4}(e[-+]?\d{1,4})?\s*[a-zA-Zµμ/*.°]{0,8}\s*",
+                                           fullmatch=True),
+       st.sampled_from(["time", "length", "angle", "frequency", "field", "moment"]))
+def test_any_text_gives_a_unit_error_or_a_finite_value(text, dimension):
+    from fieldfix.errors import UnitError
+    from fieldfix.units import parse_quantity
+
+    try:
+        value = parse_quantity(text, dimension)
+    except UnitError as err:
+        assert "\n" not in str(err)
+        return
+    assert isinstance(value, float) and np.isfinite(value)
+
+
+@settings(max_examples=200)
+@given(st.text(max_size=30) | st.from_regex(r"-?\d{1,3}(\.\d)?(deg|rad)?:-?\d{1,4}(deg|rad)?:\d{0,2}\.?\d{0,3}(deg|rad)?",
+                                           fullmatch=True))
+def test_any_text_as_a_list_or_range_gives_a_unit_error_or_values(text):
+    from fieldfix.errors import UnitError
+
+    try:
+        values = parse_quantity_list(text, "angle")
+    except UnitError:
+        return
+    assert values and all(np.isfinite(v) for v in values) and len(values) <= 10000
+    if ":" in text and "," not in text:  # a range runs upwards from its start
+        assert values == sorted(values)
