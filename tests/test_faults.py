@@ -21,7 +21,6 @@ import gzip
 import os
 import signal
 import subprocess
-import sys
 import time
 from pathlib import Path
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 import gzip
 import json
 import logging
-import os
 import random
 import shutil
 import signal
