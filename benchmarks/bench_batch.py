@@ -39,8 +39,9 @@ def run(quick: bool) -> list[dict]:
     from fieldfix.batch import run_batch
 
     work = Path(tempfile.mkdtemp(prefix="fieldfix-bench-batch-"))
-    shape = (24, 24, 12) if quick else (48, 48, 24)
-    volumes = 4 if quick else 12
+    # full size: a typical EPI matrix (64 x 64 x 32) with a short run of 40 volumes
+    shape = (24, 24, 12) if quick else (64, 64, 32)
+    volumes = 4 if quick else 40
     extra = 1 if quick else 5
     root = build_dataset(work / "raw", shape=shape, n_volumes=volumes, broken=False,
                          extra_subjects=extra)
