@@ -12,7 +12,6 @@ principle" and "BIDS Derivatives").
 from __future__ import annotations
 
 import json
-import os
 import sys
 from pathlib import Path
 
