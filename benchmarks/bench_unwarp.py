@@ -154,7 +154,7 @@ def _end_to_end_record(work: Path, run_path: Path, b0_path: Path, n_volumes: int
 
 
 _MEMORY_SCRIPT = r"""
-import json, os, resource, sys, tempfile, tracemalloc
+import json, os, sys, tempfile, tracemalloc
 import numpy as np
 from fieldfix.io import save_image
 from fieldfix.workflows.unwarp import run_unwarp
@@ -165,13 +165,26 @@ tiny = tempfile.mkdtemp()
 small_run = save_image(os.path.join(tiny, "tiny_bold.nii.gz"), np.ones((4, 8, 2, 3)), np.eye(4))
 small_b0 = save_image(os.path.join(tiny, "tiny_b0.nii.gz"), np.zeros((4, 8, 2)), np.eye(4))
 run_unwarp([small_run], small_b0, os.path.join(tiny, "out"), pe_code="j-", echo_spacing_s=5e-4)
-with open("/proc/self/statm") as handle:
-    before_mib = int(handle.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+def status_mib(key):
+    with open("/proc/self/status") as handle:
+        for line in handle:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) / 1024
+    raise KeyError(key)
+
+# getrusage's ru_maxrss is useless here: a forked child inherits the parent's high-water
+# mark. VmHWM belongs to this process image; writing 5 to clear_refs resets it (Linux).
+try:
+    with open("/proc/self/clear_refs", "w") as handle:
+        handle.write("5")
+except OSError:
+    pass
+before_mib = status_mib("VmRSS")
 tracemalloc.start()
 run_unwarp([run_path], b0_path, out_dir, pe_code="j-", echo_spacing_s=5e-4)
 traced_mib = tracemalloc.get_traced_memory()[1] / 2**20
-max_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-print(json.dumps({"rss_rise_mib": max_mib - before_mib, "traced_peak_mib": traced_mib}))
+print(json.dumps({"rss_rise_mib": status_mib("VmHWM") - before_mib, "traced_peak_mib": traced_mib,
+                  "rss_before_mib": before_mib}))
 """
 
 
