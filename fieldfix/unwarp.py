@@ -225,39 +225,58 @@ def interpolate_along_axis(volume: np.ndarray, positions: np.ndarray, axis: int,
     return apply_tables(tables, volume)
 
 
+#: Voxels per slab while building tables (bounds the temporary arrays to a few MiB).
+_SLAB_VOXELS = 1 << 17
+
+
 def _build(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None, layout: str) -> UnwarpTables:
+    """Tables for sampling at `position` along `axis`, built slab by slab.
+
+    Rows follow the voxels in `layout` order, so slabs along the slowest axis of that
+    order (the first for C, the last for F) fill contiguous blocks of rows; the
+    temporaries of one slab are all that exists besides the finished tables.
+    """
     if layout not in ("C", "F"):
         raise InputError(f"layout must be 'C' or 'F', got {layout!r}")
     shape = position.shape
+    ndim = len(shape)
     n = shape[axis]
-    ok = (position >= -0.5) & (position <= n - 0.5)
-    clipped = np.clip(position, 0.0, n - 1.0)
-    along, weights = _taps(clipped, n, interp)
-    weights = np.where(ok[..., None], weights, 0.0)
-    if scale is not None:
-        weights = weights * scale[..., None]
     size = int(np.prod(shape))
     if layout == "C":
-        strides = [int(np.prod(shape[a + 1:])) for a in range(len(shape))]
+        strides = [int(np.prod(shape[a + 1:])) for a in range(ndim)]
+        slow = 0
     else:
-        strides = [int(np.prod(shape[:a])) for a in range(len(shape))]
-    flat = np.arange(size).reshape(shape, order=layout)  # flat position of every voxel
-    own = np.indices(shape, sparse=True)[axis]
-    base = flat - own * strides[axis]  # flat position of the line's first voxel
+        strides = [int(np.prod(shape[:a])) for a in range(ndim)]
+        slow = ndim - 1
     dtype = np.int32 if size < 2**31 else np.int64
-    index = (base[..., None] + along * strides[axis]).astype(dtype)
-    taps = index.shape[-1]
-    if layout == "F":  # rows in Fortran order of the voxels
-        index = index.transpose(2, 1, 0, 3)
-        weights = weights.transpose(2, 1, 0, 3)
-    return UnwarpTables(
-        shape=tuple(shape),
-        pe_axis=int(axis),
-        interp=interp,
-        index=np.ascontiguousarray(index.reshape(-1, taps)),
-        weight=np.ascontiguousarray(weights.reshape(-1, taps), dtype=np.float32),
-        layout=layout,
-    )
+    taps = _taps(np.zeros(1), n, interp)[0].shape[-1]
+    index = np.empty((size, taps), dtype)
+    weight = np.empty((size, taps), np.float32)
+    plane = size // shape[slow] if shape[slow] else 0
+    step = max(1, _SLAB_VOXELS // max(plane, 1))
+    for first in range(0, shape[slow], step):
+        last = min(shape[slow], first + step)
+        part = [slice(None)] * ndim
+        part[slow] = slice(first, last)
+        part = tuple(part)
+        pos = position[part]
+        ok = (pos >= -0.5) & (pos <= n - 0.5)
+        along, w = _taps(np.clip(pos, 0.0, n - 1.0), n, interp)
+        w = np.where(ok[..., None], w, 0.0)
+        if scale is not None:
+            w *= scale[part][..., None]
+        coords = np.indices(pos.shape, sparse=True)
+        own_flat = sum((c + (first if a == slow else 0)) * strides[a] for a, c in enumerate(coords))
+        base = own_flat - coords[axis] * strides[axis] - (first * strides[axis] if axis == slow else 0)
+        idx = base[..., None] + along * strides[axis]
+        if layout == "F":  # rows in Fortran order of the voxels
+            idx = idx.transpose(tuple(range(ndim - 1, -1, -1)) + (ndim,))
+            w = w.transpose(tuple(range(ndim - 1, -1, -1)) + (ndim,))
+        rows = slice(first * plane, last * plane)
+        index[rows] = idx.reshape(-1, taps)
+        weight[rows] = w.reshape(-1, taps)
+    return UnwarpTables(shape=tuple(shape), pe_axis=int(axis), interp=interp, index=index, weight=weight,
+                        layout=layout)
 
 
 def build_tables(

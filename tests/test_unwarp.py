@@ -469,3 +469,21 @@ def test_workflow_checks_every_run_before_writing(tmp_path):
     with pytest.raises(GeometryError, match="huge.nii.gz"):
         run_unwarp([fine, huge], b0_path, tmp_path / "out")
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+@pytest.mark.parametrize("layout", ["C", "F"])
+@pytest.mark.parametrize("pe_axis", [0, 1, 2])
+def test_tables_built_in_slabs_equal_one_piece(layout, pe_axis, monkeypatch):
+    import fieldfix.unwarp as module
+
+    rng = np.random.default_rng(12)
+    shape = (5, 6, 7)
+    shift = rng.uniform(-3, 3, shape)
+    whole = build_tables(shift, pe_axis, interp="cubic", layout=layout)
+    monkeypatch.setattr(module, "_SLAB_VOXELS", 20)  # several slabs, some of them uneven
+    pieces = build_tables(shift, pe_axis, interp="cubic", layout=layout)
+    assert np.array_equal(whole.index, pieces.index) and np.array_equal(whole.weight, pieces.weight)
+    volume = rng.random(shape)
+    reference = interpolate_along_axis(volume, np.indices(shape)[pe_axis] + shift, pe_axis, "cubic")
+    jac = np.maximum(1 + np.gradient(shift, axis=pe_axis), 0.1)
+    assert np.allclose(apply_tables(pieces, volume), reference * jac, atol=1e-5)
