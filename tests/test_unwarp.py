@@ -487,3 +487,25 @@ def test_tables_built_in_slabs_equal_one_piece(layout, pe_axis, monkeypatch):
     reference = interpolate_along_axis(volume, np.indices(shape)[pe_axis] + shift, pe_axis, "cubic")
     jac = np.maximum(1 + np.gradient(shift, axis=pe_axis), 0.1)
     assert np.allclose(apply_tables(pieces, volume), reference * jac, atol=1e-5)
+
+
+def test_workflow_refuses_bad_recon_matrix_and_non_finite_volumes(tmp_path):
+    affine = np.eye(4)
+    shape = (4, 8, 2)
+    b0_path = save_image(tmp_path / "field.nii.gz", np.full(shape, 10.0), affine)
+    sidecar = {"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.01}
+    for value in ("eight", [8], 8.5, True, 9):
+        run = _write_run(tmp_path / "recon.nii.gz", np.ones(shape + (2,)), affine,
+                         sidecar={**sidecar, "ReconMatrixPE": value})
+        with pytest.raises(MetadataError, match="ReconMatrixPE") as err:
+            run_unwarp([run], b0_path, tmp_path / "o1")
+        assert "recon.json" in str(err.value)
+    run = _write_run(tmp_path / "recon.nii.gz", np.ones(shape + (2,)), affine, sidecar={**sidecar, "ReconMatrixPE": 8.0})
+    assert run_unwarp([run], b0_path, tmp_path / "o2")[0]["timing"]["n_pe_lines"] == 8
+    data = np.ones(shape + (3,))
+    data[1, 2, 0, 2] = np.nan
+    bad = _write_run(tmp_path / "nan_bold.nii.gz", data, affine, sidecar=sidecar)
+    with pytest.raises(InputError, match="volume 2 contains NaN") as err:
+        run_unwarp([bad], b0_path, tmp_path / "o3")
+    assert "nan_bold.nii.gz" in str(err.value)
+    assert not any((tmp_path / "o3").glob("*")) if (tmp_path / "o3").exists() else True

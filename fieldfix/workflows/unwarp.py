@@ -181,6 +181,28 @@ def _find_mask(b0_path: Path, b0_mask_path) -> Path | None:
     return None
 
 
+def _check_recon_matrix(image: Image, n_lines: int) -> None:
+    """The sidecar's ReconMatrixPE, when present, must be the grid's size along the PE axis."""
+    recon = image.sidecar.get("ReconMatrixPE")
+    if recon is None:
+        return
+    where = sidecar_path(image.path)
+    if isinstance(recon, bool) or not isinstance(recon, (int, float)) or not float(recon).is_integer():
+        raise MetadataError(f"ReconMatrixPE in the sidecar must be a whole number of lines, got {recon!r}", where)
+    if int(recon) != n_lines:
+        raise MetadataError(f"ReconMatrixPE {int(recon)} in the sidecar differs from the image's {n_lines} voxels "
+                            f"along the phase-encode axis", where)
+
+
+def _finite_volume(image: Image, volume: np.ndarray, t: int) -> np.ndarray:
+    """Refuse a volume with NaN or infinite voxels: the interpolation would spread them."""
+    if not np.isfinite(volume).all():
+        where = f"volume {t}" if image.ndim == 4 else "the image"
+        raise InputError(f"{where} contains NaN or infinite values; unwarping would spread them into "
+                         f"neighbouring voxels", image.path)
+    return volume
+
+
 def _check_shift_size(maps, mask, run_path, b0_path, force):
     n = maps.shift_vox.shape[maps.pe_axis]
     inside = np.abs(maps.shift_vox[mask]) if mask.any() else np.abs(maps.shift_vox).ravel()
@@ -261,6 +283,13 @@ def run_unwarp(
     list of dict
         One JSON-serialisable summary per run (also written as ``<p><stem>_unwarp.json``).
 
+    Raises
+    ------
+    InputError, MetadataError, GeometryError, OutputError
+        Metadata, overlap and shift sizes of every run are checked before anything is
+        written. A volume with NaN or infinite voxels stops the job while streaming; the
+        unfinished corrected run is removed (runs finished earlier in the same call stay).
+
     Examples
     --------
     >>> import numpy as np, tempfile, os
@@ -313,10 +342,7 @@ def run_unwarp(
         code, code_source = _resolve_pe_code(pe_code, image, timing_win)
         axis, _ = parse_pe_code(code)
         n_lines = image.shape[axis]
-        recon = image.sidecar.get("ReconMatrixPE")
-        if recon is not None and int(recon) != n_lines:
-            raise MetadataError(f"ReconMatrixPE {recon} in the sidecar differs from the image's {n_lines} voxels "
-                                f"along the phase-encode axis", image.path)
+        _check_recon_matrix(image, n_lines)
         try:
             timing = resolve_timing(n_lines, readout_time_s=readout_time_s, echo_spacing_s=echo_spacing_s,
                                     sidecar=image.sidecar, timing_win=timing_win)
@@ -385,12 +411,14 @@ def _unwarp_one(image, code, code_source, timing, maps, mask, b0, mask_path, pat
             try:
                 for t in progress_bar(range(n_volumes), total=n_volumes, desc=image_stem(image.path),
                                       enabled=progress, unit="vol"):
-                    background.put(apply_tables(tables, source.volume(t), parallel=parallel))
+                    volume = _finite_volume(image, source.volume(t), t)
+                    background.put(apply_tables(tables, volume, parallel=parallel))
             finally:
                 background.close()
     else:
         n_volumes = 1
-        save_image(paths["corrected"], apply_tables(tables, source.volume(0), parallel=parallel), affine,
+        volume = _finite_volume(image, source.volume(0), 0)
+        save_image(paths["corrected"], apply_tables(tables, volume, parallel=parallel), affine,
                    template=image, inputs=inputs, overwrite=overwrite, provenance=provenance)
     del source
 
