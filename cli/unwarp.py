@@ -27,11 +27,14 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--force", action="store_true",
                         help="correct even when shifts exceed a quarter of the field of view")
     parser.add_argument("--prefix", default="", help="prepended to every output file name")
+    parser.add_argument("--no-report", action="store_true",
+                        help="do not build the HTML quality report (report.html) in the output folder")
     parser.epilog = (
         "Shift in voxels = field (Hz) x effective echo spacing (s) x phase-encode lines; with a total "
         "readout time, echo spacing = readout time / (lines - 1). For each RUN, --out receives "
         "<stem>_corrected.nii.gz, _shift_vox, _jacobian, _fold_mask, _displacement_mm (NIfTI vector "
-        "field, world mm) and <stem>_unwarp.json."
+        "field, world mm) and <stem>_unwarp.json, and a quality report (report.html, report_summary.png, "
+        "report.json) unless --no-report."
     )
 
 
@@ -59,4 +62,13 @@ def run(args) -> dict:
             "folded_voxels": item["folded_voxels"],
             "volumes": item["n_volumes"],
         })
-    return {"runs": runs, "caution": CAUTION}
+    result = {"runs": runs}
+    if not args.no_report:
+        from fieldfix.report import build_report
+
+        from pathlib import Path
+
+        target = Path(args.out) / f"{args.prefix}report.html"
+        result["report"] = str(build_report(args.out, out_path=target, overwrite=args.overwrite))
+    result["caution"] = CAUTION
+    return result

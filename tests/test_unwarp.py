@@ -396,6 +396,16 @@ def test_cli_end_to_end(scene):
     for suffix in ("_corrected.nii.gz", "_shift_vox.nii.gz", "_jacobian.nii.gz", "_fold_mask.nii.gz",
                    "_displacement_mm.nii.gz", "_unwarp.json"):
         assert (out / f"sub-01_task-rest_bold{suffix}").is_file()
+    # The quality report is built by default, and its numbers come from this run.
+    assert summary["report"] == str(out / "report.html")
+    report = json.loads((out / "report.json").read_text())
+    assert report["runs"][0]["max_abs_shift_mm"] == pytest.approx(summary["runs"][0]["max_abs_shift_mm"], rel=1e-3)
+    skipped = subprocess.run([str(FIELDFIX), "unwarp", str(run), "--b0", str(b0_path), "--phase-encoding", "j-",
+                              "--readout-time", "34.5ms", "--no-report", "--quiet", "--out", str(folder / "plain")],
+                             capture_output=True, text=True, timeout=120)
+    assert skipped.returncode == 0, skipped.stderr
+    assert not (folder / "plain" / "report.html").exists()
+    assert (folder / "plain" / "sub-01_task-rest_bold_corrected.nii.gz").is_file()
     # A bare number has no unit: refused with exit status 2 and one error line.
     bad = subprocess.run([str(FIELDFIX), "unwarp", str(run), "--b0", str(b0_path), "--readout-time", "34.5",
                           "--out", str(folder / "bad")], capture_output=True, text=True, timeout=120)
