@@ -242,7 +242,10 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
     if not os.access(path, os.R_OK):
         raise InputError("file is not readable (permission denied)", path)
     try:
-        nifti = nib.load(str(path))
+        # keep_file_open: reading volume after volume through the proxy continues one open
+        # (gzip) stream instead of decompressing the file from its start for every volume,
+        # which would make a streamed pass over a T-volume run cost O(T^2).
+        nifti = nib.load(str(path), keep_file_open=True)
     except _READ_ERRORS as err:
         raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):

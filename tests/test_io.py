@@ -250,3 +250,24 @@ def test_bad_sidecar_is_named(tmp_path):
 def test_image_stem():
     assert image_stem("x/sub-01_bold.nii.gz") == "sub-01_bold"
     assert image_stem("a.nii") == "a"
+
+
+def test_volumes_stream_through_one_open_file(tmp_path, monkeypatch):
+    # Reading a .nii.gz run volume by volume must continue one open stream (nibabel's
+    # keep_file_open), not reopen and decompress from the start for every volume.
+    import nibabel.openers
+
+    data = np.random.default_rng(1).random((6, 5, 4, 7)).astype(np.float32)
+    nib.save(nib.Nifti1Image(data, np.eye(4)), tmp_path / "run.nii.gz")
+    image = load_image(tmp_path / "run.nii.gz")
+    opened = []
+    original = nibabel.openers.Opener.__init__
+
+    def counting(self, *args, **kwargs):
+        opened.append(args[0] if args else None)
+        original(self, *args, **kwargs)
+
+    monkeypatch.setattr(nibabel.openers.Opener, "__init__", counting)
+    volumes = [image.volume(t) for t in range(7)]
+    assert np.array_equal(np.stack(volumes, axis=-1), data)
+    assert len(opened) <= 1
