@@ -56,6 +56,10 @@ def _human(summary: dict) -> dict:
         results["edges vs undistorted simulation"] = (
             f"agreement {n['edge_agreement_before']:.3f} before -> {n['edge_agreement_after']:.3f} after unwarping "
             f"(1 = all in place)")
+        if "edge_agreement_shifted_before" in n:
+            results["edges vs undistorted simulation"] += (
+                f"; where voxels moved: {n['edge_agreement_shifted_before']:.3f} -> "
+                f"{n['edge_agreement_shifted_after']:.3f}")
     if "roi_signal_kept" in n and "dropout_roi_mean_retention" not in n:
         results["region of interest"] = (f"{100 * n['roi_signal_kept']:.0f}% of its signal kept after unwarping "
                                          f"(the rest lost to dropout)")

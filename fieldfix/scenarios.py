@@ -66,9 +66,15 @@ from . import susceptibility as sus
 from .errors import InputError, OutputError
 from .geometry import parse_pe_code
 from .io import save_image, write_json
+
 from .simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
 from .simulate.gradient_echo import simulate_gradient_echo
 from .units import parse_angle_deg, parse_field_t, parse_length_mm, parse_time_s
+
+#: Sub-samples through the slice in the EPI simulation. Two sub-samples sum two phasors and
+#: underestimate through-slice dephasing (|cos(pi x / 2)| instead of |sinc(x)|); four bring the
+#: simulated orbitofrontal ROI signal within 0.01 of eight sub-samples (0.646 vs 0.636).
+SLICE_SUBSAMPLES = 4
 
 __all__ = [
     "GENERATOR_VERSION",
@@ -425,7 +431,7 @@ def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.Se
         # the slice (through-slice dephasing); the readout needs none in this signal model.
         pe_axis, _ = parse_pe_code(run["pe_code"])
         slice_axis = 2 if pe_axis != 2 else 1
-        factors = tuple(2 if a in (pe_axis, slice_axis) else 1 for a in range(3))
+        factors = tuple({pe_axis: 2, slice_axis: SLICE_SUBSAMPLES}.get(a, 1) for a in range(3))
         fine_axes = fine_coordinates(run["shape"], factors)
         fx, fy, fz = _world(aff, fine_axes)
         obj_fine = tissue_image(fx, fy, fz, scale)

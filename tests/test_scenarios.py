@@ -101,8 +101,9 @@ def test_epi_shows_distortion_relative_to_reference(tiny):
     bold = nib.load(tiny / run["bold"]).get_fdata()[..., 0]
     ref = nib.load(tiny / run["undistorted"]).get_fdata()
     assert bold.shape == ref.shape
-    # same object, so similar total signal, but not the same image
-    assert abs(bold.sum() / ref.sum() - 1) < 0.15
+    # Same object: distortion moves signal without creating it, and through-slice dephasing
+    # (dropout) only removes some, so the total is somewhat lower, never higher; not the same image.
+    assert 0.7 < bold.sum() / ref.sum() < 1.02
     assert np.abs(bold - ref).max() > 0.2 * ref.max()
 
 
