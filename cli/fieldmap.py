@@ -23,7 +23,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     opts = parser.add_argument_group("options")
     opts.add_argument("--echo-times", nargs="+", metavar="TIME", default=None,
                       help="echo times with units, e.g. 4.92ms 7.38ms (default: BIDS sidecars)")
-    opts.add_argument("--prefer", choices=("cli", "sidecar"), default=None,
+    opts.add_argument("--echo-times-win", choices=("arguments", "sidecar"), default=None,
                       help="which echo times win when --echo-times contradicts the sidecars "
                            "(default: stop with an error)")
     opts.add_argument("--phase-units", choices=("rad", "deg", "counts4096", "counts8192"), default=None,
@@ -54,7 +54,7 @@ def run(args) -> dict:
     echo_times_s = [parse_time_s(t) for t in args.echo_times] if args.echo_times else None
     field_t = parse_field_t(args.field_strength) if args.field_strength else None
     smooth_mm = parse_length_mm(args.smooth)
-    win = {"cli": "arguments", "sidecar": "sidecar", None: None}[args.prefer]
+    win = args.echo_times_win
     summary = run_fieldmap(
         args.out, phase=args.phase, magnitude=args.magnitude, real=args.real, imag=args.imag,
         phase_diff=args.phase_diff, b0=args.b0, b0_units=args.b0_units, echo_times_s=echo_times_s,

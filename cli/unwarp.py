@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 
 HELP = "unwarp EPI runs along the phase-encode axis with a B0 map (Hz), with Jacobian intensity correction"
 
@@ -61,7 +62,10 @@ def run(args) -> dict:
             "percent_shifted_over_1_voxel": item["percent_shifted_over_1_voxel"],
             "folded_voxels": item["folded_voxels"],
             "volumes": item["n_volumes"],
+            "warnings": item.get("warnings", []),
         })
+        for warning in item.get("warnings", []):
+            print(f"fieldfix unwarp: warning: {item['run']}: {warning}", file=sys.stderr)
     result = {"runs": runs}
     if not args.no_report:
         from fieldfix.report import build_report

@@ -303,21 +303,15 @@ REFUSALS = [
     pytest.param(fieldmap_case(r"NaN or infinite", names="mag", mag_kw={"values": with_nan(head(), -np.inf)}),
                  id="fieldmap-magnitude-inf"),
     pytest.param(fieldmap_case(r"mask is empty|no voxel|constant", names="mag", mag_kw={"values": np.zeros(SHAPE)}),
-                 id="fieldmap-all-zero-magnitude", marks=_xfail(NO_FILE_NAMED.format(
-                     "'magnitude image is constant' (raised while deriving the mask, fieldfix/phase.py) does not "
-                     "name the magnitude file; fieldfix/workflows/fieldmap.py should attach it"))),
+                 id="fieldmap-all-zero-magnitude"),
     pytest.param(fieldmap_case(r"mask is empty", names="mask.nii.gz", before=_add_mask(np.zeros(SHAPE)),
                                extra=("--mask", "{mask}")), id="fieldmap-empty-mask"),
     # ---- phase range, echo times -------------------------------------------------------------
     pytest.param(fieldmap_case(r"cannot tell the phase units", pd_kw={"values": 50.0 + 8.0 * phasediff_rad()}),
-                 id="fieldmap-phase-unrecognised-range", marks=_xfail(NO_FILE_NAMED.format(
-                     "'cannot tell the phase units' (fieldfix/phase.py detect_phase_units, called from "
-                     "_read_phase in fieldfix/workflows/fieldmap.py) does not name the phase image"))),
+                 id="fieldmap-phase-unrecognised-range"),
     pytest.param(fieldmap_case(r"echo times must differ", names="sub-01_phasediff",
                                pd_kw={"sidecar": {"EchoTime1": TE1_S, "EchoTime2": TE1_S}}),
-                 id="fieldmap-echo-times-equal-sidecar", marks=_xfail(NO_FILE_NAMED.format(
-                     "'echo times must differ' (fieldfix/workflows/fieldmap.py run_fieldmap) does not name the "
-                     "sidecar/image the equal echo times came from"))),
+                 id="fieldmap-echo-times-equal-sidecar"),
     pytest.param(fieldmap_case(r"echo times must differ", names=[], pd_kw={"sidecar": {}},
                                extra=("--echo-times", "5ms", "5ms")),
                  id="fieldmap-echo-times-equal-cli"),
@@ -333,20 +327,13 @@ REFUSALS = [
                  id="fieldmap-echo-times-ms-in-sidecar"),
     pytest.param(fieldmap_case(r"4920|echo time", names=[], pd_kw={"sidecar": {}},
                                extra=("--echo-times", "4920ms", "7380ms")),
-                 id="fieldmap-echo-times-seconds-given-as-ms",
-                 marks=_xfail("fieldfix/workflows/fieldmap.py _resolve_echo_times: echo times from the command "
-                              "line are only checked to be positive; 4920ms (seconds written as ms) is accepted "
-                              "while the same value in a sidecar is refused as over one second")),
-    pytest.param(fieldmap_case(r"no echo times", pd_kw={"sidecar": {}}), id="fieldmap-echo-times-missing",
-                 marks=_xfail(NO_FILE_NAMED.format(
-                     "'no echo times' (fieldfix/workflows/fieldmap.py _resolve_echo_times) does not name the "
-                     "phase-difference image whose sidecar lacks EchoTime1/EchoTime2"))),
+                 id="fieldmap-echo-times-seconds-given-as-ms"),
+    pytest.param(fieldmap_case(r"no echo times", pd_kw={"sidecar": {}}), id="fieldmap-echo-times-missing"),
     pytest.param(fieldmap_case(r"no unit", names=[], pd_kw={"sidecar": {}}, extra=("--echo-times", "4.92", "7.38")),
                  id="fieldmap-echo-times-bare-numbers"),
-    pytest.param(fieldmap_case(r"contradict.*say which one wins", extra=("--echo-times", "4ms", "6ms")),
-                 id="fieldmap-echo-times-contradict-sidecar", marks=_xfail(NO_FILE_NAMED.format(
-                     "'echo times ... contradict the sidecars' (fieldfix/workflows/fieldmap.py "
-                     "_resolve_echo_times) does not name the sidecar"))),
+    pytest.param(fieldmap_case(r"contradict.*say which one wins", names="sub-01_phasediff.json",
+                               extra=("--echo-times", "4ms", "6ms")),
+                 id="fieldmap-echo-times-contradict-sidecar"),
     # ---- readout timing ----------------------------------------------------------------------
     pytest.param(unwarp_case(r"no readout timing", run_kw={"sidecar": NO_SIDECAR_TIMING}),
                  id="unwarp-readout-missing"),
@@ -486,9 +473,6 @@ def test_baseline_unwarp_and_fieldmap_succeed(tmp_path):
     assert np.median(np.abs(b0_made - field_hz())[inside]) < 1.0
 
 
-@pytest.mark.xfail(strict=True, reason="fieldfix/workflows/unwarp.py _unwarp_one: a partly covered run gets only "
-                                       "coverage_percent in its summary; no warning on stderr and no warning flag "
-                                       "in the summary")
 def test_partial_overlap_warns_and_flags(tmp_path):
     # The B0 map covers only half of the run along x: the run is corrected (exit 0), with a
     # warning on stderr and a flag in the summary.
@@ -530,7 +514,7 @@ def test_contradiction_resolved_when_the_user_says_which_wins(tmp_path):
     assert outcome.returncode == 0, outcome.stderr
     assert json.loads((out / "sub-01_task-rest_bold_unwarp.json").read_text())["pe_code"] == "j"
     pd, mag = make_phasediff(tmp_path), make_magnitude(tmp_path)
-    outcome = run_cli(_fieldmap(pd, mag, tmp_path / "fm", "--echo-times", "4ms", "6ms", "--prefer", "sidecar",
+    outcome = run_cli(_fieldmap(pd, mag, tmp_path / "fm", "--echo-times", "4ms", "6ms", "--echo-times-win", "sidecar",
                                 "--json"))
     assert outcome.returncode == 0, outcome.stderr
     summary = json.loads((tmp_path / "fm" / "b0_summary.json").read_text())

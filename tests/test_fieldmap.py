@@ -243,10 +243,10 @@ def test_cli_echo_time_contradiction_needs_a_winner(acquisition, tmp_path, capsy
     assert bad.returncode == 2 and "contradict" in bad.stderr and len(bad.stderr.strip().splitlines()) == 1
     assert not (tmp_path / "a" / "b0_hz.nii.gz").exists()
     capsys.readouterr()
-    assert cli_main(["fieldmap", *base, "--prefer", "sidecar", "--out", str(tmp_path / "b"), "--json"]) == 0
+    assert cli_main(["fieldmap", *base, "--echo-times-win", "sidecar", "--out", str(tmp_path / "b"), "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["echo_times_s"] == list(TES) and summary["echo_times_source"].startswith("sidecar")
-    assert cli_main(["fieldmap", *base, "--prefer", "cli", "--out", str(tmp_path / "c"), "--json"]) == 0
+    assert cli_main(["fieldmap", *base, "--echo-times-win", "arguments", "--out", str(tmp_path / "c"), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["echo_times_s"] == [5e-3, 7.5e-3]
 
 

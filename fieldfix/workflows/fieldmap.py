@@ -33,7 +33,7 @@ from typing import Sequence
 import numpy as np
 
 from .._progress import progress_bar
-from ..errors import GeometryError, InputError, MetadataError
+from ..errors import FieldfixError, GeometryError, InputError, MetadataError
 from ..fieldmap import (
     b0_from_echoes,
     b0_from_map,
@@ -121,8 +121,19 @@ def _sidecar_time(img: Image, key: str) -> float | None:
     return float(value)
 
 
+#: Longest echo time accepted for a gradient-echo field map; a larger value is almost surely
+#: seconds written as milliseconds (field-map echo times are milliseconds to tens of
+#: milliseconds: common practice, no source).
+MAX_ECHO_TIME_S = 0.5
+
+
 def _resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
-    """Pick echo times from the argument or the sidecars; returns (times, source)."""
+    """Pick echo times from the argument or the sidecars; returns (times, source).
+
+    Errors about sidecar values name the first source's sidecar; errors about the
+    argument name the option.
+    """
+    where = sidecar_path(sources[0]) if sources else None
     win = {"cli": "arguments", "argument": "arguments", "arguments": "arguments", "sidecar": "sidecar",
            None: None}.get(win, "invalid")
     if win == "invalid":
@@ -134,16 +145,20 @@ def _resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
         missing = [str(p) for p, t in zip(sources, sidecar_times) if t is None]
         if argument is None:
             raise MetadataError("echo time missing from the sidecar of " + ", ".join(missing)
-                                + "; give the echo times explicitly")
+                                + "; give the echo times explicitly", where)
     arg = None if argument is None else [float(t) for t in argument]
     if arg is not None:
         if len(arg) != n_needed:
-            raise InputError(f"{len(arg)} echo times given but {n_needed} are needed")
+            raise InputError(f"--echo-times: {len(arg)} echo times given but {n_needed} are needed")
         if any(not (t > 0) for t in arg):
-            raise InputError("echo times must be positive")
+            raise InputError("--echo-times: echo times must be positive")
+        if any(t > MAX_ECHO_TIME_S for t in arg):
+            raise InputError(f"--echo-times: {max(arg) * 1e3:g}ms is longer than a field-map echo time can be "
+                             f"({MAX_ECHO_TIME_S * 1e3:g}ms at most); was a value in seconds written as ms?")
     if arg is None and side is None:
-        raise MetadataError("no echo times: give them (for example 4.92ms 7.38ms) or provide BIDS sidecars with "
-                            "EchoTime / EchoTime1 and EchoTime2")
+        raise MetadataError("no echo times: give them (for example --echo-times 4.92ms 7.38ms) or provide a BIDS "
+                            "sidecar with EchoTime / EchoTime1 and EchoTime2",
+                            sources[0] if sources else None)
     if arg is None:
         return side, "sidecar"
     if side is None:
@@ -156,7 +171,8 @@ def _resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
         return side, "sidecar (arguments overruled)"
     shown = ", ".join(f"{t * 1e3:g}ms" for t in side)
     given = ", ".join(f"{t * 1e3:g}ms" for t in arg)
-    raise MetadataError(f"echo times {given} contradict the sidecars ({shown}); say which one wins")
+    raise MetadataError(f"echo times {given} from the command line contradict the sidecar ({shown}); say which "
+                        "one wins (--echo-times-win arguments|sidecar)", where)
 
 
 def _read_phase(img: Image, units, report: list) -> np.ndarray:
@@ -164,7 +180,10 @@ def _read_phase(img: Image, units, report: list) -> np.ndarray:
     if not np.all(np.isfinite(values)):
         raise InputError("phase image contains NaN or infinite values", img.path)
     if units is None:
-        unit = detect_phase_units(values)
+        try:
+            unit = detect_phase_units(values)
+        except FieldfixError as err:
+            raise type(err)(err.message, img.path) from None
         source = unit.reason
     else:
         unit = lookup_phase_units(units)
@@ -334,7 +353,9 @@ def run_fieldmap(
             b0_values = b0_img.get_fdata(np.float64)
         if tes is not None:
             if len(set(tes)) != len(tes):
-                raise MetadataError("echo times must differ from each other")
+                source = reference.path if echo_times_source.startswith("arguments") else sidecar_path(reference.path)
+                raise MetadataError("echo times must differ from each other "
+                                    f"({', '.join(f'{t * 1e3:g}ms' for t in tes)})", source)
         mask_values = None
         if mask is not None:
             mask_img = load_image(mask, ndim=(3,))
@@ -347,26 +368,34 @@ def run_fieldmap(
         # ---- compute ------------------------------------------------------------------------
         voxel_mm = tuple(float(v) for v in voxel_sizes_mm(reference.affine))
         common = dict(mask=mask_values, voxel_size_mm=voxel_mm, smooth_fwhm_mm=float(smooth_mm))
-        if kind in ("phase", "real-imag"):
-            result = b0_from_echoes(echoes, tes, unwrap_method=unwrap_method, reject_outliers=reject_outliers,
-                                    **common)
-        elif kind == "phase-difference":
-            first = min(range(2), key=lambda i: tes[i])
-            mag = _read_magnitude(mag_imgs[first if len(mag_imgs) == 2 else 0]) if mag_imgs else None
-            t1, t2 = tes
-            if t2 < t1:
-                raise MetadataError(f"EchoTime2 ({t2 * 1e3:g} ms) is shorter than EchoTime1 ({t1 * 1e3:g} ms); the "
-                                    "phase difference is taken as echo 2 minus echo 1", phase_diff)
-            result = b0_from_phase_difference(dphi, t2 - t1, magnitude=mag, unwrap_method=unwrap_method,
-                                              reject_outliers=reject_outliers, **common)
-        else:
-            mag = _read_magnitude(mag_imgs[0]) if mag_imgs else None
-            if not np.any(np.isfinite(b0_values)):
-                raise InputError("the B0 map has no finite values", b0)
-            result = b0_from_map(b0_values, units, magnitude=mag, field_strength_t=field_strength_t,
-                                 reject_outliers=reject_outliers, **common)
+        # Errors found in the data (for example a constant magnitude, from which no mask can be
+        # derived) name the magnitude image, or the main input when there is none.
+        try:
+            if kind in ("phase", "real-imag"):
+                result = b0_from_echoes(echoes, tes, unwrap_method=unwrap_method, reject_outliers=reject_outliers,
+                                        **common)
+            elif kind == "phase-difference":
+                first = min(range(2), key=lambda i: tes[i])
+                mag = _read_magnitude(mag_imgs[first if len(mag_imgs) == 2 else 0]) if mag_imgs else None
+                t1, t2 = tes
+                if t2 < t1:
+                    raise MetadataError(f"EchoTime2 ({t2 * 1e3:g} ms) is shorter than EchoTime1 ({t1 * 1e3:g} ms); the "
+                                        "phase difference is taken as echo 2 minus echo 1", phase_diff)
+                result = b0_from_phase_difference(dphi, t2 - t1, magnitude=mag, unwrap_method=unwrap_method,
+                                                  reject_outliers=reject_outliers, **common)
+            else:
+                mag = _read_magnitude(mag_imgs[0]) if mag_imgs else None
+                if not np.any(np.isfinite(b0_values)):
+                    raise InputError("the B0 map has no finite values", b0)
+                result = b0_from_map(b0_values, units, magnitude=mag, field_strength_t=field_strength_t,
+                                     reject_outliers=reject_outliers, **common)
+        except FieldfixError as err:
+            if err.path is not None:
+                raise
+            raise type(err)(err.message, mag_imgs[0].path if mag_imgs else reference.path) from None
         if not result.mask.any():
-            raise InputError("the mask is empty: no voxel is bright enough in the magnitude image; give a mask")
+            raise InputError("the mask is empty: no voxel is bright enough in the magnitude image; give a mask",
+                             mag_imgs[0].path if mag_imgs else reference.path)
         steps.update(1)
 
         # ---- write --------------------------------------------------------------------------

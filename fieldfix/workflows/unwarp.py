@@ -62,6 +62,10 @@ MAX_SHIFT_FOV_FRACTION = 0.25
 CAUTION = ("Research software, not a medical device: inspect corrected images before they are used for any "
            "decision about a person.")
 
+#: A run whose voxels are covered by the B0 map's field of view to less than this percentage
+#: is corrected with a warning and flagged (``partial_coverage``) in its summary.
+PARTIAL_COVERAGE_PERCENT = 99.0
+
 _SUFFIXES = {
     "corrected": "_corrected.nii.gz",
     "shift_vox": "_shift_vox.nii.gz",
@@ -431,6 +435,12 @@ def _unwarp_one(image, code, code_source, timing, maps, mask, b0, mask_path, pat
                **common)
 
     stats = shift_summary(maps.shift_vox, maps.jacobian, maps.pe_axis, affine, mask, jacobian_floor)
+    coverage_percent = float(100.0 * covered.mean())
+    warnings = []
+    if coverage_percent < PARTIAL_COVERAGE_PERCENT:
+        warnings.append(f"partial coverage: the B0 map covers {coverage_percent:.1f}% of this run's voxels; "
+                        "outside it the field is continued from the map's nearest edge, so the correction "
+                        "there is a guess (see the run's B0 coverage in the report)")
     summary = {
         "run": str(image.path),
         "b0_map": str(b0.path),
@@ -444,7 +454,9 @@ def _unwarp_one(image, code, code_source, timing, maps, mask, b0, mask_path, pat
         "jacobian": bool(jacobian),
         **stats,
         "folded_voxels_total": int(np.count_nonzero(maps.fold)),
-        "coverage_percent": float(100.0 * covered.mean()),
+        "coverage_percent": coverage_percent,
+        "partial_coverage": coverage_percent < PARTIAL_COVERAGE_PERCENT,
+        "warnings": warnings,
         "voxel_size_mm": [float(v) for v in voxel_sizes_mm(affine)],
         "displacement_convention": "world mm (NIfTI RAS+), from each corrected voxel to where its signal lies "
                                    "in the distorted run",
