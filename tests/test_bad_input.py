@@ -285,7 +285,6 @@ def _xfail(reason):
 
 
 NO_SIDECAR_TIMING = {"PhaseEncodingDirection": "j-"}
-NO_FILE_NAMED = "the error line does not name the file: {}"
 
 REFUSALS = [
     # ---- world-space overlap --------------------------------------------------------------
