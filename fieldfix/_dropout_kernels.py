@@ -180,7 +180,6 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
     inv_step = 1.0 / step
     n_groups = group_block.shape[0] - 1
     for g in numba.prange(n_groups):
-        first = block_start[group_block[g]]
         t = block_tilt[group_block[g]]
         sign = block_sign[group_block[g]]
         inv = np.empty(n_vox)

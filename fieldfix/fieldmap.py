@@ -42,6 +42,7 @@ import numpy as np
 import scipy.fft
 import scipy.ndimage as ndi
 
+from ._solvers import conjugate_gradient
 from .errors import InputError, UnitError
 from .phase import magnitude_mask, phase_difference
 from .units import GAMMA_HZ_PER_T
@@ -433,23 +434,8 @@ def extend_harmonic(b0_hz, mask, *, voxel_size_mm=(1.0, 1.0, 1.0), rtol: float =
         return np.where(u, scipy.fft.idctn(scipy.fft.dctn(r, type=2, norm="ortho") / eig,
                                            type=2, norm="ortho"), 0.0)
 
-    x = np.where(u, _nearest_fill(f, m), 0.0)
-    r = b - apply_a(x)
-    bnorm = np.linalg.norm(b) or 1.0
-    z = precond(r)
-    p = z.copy()
-    rz = float(np.vdot(r, z))
-    for _ in range(maxiter):
-        if np.linalg.norm(r) <= rtol * bnorm or rz <= 0:
-            break
-        ap = apply_a(p)
-        alpha = rz / float(np.vdot(p, ap))
-        x += alpha * p
-        r -= alpha * ap
-        z = precond(r)
-        rz_new = float(np.vdot(r, z))
-        p = z + (rz_new / rz) * p
-        rz = rz_new
+    x0 = np.where(u, _nearest_fill(f, m), 0.0)
+    x, _ = conjugate_gradient(apply_a, b, x0, precond, rtol=rtol, maxiter=maxiter)
     return np.where(m, f, x)
 
 

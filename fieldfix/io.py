@@ -53,6 +53,7 @@ __all__ = [
     "write_json",
     "read_json",
     "StreamingWriter",
+    "atomic_output",
     "Provenance",
     "sha256_file",
     "output_paths_guard",
@@ -434,8 +435,24 @@ def _put_in_place(temporary: Path, path: Path) -> None:
 
 
 @contextlib.contextmanager
-def _atomic_target(path: Path, inputs: Iterable, overwrite: bool):
-    """Yield a temporary path in the target folder; rename it onto `path` on success only."""
+def atomic_output(path: str | os.PathLike, inputs: Iterable = (), overwrite: bool = False):
+    """Yield a temporary path in the target folder; rename it onto `path` on success only.
+
+    For outputs written by other libraries (a matplotlib figure, a CSV file): write to the
+    yielded path, and the file appears under its final name only when the block succeeds.
+    The output is checked with :func:`output_paths_guard` first and takes part in an active
+    :func:`output_transaction`.
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> target = os.path.join(tempfile.mkdtemp(), "table.csv")
+    >>> with atomic_output(target) as temporary:
+    ...     _ = temporary.write_text("a,b")
+    >>> open(target).read()
+    'a,b'
+    """
+    path = Path(path)
     output_paths_guard([path], inputs, overwrite)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
@@ -476,7 +493,7 @@ def write_json(path: str | os.PathLike, obj: dict, *, inputs: Iterable = (), ove
     """Write a JSON object atomically (numpy values converted, non-finite floats as null)."""
     path = Path(path)
     text = json.dumps(_jsonable(obj), indent=2, sort_keys=False) + "\n"
-    with _atomic_target(path, inputs, overwrite) as temporary:
+    with atomic_output(path, inputs, overwrite) as temporary:
         temporary.write_text(text, encoding="utf-8")
     return path
 
@@ -559,7 +576,7 @@ def save_image(
     array = array.astype(dtype, copy=False)
     klass, header = _header_for(array.shape, affine, template, array.dtype, intent)
     image = klass(array, np.asarray(affine, float), header=header)
-    with _atomic_target(path, inputs, overwrite) as temporary:
+    with atomic_output(path, inputs, overwrite) as temporary:
         nib.save(image, str(temporary))
     if provenance is not None:
         record = provenance.as_dict()
@@ -625,7 +642,7 @@ class StreamingWriter:
         klass, header = _header_for(self.shape, self.affine, self.template, self.dtype, None)
         offset = 544 if klass is nib.Nifti2Image else 352
         header.set_data_offset(offset)
-        self._context = _atomic_target(self.path, self.inputs, self.overwrite)
+        self._context = atomic_output(self.path, self.inputs, self.overwrite)
         temporary = self._context.__enter__()
         try:
             raw = open(temporary, "wb")

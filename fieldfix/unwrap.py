@@ -48,6 +48,7 @@ import scipy.fft
 import scipy.ndimage as ndi
 
 from . import _unwrap_kernels as _k
+from ._solvers import conjugate_gradient
 
 TWO_PI = 2.0 * np.pi
 METHODS = ("quality", "laplacian")
@@ -285,28 +286,10 @@ def _solve_masked_poisson(rhs, mask, pairs, *, rtol, maxiter):
     def precond(r):
         return np.where(mask, -_poisson_neumann(np.where(mask, r, 0.0)), 0.0)
 
-    x = np.where(mask, -_poisson_neumann(-b), 0.0)  # whole-grid solution as a start
-    r = b - apply_a(x)
-    bnorm = np.linalg.norm(b)
-    if bnorm == 0:
-        return x, 0
-    z = precond(r)
-    p = z.copy()
-    rz = float(np.vdot(r, z))
-    it = 0
-    for it in range(1, maxiter + 1):
-        if np.linalg.norm(r) <= rtol * bnorm or rz <= 0:
-            it -= 1
-            break
-        ap = apply_a(p)
-        alpha = rz / float(np.vdot(p, ap))
-        x += alpha * p
-        r -= alpha * ap
-        z = precond(r)
-        rz_new = float(np.vdot(r, z))
-        p = z + (rz_new / rz) * p
-        rz = rz_new
-    return x, it
+    x0 = np.where(mask, -_poisson_neumann(-b), 0.0)  # whole-grid solution as a start
+    if np.linalg.norm(b) == 0:
+        return x0, 0
+    return conjugate_gradient(apply_a, b, x0, precond, rtol=rtol, maxiter=maxiter)
 
 
 def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, refinements=2, rtol=1e-4, maxiter=50):

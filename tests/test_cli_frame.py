@@ -1,12 +1,10 @@
 """The command frame through the real console script."""
 
-import os
 import shutil
 import subprocess
 import sys
 from pathlib import Path
 
-import pytest
 
 from fieldfix import __version__
 

@@ -3,7 +3,6 @@
 import gzip
 import hashlib
 import json
-import os
 import signal
 import subprocess
 import sys

@@ -12,14 +12,12 @@ from __future__ import annotations
 
 import csv
 import io as _stdio
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, OutputError
-from ..io import Provenance, load_image, output_paths_guard, write_json
+from ..errors import InputError
+from ..io import Provenance, atomic_output, load_image, output_paths_guard, write_json
 from ..plan import CSV_COLUMNS, plot_tradeoffs, recommend, sweep
 from .dropout import load_mask_on_grid
 
@@ -27,24 +25,6 @@ __all__ = ["run_plan", "CAUTION"]
 
 CAUTION = ("Research software, not a medical device: the ranking predicts signal from a field map and is a "
            "planning aid; check acquired images before any decision about a person.")
-
-
-def _write_atomic(path: Path, write, inputs, overwrite: bool) -> None:
-    """Write through a temporary file in the same folder, renamed into place on success."""
-    output_paths_guard([path], inputs, overwrite)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix, dir=path.parent)
-    os.close(handle)
-    tmp = Path(tmp)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    except OSError as err:
-        tmp.unlink(missing_ok=True)
-        raise OutputError(f"write failed ({err.strerror or err}); nothing was left behind", path) from None
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
 
 
 def _csv_text(rows: list[dict]) -> str:
@@ -148,8 +128,10 @@ def run_plan(
         "slice_gap_mm": slice_gap_mm, "time_per_slice_s": time_per_slice_s, "multiband": multiband,
         "max_tr_s": max_tr_s, "tolerance": tolerance, "coverage": coverage,
     }
-    _write_atomic(names["csv"], lambda p: p.write_text(_csv_text(rows), encoding="utf-8"), inputs, overwrite)
-    _write_atomic(names["figure"], lambda p: plot_tradeoffs(rows, p, recommended=choice), inputs, overwrite)
+    with atomic_output(names["csv"], inputs, overwrite) as temporary:
+        temporary.write_text(_csv_text(rows), encoding="utf-8")
+    with atomic_output(names["figure"], inputs, overwrite) as temporary:
+        plot_tradeoffs(rows, temporary, recommended=choice)
     summary = {
         "b0": str(b0_path),
         "roi": str(roi_path),

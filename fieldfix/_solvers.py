@@ -1,0 +1,49 @@
+"""Small numerical solvers shared by the field-map modules."""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+
+
+def conjugate_gradient(apply_a: Callable[[np.ndarray], np.ndarray], b: np.ndarray, x0: np.ndarray,
+                       precond: Callable[[np.ndarray], np.ndarray], *, rtol: float, maxiter: int):
+    """Preconditioned conjugate gradients for a symmetric positive (semi-)definite operator.
+
+    Stops when ``|b - A x| <= rtol * |b|`` (``|b|`` taken as 1 when zero), when the
+    preconditioned residual vanishes, or after `maxiter` iterations (Hestenes and Stiefel
+    1952, J. Res. Natl. Bur. Stand.).
+
+    Returns
+    -------
+    x : ndarray
+    iterations : int
+        Iterations carried out.
+
+    Examples
+    --------
+    >>> a = np.array([[4.0, 1.0], [1.0, 3.0]])
+    >>> x, _ = conjugate_gradient(lambda v: a @ v, np.array([1.0, 2.0]), np.zeros(2), lambda r: r,
+    ...                           rtol=1e-12, maxiter=10)
+    >>> np.allclose(a @ x, [1.0, 2.0])
+    True
+    """
+    x = np.array(x0, dtype=np.float64, copy=True)
+    r = b - apply_a(x)
+    bnorm = float(np.linalg.norm(b)) or 1.0
+    z = precond(r)
+    p = z.copy()
+    rz = float(np.vdot(r, z))
+    iterations = 0
+    while iterations < maxiter and np.linalg.norm(r) > rtol * bnorm and rz > 0:
+        ap = apply_a(p)
+        alpha = rz / float(np.vdot(p, ap))
+        x += alpha * p
+        r -= alpha * ap
+        z = precond(r)
+        rz_new = float(np.vdot(r, z))
+        p = z + (rz_new / rz) * p
+        rz = rz_new
+        iterations += 1
+    return x, iterations
