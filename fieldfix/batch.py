@@ -1392,7 +1392,7 @@ def write_group_summary(deriv: Path, rows: Sequence[dict]) -> dict[str, str]:
     import csv
     import io as _stdio
 
-    from fieldfix.io import write_json
+    from fieldfix.io import atomic_output, write_json
 
     group = deriv / "group"
     group.mkdir(parents=True, exist_ok=True)
@@ -1403,9 +1403,8 @@ def write_group_summary(deriv: Path, rows: Sequence[dict]) -> dict[str, str]:
     for row in rows:
         writer.writerow({c: ("" if row.get(c) is None else row.get(c)) for c in columns})
     csv_path = group / "group_runs.csv"
-    tmp = group / ".group_runs.csv.part"
-    tmp.write_text(buffer.getvalue(), encoding="utf-8")
-    os.replace(tmp, csv_path)
+    with atomic_output(csv_path, overwrite=True) as temporary:
+        temporary.write_text(buffer.getvalue(), encoding="utf-8")
     json_path = write_json(group / "group_runs.json", {"columns": columns, "rows": list(rows)},
                            overwrite=True)
     written = {"csv": csv_path.relative_to(deriv).as_posix(),
@@ -1413,9 +1412,8 @@ def write_group_summary(deriv: Path, rows: Sequence[dict]) -> dict[str, str]:
     figure = _group_figure(rows)
     if figure is not None:
         png = group / "group_runs.png"
-        tmp = group / ".group_runs.png.part"
-        tmp.write_bytes(figure)
-        os.replace(tmp, png)
+        with atomic_output(png, overwrite=True) as temporary:
+            temporary.write_bytes(figure)
         written["figure"] = png.relative_to(deriv).as_posix()
     return written
 

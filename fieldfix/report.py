@@ -1744,18 +1744,10 @@ def _summary_panels(field_arrays: list[dict], run_arrays: list[dict], dropout_ar
 
 
 def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    import tempfile
+    from .io import atomic_output
 
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            stream.write(data)
-        os.replace(temporary, path)
-    except BaseException as err:
-        Path(temporary).unlink(missing_ok=True)
-        if isinstance(err, OSError):
-            raise OutputError(f"write failed ({err.strerror or err}); nothing was left behind", path) from None
-        raise
+    with atomic_output(path, overwrite=True) as temporary:
+        temporary.write_bytes(data)
 
 
 MAX_PAGE_BYTES = 5 * 1024 * 1024
