@@ -57,6 +57,7 @@ import copy
 import hashlib
 import json
 import os
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -91,7 +92,16 @@ __all__ = [
 GENERATOR_VERSION = 1
 
 #: The repository's folder of sample scenarios (present in a source checkout).
-SAMPLE_SCENARIOS_DIR = Path(__file__).resolve().parent.parent / "sample_scenarios"
+def _sample_scenarios_dir() -> Path:
+    """``sample_scenarios/`` beside the source tree (a checkout or an editable install), else the
+    copy a regular install puts under ``<prefix>/share/fieldfix/``."""
+    beside = Path(__file__).resolve().parent.parent / "sample_scenarios"
+    if beside.is_dir():
+        return beside
+    return Path(sys.prefix) / "share" / "fieldfix" / "sample_scenarios"
+
+
+SAMPLE_SCENARIOS_DIR = _sample_scenarios_dir()
 
 TRUTH_DIR = Path("derivatives") / "scenario-truth"
 

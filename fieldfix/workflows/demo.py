@@ -49,7 +49,9 @@ def dataset_location(scenario: str, out_dir) -> Path:
     """
     definition = scenarios.scenario_path(scenario)
     folder = definition.parent
-    if folder.parent.resolve() == scenarios.SAMPLE_SCENARIOS_DIR.resolve() and os.access(folder, os.W_OK):
+    in_checkout = (scenarios.SAMPLE_SCENARIOS_DIR.parent / "fieldfix" / "__init__.py").is_file()
+    if in_checkout and folder.parent.resolve() == scenarios.SAMPLE_SCENARIOS_DIR.resolve() \
+            and os.access(folder, os.W_OK):
         return folder / "generated"
     return Path(out_dir) / "dataset"
 
