@@ -1414,11 +1414,16 @@ def _dropout_part(drop: DropoutFiles, index: int, dpi: int):
             numbers[key] = None
             continue
         image, values = _volume(path)
-        mask = None
-        if drop.field_map is not None and drop.field_map.mask is not None:
-            mask = _on_grid(drop.field_map.mask, values.shape, image.affine, order=1) > 0.5
+        # The statistics use the mask the prediction was made for (the dropout job's own mask,
+        # outside which its maps are zero), else the field map's mask.
+        mask, mask_source = None, "whole grid"
+        own_mask = summary.get("mask") if isinstance(summary.get("mask"), str) else None
+        if own_mask and Path(own_mask).is_file():
+            mask, mask_source = _on_grid(Path(own_mask), values.shape, image.affine, order=1) > 0.5, "dropout mask"
+        elif drop.field_map is not None and drop.field_map.mask is not None:
+            mask, mask_source = _on_grid(drop.field_map.mask, values.shape, image.affine, order=1) > 0.5, "b0_mask"
         numbers[key] = retention_statistics(values, mask, threshold=threshold)
-        numbers[key]["mask_source"] = "b0_mask" if mask is not None else "whole grid"
+        numbers[key]["mask_source"] = mask_source
         arrays[key] = (values, image.affine, mask)
         section.figures.append({"id": f"dropout{index}-{key}",
                                 "png": figure_png(retention_figure(values, image.affine, mask, label=label,
@@ -1565,6 +1570,12 @@ def format_number(value, fmt: str) -> str:
         return str(value)
 
 
+def _ordinal(n: int) -> str:
+    """1 -> '1st', 2 -> '2nd', 50 -> '50th'."""
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
 def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]]]]:
     """(card title, [(label, key path, format, unit), ...]) in page order."""
     cards = []
@@ -1572,7 +1583,7 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
         p = f"field_maps.{i}"
         rows = [("Field minimum", f"{p}.min_hz", "{:.1f}", "Hz"), ("Field maximum", f"{p}.max_hz", "{:.1f}", "Hz")]
         for level in ("p1", "p5", "p50", "p95", "p99"):
-            rows.append((f"Field {level[1:]}th percentile", f"{p}.percentiles_hz.{level}", "{:.1f}", "Hz"))
+            rows.append((f"Field {_ordinal(int(level[1:]))} percentile", f"{p}.percentiles_hz.{level}", "{:.1f}", "Hz"))
         rows += [("Unaliased range \u00b1", f"{p}.unaliased_range_hz", "{:.1f}", "Hz"),
                  ("Mask voxels beyond it", f"{p}.voxels_beyond_unaliased", "{:d}", ""),
                  ("Echo times", f"{p}.echo_times_s", "{:.5g}", "s"),
@@ -1606,8 +1617,10 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
     for i, plan in enumerate(report.get("plans", [])):
         p = f"plans.{i}"
         name = plan.get("name", "")
-        cards.append((f"Protocol plan {'' if name == 'plan' else name}".strip(), [("Recommended", f"{p}.recommended", "{}", ""),
-                                                       ("Reason", f"{p}.reason", "{}", "")]))
+        rows = [("Recommended", f"{p}.recommended.protocol", "{}", "")]
+        if isinstance(plan.get("recommended"), dict) and "protocol" not in plan["recommended"]:
+            rows = [("Recommended", f"{p}.recommended", "{}", "")]
+        cards.append((f"Protocol plan {'' if name == 'plan' else name}".strip(), rows + [("Reason", f"{p}.reason", "{}", "")]))
     return cards
 
 

@@ -497,3 +497,27 @@ def test_report_of_real_fieldmap_and_unwarp_outputs(tmp_path):
     run = data["runs"][0]
     assert run["field_map"] == "b0_hz" and run["mask_source"].startswith("b0_mask")
     assert run["edge_agreement_shifted_after"] > run["edge_agreement_shifted_before"]
+
+
+def test_dropout_statistics_use_the_mask_the_prediction_was_made_for(tmp_path):
+    # The dropout job writes zeros outside its own (brain) mask and names that mask in
+    # dropout.json; the report must not count those zeros as lost signal.
+    from fieldfix.io import load_image, save_image, write_json
+
+    write_outputs(tmp_path, with_plan=False)
+    out = tmp_path / "out"
+    retention_image = load_image(out / "retention.nii.gz")
+    retention = retention_image.get_fdata(np.float64)
+    head = load_image(out / "b0_mask.nii.gz").get_fdata() > 0
+    brain = np.zeros_like(head)
+    brain[4:-4, 4:-4, 2:-2] = True
+    brain &= head
+    save_image(tmp_path / "brain_mask.nii.gz", brain, retention_image.affine)
+    save_image(out / "retention.nii.gz", np.where(brain, retention, 0.0), retention_image.affine, overwrite=True)
+    write_json(out / "dropout.json", {"retention_threshold": 0.5, "te_s": 0.03,
+                                      "mask": str(tmp_path / "brain_mask.nii.gz")}, overwrite=True)
+    data = json.loads(rp.build_report(out).with_name("report.json").read_text())
+    stats = data["dropout"][0]["retention"]
+    assert stats["mask_source"] == "dropout mask"
+    assert stats["mask_voxels"] == int(brain.sum()) < int(head.sum())
+    assert stats["percent_below_threshold"] == pytest.approx(100.0 * np.mean(retention[brain] < 0.5))
