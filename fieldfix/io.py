@@ -434,6 +434,20 @@ def _put_in_place(temporary: Path, path: Path) -> None:
     os.replace(temporary, path)
 
 
+def _current_umask() -> int:
+    """The process umask, read from /proc where possible (setting it to read it is not thread-safe)."""
+    try:
+        with open("/proc/self/status") as handle:
+            for line in handle:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_output(path: str | os.PathLike, inputs: Iterable = (), overwrite: bool = False):
     """Yield a temporary path in the target folder; rename it onto `path` on success only.
@@ -463,6 +477,9 @@ def atomic_output(path: str | os.PathLike, inputs: Iterable = (), overwrite: boo
     os.close(handle)
     temporary = Path(temporary)
     try:
+        # mkstemp makes the file private (0600); outputs get the usual permissions (0666 less the umask),
+        # so that colleagues sharing a study folder can read them.
+        os.chmod(temporary, 0o666 & ~_current_umask())
         yield temporary
         _put_in_place(temporary, path)
     except OSError as err:

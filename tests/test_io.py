@@ -1,6 +1,7 @@
 """NIfTI round trips through nibabel, sidecars, provenance and atomic writes."""
 
 import gzip
+import os
 import hashlib
 import json
 import signal
@@ -270,3 +271,18 @@ def test_volumes_stream_through_one_open_file(tmp_path, monkeypatch):
     volumes = [image.volume(t) for t in range(7)]
     assert np.array_equal(np.stack(volumes, axis=-1), data)
     assert len(opened) <= 1
+
+
+def test_outputs_get_the_usual_permissions(tmp_path):
+    # Atomic writes go through a private temporary file; the output itself must be readable like
+    # any file the user creates (0666 less the umask), for example by colleagues in a study folder.
+    previous = os.umask(0o022)
+    try:
+        image = save_image(tmp_path / "b0_hz.nii.gz", np.zeros((2, 2, 2)), np.eye(4))
+        table = write_json(tmp_path / "summary.json", {"a": 1})
+        with StreamingWriter(tmp_path / "run.nii.gz", (2, 2, 2, 1), np.eye(4)) as writer:
+            writer.write(np.zeros((2, 2, 2)))
+    finally:
+        os.umask(previous)
+    for path in (image, table, tmp_path / "run.nii.gz"):
+        assert path.stat().st_mode & 0o777 == 0o644, path
