@@ -379,8 +379,9 @@ def unwarp_volume(
     >>> unwarp_volume(vol, np.full(vol.shape, 2.0), 1)[0, :, 0].tolist()
     [0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 0.0]
     """
-    tables = build_tables(shift_vox, pe_axis, interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor)
-    return apply_tables(tables, volume)
+    if np.ndim(volume) != 3:
+        raise GeometryError(f"expected a 3D volume, got {np.ndim(volume)} dimensions")
+    return unwarp_array(volume, shift_vox, pe_axis, interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor)
 
 
 def unwarp_array(
