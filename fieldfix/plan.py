@@ -32,6 +32,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import ndimage
 
 from . import _dropout_kernels as kernels
 from .dropout import (
@@ -118,10 +119,13 @@ def protocol_grid(thickness_mm, te_s, tilt_deg, pe_signs=(1, -1), zshim_mtms_per
     return [Protocol(d, te, tilt, s, z) for d, te, tilt, s, z in itertools.product(*values, signs, shims)]
 
 
-def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> float:
+def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> float | np.ndarray:
     """Extent of a mask along a world direction (mm), voxel size included.
 
     The spread of the voxel-centre projections plus the projected size of one voxel.
+    `normal` may also be an (N, 3) array of directions; the N extents then come from one
+    pass over the mask's corner voxels (the extreme projections of a voxel set are reached
+    at voxels of its bounding box faces, so only voxels on the mask's outline are needed).
 
     Example
     -------
@@ -129,14 +133,18 @@ def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> 
     >>> mask_extent_mm(m, np.diag([2.0, 2.0, 2.0, 1.0]), np.array([0.0, 0.0, 1.0]))
     12.0
     """
-    idx = np.argwhere(mask)
+    mask = np.asarray(mask, bool)
+    normals = np.atleast_2d(np.asarray(normal, float))
+    # Extreme projections lie on the outline (voxels with a neighbour outside the mask).
+    outline = mask & ~ndimage.binary_erosion(mask, border_value=0)
+    idx = np.argwhere(outline)
     if idx.size == 0:
-        return 0.0
-    affine = np.asarray(affine, float)
-    normal = np.asarray(normal, float)
-    proj_axes = affine[:3, :3].T @ normal  # mm along normal per index step
-    along = idx @ proj_axes
-    return float(along.max() - along.min() + np.abs(proj_axes).sum())
+        extents = np.zeros(len(normals))
+    else:
+        proj_axes = normals @ np.asarray(affine, float)[:3, :3]  # mm along each normal per index step
+        along = idx @ proj_axes.T
+        extents = along.max(axis=0) - along.min(axis=0) + np.abs(proj_axes).sum(axis=1)
+    return float(extents[0]) if np.ndim(normal) == 1 else extents
 
 
 def slices_to_cover(extent_mm: float, thickness_mm: float, gap_mm: float = 0.0) -> int:
@@ -288,7 +296,7 @@ def sweep(
                                               t_pe, before, after, prof.retention, threshold)
 
     cover = brain if coverage == "brain" else roi
-    extents = [mask_extent_mm(cover, affine, f.normal) for f in frames]
+    extents = mask_extent_mm(cover, affine, np.array([f.normal for f in frames]))
     metric = "bold_sensitivity" if use_pe else "retention"
     rows = []
     for p, ti, st in zip(protocols, tilt_index, stats):
