@@ -363,15 +363,19 @@ def _check_unwarp_with_sidecar(unwarp_inputs, capsys, changes):
     if out.exists():
         shutil.rmtree(out)
     status = main(["unwarp", str(run), "--b0", str(b0), "--out", str(out), "--no-report"])
-    err = capsys.readouterr().err
+    _assert_clean_outcome(status, capsys.readouterr().err, out, "run_corrected.nii.gz")
+    return status
+
+
+def _assert_clean_outcome(status: int, err: str, out, expected_output: str) -> None:
+    """A command either succeeds with its output, or refuses with one error line and writes nothing."""
     assert status in (0, 2), err
     if status == 2:
         lines = err.strip().splitlines()
         assert len(lines) == 1 and "error:" in lines[0], err
         assert not out.exists() or list(out.iterdir()) == []
     else:
-        assert (out / "run_corrected.nii.gz").is_file()
-    return status
+        assert (out / expected_output).is_file()
 
 
 @pytest.fixture(scope="module")
@@ -395,11 +399,4 @@ def test_echo_time_values_of_any_type_into_fieldmap(fieldmap_inputs, capsys, cha
     if out.exists():
         shutil.rmtree(out)
     status = main(["fieldmap", "--phase-diff", str(phasediff), "--magnitude", str(magnitude), "--out", str(out)])
-    err = capsys.readouterr().err
-    assert status in (0, 2), err
-    if status == 2:
-        lines = err.strip().splitlines()
-        assert len(lines) == 1 and "error:" in lines[0], err
-        assert not out.exists() or list(out.iterdir()) == []
-    else:
-        assert (out / "b0_hz.nii.gz").is_file()
+    _assert_clean_outcome(status, capsys.readouterr().err, out, "b0_hz.nii.gz")
