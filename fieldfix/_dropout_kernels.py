@@ -21,6 +21,9 @@ before_s, after_s : float
     Acquisition window around TE: ``[TE - before_s, TE + after_s]``.
 table, step, tail_sinc
     Retention table of the slice profile (see :class:`fieldfix.dropout.SliceProfile`).
+exact_sinc : bool
+    Numba only: evaluate the rectangular profile's sinc law directly (vectorised, within
+    1e-11) instead of interpolating the table (within about 4e-7).
 threshold : float
 
 Output: (n_protocols, 4) float64 array.
@@ -86,70 +89,6 @@ def _select(a, n, k):
     return a[k]
 
 
-# Exact medians by a two-level radix selection on the bit patterns of non-negative float32
-# values (their unsigned-integer order equals their numeric order): level 1 on bits 30..15,
-# level 2 on bits 14..0, which pins the order statistic down to the exact float32 value.
-_L1 = 1 << 16
-_L2 = 1 << 15
-_BLOCK_BINS = 256
-
-
-@numba.njit(cache=True)
-def _find_bucket(hist, k):
-    """Bucket holding the k-th smallest (0-based) and the count of all lower buckets."""
-    nbins = hist.shape[0]
-    c = 0
-    b = 0
-    while b < nbins:  # skip whole blocks first (vectorisable sums)
-        s = 0
-        for j in range(b, b + _BLOCK_BINS):
-            s += hist[j]
-        if c + s > k:
-            break
-        c += s
-        b += _BLOCK_BINS
-    while b < nbins:
-        if c + hist[b] > k:
-            return b, c
-        c += hist[b]
-        b += 1
-    return nbins - 1, c
-
-
-@numba.njit(cache=True)
-def _level2(bits, n, b1, hist2):
-    for j in range(hist2.shape[0]):
-        hist2[j] = 0
-    for i in range(n):
-        x = bits[i]
-        if (x >> 15) == b1:
-            hist2[x & 0x7FFF] += 1
-
-
-@numba.njit(cache=True)
-def _radix_median(vals, n, hist1, hist2, one):
-    """Exact median of float32 vals[:n] (all >= 0) given hist1 of their bits 30..15."""
-    if n == 0:
-        return np.nan
-    bits = vals.view(np.uint32)
-    ob = one.view(np.uint32)
-    k_hi = n // 2
-    b1_hi, c_hi = _find_bucket(hist1, k_hi)
-    _level2(bits, n, b1_hi, hist2)
-    b2_hi, _ = _find_bucket(hist2, k_hi - c_hi)
-    ob[0] = np.uint32((b1_hi << 15) | b2_hi)
-    upper = np.float64(one[0])
-    if n % 2 == 1:
-        return upper
-    k_lo = k_hi - 1
-    b1_lo, c_lo = _find_bucket(hist1, k_lo)
-    if b1_lo != b1_hi:
-        _level2(bits, n, b1_lo, hist2)
-    b2_lo, _ = _find_bucket(hist2, k_lo - c_lo)
-    ob[0] = np.uint32((b1_lo << 15) | b2_lo)
-    return 0.5 * (np.float64(one[0]) + upper)
-
-
 @numba.njit(cache=True)
 def _select_median(a, n):
     """Exact median of a[:n] by quickselect (reorders a)."""
@@ -166,19 +105,112 @@ def _select_median(a, n):
     return 0.5 * (lower + upper)
 
 
-_MAX_BLOCK = 8
+# Exact brain medians without sorting every protocol's values (Floyd & Rivest 1975, Commun. ACM 18:165,
+# "Algorithm 489"): the metric is first evaluated on every `stride`-th voxel; two order statistics of this
+# sample bracket the median with high probability. The pass over all voxels then counts the values
+# below and inside the bracket and appends those inside to a candidate list, and the median is selected
+# among the candidates. When the counts show that the bracket missed, the median is selected over all
+# values evaluated again, so the result is exact either way.
+_SAMPLE_SIZE = 4096
+_BRACKET_SIGMAS = 3.0
+_CHUNK = 2048  # voxels per chunk: the chunk's terms and values stay in the L1 cache
+_SIN_PI_COEFFS = (-1.0 / 6, 1.0 / 120, -1.0 / 5040, 1.0 / 362880, -1.0 / 39916800, 1.0 / 6227020800,
+                  -1.0 / 1307674368000)  # Taylor series of sin(y)/y in y**2; |y| <= pi/2 here
+
+
+def sample_stride(n_vox: int) -> int:
+    """Voxel stride of the sample that brackets the brain median (1 for small masks)."""
+    return max(1, n_vox // _SAMPLE_SIZE)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _terms(t, start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
+    """For voxels start, start+stride, ... < stop: wv = |through-plane cycles per mm of thickness|,
+    fv = TE ratio (1 for mode 0), 0 where no echo is acquired."""
+    j = 0
+    for v in range(start, stop, stride):
+        if mode == 0:
+            wv[j] = abs(gn[t, v] * te + zs)
+            fv[j] = 1.0
+        else:
+            iv = inv[v]
+            ok = (iv > 0.0) & (iv >= lo) & (iv <= hi) & (abs(gro[t, v] * te * iv) <= 0.5)
+            wv[j] = abs(gn[t, v] * te * iv + zs) if ok else 0.0
+            fv[j] = iv if ok else 0.0
+        j += 1
+    return j
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _evaluate(wv, fv, n, thick, exact_sinc, table, step, tail_sinc, vals):
+    """vals[:n] = R(wv * thick) * fv: the exact sinc law, or the table (linear interpolation)."""
+    if exact_sinc:  # |sin(pi u)| / (pi u) from the argument reduced to [-1/2, 1/2]: vectorises
+        c1, c2, c3, c4, c5, c6, c7 = _SIN_PI_COEFFS
+        for v in range(n):
+            u = wv[v] * thick
+            y = np.pi * (u - np.floor(u + 0.5))
+            y2 = y * y
+            s = 1.0 + y2 * (c1 + y2 * (c2 + y2 * (c3 + y2 * (c4 + y2 * (c5 + y2 * (c6 + y2 * c7))))))
+            far = abs(y * s) / (np.pi * max(u, 0.5))
+            vals[v] = (s if u < 0.5 else far) * fv[v]  # below 1/2 cycle the reduction is the identity
+        return
+    inv_step = 1.0 / step
+    lim = table.shape[0] - 1.0
+    n_past = 0
+    for v in range(n):  # branch-free body; the arguments past the table are fixed up after
+        x = wv[v] * thick * inv_step
+        past = x >= lim
+        xc = 0.0 if past else x
+        i = int(xc)
+        fr = xc - i
+        vals[v] = (table[i] + fr * (table[i + 1] - table[i])) * fv[v]
+        n_past += past
+    if n_past:
+        for v in range(n):
+            x = wv[v] * thick * inv_step
+            if x >= lim:
+                vals[v] = _lookup(x, table, 1.0, tail_sinc, step) * fv[v]
+
+
+@numba.njit(cache=True)
+def _count(vals, n, threshold, b_lo, b_hi):
+    """Counts over vals[:n]: under the threshold, under the bracket, inside the bracket."""
+    below = 0
+    under = 0
+    inside = 0
+    for v in range(n):
+        x = vals[v]
+        below += x < threshold
+        under += x < b_lo
+        inside += (x >= b_lo) & (x <= b_hi)
+    return below, under, inside
+
+
+@numba.njit(cache=True)
+def _append_inside(vals, n, b_lo, b_hi, out, c):
+    """Append the values of vals[:n] inside [b_lo, b_hi] to out[c:]; return the new length."""
+    for v in range(n):  # branch-free: always store, advance only for an inside value
+        x = vals[v]
+        out[c] = x
+        c += (x >= b_lo) & (x <= b_hi)
+    return c
 
 
 @numba.njit(cache=True, parallel=True)
 def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, block_sign, te_s, thickness_mm,
-                   zshim_cpmm, mode, t_pe_s, before_s, after_s, table, step, tail_sinc, threshold, out):
+                   zshim_cpmm, mode, t_pe_s, before_s, after_s, exact_sinc, table, step, tail_sinc, threshold,
+                   stride, half_width, out, misses):
     # Protocols are sorted so that a block shares (tilt, polarity, TE, z-shim) and differs only
     # in thickness; a group is a run of blocks with the same (tilt, polarity). One thread takes
-    # a whole group: the echo-time factor is computed once per group, the thickness-free part
-    # of the argument once per block.
+    # a whole group: the echo-time factor is computed once per group, the thickness-free terms
+    # once per block and chunk of voxels, and each protocol is one pass over the chunk.
     n_vox = gn.shape[1]
-    inv_step = 1.0 / step
     n_groups = group_block.shape[0] - 1
+    n_samp = (n_vox + stride - 1) // stride
+    k_hi = n_vox // 2  # ranks of the median's two middle values (equal for odd counts)
+    k_lo = (n_vox - 1) // 2
+    r_lo = max(int(k_lo / max(n_vox - 1, 1) * (n_samp - 1)) - half_width, -1)
+    r_hi = min(int(k_hi / max(n_vox - 1, 1) * (n_samp - 1)) + 1 + half_width, n_samp)
     for g in numba.prange(n_groups):
         t = block_tilt[group_block[g]]
         sign = block_sign[group_block[g]]
@@ -186,15 +218,19 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
         for v in range(n_vox):
             d = 1.0 + sign * gpe[t, v] * t_pe_s
             inv[v] = 1.0 / d if d > 0.0 else -1.0  # -1 flags "no echo forms"
-        vals = np.empty((_MAX_BLOCK, n_vox), np.float32)
-        vbits = vals.view(np.uint32)
-        rvals = np.empty((_MAX_BLOCK, max(n_roi, 1)))
-        hist1 = np.empty((_MAX_BLOCK, _L1), np.int32)
-        hist2 = np.empty(_L2, np.int32)
-        one = np.empty(1, np.float32)
-        below = np.empty(_MAX_BLOCK, np.int64)
-        below_r = np.empty(_MAX_BLOCK, np.int64)
-        thick = np.empty(_MAX_BLOCK)
+        n_max = 1  # protocols in the group's largest block
+        for blk in range(group_block[g], group_block[g + 1]):
+            n_max = max(n_max, block_start[blk + 1] - block_start[blk])
+        cand = np.empty((n_max, n_vox + 1))
+        n_cand = np.empty(n_max, np.int64)
+        n_under = np.empty(n_max, np.int64)
+        below = np.empty(n_max, np.int64)
+        b_lo = np.empty(n_max)
+        b_hi = np.empty(n_max)
+        size = max(_CHUNK, n_samp, n_roi)
+        wv = np.empty(size)
+        fv = np.empty(size)
+        vals = np.empty(size)
         for blk in range(group_block[g], group_block[g + 1]):
             p0 = block_start[blk]
             nb = block_start[blk + 1] - p0
@@ -202,53 +238,71 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
             zs = zshim_cpmm[p0]
             lo = 1.0 - before_s / te
             hi = 1.0 + after_s / te
-            for q in range(nb):
-                thick[q] = thickness_mm[p0 + q] * inv_step
-                below[q] = 0
-                below_r[q] = 0
-                for j in range(_L1):
-                    hist1[q, j] = 0
-            for v in range(n_vox):
-                if mode == 0:
-                    ok = True
-                    factor = 1.0
-                    w = abs(gn[t, v] * te + zs)
-                else:
-                    iv = inv[v]
-                    ok = iv > 0.0 and iv >= lo and iv <= hi and abs(gro[t, v] * te * iv) <= 0.5
-                    factor = iv
-                    w = abs(gn[t, v] * te * iv + zs)
-                for q in range(nb):
-                    if ok:
-                        val = _lookup(w * thick[q], table, 1.0, tail_sinc, step) * factor
-                    else:
-                        val = 0.0
-                    if val < threshold:
-                        below[q] += 1
-                        if v < n_roi:
-                            below_r[q] += 1
-                    if v < n_roi:  # ROI voxels come first; they keep float64 values
-                        rvals[q, v] = val
-                    vals[q, v] = np.float32(val)
-                    hist1[q, vbits[q, v] >> 15] += 1
+            # 1. the ROI (its voxels come first) and the sample that brackets each brain median
+            _terms(t, 0, n_roi, 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
             for q in range(nb):
                 p = p0 + q
-                out[p, 0] = _select_median(rvals[q], n_roi)
-                out[p, 1] = 100.0 * below_r[q] / n_roi if n_roi > 0 else np.nan
-                out[p, 2] = _radix_median(vals[q], n_vox, hist1[q], hist2, one)
+                _evaluate(wv, fv, n_roi, thickness_mm[p], exact_sinc, table, step, tail_sinc, vals)
+                out[p, 1] = 100.0 * _count(vals, n_roi, threshold, 0.0, 0.0)[0] / n_roi if n_roi > 0 else np.nan
+                out[p, 0] = _select_median(vals, n_roi)
+            _terms(t, 0, n_vox, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+            for q in range(nb):
+                _evaluate(wv, fv, n_samp, thickness_mm[p0 + q], exact_sinc, table, step, tail_sinc, vals)
+                b_hi[q] = _select(vals, n_samp, r_hi) if r_hi < n_samp else np.inf
+                b_lo[q] = _select(vals, min(r_hi, n_samp), r_lo) if r_lo >= 0 else -np.inf
+                n_cand[q] = 0
+                n_under[q] = 0
+                below[q] = 0
+            # 2. all voxels, a chunk at a time
+            for c0 in range(0, n_vox, _CHUNK):
+                m = _terms(t, c0, min(c0 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+                for q in range(nb):
+                    _evaluate(wv, fv, m, thickness_mm[p0 + q], exact_sinc, table, step, tail_sinc, vals)
+                    n_b, n_u, n_in = _count(vals, m, threshold, b_lo[q], b_hi[q])
+                    below[q] += n_b
+                    n_under[q] += n_u
+                    if n_in:
+                        n_cand[q] = _append_inside(vals, m, b_lo[q], b_hi[q], cand[q], n_cand[q])
+            # 3. brain medians
+            for q in range(nb):
+                p = p0 + q
                 out[p, 3] = 100.0 * below[q] / n_vox if n_vox > 0 else np.nan
+                c0 = n_under[q]
+                if n_vox == 0:
+                    out[p, 2] = np.nan
+                elif c0 <= k_lo and k_hi < c0 + n_cand[q]:
+                    k = k_hi - c0
+                    upper = _select(cand[q], n_cand[q], k)
+                    if k_lo == k_hi:
+                        out[p, 2] = upper
+                    else:
+                        lower = cand[q, 0]  # k >= 1 here; cand[:k] holds the values ranked below
+                        for i in range(1, k):
+                            if cand[q, i] > lower:
+                                lower = cand[q, i]
+                        out[p, 2] = 0.5 * (lower + upper)
+                else:  # the bracket missed: evaluate again and select over all voxels
+                    misses[p] = 1
+                    for c1 in range(0, n_vox, _CHUNK):
+                        m = _terms(t, c1, min(c1 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+                        _evaluate(wv, fv, m, thickness_mm[p], exact_sinc, table, step, tail_sinc, cand[q, c1:])
+                    out[p, 2] = _select_median(cand[q], n_vox)
 
 
 def sweep_stats(gn, gpe, gro, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,
-                before_s, after_s, table, step, tail_sinc, threshold):
+                before_s, after_s, table, step, tail_sinc, threshold, *, exact_sinc=False,
+                bracket_sigmas=_BRACKET_SIGMAS, return_misses=False):
     """Numba sweep: per-protocol ROI/brain median and % under threshold (see module doc).
 
     Protocols are grouped by (tilt, polarity) so that the per-voxel echo-time factor is
     computed once per group and by (TE, z-shim) so that only the thickness scaling is
-    repeated; the threads share out the groups. The ROI median is exact (float64
-    quickselect); the brain median is exact for the float32-rounded values (two-level
-    radix selection on their bit patterns), i.e. within about 1e-7 of the float64
-    median. Percentages use the float64 values.
+    repeated; the threads share out the groups. Both medians are exact in float64 (the
+    ROI's by quickselect, the brain's by a sample bracket and a selection inside it, with a
+    full selection when the bracket misses; see the comment above :func:`sample_stride`).
+
+    `bracket_sigmas` sets the bracket's half-width in standard deviations of the sample
+    rank (smaller: fewer candidates, more misses; it never changes the result).
+    With `return_misses`, also returns a bool array: protocols whose bracket missed.
     """
     roi = np.asarray(roi, bool)
     order = np.concatenate([np.flatnonzero(roi), np.flatnonzero(~roi)])
@@ -263,27 +317,33 @@ def sweep_stats(gn, gpe, gro, roi, tilt_index, pe_sign, te_s, thickness_mm, zshi
     new_block = new_group | np.r_[True, (te[1:] != te[:-1]) | (zs[1:] != zs[:-1])]
     starts = []
     group_block = []
-    run = 0
     for i in range(perm.size):
         if new_group[i]:
             group_block.append(len(starts))
-        if new_block[i] or run == _MAX_BLOCK:
+        if new_block[i]:
             starts.append(i)
-            run = 0
-        run += 1
     block_start = np.array(starts + [perm.size], np.int64)
     group_block = np.array(group_block + [len(starts)], np.int64)
     out = np.empty((perm.size, 4))
+    misses = np.zeros(perm.size, np.int8)
+    n_vox = np.shape(gn)[1]
+    stride = sample_stride(n_vox)
+    n_samp = (n_vox + stride - 1) // stride
+    half_width = int(np.ceil(bracket_sigmas * 0.5 * np.sqrt(n_samp)))
     if order.size and not np.array_equal(order, np.arange(order.size)):
         gn, gpe, gro = (np.asarray(a, np.float64)[:, order] for a in (gn, gpe, gro))
     if perm.size:
         _sweep_grouped(np.ascontiguousarray(gn, np.float64), np.ascontiguousarray(gpe, np.float64),
                        np.ascontiguousarray(gro, np.float64), int(roi.sum()), group_block, block_start,
                        ti[block_start[:-1]], sg[block_start[:-1]], te, thickness_mm[perm], zs, int(mode),
-                       float(t_pe_s), float(before_s), float(after_s), np.asarray(table, np.float64), float(step),
-                       bool(tail_sinc), float(threshold), out)
+                       float(t_pe_s), float(before_s), float(after_s), bool(exact_sinc), np.asarray(table, np.float64), float(step),
+                       bool(tail_sinc), float(threshold), stride, half_width, out, misses)
     result = np.empty_like(out)
     result[perm] = out
+    if return_misses:
+        missed = np.empty_like(misses)
+        missed[perm] = misses
+        return result, missed.astype(bool)
     return result
 
 

@@ -290,7 +290,8 @@ def sweep(
         before = after = 0.0
     if engine == "numba":
         stats = kernels.sweep_stats(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
-                                    before, after, prof.table, prof.step, prof.tail == "sinc", threshold)
+                                    before, after, prof.table, prof.step, prof.tail == "sinc", threshold,
+                                    exact_sinc=prof.kind == "rect")
     else:
         stats = kernels.sweep_stats_reference(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
                                               t_pe, before, after, prof.retention, threshold)

@@ -131,9 +131,9 @@ def _random_smooth_inputs(n_tilts=3, n_vox=3001, seed=1):
     return gn, gpe, gro, roi
 
 
-@pytest.mark.parametrize("profile", ["rect", "gaussian", "rf"])
+@pytest.mark.parametrize("profile, exact_sinc", [("rect", False), ("rect", True), ("gaussian", False), ("rf", False)])
 @pytest.mark.parametrize("mode", [0, 1])
-def test_numba_sweep_matches_numpy_reference(profile, mode):
+def test_numba_sweep_matches_numpy_reference(profile, exact_sinc, mode):
     gn, gpe, gro, roi = _random_smooth_inputs()
     protocols = plan.protocol_grid([1.5, 2.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1), (0.0, -1.5))
     ti = np.array([int(p.tilt_deg) for p in protocols])
@@ -143,14 +143,59 @@ def test_numba_sweep_matches_numpy_reference(profile, mode):
     zs = np.array([dp.zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols])
     prof = dp.slice_profile(profile)
     args = (gn, gpe, gro, roi, ti, sg, te, th, zs, mode, 64 * 5e-4, 12e-3, 16e-3)
-    fast = kernels.sweep_stats(*args, prof.table, prof.step, prof.tail == "sinc", 0.5)
+    fast = kernels.sweep_stats(*args, prof.table, prof.step, prof.tail == "sinc", 0.5, exact_sinc=exact_sinc)
     ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
-    assert np.allclose(fast[:, [0, 2]], ref[:, [0, 2]], atol=2e-6)
+    assert np.allclose(fast[:, [0, 2]], ref[:, [0, 2]], atol=1e-9 if exact_sinc else 2e-6)
     # percentages may differ only by a voxel sitting within the table error of the threshold
     assert np.allclose(fast[:, [1, 3]], ref[:, [1, 3]], atol=100.0 / 600 + 1e-9)
     assert np.mean(fast[:, [1, 3]] == ref[:, [1, 3]]) > 0.95
     if mode == 1:
         assert (ref[:, 3] > 0).any()  # some echoes lost: the window branch is exercised
+
+
+def test_exact_sinc_evaluation_matches_numpy_sinc():
+    # |sinc| by argument reduction and a Taylor series, against numpy.sinc (the published sinc law)
+    u = np.concatenate([[0.0, 1e-12, 0.25, 0.5, 0.5 + 1e-12, 1.0, 2.0, 2.5, 63.999, 64.0, 1e4 + 0.3],
+                        np.random.default_rng(3).uniform(0, 40, 5000)])
+    f = np.linspace(0.5, 1.5, u.size)
+    vals = np.empty(u.size)
+    kernels._evaluate(u, f, u.size, 1.0, True, np.zeros(2), 1.0, False, vals)
+    assert np.allclose(vals, np.abs(np.sinc(u)) * f, rtol=0, atol=1e-11)
+
+
+@pytest.mark.parametrize("n_vox", [13000, 13001])
+def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
+    # Voxels on the sample's stride (every third or so) get a steep gradient (near-zero retention),
+    # all others almost none: the sample then brackets the wrong place and every protocol takes the fallback, which
+    # must still give numpy's median.
+    gn = np.full((1, n_vox), 0.5) + np.linspace(0, 0.2, n_vox)
+    gn[0, :: kernels.sample_stride(n_vox)] = 40.0
+    gpe = np.zeros((1, n_vox))
+    gro = np.zeros((1, n_vox))
+    roi = np.zeros(n_vox, bool)
+    roi[:50] = True
+    prof = dp.slice_profile("rect")
+    args = (gn, gpe, gro, roi, np.zeros(3, int), np.ones(3, int), np.full(3, 0.03), np.array([2.0, 3.0, 4.0]),
+            np.zeros(3), 0, 0.0, 0.0, 0.0)
+    for exact_sinc in (False, True):
+        fast, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=exact_sinc,
+                                           return_misses=True)
+        ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
+        assert missed.all()
+        assert np.allclose(fast, ref, atol=1e-9 if exact_sinc else 2e-6)
+    # a zero-width bracket misses often on random data; results must not change
+    gn, gpe, gro, roi = _random_smooth_inputs(n_vox=n_vox)
+    protocols = plan.protocol_grid([1.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1))
+    args = (gn, gpe, gro, roi, np.array([int(p.tilt_deg) for p in protocols]),
+            np.array([p.pe_sign for p in protocols]), np.array([p.te_s for p in protocols]),
+            np.array([p.thickness_mm for p in protocols]), np.zeros(len(protocols)), 1, 64 * 5e-4, 12e-3, 16e-3)
+    narrow, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=True,
+                                         bracket_sigmas=0.0, return_misses=True)
+    wide, wide_missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=True,
+                                            return_misses=True)
+    assert missed.any() and not wide_missed.any()
+    assert np.array_equal(narrow, wide)
+    assert np.allclose(wide, kernels.sweep_stats_reference(*args, prof.retention, 0.5), atol=1e-9)
 
 
 def test_kernel_medians_exact_on_ties_and_even_counts():
