@@ -6,9 +6,12 @@ a threshold, brain median, brain percentage under the threshold.
 
 Inputs (shared by the kernel and the reference)
 ------------------------------------------------
-gn, gpe, gro : (n_tilts, n_vox) float64
-    Gradient along the slice normal (Hz/mm), field change per PE voxel step and per
-    readout voxel step (Hz) for each tilt.
+grad : (3, n_vox) float64
+    World gradient of the B0 map at each voxel (Hz/mm).
+dirs : (n_tilts, 3, 3) float64
+    Per tilt, rows: the slice normal (unit), the PE voxel step and the readout voxel step
+    (mm). Their products with `grad` give the gradient along the normal (Hz/mm) and the
+    field change per PE and per readout voxel step (Hz).
 roi : (n_vox,) bool
     ROI membership of each brain voxel.
 tilt_index, pe_sign : (n_protocols,) int64
@@ -34,7 +37,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference"]
+__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient"]
 
 
 @numba.njit(cache=True, inline="always")
@@ -124,18 +127,18 @@ def sample_stride(n_vox: int) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _terms(t, start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
+def _terms(start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
     """For voxels start, start+stride, ... < stop: wv = |through-plane cycles per mm of thickness|,
     fv = TE ratio (1 for mode 0), 0 where no echo is acquired."""
     j = 0
     for v in range(start, stop, stride):
         if mode == 0:
-            wv[j] = abs(gn[t, v] * te + zs)
+            wv[j] = abs(gn[v] * te + zs)
             fv[j] = 1.0
         else:
             iv = inv[v]
-            ok = (iv > 0.0) & (iv >= lo) & (iv <= hi) & (abs(gro[t, v] * te * iv) <= 0.5)
-            wv[j] = abs(gn[t, v] * te * iv + zs) if ok else 0.0
+            ok = (iv > 0.0) & (iv >= lo) & (iv <= hi) & (abs(gro[v] * te * iv) <= 0.5)
+            wv[j] = abs(gn[v] * te * iv + zs) if ok else 0.0
             fv[j] = iv if ok else 0.0
         j += 1
     return j
@@ -196,15 +199,30 @@ def _append_inside(vals, n, b_lo, b_hi, out, c):
     return c
 
 
+@numba.njit(cache=True, error_model="numpy")
+def _project(grad, dirs_t, signed_t_pe_s, gn, gro, inv):
+    """Gradient along the normal and per readout step, and the echo-time factor 1 / (1 + s g_pe T_pe)."""
+    n0, n1, n2 = dirs_t[0, 0], dirs_t[0, 1], dirs_t[0, 2]
+    p0, p1, p2 = dirs_t[1, 0], dirs_t[1, 1], dirs_t[1, 2]
+    r0, r1, r2 = dirs_t[2, 0], dirs_t[2, 1], dirs_t[2, 2]
+    for v in range(grad.shape[1]):
+        x, y, z = grad[0, v], grad[1, v], grad[2, v]
+        gn[v] = n0 * x + n1 * y + n2 * z
+        gro[v] = r0 * x + r1 * y + r2 * z
+        d = 1.0 + signed_t_pe_s * (p0 * x + p1 * y + p2 * z)
+        inv[v] = 1.0 / d if d > 0.0 else -1.0  # -1 flags "no echo forms"
+
+
 @numba.njit(cache=True, parallel=True)
-def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, block_sign, te_s, thickness_mm,
+def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, block_sign, te_s, thickness_mm,
                    zshim_cpmm, mode, t_pe_s, before_s, after_s, exact_sinc, table, step, tail_sinc, threshold,
                    stride, half_width, out, misses):
     # Protocols are sorted so that a block shares (tilt, polarity, TE, z-shim) and differs only
     # in thickness; a group is a run of blocks with the same (tilt, polarity). One thread takes
-    # a whole group: the echo-time factor is computed once per group, the thickness-free terms
+    # a whole group: the projections of the gradient and the echo-time factor are computed once
+    # per group, the thickness-free terms
     # once per block and chunk of voxels, and each protocol is one pass over the chunk.
-    n_vox = gn.shape[1]
+    n_vox = grad.shape[1]
     n_groups = group_block.shape[0] - 1
     n_samp = (n_vox + stride - 1) // stride
     k_hi = n_vox // 2  # ranks of the median's two middle values (equal for odd counts)
@@ -214,10 +232,10 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
     for g in numba.prange(n_groups):
         t = block_tilt[group_block[g]]
         sign = block_sign[group_block[g]]
+        gn = np.empty(n_vox)
+        gro = np.empty(n_vox)
         inv = np.empty(n_vox)
-        for v in range(n_vox):
-            d = 1.0 + sign * gpe[t, v] * t_pe_s
-            inv[v] = 1.0 / d if d > 0.0 else -1.0  # -1 flags "no echo forms"
+        _project(grad, dirs[t], sign * t_pe_s, gn, gro, inv)
         n_max = 1  # protocols in the group's largest block
         for blk in range(group_block[g], group_block[g + 1]):
             n_max = max(n_max, block_start[blk + 1] - block_start[blk])
@@ -239,13 +257,13 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
             lo = 1.0 - before_s / te
             hi = 1.0 + after_s / te
             # 1. the ROI (its voxels come first) and the sample that brackets each brain median
-            _terms(t, 0, n_roi, 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+            _terms(0, n_roi, 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
             for q in range(nb):
                 p = p0 + q
                 _evaluate(wv, fv, n_roi, thickness_mm[p], exact_sinc, table, step, tail_sinc, vals)
                 out[p, 1] = 100.0 * _count(vals, n_roi, threshold, 0.0, 0.0)[0] / n_roi if n_roi > 0 else np.nan
                 out[p, 0] = _select_median(vals, n_roi)
-            _terms(t, 0, n_vox, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+            _terms(0, n_vox, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
             for q in range(nb):
                 _evaluate(wv, fv, n_samp, thickness_mm[p0 + q], exact_sinc, table, step, tail_sinc, vals)
                 b_hi[q] = _select(vals, n_samp, r_hi) if r_hi < n_samp else np.inf
@@ -255,7 +273,7 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
                 below[q] = 0
             # 2. all voxels, a chunk at a time
             for c0 in range(0, n_vox, _CHUNK):
-                m = _terms(t, c0, min(c0 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+                m = _terms(c0, min(c0 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
                 for q in range(nb):
                     _evaluate(wv, fv, m, thickness_mm[p0 + q], exact_sinc, table, step, tail_sinc, vals)
                     n_b, n_u, n_in = _count(vals, m, threshold, b_lo[q], b_hi[q])
@@ -284,18 +302,19 @@ def _sweep_grouped(gn, gpe, gro, n_roi, group_block, block_start, block_tilt, bl
                 else:  # the bracket missed: evaluate again and select over all voxels
                     misses[p] = 1
                     for c1 in range(0, n_vox, _CHUNK):
-                        m = _terms(t, c1, min(c1 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
+                        m = _terms(c1, min(c1 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
                         _evaluate(wv, fv, m, thickness_mm[p], exact_sinc, table, step, tail_sinc, cand[q, c1:])
                     out[p, 2] = _select_median(cand[q], n_vox)
 
 
-def sweep_stats(gn, gpe, gro, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,
+def sweep_stats(grad, dirs, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,
                 before_s, after_s, table, step, tail_sinc, threshold, *, exact_sinc=False,
                 bracket_sigmas=_BRACKET_SIGMAS, return_misses=False):
     """Numba sweep: per-protocol ROI/brain median and % under threshold (see module doc).
 
-    Protocols are grouped by (tilt, polarity) so that the per-voxel echo-time factor is
-    computed once per group and by (TE, z-shim) so that only the thickness scaling is
+    Protocols are grouped by (tilt, polarity) so that the projections of the gradient and
+    the per-voxel echo-time factor are computed once per group (by the thread that takes
+    it; no (tilt, voxel) arrays are stored) and by (TE, z-shim) so that only the thickness scaling is
     repeated; the threads share out the groups. Both medians are exact in float64 (the
     ROI's by quickselect, the brain's by a sample bracket and a selection inside it, with a
     full selection when the bracket misses; see the comment above :func:`sample_stride`).
@@ -326,15 +345,16 @@ def sweep_stats(gn, gpe, gro, roi, tilt_index, pe_sign, te_s, thickness_mm, zshi
     group_block = np.array(group_block + [len(starts)], np.int64)
     out = np.empty((perm.size, 4))
     misses = np.zeros(perm.size, np.int8)
-    n_vox = np.shape(gn)[1]
+    grad = np.asarray(grad, np.float64)
+    n_vox = grad.shape[1]
     stride = sample_stride(n_vox)
     n_samp = (n_vox + stride - 1) // stride
     half_width = int(np.ceil(bracket_sigmas * 0.5 * np.sqrt(n_samp)))
     if order.size and not np.array_equal(order, np.arange(order.size)):
-        gn, gpe, gro = (np.asarray(a, np.float64)[:, order] for a in (gn, gpe, gro))
+        grad = grad[:, order]
     if perm.size:
-        _sweep_grouped(np.ascontiguousarray(gn, np.float64), np.ascontiguousarray(gpe, np.float64),
-                       np.ascontiguousarray(gro, np.float64), int(roi.sum()), group_block, block_start,
+        _sweep_grouped(np.ascontiguousarray(grad), np.ascontiguousarray(dirs, np.float64), int(roi.sum()),
+                       group_block, block_start,
                        ti[block_start[:-1]], sg[block_start[:-1]], te, thickness_mm[perm], zs, int(mode),
                        float(t_pe_s), float(before_s), float(after_s), bool(exact_sinc), np.asarray(table, np.float64), float(step),
                        bool(tail_sinc), float(threshold), stride, half_width, out, misses)
@@ -361,11 +381,19 @@ def protocol_values_reference(gn, gpe, gro, te, thick, zshim, sign, mode, t_pe_s
     return np.where(ok, retention(np.abs(gn * tl + zshim) * thick) * tl / te, 0.0)
 
 
-def sweep_stats_reference(gn, gpe, gro, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,
+def project_gradient(grad, dirs):
+    """(gn, gpe, gro), each (n_tilts, n_vox): `grad` (3, n_vox) projected on each tilt's `dirs` rows."""
+    dirs = np.asarray(dirs, np.float64)
+    projected = (dirs.reshape(-1, 3) @ np.asarray(grad, np.float64)).reshape(dirs.shape[0], 3, -1)
+    return projected[:, 0], projected[:, 1], projected[:, 2]
+
+
+def sweep_stats_reference(grad, dirs, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,
                           before_s, after_s, retention, threshold):
     """Plain-numpy reference of :func:`sweep_stats`; `retention` is a callable u -> R (exact profile)."""
     out = np.empty((te_s.shape[0], 4))
     roi = np.asarray(roi, bool)
+    gn, gpe, gro = project_gradient(grad, dirs)
     for p in range(te_s.shape[0]):
         t = tilt_index[p]
         vals = protocol_values_reference(gn[t], gpe[t], gro[t], te_s[p], thickness_mm[p], zshim_cpmm[p], pe_sign[p],

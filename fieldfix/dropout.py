@@ -93,7 +93,7 @@ _GAUSS_TABLE_MAX = 6.0
 # --------------------------------------------------------------------------- gradients
 
 
-def field_gradient_hz_per_mm(b0_hz: np.ndarray, affine: np.ndarray) -> np.ndarray:
+def field_gradient_hz_per_mm(b0_hz: np.ndarray, affine: np.ndarray, at: np.ndarray | None = None) -> np.ndarray:
     """Gradient of a B0 map in Hz/mm along world x, y, z.
 
     Uses :func:`fieldfix.geometry.world_gradient` (central differences per voxel axis,
@@ -105,10 +105,12 @@ def field_gradient_hz_per_mm(b0_hz: np.ndarray, affine: np.ndarray) -> np.ndarra
     ----------
     b0_hz : (X, Y, Z) array
     affine : (4, 4) array
+    at : (N,) int array, optional
+        Flat indices of the voxels wanted (see :func:`fieldfix.geometry.world_gradient`).
 
     Returns
     -------
-    (X, Y, Z, 3) float64 array, Hz/mm
+    (X, Y, Z, 3) float64 array, or (N, 3) with `at`; Hz/mm
 
     Example
     -------
@@ -120,7 +122,7 @@ def field_gradient_hz_per_mm(b0_hz: np.ndarray, affine: np.ndarray) -> np.ndarra
     b0_hz = np.asarray(b0_hz, float)
     if b0_hz.ndim != 3:
         raise GeometryError(f"the B0 map must be 3D, got {b0_hz.ndim} dimensions")
-    return world_gradient(b0_hz, affine)
+    return world_gradient(b0_hz, affine, at)
 
 
 # --------------------------------------------------------------------------- geometry

@@ -282,7 +282,7 @@ def overlap_fraction(src_shape, src_affine, dst_shape, dst_affine) -> float:
     return float(inside.mean())
 
 
-def world_gradient(field: np.ndarray, affine: np.ndarray) -> np.ndarray:
+def world_gradient(field: np.ndarray, affine: np.ndarray, at: np.ndarray | None = None) -> np.ndarray:
     """Spatial gradient of a 3D map in world coordinates, per millimetre.
 
     Central differences along each voxel axis (one-sided at the edges,
@@ -295,10 +295,13 @@ def world_gradient(field: np.ndarray, affine: np.ndarray) -> np.ndarray:
     field : (X, Y, Z) array
         For example a B0 map in Hz, giving a gradient in Hz/mm.
     affine : (4, 4) array
+    at : (N,) int array, optional
+        Flat (C-order) indices of the voxels wanted; only their differences are computed,
+        with the same values as the full map gives there.
 
     Returns
     -------
-    (X, Y, Z, 3) float64 array
+    (X, Y, Z, 3) float64 array, or (N, 3) with `at`
         Derivatives along world x (R), y (A), z (S).
 
     Examples
@@ -312,8 +315,22 @@ def world_gradient(field: np.ndarray, affine: np.ndarray) -> np.ndarray:
     field = np.asarray(field, float)
     if field.ndim != 3:
         raise GeometryError(f"a world gradient needs a 3D map, got {field.ndim} dimensions")
-    per_index = np.stack(
-        [np.gradient(field, axis=a) if field.shape[a] > 1 else np.zeros_like(field) for a in range(3)], axis=-1
-    )
     inverse_transpose = np.linalg.inv(np.asarray(affine, float)[:3, :3]).T
+    if at is None:
+        per_index = np.stack(
+            [np.gradient(field, axis=a) if field.shape[a] > 1 else np.zeros_like(field) for a in range(3)], axis=-1
+        )
+        return per_index @ inverse_transpose.T
+    at = np.asarray(at, np.intp).ravel()
+    flat = field.ravel()
+    per_index = np.zeros((at.size, 3))
+    coords = np.unravel_index(at, field.shape)
+    stride = 1
+    for a in (2, 1, 0):  # as numpy.gradient: central inside, one-sided at the edges
+        n = field.shape[a]
+        if n > 1:
+            up = coords[a] < n - 1
+            down = coords[a] > 0
+            per_index[:, a] = (flat[at + stride * up] - flat[at - stride * down]) / (up.astype(float) + down)
+        stride *= n
     return per_index @ inverse_transpose.T

@@ -32,7 +32,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from . import _dropout_kernels as kernels
 from .dropout import (
@@ -124,8 +123,8 @@ def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> 
 
     The spread of the voxel-centre projections plus the projected size of one voxel.
     `normal` may also be an (N, 3) array of directions; the N extents then come from one
-    pass over the mask's corner voxels (the extreme projections of a voxel set are reached
-    at voxels of its bounding box faces, so only voxels on the mask's outline are needed).
+    pass over the first and last mask voxel of each column along the last axis (the
+    extremes of a linear projection of a voxel set are reached there).
 
     Example
     -------
@@ -135,9 +134,15 @@ def mask_extent_mm(mask: np.ndarray, affine: np.ndarray, normal: np.ndarray) -> 
     """
     mask = np.asarray(mask, bool)
     normals = np.atleast_2d(np.asarray(normal, float))
-    # Extreme projections lie on the outline (voxels with a neighbour outside the mask).
-    outline = mask & ~ndimage.binary_erosion(mask, border_value=0)
-    idx = np.argwhere(outline)
+    # A projection is linear along each column of the last axis, so its extremes are reached at
+    # the first or last mask voxel of some column: only those voxels are needed.
+    if mask.ndim != 3:
+        raise GeometryError(f"a mask extent needs a 3D mask, got {mask.ndim} dimensions")
+    columns = mask.any(axis=2)
+    i, j = np.nonzero(columns)
+    first = mask[i, j].argmax(axis=1)
+    last = mask.shape[2] - 1 - mask[i, j, ::-1].argmax(axis=1)
+    idx = np.column_stack([np.r_[i, i], np.r_[j, j], np.r_[first, last]])
     if idx.size == 0:
         extents = np.zeros(len(normals))
     else:
@@ -269,11 +274,9 @@ def sweep(
     idx = np.flatnonzero(brain.ravel())
     in_roi = roi.ravel()[idx]
     idx = np.concatenate([idx[in_roi], idx[~in_roi]])
-    grad = field_gradient_hz_per_mm(np.where(np.isfinite(b0_hz), b0_hz, 0.0), affine).reshape(-1, 3)[idx]
-    gn = np.stack([grad @ f.normal for f in frames])
-    gpe = np.stack([grad @ f.pe_step_mm for f in frames])
-    gro = np.stack([grad @ f.ro_step_mm for f in frames])
-    del grad
+    finite = b0_hz if np.isfinite(b0_hz).all() else np.where(np.isfinite(b0_hz), b0_hz, 0.0)
+    grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)
+    dirs = np.array([[f.normal, f.pe_step_mm, f.ro_step_mm] for f in frames])
     roi_in_brain = roi.ravel()[idx]
 
     tilt_index = np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64)
@@ -289,11 +292,11 @@ def sweep(
     else:
         before = after = 0.0
     if engine == "numba":
-        stats = kernels.sweep_stats(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
+        stats = kernels.sweep_stats(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
                                     before, after, prof.table, prof.step, prof.tail == "sinc", threshold,
                                     exact_sinc=prof.kind == "rect")
     else:
-        stats = kernels.sweep_stats_reference(gn, gpe, gro, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
+        stats = kernels.sweep_stats_reference(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
                                               t_pe, before, after, prof.retention, threshold)
 
     cover = brain if coverage == "brain" else roi

@@ -123,18 +123,19 @@ def test_planner_picks_tilt_perpendicular_to_gradient():
 
 
 def _random_smooth_inputs(n_tilts=3, n_vox=3001, seed=1):
+    """World gradients (3, n_vox) and per-tilt (normal, PE step, readout step) rows."""
     rng = np.random.default_rng(seed)
-    gn = rng.normal(0, 4, (n_tilts, n_vox))
-    gpe = rng.normal(0, 2.5, (n_tilts, n_vox))
-    gro = rng.normal(0, 10, (n_tilts, n_vox))
+    grad = rng.normal(0, 4, (3, n_vox))
+    # rows: unit normal (rotated z), PE step (rotated y, 0.6 mm), readout step (rotated x, 2.5 mm)
+    dirs = np.array([dp.tilt_rotation(10.0 * t).T[[2, 1, 0]] * [[1.0], [0.6], [2.5]] for t in range(n_tilts)])
     roi = rng.random(n_vox) < 0.2
-    return gn, gpe, gro, roi
+    return grad, dirs, roi
 
 
 @pytest.mark.parametrize("profile, exact_sinc", [("rect", False), ("rect", True), ("gaussian", False), ("rf", False)])
 @pytest.mark.parametrize("mode", [0, 1])
 def test_numba_sweep_matches_numpy_reference(profile, exact_sinc, mode):
-    gn, gpe, gro, roi = _random_smooth_inputs()
+    grad, dirs, roi = _random_smooth_inputs()
     protocols = plan.protocol_grid([1.5, 2.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1), (0.0, -1.5))
     ti = np.array([int(p.tilt_deg) for p in protocols])
     sg = np.array([p.pe_sign for p in protocols])
@@ -142,7 +143,7 @@ def test_numba_sweep_matches_numpy_reference(profile, exact_sinc, mode):
     th = np.array([p.thickness_mm for p in protocols])
     zs = np.array([dp.zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols])
     prof = dp.slice_profile(profile)
-    args = (gn, gpe, gro, roi, ti, sg, te, th, zs, mode, 64 * 5e-4, 12e-3, 16e-3)
+    args = (grad, dirs, roi, ti, sg, te, th, zs, mode, 64 * 5e-4, 12e-3, 16e-3)
     fast = kernels.sweep_stats(*args, prof.table, prof.step, prof.tail == "sinc", 0.5, exact_sinc=exact_sinc)
     ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
     assert np.allclose(fast[:, [0, 2]], ref[:, [0, 2]], atol=1e-9 if exact_sinc else 2e-6)
@@ -168,14 +169,14 @@ def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
     # Voxels on the sample's stride (every third or so) get a steep gradient (near-zero retention),
     # all others almost none: the sample then brackets the wrong place and every protocol takes the fallback, which
     # must still give numpy's median.
-    gn = np.full((1, n_vox), 0.5) + np.linspace(0, 0.2, n_vox)
-    gn[0, :: kernels.sample_stride(n_vox)] = 40.0
-    gpe = np.zeros((1, n_vox))
-    gro = np.zeros((1, n_vox))
+    grad = np.zeros((3, n_vox))  # rows: along the normal, per PE step, per readout step
+    grad[0] = 0.5 + np.linspace(0, 0.2, n_vox)
+    grad[0, :: kernels.sample_stride(n_vox)] = 40.0
+    dirs = np.eye(3)[None]
     roi = np.zeros(n_vox, bool)
     roi[:50] = True
     prof = dp.slice_profile("rect")
-    args = (gn, gpe, gro, roi, np.zeros(3, int), np.ones(3, int), np.full(3, 0.03), np.array([2.0, 3.0, 4.0]),
+    args = (grad, dirs, roi, np.zeros(3, int), np.ones(3, int), np.full(3, 0.03), np.array([2.0, 3.0, 4.0]),
             np.zeros(3), 0, 0.0, 0.0, 0.0)
     for exact_sinc in (False, True):
         fast, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=exact_sinc,
@@ -184,9 +185,9 @@ def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
         assert missed.all()
         assert np.allclose(fast, ref, atol=1e-9 if exact_sinc else 2e-6)
     # a zero-width bracket misses often on random data; results must not change
-    gn, gpe, gro, roi = _random_smooth_inputs(n_vox=n_vox)
+    grad, dirs, roi = _random_smooth_inputs(n_vox=n_vox)
     protocols = plan.protocol_grid([1.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1))
-    args = (gn, gpe, gro, roi, np.array([int(p.tilt_deg) for p in protocols]),
+    args = (grad, dirs, roi, np.array([int(p.tilt_deg) for p in protocols]),
             np.array([p.pe_sign for p in protocols]), np.array([p.te_s for p in protocols]),
             np.array([p.thickness_mm for p in protocols]), np.zeros(len(protocols)), 1, 64 * 5e-4, 12e-3, 16e-3)
     narrow, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=True,
@@ -200,15 +201,14 @@ def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
 
 def test_kernel_medians_exact_on_ties_and_even_counts():
     # Even voxel count with many exact ties (zero gradient -> retention exactly 1, lost -> 0).
-    gn = np.zeros((1, 10))
-    gn[0, :3] = [2.0, 4.0, 6.0]
-    gpe = np.zeros((1, 10))
-    gpe[0, 7:] = -50.0  # no echo for the + polarity
-    gro = np.zeros((1, 10))
+    grad = np.zeros((3, 10))  # rows: along the normal, per PE step, per readout step
+    grad[0, :3] = [2.0, 4.0, 6.0]
+    grad[1, 7:] = -50.0  # no echo for the + polarity
+    dirs = np.eye(3)[None]
     roi = np.zeros(10, bool)
     roi[:4] = True
     prof = dp.slice_profile("rect")
-    args = (gn, gpe, gro, roi, np.array([0]), np.array([1]), np.array([0.03]), np.array([3.0]), np.zeros(1), 1,
+    args = (grad, dirs, roi, np.array([0]), np.array([1]), np.array([0.03]), np.array([3.0]), np.zeros(1), 1,
             0.032, 0.016, 0.016)
     fast = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5)
     ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
@@ -229,6 +229,22 @@ def test_numba_and_numpy_engines_agree_through_sweep():
     for r in a:
         assert r["roi_median"] == pytest.approx(key[r["protocol"]]["roi_median"], abs=2e-6)
         assert r["brain_median"] == pytest.approx(key[r["protocol"]]["brain_median"], abs=2e-6)
+
+
+def test_mask_extent_equals_brute_force_projection_of_every_voxel():
+    # a hollow, non-convex mask on an oblique grid, against projecting all voxel centres
+    rng = np.random.default_rng(2)
+    ijk = np.indices((14, 12, 10)).transpose(1, 2, 3, 0)
+    r = np.linalg.norm(ijk - [7, 6, 5], axis=-1)
+    mask = (r < 5.5) & (r > 3.0) & (rng.random(r.shape) < 0.7)
+    affine = np.eye(4)
+    affine[:3, :3] = dp.tilt_rotation(25.0) @ np.diag([2.0, 2.5, 3.0])
+    normals = rng.normal(size=(7, 3))
+    normals /= np.linalg.norm(normals, axis=1, keepdims=True)
+    proj_axes = normals @ affine[:3, :3]
+    along = np.argwhere(mask) @ proj_axes.T
+    expected = along.max(0) - along.min(0) + np.abs(proj_axes).sum(1)
+    assert np.allclose(plan.mask_extent_mm(mask, affine, normals), expected, atol=1e-9)
 
 
 def test_scan_time_arithmetic():
