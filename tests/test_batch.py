@@ -12,6 +12,7 @@ principle" and "BIDS Derivatives").
 from __future__ import annotations
 
 import json
+import os
 import sys
 from pathlib import Path
 
@@ -460,3 +461,67 @@ def test_cli_exit_status_and_options(dataset, tmp_path):
     assert missing.returncode == 2 and "scheduler file not found" in missing.stderr
     help_text = _cli("--help").stdout
     assert "--participant-label" in help_text and "not a medical device" in help_text
+
+
+def test_tasks_run_on_one_thread_in_process_and_limits_are_restored():
+    # --jobs N means N cores: a task run in this process (jobs=1) gets one numba thread and
+    # one BLAS/OpenMP thread, and the previous limits come back afterwards
+    import numba
+    from threadpoolctl import threadpool_info
+
+    from fieldfix.batch import _ThreadLimit
+
+    before_numba = numba.get_num_threads()
+    before_pools = [(i["prefix"], i["num_threads"]) for i in threadpool_info()]
+    with _ThreadLimit():
+        assert numba.get_num_threads() == 1
+        assert all(i["num_threads"] == 1 for i in threadpool_info())
+    assert numba.get_num_threads() == before_numba
+    assert [(i["prefix"], i["num_threads"]) for i in threadpool_info()] == before_pools
+
+
+def test_task_results_carry_start_time_and_worker(dataset, tmp_path, fake_workflows):
+    import datetime as dt
+    import socket
+
+    summary = batch.run_batch(dataset, tmp_path / "out", jobs=1)
+    log = json.loads((tmp_path / "out" / summary["log"]).read_text())
+    ran = [t for t in log["tasks"] if t["status"] == "done"]
+    assert ran
+    for t in ran:
+        assert dt.datetime.fromisoformat(t["started"]).tzinfo is not None
+        assert t["worker"] == f"{socket.gethostname()}:{os.getpid()}"
+
+
+def test_task_collector_scope_frees_task_garbage_and_restores_state():
+    import gc
+    import weakref
+
+    from fieldfix.batch import _YoungObjectsOnly
+
+    class Node:
+        pass
+
+    old = Node()
+    old.self = old  # a cycle made before the task: parked, not lost
+    old_ref = weakref.ref(old)
+    del old
+    thresholds = gc.get_threshold()
+    with _YoungObjectsOnly():
+        assert gc.get_freeze_count() > 0
+        young = Node()
+        young.self = young  # cyclic garbage made by the task
+        young_ref = weakref.ref(young)
+        del young
+    assert young_ref() is None  # freed when the task ended
+    assert gc.get_freeze_count() == 0 and gc.get_threshold() == thresholds
+    gc.collect()
+    assert old_ref() is None  # back in the normal generations and collectable
+    gc.freeze()  # a process that froze objects itself is left alone
+    try:
+        count = gc.get_freeze_count()
+        with _YoungObjectsOnly():
+            assert gc.get_freeze_count() == count
+        assert gc.get_freeze_count() == count
+    finally:
+        gc.unfreeze()
