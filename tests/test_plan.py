@@ -132,9 +132,10 @@ def _random_smooth_inputs(n_tilts=3, n_vox=3001, seed=1):
     return grad, dirs, roi
 
 
-@pytest.mark.parametrize("profile, exact_sinc", [("rect", False), ("rect", True), ("gaussian", False), ("rf", False)])
+@pytest.mark.parametrize("profile, analytic", [("rect", None), ("rect", "rect"), ("gaussian", None),
+                                               ("gaussian", "gaussian"), ("rf", None)])
 @pytest.mark.parametrize("mode", [0, 1])
-def test_numba_sweep_matches_numpy_reference(profile, exact_sinc, mode):
+def test_numba_sweep_matches_numpy_reference(profile, analytic, mode):
     grad, dirs, roi = _random_smooth_inputs()
     protocols = plan.protocol_grid([1.5, 2.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1), (0.0, -1.5))
     ti = np.array([int(p.tilt_deg) for p in protocols])
@@ -144,9 +145,9 @@ def test_numba_sweep_matches_numpy_reference(profile, exact_sinc, mode):
     zs = np.array([dp.zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols])
     prof = dp.slice_profile(profile)
     args = (grad, dirs, roi, ti, sg, te, th, zs, mode, 64 * 5e-4, 12e-3, 16e-3)
-    fast = kernels.sweep_stats(*args, prof.table, prof.step, prof.tail == "sinc", 0.5, exact_sinc=exact_sinc)
+    fast = kernels.sweep_stats(*args, prof.table, prof.step, prof.tail == "sinc", 0.5, analytic=analytic)
     ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
-    assert np.allclose(fast[:, [0, 2]], ref[:, [0, 2]], atol=1e-9 if exact_sinc else 2e-6)
+    assert np.allclose(fast[:, [0, 2]], ref[:, [0, 2]], atol=1e-9 if analytic else 2e-6)
     # percentages may differ only by a voxel sitting within the table error of the threshold
     assert np.allclose(fast[:, [1, 3]], ref[:, [1, 3]], atol=100.0 / 600 + 1e-9)
     assert np.mean(fast[:, [1, 3]] == ref[:, [1, 3]]) > 0.95
@@ -160,8 +161,23 @@ def test_exact_sinc_evaluation_matches_numpy_sinc():
                         np.random.default_rng(3).uniform(0, 40, 5000)])
     f = np.linspace(0.5, 1.5, u.size)
     vals = np.empty(u.size)
-    kernels._evaluate(u, f, u.size, 1.0, True, np.zeros(2), 1.0, False, vals)
+    kernels._evaluate(u, f, u.size, 1.0, 1, np.zeros(2), 1.0, False, vals)
     assert np.allclose(vals, np.abs(np.sinc(u)) * f, rtol=0, atol=1e-11)
+
+
+def test_gaussian_closed_form_evaluation_matches_numpy_exp():
+    # exp(-pi^2 u^2 / (4 ln 2)) (FWHM = thickness) by range reduction, against numpy.exp; zero from
+    # the table's end on, as the table gives
+    prof = dp.slice_profile("gaussian")
+    u_max = (prof.table.size - 1) * prof.step
+    u = np.concatenate([[0.0, 1e-9, 0.5, 1.0, 2.0, u_max - 1e-9, u_max, u_max + 3.0],
+                        np.random.default_rng(4).uniform(0, u_max, 5000)])
+    f = np.linspace(0.5, 1.5, u.size)
+    vals = np.empty(u.size)
+    kernels._evaluate(u, f, u.size, 1.0, 2, prof.table, prof.step, False, vals)
+    expected = np.where(u < u_max, np.exp(-(np.pi**2) * u**2 / (4.0 * np.log(2.0))), 0.0) * f
+    assert np.allclose(vals, expected, rtol=1e-12, atol=1e-15)
+    assert vals[0] == f[0]
 
 
 @pytest.mark.parametrize("n_vox", [13000, 13001])
@@ -178,21 +194,21 @@ def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
     prof = dp.slice_profile("rect")
     args = (grad, dirs, roi, np.zeros(3, int), np.ones(3, int), np.full(3, 0.03), np.array([2.0, 3.0, 4.0]),
             np.zeros(3), 0, 0.0, 0.0, 0.0)
-    for exact_sinc in (False, True):
-        fast, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=exact_sinc,
+    for analytic in (None, "rect"):
+        fast, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, analytic=analytic,
                                            return_misses=True)
         ref = kernels.sweep_stats_reference(*args, prof.retention, 0.5)
         assert missed.all()
-        assert np.allclose(fast, ref, atol=1e-9 if exact_sinc else 2e-6)
+        assert np.allclose(fast, ref, atol=1e-9 if analytic else 2e-6)
     # a zero-width bracket misses often on random data; results must not change
     grad, dirs, roi = _random_smooth_inputs(n_vox=n_vox)
     protocols = plan.protocol_grid([1.5, 3.0], [0.02, 0.035], [0, 1, 2], (1, -1))
     args = (grad, dirs, roi, np.array([int(p.tilt_deg) for p in protocols]),
             np.array([p.pe_sign for p in protocols]), np.array([p.te_s for p in protocols]),
             np.array([p.thickness_mm for p in protocols]), np.zeros(len(protocols)), 1, 64 * 5e-4, 12e-3, 16e-3)
-    narrow, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=True,
+    narrow, missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, analytic="rect",
                                          bracket_sigmas=0.0, return_misses=True)
-    wide, wide_missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, exact_sinc=True,
+    wide, wide_missed = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, analytic="rect",
                                             return_misses=True)
     assert missed.any() and not wide_missed.any()
     assert np.array_equal(narrow, wide)
