@@ -128,11 +128,19 @@ class Image:
     nifti : nibabel image (Nifti1Image or Nifti2Image)
     sidecar : dict
         Contents of the JSON file beside the image (``{}`` if none).
+    file_shape : tuple of int
+        Shape as stored in the file. Trailing axes of length 1 are dropped on loading (a
+        one-volume 4D run is read as 3D); writers use this to give such a file's outputs
+        its own dimensionality back. Empty when unknown (then equal to ``shape``).
+    file_zooms : tuple of float
+        Voxel sizes (and TR) as stored in the file, for the same reason.
     """
 
     path: Path
     nifti: Any
     sidecar: dict = field(default_factory=dict)
+    file_shape: tuple = ()
+    file_zooms: tuple = ()
 
     @property
     def affine(self) -> np.ndarray:
@@ -174,9 +182,10 @@ class Image:
                 return float(self.sidecar["RepetitionTime"])
             except (TypeError, ValueError):
                 raise InputError("RepetitionTime in the sidecar is not a number", sidecar_path(self.path)) from None
-        if self.ndim < 4:
+        zooms = self.header.get_zooms() if self.ndim >= 4 else self.file_zooms  # a one-volume run's TR
+        if len(zooms) < 4:
             return None
-        step = float(self.header.get_zooms()[3])
+        step = float(zooms[3])
         unit = self.header.get_xyzt_units()[1]
         scale = {"msec": 1e-3, "usec": 1e-6}.get(unit, 1.0)
         return step * scale if step > 0 else None
@@ -253,6 +262,8 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
         raise InputError(f"expected a NIfTI-1 or NIfTI-2 image, found {type(nifti).__name__}", path)
     try:
         _check_data_size(path, nifti)
+        file_shape = tuple(int(n) for n in nifti.shape)
+        file_zooms = tuple(float(z) for z in nifti.header.get_zooms())
         shape = nifti.shape
         while len(shape) > 3 and shape[-1] == 1:
             shape = shape[:-1]
@@ -266,7 +277,8 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
         if len(shape) not in allowed:
             wanted = " or ".join(f"{n}D" for n in allowed)
             raise InputError(f"image is {len(shape)}D with shape {tuple(shape)}; a {wanted} image is needed", path)
-    return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {})
+    return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {}, file_shape=file_shape,
+                 file_zooms=file_zooms)
 
 
 def _one_line(err: BaseException) -> str:
@@ -529,6 +541,8 @@ def _header_for(data_shape, affine, template, dtype, intent):
         q_code = int(src_header["qform_code"]) or 1
         s_code = int(src_header["sform_code"]) or 1
         zooms = list(src_header.get_zooms())
+        if len(getattr(template, "file_zooms", ())) > len(zooms):  # axes of length 1 dropped on loading
+            zooms = list(template.file_zooms)
         if len(data_shape) >= 4 and len(zooms) >= 4 and len(data_shape) == len(zooms):
             header.set_zooms(tuple(zooms[:3]) + tuple(zooms[3:len(data_shape)]))
     else:

@@ -519,3 +519,23 @@ def test_workflow_refuses_bad_recon_matrix_and_non_finite_volumes(tmp_path):
         run_unwarp([bad], b0_path, tmp_path / "o3")
     assert "nan_bold.nii.gz" in str(err.value)
     assert not any((tmp_path / "o3").glob("*")) if (tmp_path / "o3").exists() else True
+
+
+def test_workflow_keeps_a_one_volume_run_4d_with_its_tr(tmp_path):
+    # a 4D run with a single volume is read as 3D; its corrected output is written 4D again,
+    # with the TR of the input header (no sidecar TR here), checked through nibabel
+    affine = np.diag([2.0, 2.0, 2.0, 1.0])
+    shape = (8, 16, 3)
+    b0_path = save_image(tmp_path / "field.nii.gz", np.full(shape, 25.0), affine)
+    img = np.zeros(shape + (1,))
+    img[:, 8, :, 0] = 1.0
+    run = _write_run(tmp_path / "one.nii.gz", img, affine, tr_s=2.2,
+                     sidecar={"PhaseEncodingDirection": "j", "EffectiveEchoSpacing": 0.0005})
+    loaded = load_image(run)
+    assert loaded.shape == shape and loaded.file_shape == shape + (1,) and loaded.tr_s == pytest.approx(2.2)
+    (summary,) = run_unwarp([run], b0_path, tmp_path / "out", jacobian=False, parallel=False)
+    out = nib.load(summary["outputs"]["corrected"])
+    assert out.shape == shape + (1,)
+    assert out.header.get_zooms()[3] == pytest.approx(2.2)
+    profile = np.asanyarray(out.dataobj)[4, :, 1, 0]
+    assert np.arange(16) @ profile / profile.sum() == pytest.approx(8 - 0.2)

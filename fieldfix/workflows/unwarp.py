@@ -138,7 +138,8 @@ def _sequential(image: Image) -> Image:
     nifti = nib.load(str(image.path), keep_file_open=True)
     if tuple(nifti.shape) != image.shape:
         nifti = type(nifti)(nifti.dataobj.reshape(image.shape), nifti.affine, nifti.header)
-    return Image(path=image.path, nifti=nifti, sidecar=image.sidecar)
+    return Image(path=image.path, nifti=nifti, sidecar=image.sidecar, file_shape=image.file_shape,
+                 file_zooms=image.file_zooms)
 
 
 def _resolve_pe_code(pe_code, image: Image, timing_win) -> tuple[str, str]:
@@ -422,8 +423,11 @@ def _unwarp_one(image, code, code_source, timing, maps, mask, b0, mask_path, pat
     else:
         n_volumes = 1
         volume = _finite_volume(image, source.volume(0), 0)
-        save_image(paths["corrected"], apply_tables(tables, volume, parallel=parallel), affine,
-                   template=image, inputs=inputs, overwrite=overwrite, provenance=provenance)
+        corrected = apply_tables(tables, volume, parallel=parallel)
+        if len(image.file_shape) == 4:  # a one-volume run stays a 4D file, as it came
+            corrected = corrected[..., None]
+        save_image(paths["corrected"], corrected, affine, template=image, inputs=inputs, overwrite=overwrite,
+                   provenance=provenance)
     del source
 
     common = dict(template=image, inputs=inputs, overwrite=overwrite, provenance=provenance)
