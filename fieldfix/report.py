@@ -1594,7 +1594,7 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
         cards.append((f"Field map {fmap.get('name', '')}", rows))
     for i, run in enumerate(report.get("runs", [])):
         p = f"runs.{i}"
-        rows = [(f"Timing: {key}", f"{p}.timing.{key}", "{:.6g}", "") for key in (run.get("timing") or {})]
+        rows = [_timing_row(p, key, value) for key, value in (run.get("timing") or {}).items()]
         rows += [("Maximum |shift| in mask", f"{p}.max_abs_shift_mm", "{:.2f}", "mm"),
                  ("Maximum |shift| in mask", f"{p}.max_abs_shift_vox", "{:.2f}", "vox"),
                  ("Voxels shifted > 1 voxel", f"{p}.percent_over_one_voxel", "{:.1f}", "%"),
@@ -1622,6 +1622,25 @@ def _number_rows(report: dict) -> list[tuple[str, list[tuple[str, str, str, str]
             rows = [("Recommended", f"{p}.recommended", "{}", "")]
         cards.append((f"Protocol plan {'' if name == 'plan' else name}".strip(), rows + [("Reason", f"{p}.reason", "{}", "")]))
     return cards
+
+
+_TIMING_WORDS = {"pe": "phase-encode", "n": "number of", "interp": "interpolation", "ro": "readout",
+                 "world": "(world)"}
+_UNIT_SUFFIXES = {"_s": "s", "_ms": "ms", "_mm": "mm", "_hz": "Hz", "_vox": "voxels"}
+
+
+def _timing_row(prefix: str, key: str, value) -> tuple[str, str, str, str]:
+    """A readable number-card row for one timing entry (``readout_time_s`` -> "Readout time", "s")."""
+    base, unit = key, ""
+    for suffix, name in _UNIT_SUFFIXES.items():
+        if key.endswith(suffix):
+            base, unit = key[: -len(suffix)], name
+            break
+    words = [_TIMING_WORDS.get(w, w) for w in base.split("_") if w]
+    label = " ".join(words)
+    label = label[:1].upper() + label[1:] if label else key
+    fmt = "{:.6g}" if isinstance(value, (int, float)) and not isinstance(value, bool) else "{}"
+    return (f"Timing: {label}", f"{prefix}.timing.{key}", fmt, unit)
 
 
 def _value_attribute(value) -> str:

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from html.parser import HTMLParser
 
 import numpy as np
@@ -329,6 +330,11 @@ def test_report_numbers_match_independent_values(built):
     assert run["percent_over_one_voxel"] == pytest.approx(expected["percent_over_one_voxel"])
     assert run["folded_voxels"] == expected["folded_voxels"]
     assert run["timing"]["echo_spacing_s"] == pytest.approx(0.0005)
+    # timing rows read as words with their unit, not as raw keys
+    html_text = page.read_text(encoding="utf-8")
+    row = re.search(r"<tr><td>Timing: Echo spacing</td><td[^>]*>([^<]*)</td><td class=\"unit\">s</td>", html_text)
+    assert row and float(row.group(1)) == pytest.approx(0.0005)
+    assert "Timing: echo_spacing_s" not in html_text
     assert drop["retention"]["median"] == pytest.approx(expected["retention_median"], abs=1e-6)
     assert drop["retention"]["percent_below_threshold"] == pytest.approx(expected["retention_below"])
     assert data["plans"][0]["recommended"].startswith("2 mm")
