@@ -37,7 +37,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--threshold", type=float, default=0.5, help="level counted as lost (default 0.5)")
     parser.add_argument("--prefix", default="", help="prepended to every output file name")
     parser.epilog = ("Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
-                     "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid.")
+                     "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
+                     "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
+                     "resampled onto the EPI grid.")
 
 
 def parse_fraction(text: str) -> float:

@@ -403,6 +403,34 @@ def test_run_dropout_writes_maps_matching_formula(tmp_path):
         run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like, prefix="s1_")
 
 
+def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):
+    # EPI grid: 4 mm voxels, shifted, 12 x 12 x 8, inside the B0 map. A linear field has one
+    # gradient everywhere, so the maps on the EPI grid must carry the same analytic values
+    # (sinc law; Weiskopf et al. 2006, NeuroImage 33:493, for the TE ratio).
+    from fieldfix.workflows.dropout import run_dropout
+
+    affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
+    epi_affine = np.diag([4.0, 4.0, 4.0, 1.0])
+    epi_affine[:3, 3] = (-24.0, -24.0, -14.0)
+    like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((12, 12, 8, 3)), epi_affine,
+                        {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
+    out = tmp_path / "out"
+    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like)
+    ret_epi = nib.load(summary["outputs"]["retention_on_epi"])
+    bs_epi = nib.load(summary["outputs"]["bold_sensitivity_on_epi"])
+    assert ret_epi.shape == (12, 12, 8) and np.allclose(ret_epi.affine, epi_affine)
+    assert bs_epi.shape == (12, 12, 8)
+    u = 6.0 * 0.03 * 3.0  # g_n = 6 Hz/mm along the EPI slice axis (z)
+    inner = (slice(1, -1), slice(1, -1), slice(1, -1))
+    assert np.allclose(ret_epi.get_fdata()[inner], abs(np.sinc(u)), atol=1e-5)
+    te_l = 0.03 / (1 - 2.0 * 4.0 * 12 * 0.0005)  # dF per PE voxel = 2 Hz/mm x 4 mm, 12 lines, polarity -1
+    assert np.allclose(bs_epi.get_fdata()[inner], abs(np.sinc(6.0 * te_l * 3.0)) * te_l / 0.03, atol=1e-5)
+    assert (out / "retention_on_epi.json").exists()
+    # on the B0 map's own grid no copy is made
+    same = run_dropout(b0_path, tmp_path / "same", te_s=0.03, thickness_mm=3.0, like_path=b0_path)
+    assert "retention_on_epi" not in same["outputs"]
+
+
 def test_run_dropout_needs_echo_spacing_with_phase_encoding(tmp_path):
     from fieldfix.errors import MetadataError
     from fieldfix.workflows.dropout import run_dropout

@@ -9,7 +9,10 @@ an optional extra tilt about the left-right axis (:func:`fieldfix.dropout.tilt_r
 Outputs in ``out_dir`` (``<p>`` = prefix): ``<p>retention.nii.gz`` (through-plane
 retention at the nominal TE), ``<p>bold_sensitivity.nii.gz`` (when the phase-encode code
 and echo spacing are known), ``<p>dropout.json`` (parameters, geometry and statistics),
-and a provenance JSON beside each image.
+and a provenance JSON beside each image. With an EPI image on another grid, the maps are
+also written resampled (linear interpolation, 0 outside the B0 map) onto the EPI grid:
+``<p>retention_on_epi.nii.gz`` and ``<p>bold_sensitivity_on_epi.nii.gz``, for overlays on
+the (corrected) EPI.
 
 Research software, not a medical device: predicted maps are a planning aid.
 """
@@ -138,7 +141,9 @@ def run_dropout(
     inputs = [p for p in (b0_path, like_path, mask_path) if p is not None]
     names = {"retention": out_dir / f"{prefix}retention.nii.gz",
              "bold_sensitivity": out_dir / f"{prefix}bold_sensitivity.nii.gz",
-             "summary": out_dir / f"{prefix}dropout.json"}
+             "summary": out_dir / f"{prefix}dropout.json",
+             "retention_on_epi": out_dir / f"{prefix}retention_on_epi.nii.gz",
+             "bold_sensitivity_on_epi": out_dir / f"{prefix}bold_sensitivity_on_epi.nii.gz"}
 
     b0_img = load_image(b0_path, ndim=(3,))
     b0 = b0_img.get_fdata(np.float64)
@@ -178,9 +183,10 @@ def run_dropout(
             raise MetadataError(f"echo time {te_s * 1e3:g} ms is shorter than the time to reach the k-space centre "
                                 f"({(te_s - start) * 1e3:g} ms) with {frame.pe_lines} lines and this echo spacing")
 
-    wanted = [names["retention"], names["summary"], sidecar_path(names["retention"])]
-    if pe_code is not None:
-        wanted += [names["bold_sensitivity"], sidecar_path(names["bold_sensitivity"])]
+    on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, b0_img.affine)
+    kinds = ["retention"] + (["bold_sensitivity"] if pe_code is not None else [])
+    kinds += [f"{k}_on_epi" for k in kinds] if on_epi else []
+    wanted = [names["summary"]] + [names[k] for k in kinds] + [sidecar_path(names[k]) for k in kinds]
     output_paths_guard(wanted, inputs, overwrite)
 
     if mask_path is not None:
@@ -223,6 +229,17 @@ def run_dropout(
         summary["pe_direction_world"] = pe_world_direction(pe_code, geometry_src.affine)
         summary["bold_sensitivity"] = _stats(maps["bold_sensitivity"], mask, threshold)
         summary["percent_echo_lost"] = float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
+    if on_epi:  # the same maps on the EPI grid, for overlays
+        for kind, description in (("retention", "through-plane signal retention at the nominal TE"),
+                                  ("bold_sensitivity", "BOLD sensitivity")):
+            if kind not in outputs:
+                continue
+            values = retention if kind == "retention" else bs
+            resampled, _ = resample_to_grid(values, b0_img.affine, like.shape[:3], like.affine, order=1, outside=0.0)
+            save_image(names[f"{kind}_on_epi"], resampled, like.affine, template=like, inputs=inputs,
+                       overwrite=overwrite, provenance=provenance,
+                       sidecar_extra={"Description": f"{description}, resampled (linear) onto the grid of {like.path.name}"})
+            outputs[f"{kind}_on_epi"] = str(names[f"{kind}_on_epi"])
     outputs["summary"] = str(names["summary"])
     summary["outputs"] = outputs
     summary["caution"] = CAUTION
