@@ -215,6 +215,21 @@ def test_brain_median_exact_when_the_sample_bracket_misses(n_vox):
     assert np.allclose(wide, kernels.sweep_stats_reference(*args, prof.retention, 0.5), atol=1e-9)
 
 
+@pytest.mark.parametrize("n_vox", [1, 2, 3, 4])
+def test_kernel_on_tiny_masks_matches_reference(n_vox):
+    # the sample bracket degenerates to the whole mask; medians must still be numpy's
+    grad, dirs, roi = _random_smooth_inputs(n_tilts=2, n_vox=n_vox, seed=n_vox)
+    roi[:] = False
+    roi[0] = True
+    protocols = plan.protocol_grid([2.0, 3.0], [0.03], [0, 1], (1, -1))
+    args = (grad, dirs, roi, np.array([int(p.tilt_deg) for p in protocols]), np.array([p.pe_sign for p in protocols]),
+            np.array([p.te_s for p in protocols]), np.array([p.thickness_mm for p in protocols]),
+            np.zeros(len(protocols)), 1, 64 * 5e-4, 12e-3, 16e-3)
+    prof = dp.slice_profile("rect")
+    fast = kernels.sweep_stats(*args, prof.table, prof.step, True, 0.5, analytic="rect")
+    assert np.allclose(fast, kernels.sweep_stats_reference(*args, prof.retention, 0.5), atol=1e-9)
+
+
 def test_kernel_medians_exact_on_ties_and_even_counts():
     # Even voxel count with many exact ties (zero gradient -> retention exactly 1, lost -> 0).
     grad = np.zeros((3, 10))  # rows: along the normal, per PE step, per readout step
