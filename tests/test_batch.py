@@ -517,11 +517,10 @@ def test_task_collector_scope_frees_task_garbage_and_restores_state():
     assert gc.get_freeze_count() == 0 and gc.get_threshold() == thresholds
     gc.collect()
     assert old_ref() is None  # back in the normal generations and collectable
-    gc.freeze()  # a process that froze objects itself is left alone
-    try:
-        count = gc.get_freeze_count()
+    gc.freeze()  # a process that froze objects itself is left alone (objects freed by reference
+    try:         # counting leave the permanent generation, so its size is not compared exactly)
         with _YoungObjectsOnly():
-            assert gc.get_freeze_count() == count
-        assert gc.get_freeze_count() == count
+            assert gc.get_threshold() == thresholds
+        assert gc.get_freeze_count() > 0 and gc.get_threshold() == thresholds
     finally:
         gc.unfreeze()
