@@ -45,7 +45,7 @@ __all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", 
 
 
 @numba.njit(cache=True, inline="always")
-def _lookup(x, table, unused, tail_sinc, step):
+def _lookup(x, table, tail_sinc, step):
     """Linear interpolation of `table` at x table steps (x = u / step); tail beyond it."""
     n = table.shape[0]
     if x < n - 1:
@@ -97,19 +97,24 @@ def _select(a, n, k):
 
 
 @numba.njit(cache=True)
-def _select_median(a, n):
-    """Exact median of a[:n] by quickselect (reorders a)."""
-    if n == 0:
-        return np.nan
-    k = n // 2
+def _middle(a, n, k, even):
+    """The k-th smallest of a[:n] (reorders a); with `even`, its mean with the (k-1)-th (k >= 1)."""
     upper = _select(a, n, k)
-    if n % 2 == 1:
+    if not even:
         return upper
-    lower = a[0]
+    lower = a[0]  # after the selection a[:k] holds the k values ranked below
     for i in range(1, k):
         if a[i] > lower:
             lower = a[i]
     return 0.5 * (lower + upper)
+
+
+@numba.njit(cache=True)
+def _select_median(a, n):
+    """Exact median of a[:n] by quickselect (reorders a)."""
+    if n == 0:
+        return np.nan
+    return _middle(a, n, n // 2, n % 2 == 0)
 
 
 # Exact brain medians without sorting every protocol's values (Floyd & Rivest 1975, Commun. ACM 18:165,
@@ -122,12 +127,11 @@ _SAMPLE_SIZE = 4096
 _BRACKET_SIGMAS = 3.0
 _CHUNK = 2048  # voxels per chunk: the chunk's terms and values stay in the L1 cache
 _GAUSS_RATE = np.pi**2 / (4.0 * np.log(2.0))  # Gaussian slab of FWHM = thickness: R = exp(-rate u^2)
-_SIN_PI_COEFFS = (-1.0 / 6, 1.0 / 120, -1.0 / 5040, 1.0 / 362880, -1.0 / 39916800, 1.0 / 6227020800,
-                  -1.0 / 1307674368000)  # Taylor series of sin(y)/y in y**2; |y| <= pi/2 here
-
-
+# Taylor series of sin(y)/y in y**2 (terms 1..7; |y| <= pi/2 here) and of exp(y) (terms 3..13)
+_SIN_PI_COEFFS = tuple((-1.0) ** k / math.factorial(2 * k + 1) for k in range(1, 8))
+_EXP_COEFFS = tuple(1.0 / math.factorial(k) for k in range(3, 14))
 _ANALYTIC = {None: 0, "rect": 1, "gaussian": 2}
-_EXP_COEFFS = tuple(1.0 / math.factorial(k) for k in range(3, 14))  # Taylor series of exp
+CLOSED_FORMS = ("rect", "gaussian")  #: slice profiles the kernel can evaluate in closed form
 
 
 def sample_stride(n_vox: int) -> int:
@@ -202,7 +206,7 @@ def _evaluate(wv, fv, n, thick, analytic, table, step, tail_sinc, vals):
         for v in range(n):
             x = wv[v] * thick * inv_step
             if x >= lim:
-                vals[v] = _lookup(x, table, 1.0, tail_sinc, step) * fv[v]
+                vals[v] = _lookup(x, table, tail_sinc, step) * fv[v]
 
 
 @numba.njit(cache=True)
@@ -250,8 +254,8 @@ def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, bloc
     # Protocols are sorted so that a block shares (tilt, polarity, TE, z-shim) and differs only
     # in thickness; a group is a run of blocks with the same (tilt, polarity). One thread takes
     # a whole group: the projections of the gradient and the echo-time factor are computed once
-    # per group, the thickness-free terms
-    # once per block and chunk of voxels, and each protocol is one pass over the chunk.
+    # per group, the thickness-free terms once per block and chunk of voxels, and each protocol
+    # is one pass over the chunk.
     n_vox = grad.shape[1]
     n_groups = group_block.shape[0] - 1
     n_samp = (n_vox + stride - 1) // stride
@@ -318,17 +322,8 @@ def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, bloc
                 c0 = n_under[q]
                 if n_vox == 0:
                     out[p, 2] = np.nan
-                elif c0 <= k_lo and k_hi < c0 + n_cand[q]:
-                    k = k_hi - c0
-                    upper = _select(cand[q], n_cand[q], k)
-                    if k_lo == k_hi:
-                        out[p, 2] = upper
-                    else:
-                        lower = cand[q, 0]  # k >= 1 here; cand[:k] holds the values ranked below
-                        for i in range(1, k):
-                            if cand[q, i] > lower:
-                                lower = cand[q, i]
-                        out[p, 2] = 0.5 * (lower + upper)
+                elif c0 <= k_lo and k_hi < c0 + n_cand[q]:  # both middle ranks inside the bracket
+                    out[p, 2] = _middle(cand[q], n_cand[q], k_hi - c0, k_lo != k_hi)
                 else:  # the bracket missed: evaluate again and select over all voxels
                     misses[p] = 1
                     for c1 in range(0, n_vox, _CHUNK):
@@ -386,7 +381,8 @@ def sweep_stats(grad, dirs, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_
         _sweep_grouped(np.ascontiguousarray(grad), np.ascontiguousarray(dirs, np.float64), int(roi.sum()),
                        group_block, block_start,
                        ti[block_start[:-1]], sg[block_start[:-1]], te, thickness_mm[perm], zs, int(mode),
-                       float(t_pe_s), float(before_s), float(after_s), _ANALYTIC[analytic], np.asarray(table, np.float64), float(step),
+                       float(t_pe_s), float(before_s), float(after_s), _ANALYTIC[analytic],
+                       np.asarray(table, np.float64), float(step),
                        bool(tail_sinc), float(threshold), stride, half_width, out, misses)
     result = np.empty_like(out)
     result[perm] = out

@@ -997,10 +997,11 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
     return result
 
 
-def _now_iso() -> str:
+def _now_iso(timespec: str = "milliseconds") -> str:
+    """The current UTC time in ISO 8601."""
     import datetime as _dt
 
-    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec=timespec)
 
 
 def _jsonable(value):
@@ -1641,7 +1642,7 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
     log_path = deriv / "logs" / f"batch_{stamp}.json"
     write_json(log_path, {
         "command": command, "started": started.isoformat(timespec="seconds"),
-        "finished": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "finished": _now_iso("seconds"),
         "execution": mode, "counts": counts, "failures": failures,
         "inventory": inventory.as_dict(),
         "tasks": list(results.values()),

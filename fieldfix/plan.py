@@ -294,7 +294,7 @@ def sweep(
     if engine == "numba":
         stats = kernels.sweep_stats(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
                                     before, after, prof.table, prof.step, prof.tail == "sinc", threshold,
-                                    analytic=prof.kind if prof.kind in ("rect", "gaussian") else None)
+                                    analytic=prof.kind if prof.kind in kernels.CLOSED_FORMS else None)
     else:
         stats = kernels.sweep_stats_reference(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
                                               t_pe, before, after, prof.retention, threshold)

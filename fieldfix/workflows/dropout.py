@@ -64,6 +64,10 @@ def _stats(values: np.ndarray, mask: np.ndarray, threshold: float) -> dict:
             "voxels": int(v.size)}
 
 
+_DESCRIPTIONS = {"retention": "through-plane signal retention at the nominal TE",
+                 "bold_sensitivity": "BOLD sensitivity: retention at the local echo time x TE'/TE"}
+
+
 def run_dropout(
     b0_path,
     out_dir,
@@ -210,8 +214,9 @@ def run_dropout(
     provenance = Provenance(command, parameters, inputs)
     retention = np.where(mask, maps["retention"], 0.0)
     save_image(names["retention"], retention, b0_img.affine, template=b0_img, inputs=inputs, overwrite=overwrite,
-               provenance=provenance, sidecar_extra={"Description": "through-plane signal retention at the nominal TE"})
+               provenance=provenance, sidecar_extra={"Description": _DESCRIPTIONS["retention"]})
     outputs = {"retention": str(names["retention"])}
+    written = {"retention": retention}  # masked maps on the B0 grid, for the EPI-grid copies
     summary = {
         "b0": str(b0_path),
         "geometry_from": str(like_path) if like_path is not None else "B0 grid",
@@ -224,21 +229,18 @@ def run_dropout(
         bs = np.where(mask, maps["bold_sensitivity"], 0.0)
         save_image(names["bold_sensitivity"], bs, b0_img.affine, template=b0_img, inputs=inputs,
                    overwrite=overwrite, provenance=provenance,
-                   sidecar_extra={"Description": "BOLD sensitivity: retention at the local echo time x TE'/TE"})
+                   sidecar_extra={"Description": _DESCRIPTIONS["bold_sensitivity"]})
         outputs["bold_sensitivity"] = str(names["bold_sensitivity"])
+        written["bold_sensitivity"] = bs
         summary["pe_direction_world"] = pe_world_direction(pe_code, geometry_src.affine)
         summary["bold_sensitivity"] = _stats(maps["bold_sensitivity"], mask, threshold)
         summary["percent_echo_lost"] = float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
     if on_epi:  # the same maps on the EPI grid, for overlays
-        for kind, description in (("retention", "through-plane signal retention at the nominal TE"),
-                                  ("bold_sensitivity", "BOLD sensitivity")):
-            if kind not in outputs:
-                continue
-            values = retention if kind == "retention" else bs
+        for kind, values in written.items():
             resampled, _ = resample_to_grid(values, b0_img.affine, like.shape[:3], like.affine, order=1, outside=0.0)
+            note = f"{_DESCRIPTIONS[kind]}, resampled (linear) onto the grid of {like.path.name}"
             save_image(names[f"{kind}_on_epi"], resampled, like.affine, template=like, inputs=inputs,
-                       overwrite=overwrite, provenance=provenance,
-                       sidecar_extra={"Description": f"{description}, resampled (linear) onto the grid of {like.path.name}"})
+                       overwrite=overwrite, provenance=provenance, sidecar_extra={"Description": note})
             outputs[f"{kind}_on_epi"] = str(names[f"{kind}_on_epi"])
     outputs["summary"] = str(names["summary"])
     summary["outputs"] = outputs
