@@ -20,7 +20,7 @@ import traceback
 
 from fieldfix import __version__
 from fieldfix.errors import FieldfixError
-from fieldfix.io import output_transaction
+from fieldfix.io import output_folder, output_transaction
 
 #: Subcommands in the order shown by --help.
 SUBCOMMANDS = ("fieldmap", "unwarp", "dropout", "plan", "report", "batch", "demo")
@@ -135,7 +135,10 @@ def main(argv=None) -> int:
     # jobs of a failed batch on purpose (it resumes), so it opts out.
     all_or_nothing = getattr(args._module, "ALL_OR_NOTHING", args.command != "batch")
     try:
-        with output_transaction() if all_or_nothing else contextlib.nullcontext():
+        # Everything the command writes, replaces or deletes must lie inside its output folder.
+        root = getattr(args._module, "output_root", lambda a: a.out)(args)
+        with output_folder(root) if root else contextlib.nullcontext(), \
+                output_transaction() if all_or_nothing else contextlib.nullcontext():
             summary = args._module.run(args)
     except FieldfixError as err:
         if args.debug:

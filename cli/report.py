@@ -10,6 +10,16 @@ HELP = "build a self-contained HTML quality report (plus a summary PNG and JSON)
 OUT_REQUIRED = False
 
 
+def output_root(args):
+    """The folder the report is written in: --out (or the folder of the page it names), else FOLDER."""
+    from pathlib import Path
+
+    if args.out is None:
+        return args.folder
+    out = Path(args.out)
+    return out.parent if out.suffix.lower() in (".html", ".htm") else out
+
+
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("folder", metavar="FOLDER",
                         help="a folder written by fieldfix fieldmap, unwarp, dropout or plan")

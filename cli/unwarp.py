@@ -72,7 +72,9 @@ def run(args) -> dict:
 
         from pathlib import Path
 
-        target = Path(args.out) / f"{args.prefix}report.html"
+        from fieldfix.outdir import check_name_prefix
+
+        target = Path(args.out) / f"{check_name_prefix(args.prefix)}report.html"
         result["report"] = str(build_report(args.out, out_path=target, overwrite=args.overwrite))
     result["caution"] = CAUTION
     return result

@@ -847,18 +847,37 @@ def _read_marker(path: Path) -> dict | None:
     return data if isinstance(data, dict) else None
 
 
+def _read_task_marker(path: Path) -> tuple[dict | None, str | None]:
+    """A task's completion record, if fieldfix wrote it and nobody changed it since.
+
+    Returns (marker, remark): a marker that is present but not fieldfix's own (planted,
+    edited, or naming paths outside the derivatives folder) is never acted on; the remark
+    says so, for the batch log.
+    """
+    from fieldfix.outdir import active_folder
+
+    if not path.is_file():
+        return None, None
+    folder = active_folder()
+    if folder is None or not folder.owns(path):
+        return None, f"ignored {path.name}: not written by fieldfix or changed since"
+    marker = _read_marker(path)
+    outputs = (marker or {}).get("outputs")
+    if not isinstance(outputs, dict) or not all(
+            isinstance(info, dict) and isinstance(info.get("path"), str)
+            and folder.contains(folder.root / info["path"]) for info in outputs.values()):
+        return None, f"ignored {path.name}: it names files outside the derivatives folder"
+    return marker, None
+
+
 def _outputs_intact(marker: dict, deriv_root: Path) -> bool:
+    """Every output the marker lists is still the file fieldfix wrote."""
+    from fieldfix.outdir import written_by_fieldfix
+
     outputs = marker.get("outputs")
     if not isinstance(outputs, dict) or not outputs:
         return False
-    for info in outputs.values():
-        path = deriv_root / info.get("path", "")
-        try:
-            if path.stat().st_size != info.get("size"):
-                return False
-        except OSError:
-            return False
-    return True
+    return all(written_by_fieldfix(deriv_root / info["path"]) for info in outputs.values())
 
 
 class _ThreadLimit:
@@ -958,43 +977,53 @@ def execute_task(task: Task, upstream: Mapping[str, Mapping], deriv_root: str,
     result: dict[str, Any] = {"task_id": task.task_id, "kind": task.kind,
                               "subject": task.subject, "session": task.session,
                               "started": _now_iso(), "worker": f"{socket.gethostname()}:{os.getpid()}"}
+    from fieldfix.outdir import output_folder
+
     deriv = Path(deriv_root)
     try:
-        if task.problems:
-            raise InputError("; ".join(task.problems))
-        digest = task_hash(task, upstream)
-        result["hash"] = digest
-        mpath = marker_path(task)
-        marker = _read_marker(mpath)
-        if not redo and marker and marker.get("hash") == digest and \
-                _outputs_intact(marker, deriv):
-            result.update(status="reused", outputs={k: v["path"] for k, v in
-                                                    marker["outputs"].items()},
-                          summary=marker.get("summary", {}))
-        else:
-            if marker:  # stale: remove what the earlier run left before redoing
-                for info in (marker.get("outputs") or {}).values():
-                    (deriv / info.get("path", "")).unlink(missing_ok=True)
-                mpath.unlink(missing_ok=True)
-            with _ThreadLimit(), _YoungObjectsOnly():
-                outputs, summary = _run_in_staging(task, upstream, deriv, command)
-            record = {
-                "task_id": task.task_id, "kind": task.kind, "hash": digest,
-                "format": TASK_FORMAT, "params": task.params, "inputs": task.inputs,
-                "upstream": {d: upstream[d].get("hash") for d in sorted(upstream)},
-                "outputs": outputs, "summary": _jsonable(summary),
-            }
-            from fieldfix.io import write_json
-
-            write_json(mpath, record, overwrite=True)
-            result.update(status="done", outputs={k: v["path"] for k, v in outputs.items()},
-                          summary=record["summary"])
+        with output_folder(deriv):
+            _execute_in_folder(task, upstream, deriv, command, redo, result)
     except Exception as exc:  # isolation: every failure becomes a result with its reason
         result.update(status="failed", reason=_reason(exc),
                       traceback=traceback.format_exc(limit=20))
     result["seconds"] = round(time.perf_counter() - start, 3)
     result["cpu_seconds"] = round(time.process_time() - cpu_start, 3)
     return result
+
+
+def _execute_in_folder(task: Task, upstream: Mapping[str, Mapping], deriv: Path,
+                       command: str | None, redo: bool, result: dict) -> None:
+    from fieldfix.outdir import remove_output
+
+    if task.problems:
+        raise InputError("; ".join(task.problems))
+    digest = task_hash(task, upstream)
+    result["hash"] = digest
+    mpath = marker_path(task)
+    marker, remark = _read_task_marker(mpath)
+    if remark:
+        result["remarks"] = [remark]
+    if not redo and marker and marker.get("hash") == digest and _outputs_intact(marker, deriv):
+        result.update(status="reused", outputs={k: v["path"] for k, v in marker["outputs"].items()},
+                      summary=marker.get("summary", {}))
+        return
+    if marker:  # stale: remove what the earlier run left (only files fieldfix wrote) before redoing
+        for info in marker["outputs"].values():
+            remove_output(deriv / info["path"])
+        remove_output(mpath)
+    with _ThreadLimit(), _YoungObjectsOnly():
+        outputs, summary = _run_in_staging(task, upstream, deriv, command)
+    record = {
+        "task_id": task.task_id, "kind": task.kind, "hash": digest,
+        "format": TASK_FORMAT, "params": task.params, "inputs": task.inputs,
+        "upstream": {d: upstream[d].get("hash") for d in sorted(upstream)},
+        "outputs": outputs, "summary": _jsonable(summary),
+    }
+    from fieldfix.io import write_json
+
+    write_json(mpath, record, overwrite=True)
+    result.update(status="done", outputs={k: v["path"] for k, v in outputs.items()},
+                  summary=record["summary"])
 
 
 def _now_iso(timespec: str = "milliseconds") -> str:
@@ -1028,7 +1057,10 @@ def _run_in_staging(task: Task, upstream: Mapping[str, Mapping], deriv: Path,
     import shutil
     import uuid
 
+    from fieldfix.outdir import active_folder, adopt_output
+
     staging = deriv / _WORK_FOLDER / f"{_safe_id(task.task_id)}-{uuid.uuid4().hex[:8]}"
+    active_folder().relative(staging)  # refuses a planted link that leads outside
     staging.mkdir(parents=True, exist_ok=False)
     try:
         runner = _RUNNERS[task.kind]
@@ -1051,7 +1083,7 @@ def _run_in_staging(task: Task, upstream: Mapping[str, Mapping], deriv: Path,
                 is_sidecar = any(path.with_name(path.name[:-5] + ext).is_file()
                                  for ext in (".nii.gz", ".nii"))
                 _rewrite_json(path, task, staging, absolute, is_sidecar)
-            os.replace(path, finals[native])
+            adopt_output(path, finals[native])
             outputs[native] = {"path": finals[native].relative_to(deriv).as_posix(),
                                "size": finals[native].stat().st_size}
         summary = _relocate_paths(summary, staging,
@@ -1566,13 +1598,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
     >>> summary["exit_status"], summary["failures"]                                   # doctest: +SKIP
     (0, [])
     """
-    import datetime as _dt
-    import logging
-    import shutil
+    from fieldfix.io import output_paths_guard
 
-    from fieldfix.io import write_json
-
-    log = logging.getLogger(__name__)
     if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
         raise InputError(f"jobs must be a whole number of at least 1, got {jobs!r}")
     if scheduler and scheduler_file:
@@ -1587,8 +1614,28 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
                          "folders (use e.g. <dataset>/derivatives/fieldfix)", path=deriv)
     inventory = discover(root, participant_labels)
     tasks = plan_tasks(inventory, deriv, reports=reports)
-    deriv.mkdir(parents=True, exist_ok=True)
-    write_dataset_description(deriv, root)
+    from fieldfix.outdir import output_folder
+
+    with output_folder(deriv):
+        # files of the whole batch: refused up front when someone else's file has their name
+        output_paths_guard([deriv / "group" / f"group_runs.{ext}" for ext in ("csv", "json", "png")],
+                           overwrite=True)
+        deriv.mkdir(parents=True, exist_ok=True)
+        write_dataset_description(deriv, root)
+        return _run_planned(root, deriv, inventory, tasks, jobs=jobs, scheduler=scheduler,
+                            scheduler_file=scheduler_file, command=command, progress=progress,
+                            redo=redo)
+
+
+def _run_planned(root: Path, deriv: Path, inventory: Inventory, tasks: list[Task], *, jobs, scheduler,
+                 scheduler_file, command, progress, redo) -> dict:
+    """Execute the planned tasks, then write the group summary and the batch log."""
+    import datetime as _dt
+    import logging
+
+    from fieldfix.io import write_json
+
+    log = logging.getLogger(__name__)
 
     started = _dt.datetime.now(_dt.timezone.utc)
     bar = None
@@ -1624,8 +1671,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         if bar is not None:
             bar.close()
         work = deriv / _WORK_FOLDER
-        if work.is_dir() and not any(work.iterdir()):
-            shutil.rmtree(work, ignore_errors=True)
+        if work.is_dir() and not work.is_symlink() and not any(work.iterdir()):
+            work.rmdir()
 
     counts = {s: 0 for s in ("done", "reused", "failed", "skipped")}
     for res in results.values():

@@ -21,8 +21,6 @@ Examples
 
 from __future__ import annotations
 
-import contextlib
-import contextvars
 import datetime as _dt
 import gzip
 import hashlib
@@ -31,8 +29,6 @@ import json
 import math
 import os
 import struct
-import sys
-import tempfile
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -42,6 +38,17 @@ import nibabel as nib
 import numpy as np
 
 from .errors import InputError, OutputError
+from .outdir import (
+    atomic_output,
+    folder_for,
+    output_folder,
+    output_paths_guard,
+    output_transaction,
+    new_temporary,
+    put_in_place,
+    sha256_file,
+    write_failed,
+)
 
 __all__ = [
     "Image",
@@ -58,6 +65,7 @@ __all__ = [
     "sha256_file",
     "output_paths_guard",
     "output_transaction",
+    "output_folder",
     "NIFTI_INTENT_DISPVECT",
 ]
 
@@ -301,15 +309,6 @@ def _check_data_size(path: Path, nifti) -> None:
                          f"{header.get_data_dtype()}); it is truncated or corrupt", path)
 
 
-def sha256_file(path: str | os.PathLike, chunk_bytes: int = 1 << 20) -> str:
-    """SHA-256 hex digest of a file's bytes."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(chunk_bytes), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 class Provenance:
     """Where an output came from: fieldfix version, command, parameters, inputs and their hashes.
 
@@ -346,160 +345,6 @@ class Provenance:
             "Caution": "Research software, not a medical device. Inspect corrected images before any "
                        "decision about a person.",
         }
-
-
-def _same_file(a: Path, b: Path) -> bool:
-    try:
-        return a.exists() and b.exists() and os.path.samefile(a, b)
-    except OSError:
-        return False
-
-
-def output_paths_guard(paths: Iterable, inputs: Iterable = (), overwrite: bool = False) -> None:
-    """Refuse outputs that would replace an input, or an existing file unless `overwrite`.
-
-    Call it before any computation so that a refused job writes nothing.
-
-    Raises
-    ------
-    OutputError
-        Naming the first offending path.
-    """
-    inputs = [Path(p) for p in inputs if p is not None]
-    resolved_inputs = {p.resolve() for p in inputs}
-    for path in paths:
-        path = Path(path)
-        if path.resolve() in resolved_inputs or any(_same_file(path, p) for p in inputs):
-            raise OutputError("an input file has this output's name; inputs are never overwritten, "
-                              "choose another output folder", path)
-        if path.exists() and not overwrite:
-            raise OutputError("output exists; pass overwrite (--overwrite) to replace it", path)
-        if path.exists() and path.is_dir():
-            raise OutputError("output name is taken by a folder", path)
-
-
-#: Files put in place inside the active :func:`output_transaction`: (final path, set-aside previous file).
-_TRANSACTION: contextvars.ContextVar[list | None] = contextvars.ContextVar("fieldfix_output_transaction",
-                                                                          default=None)
-
-
-@contextlib.contextmanager
-def output_transaction():
-    """All-or-nothing outputs: files written inside the block are removed again if it fails.
-
-    Every file that :func:`save_image`, :func:`write_json` or :class:`StreamingWriter` puts
-    in place inside the block is recorded; a file it replaces (with ``overwrite``) is first
-    set aside. When the block raises (any exception, KeyboardInterrupt included), the new
-    files are removed and the replaced ones restored, so a job that fails half-way leaves the
-    output folder as it was; on success the set-aside files are deleted. A block inside an
-    active transaction joins it.
-
-    Examples
-    --------
-    >>> import numpy as np, tempfile, os
-    >>> folder = tempfile.mkdtemp()
-    >>> try:
-    ...     with output_transaction():
-    ...         _ = write_json(os.path.join(folder, "a.json"), {"a": 1})
-    ...         raise RuntimeError("a later step fails")
-    ... except RuntimeError:
-    ...     pass
-    >>> os.listdir(folder)
-    []
-    """
-    if _TRANSACTION.get() is not None:
-        yield
-        return
-    records: list = []
-    token = _TRANSACTION.set(records)
-    try:
-        yield
-    except BaseException:
-        _TRANSACTION.reset(token)
-        for final, previous in reversed(records):
-            with contextlib.suppress(OSError):
-                if previous is not None:
-                    os.replace(previous, final)
-                else:
-                    final.unlink(missing_ok=True)
-        raise
-    _TRANSACTION.reset(token)
-    for _, previous in records:
-        if previous is not None:
-            with contextlib.suppress(OSError):
-                previous.unlink()
-
-
-def _put_in_place(temporary: Path, path: Path) -> None:
-    """Rename a finished temporary file onto `path`, recording it in an active transaction."""
-    records = _TRANSACTION.get()
-    if records is None:
-        os.replace(temporary, path)
-        return
-    previous = None
-    if path.exists():
-        handle, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".previous", dir=path.parent)
-        os.close(handle)
-        previous = Path(name)
-        os.replace(path, previous)
-    records.append((path, previous))
-    os.replace(temporary, path)
-
-
-def _current_umask() -> int:
-    """The process umask, read from /proc where possible (setting it to read it is not thread-safe)."""
-    try:
-        with open("/proc/self/status") as handle:
-            for line in handle:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except (OSError, ValueError):
-        pass
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-@contextlib.contextmanager
-def atomic_output(path: str | os.PathLike, inputs: Iterable = (), overwrite: bool = False):
-    """Yield a temporary path in the target folder; rename it onto `path` on success only.
-
-    For outputs written by other libraries (a matplotlib figure, a CSV file): write to the
-    yielded path, and the file appears under its final name only when the block succeeds.
-    The output is checked with :func:`output_paths_guard` first and takes part in an active
-    :func:`output_transaction`.
-
-    Examples
-    --------
-    >>> import tempfile, os
-    >>> target = os.path.join(tempfile.mkdtemp(), "table.csv")
-    >>> with atomic_output(target) as temporary:
-    ...     _ = temporary.write_text("a,b")
-    >>> open(target).read()
-    'a,b'
-    """
-    path = Path(path)
-    output_paths_guard([path], inputs, overwrite)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise OutputError(f"cannot create the output folder ({err.strerror or err})", path.parent) from None
-    suffix = ".nii.gz" if path.name.endswith(".nii.gz") else path.suffix
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + suffix, dir=path.parent)
-    os.close(handle)
-    temporary = Path(temporary)
-    try:
-        # mkstemp makes the file private (0600); outputs get the usual permissions (0666 less the umask),
-        # so that colleagues sharing a study folder can read them.
-        os.chmod(temporary, 0o666 & ~_current_umask())
-        yield temporary
-        _put_in_place(temporary, path)
-    except OSError as err:
-        temporary.unlink(missing_ok=True)
-        raise OutputError(f"write failed ({err.strerror or err}); nothing was left behind", path) from None
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
 
 
 def _jsonable(value):
@@ -664,29 +509,31 @@ class StreamingWriter:
         self.provenance = provenance
         self.sidecar_extra = sidecar_extra
         self.written = 0
-        self._context = None
+        self._temporary: Path | None = None
+        self._raw = None
         self._stream = None
 
     def __enter__(self) -> "StreamingWriter":
+        output_paths_guard([self.path], self.inputs, self.overwrite)
         if self.provenance is not None:
             output_paths_guard([sidecar_path(self.path)], self.inputs, self.overwrite)
         klass, header = _header_for(self.shape, self.affine, self.template, self.dtype, None)
         offset = 544 if klass is nib.Nifti2Image else 352
         header.set_data_offset(offset)
-        self._context = atomic_output(self.path, self.inputs, self.overwrite)
-        temporary = self._context.__enter__()
+        self._temporary = new_temporary(self.path)
         try:
-            raw = open(temporary, "wb")
-            self._stream = gzip.GzipFile(fileobj=raw, mode="wb", compresslevel=1, mtime=0) \
-                if self.path.name.endswith(".gz") else raw
-            self._raw = raw
+            self._raw = _HashingFile(open(self._temporary, "wb"))
+            self._stream = gzip.GzipFile(fileobj=self._raw, mode="wb", compresslevel=1, mtime=0) \
+                if self.path.name.endswith(".gz") else self._raw
             buffer = io.BytesIO()
             header.write_to(buffer)  # nibabel writes the header and the empty extension flag
             block = buffer.getvalue()
             self._stream.write(block + b"\x00" * (offset - len(block)))
-        except BaseException:
+        except BaseException as err:
             self._close_streams()
-            self._context.__exit__(*sys.exc_info())
+            self._temporary.unlink(missing_ok=True)
+            if isinstance(err, OSError):
+                raise write_failed(err, self.path) from None
             raise
         return self
 
@@ -701,7 +548,7 @@ class StreamingWriter:
         self.written += 1
 
     def _close_streams(self):
-        for stream in (self._stream, getattr(self, "_raw", None)):
+        for stream in (self._stream, self._raw):
             if stream is not None and not stream.closed:
                 stream.close()
 
@@ -710,21 +557,51 @@ class StreamingWriter:
         try:
             self._close_streams()
         except OSError as err:  # for example a full disk on the final flush
-            error = err
+            error = write_failed(err, self.path)
         if exc_type is None and error is None and self.written != self.shape[3]:
             error = OutputError(f"only {self.written} of {self.shape[3]} volumes were written", self.path)
         if exc_type is None and error is None:
-            self._context.__exit__(None, None, None)  # the rename
+            try:
+                put_in_place(self._temporary, self.path, self._raw.hexdigest())
+            except BaseException:
+                self._temporary.unlink(missing_ok=True)
+                raise
             if self.provenance is not None:
                 record = self.provenance.as_dict()
                 if self.sidecar_extra:
                     record.update(_jsonable(self.sidecar_extra))
                 write_json(sidecar_path(self.path), record, inputs=self.inputs, overwrite=True)
             return False
-        if exc_type is None:
-            exc_type, exc = type(error), error
-        # Removes the temporary file; turns an OSError into an OutputError naming the output.
-        self._context.__exit__(exc_type, exc, tb)
+        self._temporary.unlink(missing_ok=True)
         if error is not None:
             raise error
+        if isinstance(exc, OSError):
+            raise write_failed(exc, self.path) from None
         return False
+
+
+class _HashingFile:
+    """A binary file opened for writing that keeps the SHA-256 of what went through it."""
+
+    def __init__(self, raw):
+        self._raw = raw
+        self._digest = hashlib.sha256()
+        self.name = raw.name
+        self.mode = "wb"
+
+    def write(self, data) -> int:
+        self._digest.update(data)
+        return self._raw.write(data)
+
+    def flush(self) -> None:
+        self._raw.flush()
+
+    def close(self) -> None:
+        self._raw.close()
+
+    @property
+    def closed(self) -> bool:
+        return self._raw.closed
+
+    def hexdigest(self) -> str:
+        return self._digest.hexdigest()

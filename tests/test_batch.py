@@ -308,7 +308,8 @@ def _images(out: Path) -> dict[str, Path]:
 
 def _files(out: Path) -> set[str]:
     return {p.relative_to(out).as_posix() for p in out.rglob("*")
-            if p.is_file() and p.parts[len(out.parts)] != "logs" and "figures" not in p.parts}
+            if p.is_file() and p.parts[len(out.parts)] not in ("logs", ".fieldfix")
+            and "figures" not in p.parts}
 
 
 @pytest.fixture(scope="module")

@@ -26,6 +26,7 @@ import numpy as np
 from ..dropout import PROFILES, acquisition_window_s, dropout_maps, frame_from_affine, slice_profile, zshim_cyc_per_mm
 from ..errors import GeometryError, InputError, MetadataError
 from ..geometry import overlap_fraction, parse_pe_code, pe_world_direction, resample_to_grid, same_grid
+from ..outdir import check_name_prefix
 from ..io import Provenance, load_image, output_paths_guard, save_image, sidecar_path, write_json
 
 __all__ = ["run_dropout", "load_mask_on_grid", "CAUTION", "MAX_TE_S"]
@@ -143,6 +144,7 @@ def run_dropout(
     if profile not in PROFILES:
         raise InputError(f"unknown slice profile {profile!r}; use one of {', '.join(PROFILES)}")
     inputs = [p for p in (b0_path, like_path, mask_path) if p is not None]
+    check_name_prefix(prefix)
     names = {"retention": out_dir / f"{prefix}retention.nii.gz",
              "bold_sensitivity": out_dir / f"{prefix}bold_sensitivity.nii.gz",
              "summary": out_dir / f"{prefix}dropout.json",

@@ -41,6 +41,7 @@ from ..fieldmap import (
     hz_to_units,
 )
 from ..geometry import voxel_sizes_mm
+from ..outdir import check_name_prefix
 from ..io import Image, Provenance, load_image, output_paths_guard, save_image, sidecar_path, write_json
 from ..phase import (
     complex_from_polar,
@@ -74,6 +75,7 @@ def output_names(out_dir, prefix: str = "", also_units: Sequence[str] = ()) -> d
     >>> output_names("/out", "sub-01_")["b0_hz"].name
     'sub-01_b0_hz.nii.gz'
     """
+    check_name_prefix(prefix)
     names = {key: Path(out_dir) / (prefix + name) for key, name in _OUTPUTS.items()}
     for unit in also_units:
         key, name = _EXTRA[_extra_unit(unit)]

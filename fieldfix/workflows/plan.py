@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..outdir import check_name_prefix
 from ..io import Provenance, atomic_output, load_image, output_paths_guard, write_json
 from ..plan import CSV_COLUMNS, plot_tradeoffs, recommend, sweep
 from .dropout import load_mask_on_grid
@@ -97,6 +98,7 @@ def run_plan(
     b0_path = Path(b0_path)
     out_dir = Path(out_dir)
     inputs = [p for p in (b0_path, roi_path, brain_mask_path) if p is not None]
+    check_name_prefix(prefix)
     names = {"csv": out_dir / f"{prefix}plan.csv", "json": out_dir / f"{prefix}plan.json",
              "figure": out_dir / f"{prefix}plan.png"}
     output_paths_guard(names.values(), inputs, overwrite)

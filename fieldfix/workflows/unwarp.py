@@ -33,6 +33,7 @@ import numpy as np
 from .._progress import progress_bar
 from ..errors import GeometryError, InputError, MetadataError
 from ..geometry import parse_pe_code, pe_world_direction, resample_to_grid, voxel_sizes_mm
+from ..outdir import check_name_prefix
 from ..io import (
     NIFTI_INTENT_DISPVECT,
     Image,
@@ -84,7 +85,7 @@ def output_names(run_path: str | os.PathLike, out_dir: str | os.PathLike, prefix
     >>> output_names("/data/sub-01_bold.nii.gz", "/out")["corrected"].name
     'sub-01_bold_corrected.nii.gz'
     """
-    stem = prefix + image_stem(run_path)
+    stem = check_name_prefix(prefix) + image_stem(run_path)
     return {key: Path(out_dir) / (stem + suffix) for key, suffix in _SUFFIXES.items()}
 
 
