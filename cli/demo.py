@@ -22,70 +22,57 @@ def configure(parser: argparse.ArgumentParser) -> None:
     )
 
 
-def _seconds(step: dict) -> str:
-    return f" ({step['seconds']:.1f} s)" if "seconds" in step else ""
+def _seconds(step) -> str:
+    return f" ({step.seconds:.1f} s)" if step.seconds is not None else ""
 
 
-def _human(summary: dict) -> dict:
-    steps = summary["steps"]
-    n = summary["checks_against_truth"]
+def _human(summary) -> dict:
+    steps = summary.steps
+    n = summary.checks_against_truth
     did = {}
     ds = steps["dataset"]
-    did["dataset"] = f"{ds['status']} {ds['path']}{_seconds(ds)}"
+    did["dataset"] = f"{ds.status} {ds.path}{_seconds(ds)}"
     for name, step in steps.items():
-        if name == "dataset":
-            continue
-        if step["status"] == "done":
-            outputs = step.get("outputs") or []
-            did[name] = "done" + _seconds(step) + (f" -> {outputs[0]}" if outputs else "")
-        else:
-            did[name] = f"skipped: {step.get('reason', '')}"
+        if name != "dataset":
+            did[name] = "done" + _seconds(step) + (f" -> {step.outputs[0]}" if step.outputs else "")
     results = {}
-    if "b0_brain_p1_p99_hz" in n:
-        lo, hi = n["b0_brain_p1_p99_hz"]
+    if n.b0_brain_p1_p99_hz is not None:
+        lo, hi = n.b0_brain_p1_p99_hz
         results["B0 in the brain (1st to 99th percentile)"] = f"{lo:+.0f} to {hi:+.0f} Hz"
-    if "b0_error_vs_truth_median_hz" in n:
-        results["B0 map vs modelled field"] = (f"median error {n['b0_error_vs_truth_median_hz']:.1f} Hz, "
-                                               f"95% within {n['b0_error_vs_truth_p95_hz']:.1f} Hz")
-    if "max_abs_shift_vox" in n:
-        text = f"largest {n['max_abs_shift_vox']:.1f} voxels"
-        if "percent_shifted_over_1_voxel" in n:
-            text += f", {n['percent_shifted_over_1_voxel']:.1f}% of voxels moved by more than 1 voxel"
-        results["shift along phase encoding"] = text
-    if "edge_agreement_before" in n:
-        results["edges vs undistorted simulation"] = (
-            f"agreement {n['edge_agreement_before']:.3f} before -> {n['edge_agreement_after']:.3f} after unwarping "
-            f"(1 = all in place)")
-        if "edge_agreement_shifted_before" in n:
-            results["edges vs undistorted simulation"] += (
-                f"; where voxels moved: {n['edge_agreement_shifted_before']:.3f} -> "
-                f"{n['edge_agreement_shifted_after']:.3f}")
-    if "roi_signal_kept" in n and "dropout_roi_mean_retention" not in n:
-        results["region of interest"] = (f"{100 * n['roi_signal_kept']:.0f}% of its signal kept after unwarping "
-                                         f"(the rest lost to dropout)")
-    if "dropout_brain_median_retention" in n:
-        text = (f"brain keeps a median {100 * n['dropout_brain_median_retention']:.0f}% of its signal, "
-                f"{n['dropout_brain_percent_below_half']:.1f}% of voxels under half")
-        if "dropout_roi_mean_retention" in n:
-            text += f"; region of interest {100 * n['dropout_roi_mean_retention']:.0f}% predicted"
-            if "roi_signal_kept" in n:
-                text += f" (simulated: {100 * n['roi_signal_kept']:.0f}%)"
+    if n.b0_error_vs_truth_median_hz is not None:
+        results["B0 map vs modelled field"] = (f"median error {n.b0_error_vs_truth_median_hz:.1f} Hz, "
+                                               f"95% within {n.b0_error_vs_truth_p95_hz:.1f} Hz")
+    if n.max_abs_shift_vox is not None:
+        results["shift along phase encoding"] = (
+            f"largest {n.max_abs_shift_vox:.1f} voxels, {n.percent_shifted_over_1_voxel:.1f}% of voxels moved by "
+            "more than 1 voxel")
+    if n.edge_agreement_before is not None:
+        text = ""
+        if n.edge_agreement_shifted_before is not None:
+            text = (f"where voxels moved: {n.edge_agreement_shifted_before:.3f} -> "
+                    f"{n.edge_agreement_shifted_after:.3f}; ")
+        results["edges vs undistorted simulation"] = text + (
+            f"whole head: {n.edge_agreement_before:.3f} before -> {n.edge_agreement_after:.3f} after unwarping "
+            "(1 = all in place)")
+    if n.dropout_brain_median_retention is not None:
+        text = (f"brain keeps a median {100 * n.dropout_brain_median_retention:.0f}% of its signal, "
+                f"{n.dropout_brain_percent_below_threshold:.1f}% of voxels under half")
+        if n.dropout_roi_mean_retention is not None:
+            text += f"; region of interest {100 * n.dropout_roi_mean_retention:.0f}% predicted"
+            if n.roi_signal_kept is not None:
+                text += f" (simulated: {100 * n.roi_signal_kept:.0f}%)"
         results["dropout predicted for this protocol"] = text
-    if "plan_recommended" in n:
-        text = n["plan_recommended"]
-        if "plan_recommended_roi_median" in n:
-            text += f" (median BOLD sensitivity {n['plan_recommended_roi_median']:.2f} in the region)"
-        results[f"best of {n['plan_protocols_compared']} protocols for the region"] = text
-    out = {
-        "scenario": f"{summary['scenario']}: {summary['title']} (invented)",
-        "did": did,
-        "results": results,
-    }
-    if summary.get("report"):
-        out["open the report"] = summary["report"]
-    out["all outputs"] = summary["out_dir"]
-    out["time"] = f"{summary['seconds']:.0f} s"
-    out["note"] = summary["caution"]
+    if n.plan_recommended is not None:
+        text = n.plan_recommended + f" (median BOLD sensitivity {n.plan_recommended_roi_median:.2f} in the region)"
+        results[f"best of {n.plan_protocols_compared} protocols for the region"] = text
+    out = {"scenario": f"{summary.scenario}: {summary.title} (invented)", "did": did, "results": results}
+    if summary.warnings:
+        out["warnings"] = summary.warnings
+    if summary.report:
+        out["open the report"] = summary.report
+    out["all outputs"] = summary.out_dir
+    out["time"] = f"{summary.seconds:.0f} s"
+    out["note"] = summary.caution
     return out
 
 

@@ -3,15 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import re
 
 HELP = "predict signal retention and BOLD sensitivity for one protocol from a B0 map (Hz)"
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    # Let values such as -30deg:30deg:10deg or -0.5mT*ms/m follow an option (argparse would take
-    # anything starting with '-' and not a plain number for an option name).
-    parser._negative_number_matcher = re.compile(r"^-\.?\d")
     parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (3D NIfTI)")
     parser.add_argument("--te", required=True, metavar="TIME", help="echo time with its unit, e.g. 30ms")
     parser.add_argument("--thickness", required=True, metavar="LENGTH", help="slice thickness, e.g. 3mm")
@@ -35,7 +31,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="z-shim moment along the slice normal, e.g. -0.5mT*ms/m")
     parser.add_argument("--mask", metavar="MASK", default=None, help="brain mask (statistics; maps are 0 outside)")
     parser.add_argument("--threshold", type=float, default=0.5, help="level counted as lost (default 0.5)")
-    parser.add_argument("--prefix", default="", help="prepended to every output file name")
+    from .main import add_tag_option
+
+    add_tag_option(parser)
     parser.epilog = ("Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
                      "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
                      "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
@@ -55,24 +53,34 @@ def parse_fraction(text: str) -> float:
         raise InputError(f"cannot read {text!r} as a fraction; write e.g. 6/8 or 0.75") from None
 
 
+#: Library parameters -> the options that set them (for error messages).
+FLAGS = {"te_s": "--te", "thickness_mm": "--thickness", "tilt_deg": "--tilt", "pe_code": "--phase-encoding",
+         "echo_spacing_s": "--echo-spacing", "partial_fourier": "--partial-fourier", "profile": "--profile",
+         "zshim_mtms_per_m": "--zshim", "threshold": "--threshold", "tag": "--tag"}
+#: Options whose values may start with '-' (e.g. --tilt -15deg, --zshim -0.5mT*ms/m).
+DASH_VALUES = ("--tilt", "--zshim", "--phase-encoding", "--te", "--thickness", "--echo-spacing")
+
+
 def run(args) -> dict:
     from fieldfix.units import parse_angle_deg, parse_length_mm, parse_quantity, parse_time_s
-    from fieldfix.workflows.dropout import run_dropout
+    from fieldfix.workflows.dropout import DropoutSettings, run_dropout
 
-    summary = run_dropout(
-        args.b0, args.out, te_s=parse_time_s(args.te), thickness_mm=parse_length_mm(args.thickness),
-        like_path=args.like, slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None,
-        tilt_deg=parse_angle_deg(args.tilt), pe_code=args.phase_encoding,
-        echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing else None,
+    from .main import job_options
+
+    settings = DropoutSettings(
+        te_s=parse_time_s(args.te), thickness_mm=parse_length_mm(args.thickness), like=args.like,
+        slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None, tilt_deg=parse_angle_deg(args.tilt),
+        pe_code=args.phase_encoding, echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing else None,
         partial_fourier=parse_fraction(args.partial_fourier), profile=args.profile, tbw=args.tbw,
-        zshim_mtms_per_m=parse_quantity(args.zshim, "moment") if args.zshim else 0.0, mask_path=args.mask,
-        threshold=args.threshold, prefix=args.prefix, overwrite=args.overwrite, progress=args.progress,
-        command=getattr(args, "command_line", None),
-    )
-    out = {"retention": summary["retention"], "outputs": summary["outputs"]}
-    if "bold_sensitivity" in summary:
-        out["bold_sensitivity"] = summary["bold_sensitivity"]
-        out["phase_encoding"] = f"{summary['parameters']['pe_code']} ({summary['pe_direction_world']})"
-        out["percent_echo_lost"] = summary["percent_echo_lost"]
-    out["caution"] = summary["caution"]
+        zshim_mtms_per_m=parse_quantity(args.zshim, "moment") if args.zshim else 0.0, mask=args.mask,
+        threshold=args.threshold)
+    job = job_options(args)
+    summary = run_dropout(args.b0, job, settings)
+    out = {"retention": summary.retention.to_json(),
+           "outputs": {k: str(v) for k, v in summary.outputs.paths(job.out_dir).items()}}
+    if summary.bold_sensitivity is not None:
+        out["bold_sensitivity"] = summary.bold_sensitivity.to_json()
+        out["phase_encoding"] = f"{summary.parameters.pe_code} ({summary.pe_direction_world})"
+        out["percent_echo_lost"] = summary.percent_echo_lost
+    out["caution"] = summary.caution
     return out

@@ -39,7 +39,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     opts.add_argument("--also", nargs="+", choices=("rad/s", "ppm"), default=[],
                       help="also write the map in these units")
     opts.add_argument("--keep-outliers", action="store_true", help="do not replace outlier voxels")
-    opts.add_argument("--prefix", default="", help="prepended to every output file name")
+    from .main import add_tag_option
+
+    add_tag_option(opts)
     parser.epilog = (
         "Field (Hz) = phase gained between the echoes / (2 pi x echo spacing), unambiguous within "
         "+-1/(2 x spacing) before unwrapping. --out receives b0_hz.nii.gz (extended beyond the mask), "
@@ -47,36 +49,47 @@ def configure(parser: argparse.ArgumentParser) -> None:
     )
 
 
+#: Library parameters -> the options that set them (for error messages).
+FLAGS = {"echo_times_s": "--echo-times", "echo_times_win": "--echo-times-win", "phase_units": "--phase-units",
+         "smooth_mm": "--smooth", "unwrap_method": "--unwrap", "field_strength_t": "--field-strength",
+         "also_units": "--also", "b0_units": "--b0-units", "tag": "--tag"}
+
+
 def run(args) -> dict:
     from fieldfix.units import parse_field_t, parse_length_mm, parse_time_s
-    from fieldfix.workflows.fieldmap import CAUTION, run_fieldmap
+    from fieldfix.workflows.fieldmap import FieldMapSettings, run_fieldmap
 
-    echo_times_s = [parse_time_s(t) for t in args.echo_times] if args.echo_times else None
-    field_t = parse_field_t(args.field_strength) if args.field_strength else None
-    smooth_mm = parse_length_mm(args.smooth)
-    win = args.echo_times_win
-    summary = run_fieldmap(
-        args.out, phase=args.phase, magnitude=args.magnitude, real=args.real, imag=args.imag,
-        phase_diff=args.phase_diff, b0=args.b0, b0_units=args.b0_units, echo_times_s=echo_times_s,
-        echo_times_win=win, phase_units=args.phase_units, mask=args.mask, smooth_mm=smooth_mm,
-        unwrap_method=args.unwrap, field_strength_t=field_t, also_units=args.also,
-        reject_outliers=not args.keep_outliers, prefix=args.prefix, overwrite=args.overwrite,
-        progress=args.progress, command=getattr(args, "command_line", None),
-    )
+    from .main import job_options
+
+    settings = FieldMapSettings(
+        phase=args.phase, magnitude=args.magnitude, real=args.real, imag=args.imag, phase_diff=args.phase_diff,
+        b0=args.b0, b0_units=args.b0_units, mask=args.mask,
+        echo_times_s=[parse_time_s(t) for t in args.echo_times] if args.echo_times else None,
+        echo_times_win=args.echo_times_win, phase_units=args.phase_units, smooth_mm=parse_length_mm(args.smooth),
+        unwrap_method=args.unwrap,
+        field_strength_t=parse_field_t(args.field_strength) if args.field_strength else None,
+        also_units=args.also, reject_outliers=not args.keep_outliers)
+    summary = run_fieldmap(job_options(args), settings)
     if getattr(args, "json", False):
         return summary
-    pct = summary["field_percentiles_hz"]
+    pct = summary.field_percentiles_hz
     short = {
-        "b0_map": summary["outputs"]["b0_hz"],
-        "input": summary["input_kind"],
-        "echo_times_ms": [round(t * 1e3, 4) for t in summary["echo_times_s"]] if summary["echo_times_s"] else None,
-        "echo_times_from": summary["echo_times_source"],
-        "unaliased_range_hz": summary["unaliased_range_hz"],
-        "phase_units": [f"{p['units']} ({p['how']})" for p in summary["phase_units"]],
-        "mask_volume_ml": summary["mask_volume_ml"],
+        "b0_map": str(args_path(args, summary.outputs.b0_hz)),
+        "input": summary.input_kind,
+        "echo_times_ms": [round(t * 1e3, 4) for t in summary.echo_times_s] if summary.echo_times_s else None,
+        "echo_times_from": summary.echo_times_source,
+        "unaliased_range_hz": summary.unaliased_range_hz,
+        "phase_units": [f"{p.units} ({p.how})" for p in summary.phase_units],
+        "mask_volume_ml": summary.mask_volume_ml,
         "field_hz_p5_p50_p95": [pct["p5"], pct["p50"], pct["p95"]],
-        "voxels_offset_changed": summary["voxels_offset_changed"],
-        "outlier_voxels": summary["outlier_voxels"],
-        "caution": CAUTION,
+        "voxels_offset_changed": summary.voxels_offset_changed,
+        "outlier_voxels": summary.outlier_voxels,
+        "caution": summary.caution,
     }
     return {k: v for k, v in short.items() if v is not None}
+
+
+def args_path(args, name: str):
+    from pathlib import Path
+
+    return Path(args.out) / name

@@ -25,8 +25,7 @@ from fieldfix.io import output_folder, output_transaction
 #: Subcommands in the order shown by --help.
 SUBCOMMANDS = ("fieldmap", "unwarp", "dropout", "plan", "report", "batch", "demo")
 
-CAUTION = ("Research software, not a medical device: inspect corrected images before they are used "
-           "for any decision about a person.")
+from fieldfix.outputs import CAUTION  # noqa: E402  (one caution text everywhere)
 
 DESCRIPTION = f"""\
 fieldfix: B0 field maps from dual-echo gradient-echo data, EPI distortion correction along the
@@ -68,6 +67,55 @@ def add_common_options(parser: argparse.ArgumentParser, *, out_required: bool = 
     group.add_argument("--quiet", action="store_true", help="no progress bars and no summary text")
     group.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
     group.add_argument("--debug", action="store_true", help="show the full traceback of an error")
+
+
+def add_tag_option(parser: argparse.ArgumentParser) -> None:
+    """The option that puts a tag at the start of every output file name."""
+    parser.add_argument("--tag", default="", metavar="TEXT",
+                        help="put TEXT at the start of every output file name (e.g. sub-01_)")
+
+
+def job_options(args):
+    """The library's :class:`fieldfix.outputs.JobOptions` from the common options."""
+    from fieldfix.outputs import JobOptions
+
+    return JobOptions(out_dir=args.out, tag=getattr(args, "tag", ""), overwrite=args.overwrite,
+                      progress=args.progress, command=getattr(args, "command_line", None))
+
+
+def _join_dash_values(argv: list[str], parser: argparse.ArgumentParser) -> list[str]:
+    """``--tilt -30deg:30deg`` -> ``--tilt=-30deg:30deg`` for options whose values may start with '-'.
+
+    A subcommand lists those options in ``DASH_VALUES``; argparse would take such a value for an
+    option name otherwise.
+    """
+    if len(argv) < 2 or argv[0] not in SUBCOMMANDS:
+        return argv
+    module = _load_subcommands().get(argv[0])
+    options = set(getattr(module, "DASH_VALUES", ()))
+    out, i = [], 0
+    while i < len(argv):
+        token = argv[i]
+        if token in options and i + 1 < len(argv) and argv[i + 1].startswith("-") and not argv[i + 1].startswith("--"):
+            out.append(f"{token}={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(token)
+        i += 1
+    return out
+
+
+def error_text(err: FieldfixError, module) -> str:
+    """An error's one line, with the library's parameter names shown as the command's options."""
+    import re
+
+    flags = getattr(module, "FLAGS", {})
+    text = str(err)
+    if err.path is None and err.parameter is not None:
+        text = f"{flags.get(err.parameter, err.parameter)}: {err.message}"
+    for parameter, flag in flags.items():
+        text = re.sub(rf"(?<![\w-]){re.escape(parameter)}(?![\w-])", flag, text)
+    return text
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -117,7 +165,7 @@ def _raise_interrupt(signum, frame):
 def main(argv=None) -> int:
     """Entry point of the ``fieldfix`` console script; returns the exit status."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(_join_dash_values(list(sys.argv[1:] if argv is None else argv), parser))
     if args.command is None:
         parser.print_help()
         return EXIT_BAD_INPUT
@@ -143,7 +191,7 @@ def main(argv=None) -> int:
     except FieldfixError as err:
         if args.debug:
             traceback.print_exc()
-        print(f"fieldfix {args.command}: error: {err}", file=sys.stderr)
+        print(f"fieldfix {args.command}: error: {error_text(err, args._module)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print(f"fieldfix {args.command}: interrupted; unfinished outputs were removed", file=sys.stderr)
@@ -152,12 +200,14 @@ def main(argv=None) -> int:
         signal.signal(signal.SIGTERM, previous)
         nibabel_logger.setLevel(nibabel_level)
     status = EXIT_OK
+    if hasattr(summary, "to_json"):
+        summary = summary.to_json()
     if isinstance(summary, dict) and summary.get("exit_status") is not None:
         status = int(summary.pop("exit_status"))
     if args.json:
-        from fieldfix.io import _jsonable
+        from fieldfix.jsonfile import json_text
 
-        print(json.dumps(_jsonable(summary), indent=2))
+        print(json_text(summary), end="")
     elif not args.quiet and summary:
         print(format_summary(summary))
     return status

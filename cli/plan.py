@@ -3,15 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import re
 
 HELP = "sweep slice thickness, echo time, tilt and phase-encode polarity over a B0 map and rank the protocols"
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    # Let values such as -30deg:30deg:10deg or -0.5mT*ms/m follow an option (argparse would take
-    # anything starting with '-' and not a plain number for an option name).
-    parser._negative_number_matcher = re.compile(r"^-\.?\d")
     parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (3D NIfTI), measured or modelled")
     parser.add_argument("--roi", required=True, metavar="ROI_MASK", help="region-of-interest mask")
     parser.add_argument("--brain-mask", metavar="MASK", default=None,
@@ -47,8 +43,17 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="mask the slices must cover (default brain)")
     parser.add_argument("--tolerance", type=float, default=0.01,
                         help="ROI medians this close to the best count as equal when recommending (default 0.01)")
-    parser.add_argument("--prefix", default="", help="prepended to every output file name")
+    from .main import add_tag_option
+
+    add_tag_option(parser)
     parser.epilog = "Writes plan.csv (ranked table), plan.json (recommendation, reason, all rows) and plan.png."
+
+
+#: Library parameters -> the options that set them (for error messages).
+FLAGS = {"te_s": "--te", "thickness_mm": "--thickness", "tilt_deg": "--tilt", "pe_lines": "--pe-lines",
+         "multiband": "--multiband", "max_tr_s": "--max-tr", "echo_spacing_s": "--echo-spacing", "tag": "--tag"}
+#: Options whose values may start with '-' (e.g. --tilt -30deg:30deg:10deg).
+DASH_VALUES = ("--tilt", "--zshim")
 
 
 def run(args) -> dict:
@@ -61,8 +66,11 @@ def run(args) -> dict:
     if args.pe_lines < 2 or args.multiband < 1:
         raise InputError("--pe-lines must be at least 2 and --multiband at least 1")
     signs = {"both": (1, -1), "+": (1,), "-": (-1,)}[args.polarity]
+    from .main import job_options
+
+    job = job_options(args)
     summary = run_plan(
-        args.b0, args.out, roi_path=args.roi, brain_mask_path=args.brain_mask,
+        args.b0, job, roi_path=args.roi, brain_mask_path=args.brain_mask,
         te_s=parse_quantity_list(args.te, "time"), thickness_mm=parse_quantity_list(args.thickness, "length"),
         tilt_deg=parse_quantity_list(args.tilt, "angle"), pe_signs=signs,
         zshim_mtms_per_m=parse_quantity_list(args.zshim, "moment") if args.zshim else (0.0,),
@@ -72,7 +80,8 @@ def run(args) -> dict:
         threshold=args.threshold, slice_gap_mm=parse_length_mm(args.gap),
         time_per_slice_s=parse_time_s(args.time_per_slice), multiband=args.multiband,
         max_tr_s=parse_time_s(args.max_tr) if args.max_tr else None, tolerance=args.tolerance,
-        coverage=args.coverage, prefix=args.prefix, overwrite=args.overwrite, progress=args.progress,
-        command=getattr(args, "command_line", None),
+        coverage=args.coverage,
     )
-    return {k: summary[k] for k in ("protocols", "metric", "recommended", "reason", "outputs", "caution")}
+    data = summary.to_json()
+    data["outputs"] = {k: str(v) for k, v in summary.outputs.paths(job.out_dir).items()}
+    return {k: data[k] for k in ("protocols", "metric", "recommended", "reason", "outputs", "caution")}

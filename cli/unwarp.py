@@ -27,7 +27,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="mask of the B0 map, for the statistics (default: b0_mask beside the B0 map if present)")
     parser.add_argument("--force", action="store_true",
                         help="correct even when shifts exceed a quarter of the field of view")
-    parser.add_argument("--prefix", default="", help="prepended to every output file name")
+    from .main import add_tag_option
+
+    add_tag_option(parser)
     parser.add_argument("--no-report", action="store_true",
                         help="do not build the HTML quality report (report.html) in the output folder")
     parser.epilog = (
@@ -39,42 +41,49 @@ def configure(parser: argparse.ArgumentParser) -> None:
     )
 
 
-def run(args) -> dict:
-    from fieldfix.units import parse_time_s
-    from fieldfix.workflows.unwarp import CAUTION, run_unwarp
+#: Library parameters -> the options that set them (for error messages).
+FLAGS = {"pe_code": "--phase-encoding", "readout_time_s": "--readout-time", "echo_spacing_s": "--echo-spacing",
+         "timing_win": "--timing-wins", "interp": "--interp", "b0_mask": "--b0-mask", "force": "--force",
+         "tag": "--tag"}
+DASH_VALUES = ("--phase-encoding",)
 
-    readout_time_s = parse_time_s(args.readout_time) if args.readout_time is not None else None
-    echo_spacing_s = parse_time_s(args.echo_spacing) if args.echo_spacing is not None else None
-    summaries = run_unwarp(
-        args.runs, args.b0, args.out, pe_code=args.phase_encoding, readout_time_s=readout_time_s,
-        echo_spacing_s=echo_spacing_s, timing_win=args.timing_wins, interp=args.interp,
-        jacobian=not args.no_jacobian, b0_mask_path=args.b0_mask, force=args.force, prefix=args.prefix,
-        overwrite=args.overwrite, progress=args.progress, command=getattr(args, "command_line", None),
-    )
+
+def run(args) -> dict:
+    from pathlib import Path
+
+    from fieldfix.units import parse_time_s
+    from fieldfix.workflows.unwarp import UnwarpSettings, run_unwarp
+
+    from .main import job_options
+
+    settings = UnwarpSettings(
+        pe_code=args.phase_encoding,
+        readout_time_s=parse_time_s(args.readout_time) if args.readout_time is not None else None,
+        echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing is not None else None,
+        timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
+        force=args.force)
+    job = job_options(args)
+    summaries = run_unwarp(args.runs, args.b0, job, settings)
     runs = []
     for item in summaries:
         runs.append({
-            "run": item["run"],
-            "corrected": item["outputs"]["corrected"],
-            "phase_encoding": f"{item['pe_code']} ({item['pe_direction_world']})",
-            "readout_time_ms": item["timing"]["readout_time_s"] * 1e3,
-            "max_abs_shift_mm": item["max_abs_shift_mm"],
-            "percent_shifted_over_1_voxel": item["percent_shifted_over_1_voxel"],
-            "folded_voxels": item["folded_voxels"],
-            "volumes": item["n_volumes"],
-            "warnings": item.get("warnings", []),
+            "run": item.run,
+            "corrected": str(job.path(item.outputs.corrected)),
+            "phase_encoding": f"{item.pe_code} ({item.pe_direction_world})",
+            "readout_time_ms": item.timing.readout_time_s * 1e3,
+            "max_abs_shift_mm": item.max_abs_shift_mm,
+            "percent_shifted_over_1_voxel": item.percent_shifted_over_1_voxel,
+            "folded_voxels": item.folded_voxels,
+            "volumes": item.n_volumes,
+            "warnings": item.warnings,
         })
-        for warning in item.get("warnings", []):
-            print(f"fieldfix unwarp: warning: {item['run']}: {warning}", file=sys.stderr)
+        for warning in item.warnings:
+            print(f"fieldfix unwarp: warning: {item.run}: {warning}", file=sys.stderr)
     result = {"runs": runs}
     if not args.no_report:
         from fieldfix.report import build_report
 
-        from pathlib import Path
-
-        from fieldfix.outdir import check_name_prefix
-
-        target = Path(args.out) / f"{check_name_prefix(args.prefix)}report.html"
+        target = Path(args.out) / f"{job.tag}report.html"
         result["report"] = str(build_report(args.out, out_path=target, overwrite=args.overwrite))
-    result["caution"] = CAUTION
+    result["caution"] = summaries[0].caution
     return result

@@ -1034,9 +1034,9 @@ def _now_iso(timespec: str = "milliseconds") -> str:
 
 
 def _jsonable(value):
-    from fieldfix.io import _jsonable as convert
+    from fieldfix.jsonfile import to_jsonable
 
-    return convert(value)
+    return to_jsonable(value)
 
 
 def _reason(exc: BaseException) -> str:
@@ -1746,12 +1746,12 @@ def _run_fieldmap_task(task: Task, upstream, deriv: Path, staging: Path, command
         mags = tuple(i[m] for m in ("magnitude1", "magnitude2") if m in i)
         return run_fieldmap(staging, phase_diff=i["phasediff"], magnitude=mags,
                             echo_times_s=tuple(p["echo_times_s"]), echo_times_win="arguments",
-                            phase_units=p.get("phase_units"), **common)
+                            phase_units=p.get("phase_units"), **common).to_json()
     if p["kind"] == "phase-pair":
         return run_fieldmap(staging, phase=(i["phase1"], i["phase2"]),
                             magnitude=(i["magnitude1"], i["magnitude2"]),
                             echo_times_s=tuple(p["echo_times_s"]), echo_times_win="arguments",
-                            phase_units=p.get("phase_units"), **common)
+                            phase_units=p.get("phase_units"), **common).to_json()
     if p["kind"] == "fieldmap":
         units = str(p.get("units") or "")
         b0_units = {"hz": "hz", "rad/s": "rad/s", "rad s-1": "rad/s", "t": "T",
@@ -1761,7 +1761,7 @@ def _run_fieldmap_task(task: Task, upstream, deriv: Path, staging: Path, command
                              path=i["fieldmap"])
         return run_fieldmap(staging, b0=i["fieldmap"], b0_units=b0_units,
                             magnitude=(i["magnitude"],),
-                            field_strength_t=p.get("field_strength_t"), **common)
+                            field_strength_t=p.get("field_strength_t"), **common).to_json()
     raise InputError(f"field maps of kind {p['kind']!r} are not supported")
 
 
@@ -1778,8 +1778,9 @@ def _run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
               else {"echo_spacing_s": p["echo_spacing_s"]})
     # the metadata were resolved by the BIDS inheritance principle, so they win over the
     # run's own sidecar (which may hold only part of them)
-    return run_unwarp([task.inputs["run"]], b0, staging, pe_code=p["pe_code"],
-                      timing_win="arguments", b0_mask_path=mask, command=command, **timing)
+    summaries = run_unwarp([task.inputs["run"]], b0, staging, pe_code=p["pe_code"],
+                           timing_win="arguments", b0_mask=mask, command=command, **timing)
+    return [summary.to_json() for summary in summaries]
 
 
 def _run_geometry(task: Task) -> tuple[float, int, float | None]:
@@ -1819,11 +1820,9 @@ def _run_dropout_task(task: Task, upstream, deriv: Path, staging: Path, command)
     thickness, axis, spacing = _run_geometry(task)
     pe = task.params.get("pe_code") if spacing is not None else None
     summary = run_dropout(b0, staging, te_s=task.params["te_s"], thickness_mm=thickness,
-                          like_path=task.inputs["run"], slice_axis=axis, pe_code=pe,
-                          echo_spacing_s=spacing, mask_path=mask, command=command)
-    retention = summary.get("retention") if isinstance(summary, dict) else None
-    if isinstance(retention, dict):
-        summary["dropout_percent"] = retention.get("pct_below")
+                          like=task.inputs["run"], slice_axis=axis, pe_code=pe,
+                          echo_spacing_s=spacing, mask=mask, command=command).to_json()
+    summary["dropout_percent"] = summary["retention"]["percent_below_threshold"]
     return summary
 
 

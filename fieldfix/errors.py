@@ -34,15 +34,21 @@ class FieldfixError(Exception):
         What is wrong, in one line.
     path : str or os.PathLike, optional
         The file the problem is about.
+    parameter : str, optional
+        The parameter (of the library call) the problem is about, when no file is; the
+        command line shows the option that sets it instead.
     """
 
-    def __init__(self, message: str, path: str | os.PathLike | None = None):
+    def __init__(self, message: str, path: str | os.PathLike | None = None, parameter: str | None = None):
         self.message = " ".join(str(message).split())
         self.path = os.fspath(path) if path is not None else None
+        self.parameter = parameter
         super().__init__(str(self))
 
     def __str__(self) -> str:
-        return f"{self.path}: {self.message}" if self.path else self.message
+        if self.path:
+            return f"{self.path}: {self.message}"
+        return f"{self.parameter}: {self.message}" if self.parameter else self.message
 
 
 class InputError(FieldfixError):

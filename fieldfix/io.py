@@ -25,7 +25,6 @@ import datetime as _dt
 import gzip
 import hashlib
 import io
-import json
 import math
 import os
 import struct
@@ -38,6 +37,8 @@ import nibabel as nib
 import numpy as np
 
 from .errors import InputError, OutputError
+from .jsonfile import read_json, to_jsonable, write_json
+from .outputs import CAUTION
 from .outdir import (
     atomic_output,
     folder_for,
@@ -102,22 +103,6 @@ def sidecar_path(path: str | os.PathLike) -> Path:
     """Path of the JSON sidecar that belongs beside an image."""
     path = Path(path)
     return path.with_name(image_stem(path) + ".json")
-
-
-def read_json(path: str | os.PathLike) -> dict:
-    """Read a JSON object from a file; errors name the file."""
-    try:
-        with open(path, encoding="utf-8") as handle:
-            value = json.load(handle)
-    except FileNotFoundError:
-        raise InputError("file not found", path) from None
-    except json.JSONDecodeError as err:
-        raise InputError(f"not valid JSON ({err.msg} at line {err.lineno})", path) from None
-    except OSError as err:
-        raise InputError(f"cannot read ({err.strerror or err})", path) from None
-    if not isinstance(value, dict):
-        raise InputError("expected a JSON object", path)
-    return value
 
 
 def read_sidecar(path: str | os.PathLike) -> dict:
@@ -339,37 +324,11 @@ class Provenance:
         return {
             "GeneratedBy": {"Name": "fieldfix", "Version": _version()},
             "Command": self.command,
-            "Parameters": _jsonable(self.parameters),
+            "Parameters": to_jsonable(self.parameters),
             "Inputs": self.input_records(),
             "Created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-            "Caution": "Research software, not a medical device. Inspect corrected images before any "
-                       "decision about a person.",
+            "Caution": CAUTION,
         }
-
-
-def _jsonable(value):
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, Path):
-        return str(value)
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
-def write_json(path: str | os.PathLike, obj: dict, *, inputs: Iterable = (), overwrite: bool = False) -> Path:
-    """Write a JSON object atomically (numpy values converted, non-finite floats as null)."""
-    path = Path(path)
-    text = json.dumps(_jsonable(obj), indent=2, sort_keys=False) + "\n"
-    with atomic_output(path, inputs, overwrite) as temporary:
-        temporary.write_text(text, encoding="utf-8")
-    return path
 
 
 def _header_for(data_shape, affine, template, dtype, intent):
@@ -457,7 +416,7 @@ def save_image(
     if provenance is not None:
         record = provenance.as_dict()
         if sidecar_extra:
-            record.update(_jsonable(sidecar_extra))
+            record.update(to_jsonable(sidecar_extra))
         write_json(sidecar_path(path), record, inputs=inputs, overwrite=True)
     return path
 
@@ -569,7 +528,7 @@ class StreamingWriter:
             if self.provenance is not None:
                 record = self.provenance.as_dict()
                 if self.sidecar_extra:
-                    record.update(_jsonable(self.sidecar_extra))
+                    record.update(to_jsonable(self.sidecar_extra))
                 write_json(sidecar_path(self.path), record, inputs=self.inputs, overwrite=True)
             return False
         self._temporary.unlink(missing_ok=True)

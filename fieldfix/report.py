@@ -80,10 +80,7 @@ __all__ = [
     "build_report",
 ]
 
-CAUTION = (
-    "Research software, not a medical device. Inspect the corrected images yourself "
-    "before they are used for any decision about a person."
-)
+from .outputs import CAUTION  # noqa: E402  (one caution text everywhere)
 
 # Thresholds behind the warnings (ours, documented on the page).
 LOW_COVERAGE_FRACTION = 0.7  # mask / (magnitude above Otsu threshold)
@@ -1903,9 +1900,9 @@ def build_report(
         panels = _summary_panels(field_arrays, run_arrays, dropout_arrays)
         summary_png = figure_png(summary_figure(panels, title=report["report"]["title"]), dpi=max(dpi, 150)) \
             if panels else next((p.png.read_bytes() for p in sources.plans if p.png is not None), None)
-        from .io import _jsonable
+        from .jsonfile import to_jsonable
 
-        report = _jsonable(report)  # the page shows exactly what report.json holds
+        report = to_jsonable(report)  # the page shows exactly what report.json holds
         page = render_html(report, sections, summary_png, plan_tables).encode("utf-8")
         if len(page) <= MAX_PAGE_BYTES:
             break

@@ -79,6 +79,7 @@ SLICE_SUBSAMPLES = 4
 
 __all__ = [
     "GENERATOR_VERSION",
+    "definition_hash",
     "SAMPLE_SCENARIOS_DIR",
     "generate_scenario",
     "list_scenarios",
@@ -311,7 +312,7 @@ def _parse(d: dict) -> dict:
     return p
 
 
-def _definition_hash(d: dict) -> str:
+def definition_hash(d: dict) -> str:
     public = {k: v for k, v in d.items() if not k.startswith("_")}
     return hashlib.sha256(json.dumps(public, sort_keys=True).encode()).hexdigest()
 
@@ -628,7 +629,7 @@ def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int 
         "scenario": d["name"],
         "title": d.get("title", d["name"]),
         "generator_version": GENERATOR_VERSION,
-        "definition_sha256": _definition_hash(d),
+        "definition_sha256": definition_hash(d),
         "definition": public,
         "seed": seed,
         "field_strength_t": p["field_t"],

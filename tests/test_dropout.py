@@ -387,7 +387,7 @@ def test_run_dropout_writes_maps_matching_formula(tmp_path):
     like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((20, 20, 14, 2)), epi_affine,
                         {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
     out = tmp_path / "out"
-    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like, prefix="s1_")
+    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like, tag="s1_")
     ret = nib.load(out / "s1_retention.nii.gz").get_fdata()
     bs = nib.load(out / "s1_bold_sensitivity.nii.gz").get_fdata()
     assert (out / "s1_dropout.json").exists() and (out / "s1_retention.json").exists()
@@ -396,11 +396,11 @@ def test_run_dropout_writes_maps_matching_formula(tmp_path):
     assert np.allclose(ret[2:-2, 2:-2, 2:-2], abs(np.sinc(u)), atol=1e-5)
     te_l = 0.03 / (1 - 6.0 * 20 * 0.0005)  # Q = -1 * 6 Hz * 20 lines (this grid) * 0.5 ms
     assert np.allclose(bs[2:-2, 2:-2, 2:-2], abs(np.sinc(6.0 * te_l * 3.0)) * te_l / 0.03, atol=1e-5)
-    assert summary["parameters"]["pe_code"] == "j-"
-    assert summary["pe_direction_world"] == "anterior to posterior"
-    assert summary["retention"]["median"] == pytest.approx(abs(np.sinc(u)), abs=1e-5)
+    assert summary.parameters.pe_code == "j-"
+    assert summary.pe_direction_world == "anterior to posterior"
+    assert summary.retention.median == pytest.approx(abs(np.sinc(u)), abs=1e-5)
     with pytest.raises(OutputError):
-        run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like, prefix="s1_")
+        run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like, tag="s1_")
 
 
 def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):
@@ -415,9 +415,9 @@ def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):
     like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((12, 12, 8, 3)), epi_affine,
                         {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
     out = tmp_path / "out"
-    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like_path=like)
-    ret_epi = nib.load(summary["outputs"]["retention_on_epi"])
-    bs_epi = nib.load(summary["outputs"]["bold_sensitivity_on_epi"])
+    summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like)
+    ret_epi = nib.load(out / summary.outputs.retention_on_epi)
+    bs_epi = nib.load(out / summary.outputs.bold_sensitivity_on_epi)
     assert ret_epi.shape == (12, 12, 8) and np.allclose(ret_epi.affine, epi_affine)
     assert bs_epi.shape == (12, 12, 8)
     u = 6.0 * 0.03 * 3.0  # g_n = 6 Hz/mm along the EPI slice axis (z)
@@ -427,8 +427,8 @@ def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):
     assert np.allclose(bs_epi.get_fdata()[inner], abs(np.sinc(6.0 * te_l * 3.0)) * te_l / 0.03, atol=1e-5)
     assert (out / "retention_on_epi.json").exists()
     # on the B0 map's own grid no copy is made
-    same = run_dropout(b0_path, tmp_path / "same", te_s=0.03, thickness_mm=3.0, like_path=b0_path)
-    assert "retention_on_epi" not in same["outputs"]
+    same = run_dropout(b0_path, tmp_path / "same", te_s=0.03, thickness_mm=3.0, like=b0_path)
+    assert same.outputs.retention_on_epi is None and same.outputs.bold_sensitivity_on_epi is None
 
 
 def test_run_dropout_needs_echo_spacing_with_phase_encoding(tmp_path):
@@ -471,12 +471,12 @@ def test_run_dropout_refuses_implausible_te_empty_mask_and_distant_epi(tmp_path)
         run_dropout(b0_path, tmp_path / "a", te_s=30.0, thickness_mm=3.0)
     empty = _write_nifti(tmp_path / "mask.nii.gz", np.zeros(shape), affine)
     with pytest.raises(InputError, match="empty"):
-        run_dropout(b0_path, tmp_path / "b", te_s=0.03, thickness_mm=3.0, mask_path=empty)
+        run_dropout(b0_path, tmp_path / "b", te_s=0.03, thickness_mm=3.0, mask=empty)
     far = np.diag([3.0, 3.0, 3.0, 1.0])
     far[:3, 3] = (0.0, 0.0, 1000.0)
     like = _write_nifti(tmp_path / "far.nii.gz", np.ones((20, 20, 14)), far)
     with pytest.raises(GeometryError, match="overlap"):
-        run_dropout(b0_path, tmp_path / "c", te_s=0.03, thickness_mm=3.0, like_path=like)
+        run_dropout(b0_path, tmp_path / "c", te_s=0.03, thickness_mm=3.0, like=like)
     assert not any((tmp_path / d).exists() and any((tmp_path / d).iterdir()) for d in "abc")
 
 

@@ -253,13 +253,14 @@ def test_cli_echo_time_contradiction_needs_a_winner(acquisition, tmp_path, capsy
 def test_phase_difference_real_imag_and_ready_map_agree(acquisition, tmp_path):
     d, files, _ = acquisition
     ref = run_fieldmap(tmp_path / "ref", phase=files["phase"], magnitude=files["magnitude"], smooth_mm=0.0,
-                       reject_outliers=False, prefix="sub-01_")
-    assert Path(ref["outputs"]["b0_hz"]).name == "sub-01_b0_hz.nii.gz"
-    ref_b0 = nib.load(ref["outputs"]["b0_hz"]).get_fdata()
-    mask = nib.load(ref["outputs"]["mask"]).get_fdata() > 0
+                       reject_outliers=False, tag="sub-01_")
+    assert ref.outputs.b0_hz == "sub-01_b0_hz.nii.gz"
+    ref_files = ref.outputs.paths(tmp_path / "ref")
+    ref_b0 = nib.load(ref_files["b0_hz"]).get_fdata()
+    mask = nib.load(ref_files["mask"]).get_fdata() > 0
     # phase difference stored in degrees, echo times from EchoTime1/EchoTime2, in-process CLI
     status = cli_main(["fieldmap", "--phase-diff", files["phasediff"], "--magnitude", files["magnitude"][0],
-                       "--mask", ref["outputs"]["mask"], "--smooth", "0mm", "--keep-outliers", "--out",
+                       "--mask", str(ref_files["mask"]), "--smooth", "0mm", "--keep-outliers", "--out",
                        str(tmp_path / "pd"), "--quiet"])
     assert status == 0
     pd_b0 = nib.load(str(tmp_path / "pd" / "b0_hz.nii.gz")).get_fdata()
@@ -270,18 +271,19 @@ def test_phase_difference_real_imag_and_ready_map_agree(acquisition, tmp_path):
     assert np.max(np.abs(pd_b0 - ref_b0)[mask]) < bound
     # real + imaginary, echo times given explicitly
     status = cli_main(["fieldmap", "--real", *files["real"], "--imag", *files["imag"], "--echo-times", "4.92ms",
-                       "7.38ms", "--mask", ref["outputs"]["mask"], "--smooth", "0mm", "--keep-outliers",
+                       "7.38ms", "--mask", str(ref_files["mask"]), "--smooth", "0mm", "--keep-outliers",
                        "--out", str(tmp_path / "ri"), "--quiet"])
     assert status == 0
     ri_b0 = nib.load(str(tmp_path / "ri" / "b0_hz.nii.gz")).get_fdata()
     assert np.max(np.abs(ri_b0 - ref_b0)[mask]) < bound
     # ready map in rad/s, with a ppm copy
     rads = _save(tmp_path / "map_rads.nii.gz", (ref_b0 * TWO_PI).astype(np.float32))
-    summary = run_fieldmap(tmp_path / "map", b0=rads, b0_units="rad/s", mask=ref["outputs"]["mask"],
+    summary = run_fieldmap(tmp_path / "map", b0=rads, b0_units="rad/s", mask=str(ref_files["mask"]),
                            smooth_mm=0.0, reject_outliers=False, field_strength_t=3.0, also_units=["ppm"])
-    map_b0 = nib.load(summary["outputs"]["b0_hz"]).get_fdata()
+    map_files = summary.outputs.paths(tmp_path / "map")
+    map_b0 = nib.load(map_files["b0_hz"]).get_fdata()
     np.testing.assert_allclose(map_b0[mask], ref_b0[mask], atol=1e-3)
-    ppm = nib.load(summary["outputs"]["b0_ppm"]).get_fdata()
+    ppm = nib.load(map_files["b0_ppm"]).get_fdata()
     gamma = scipy.constants.physical_constants["proton gyromag. ratio in MHz/T"][0]
     np.testing.assert_allclose(ppm[mask], map_b0[mask] / (gamma * 3.0), rtol=1e-5, atol=1e-6)
 

@@ -242,17 +242,17 @@ def test_overwrite_never_replaces_a_users_file_of_an_output_name(tmp_path, capsy
     assert sorted(p.name for p in out.iterdir()) == [users.name]
 
 
-@pytest.mark.parametrize("prefix", ["../../x_", "/tmp/x_", "sub/x_"])
-def test_a_prefix_with_folder_parts_is_refused(tmp_path, capsys, prefix):
+@pytest.mark.parametrize("tag", ["../../x_", "/tmp/x_", "sub/x_"])
+def test_a_name_tag_with_folder_parts_is_refused(tmp_path, capsys, tag):
     from fieldfix_cli.main import main
     from test_bad_input import make_b0, make_run
 
     run, b0 = make_run(tmp_path), make_b0(tmp_path)
     listing = sorted(tmp_path.rglob("*"))
-    status = main(["unwarp", str(run), "--b0", str(b0), "--out", str(tmp_path / "a" / "b"), "--prefix", prefix,
+    status = main(["unwarp", str(run), "--b0", str(b0), "--out", str(tmp_path / "a" / "b"), "--tag", tag,
                    "--no-report", "--quiet"])
     err = capsys.readouterr().err.strip().splitlines()
-    assert status == 2 and len(err) == 1 and "prefix" in err[0]
+    assert status == 2 and len(err) == 1 and "--tag" in err[0] and "no folders" in err[0]
     assert sorted(tmp_path.rglob("*")) == listing
 
 

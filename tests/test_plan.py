@@ -373,20 +373,20 @@ def test_run_plan_writes_table_json_and_figure(tmp_path):
     p = _scenario_files(tmp_path)
     out = tmp_path / "out"
     summary = run_plan(p["b0"], out, roi_path=p["roi"], brain_mask_path=p["brain"], te_s=[0.025, 0.03],
-                       thickness_mm=[2.0, 3.0], tilt_deg=[-10.0, 0.0, 10.0], echo_spacing_s=5e-4, prefix="x_")
+                       thickness_mm=[2.0, 3.0], tilt_deg=[-10.0, 0.0, 10.0], echo_spacing_s=5e-4, tag="x_")
     with open(out / "x_plan.csv", newline="") as handle:
         table = list(csv.DictReader(handle))
-    assert len(table) == 24 == summary["protocols"]
+    assert len(table) == 24 == summary.protocols
     assert [int(r["rank"]) for r in table] == list(range(1, 25))
     medians = [float(r["roi_median"]) for r in table]
     assert medians == sorted(medians, reverse=True)
     saved = json.loads((out / "x_plan.json").read_text())
-    assert saved["reason"] == summary["reason"] and len(saved["rows"]) == 24
+    assert saved["reason"] == summary.reason and len(saved["rows"]) == 24
     assert len(saved["provenance"]["Inputs"][0]["sha256"]) == 64
     assert (out / "x_plan.png").read_bytes()[:4] == b"\x89PNG"
-    assert summary["recommended"]["thickness_mm"] == 2.0
+    assert summary.recommended.thickness_mm == 2.0
     with pytest.raises(OutputError):
-        run_plan(p["b0"], out, roi_path=p["roi"], te_s=[0.03], thickness_mm=[2.0], prefix="x_")
+        run_plan(p["b0"], out, roi_path=p["roi"], te_s=[0.03], thickness_mm=[2.0], tag="x_")
 
 
 def test_cli_plan_end_to_end(tmp_path):

@@ -474,9 +474,9 @@ def test_report_of_a_real_unwarp_output(tmp_path):
     assert run["distorted"] == str(raw)
     assert run["mask_source"].startswith("b0_mask")
     # Same numbers as the workflow's own summary (same mask, same shift map).
-    assert run["max_abs_shift_mm"] == pytest.approx(workflow["max_abs_shift_mm"], rel=1e-6)
-    assert run["percent_over_one_voxel"] == pytest.approx(workflow["percent_shifted_over_1_voxel"])
-    assert run["folded_voxels"] == workflow["folded_voxels"]
+    assert run["max_abs_shift_mm"] == pytest.approx(workflow.max_abs_shift_mm, rel=1e-6)
+    assert run["percent_over_one_voxel"] == pytest.approx(workflow.percent_shifted_over_1_voxel)
+    assert run["folded_voxels"] == workflow.folded_voxels
     assert run["timing"]["echo_spacing_s"] == pytest.approx(0.0005)
     # The real correction moves EPI edges towards the anatomy.
     assert run["edge_agreement_after"] > run["edge_agreement_before"] + 0.01
@@ -495,11 +495,11 @@ def test_report_of_real_fieldmap_and_unwarp_outputs(tmp_path):
     data = json.loads(rp.build_report(out).with_name("report.json").read_text())
     fmap = data["field_maps"][0]
     # Our percentiles (from the images) equal the field-map workflow's own (from its arrays).
-    for key, value in fm["field_percentiles_hz"].items():
+    for key, value in fm.field_percentiles_hz.items():
         if key in fmap["percentiles_hz"]:
             assert fmap["percentiles_hz"][key] == pytest.approx(value, abs=1e-3), key
-    assert fmap["mask_volume_ml"] == pytest.approx(fm["mask_volume_ml"])
-    assert fmap["voxels_offset_changed"] == fm["voxels_offset_changed"]
+    assert fmap["mask_volume_ml"] == pytest.approx(fm.mask_volume_ml)
+    assert fmap["voxels_offset_changed"] == fm.voxels_offset_changed
     run = data["runs"][0]
     assert run["field_map"] == "b0_hz" and run["mask_source"].startswith("b0_mask")
     assert run["edge_agreement_shifted_after"] > run["edge_agreement_shifted_before"]

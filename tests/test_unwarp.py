@@ -266,7 +266,7 @@ def test_workflow_streamed_equals_loaded_whole(scene):
     folder, run, b0_path, data, affine = scene
     summaries = run_unwarp([run], b0_path, folder / "out", interp="cubic")
     (summary,) = summaries
-    outputs = {k: Path(v) for k, v in summary["outputs"].items()}
+    outputs = summary.outputs.paths(folder / "out")
     corrected = load_image(outputs["corrected"])
     assert corrected.shape == data.shape and np.allclose(corrected.affine, affine)
     assert corrected.tr_s == pytest.approx(1.5) and corrected.header.get_data_dtype() == np.float32
@@ -274,16 +274,16 @@ def test_workflow_streamed_equals_loaded_whole(scene):
     whole = unwarp_array(nib.load(str(run)).get_fdata(), shift, 1, interp="cubic")
     assert np.allclose(corrected.get_fdata(), whole, atol=1e-5)
     # Timing and direction came from the sidecar; the mask beside the B0 map was found.
-    assert summary["pe_code"] == "j-" and summary["timing"]["source"] == "sidecar"
-    assert summary["timing"]["echo_spacing_s"] == pytest.approx(0.0345 / 23)
-    assert summary["b0_mask"].endswith("b0_mask.nii.gz") and summary["n_volumes"] == 40
-    assert summary["pe_direction_world"] == "anterior to posterior"
+    assert summary.pe_code == "j-" and summary.timing.source == "sidecar"
+    assert summary.timing.echo_spacing_s == pytest.approx(0.0345 / 23)
+    assert summary.b0_mask.endswith("b0_mask.nii.gz") and summary.n_volumes == 40
+    assert summary.pe_direction_world == "anterior to posterior"
     # Shift = -field x spacing x 24 lines, field sampled through the affines at the run's voxel centres.
     world_y = affine[1, 1] * np.arange(24) + affine[1, 3]
     expected = -(40.0 * np.sin(world_y / 12.0) + 10.0) * (0.0345 / 23) * 24
     assert np.allclose(shift[5, :, 2], expected, atol=0.02)
     stored = json.loads(outputs["summary"].read_text())
-    assert stored["max_abs_shift_mm"] == pytest.approx(summary["max_abs_shift_mm"])
+    assert stored["max_abs_shift_mm"] == pytest.approx(summary.max_abs_shift_mm)
     assert 0 < stored["max_abs_shift_mm"] <= np.abs(expected).max() * 2.5 + 1e-6
     # Provenance sidecar beside each image.
     record = json.loads(outputs["corrected"].with_name("sub-01_task-rest_bold_corrected.json").read_text())
@@ -292,8 +292,8 @@ def test_workflow_streamed_equals_loaded_whole(scene):
 
 def test_workflow_displacement_field_and_masks(scene):
     folder, run, b0_path, data, affine = scene
-    (summary,) = run_unwarp(run, b0_path, folder / "out", prefix="x_")
-    outputs = {k: Path(v) for k, v in summary["outputs"].items()}
+    (summary,) = run_unwarp(run, b0_path, folder / "out", tag="x_")
+    outputs = summary.outputs.paths(folder / "out")
     assert outputs["corrected"].name == "x_sub-01_task-rest_bold_corrected.nii.gz"
     disp = nib.load(str(outputs["displacement_mm"]))
     assert disp.header.get_intent()[0] == "displacement vector" and int(disp.header["intent_code"]) == 1006
@@ -312,11 +312,11 @@ def test_workflow_metadata_errors(scene):
         run_unwarp([run], b0_path, folder / "a", readout_time_s=0.05)
     assert "bold" in str(err.value)
     (summary,) = run_unwarp([run], b0_path, folder / "b", readout_time_s=0.05, timing_win="arguments")
-    assert summary["timing"]["readout_time_s"] == pytest.approx(0.05)
+    assert summary.timing.readout_time_s == pytest.approx(0.05)
     with pytest.raises(MetadataError, match="phase-encode"):
         run_unwarp([run], b0_path, folder / "c", pe_code="j")
     (summary,) = run_unwarp([run], b0_path, folder / "d", pe_code="j", timing_win="arguments")
-    assert summary["pe_code"] == "j"
+    assert summary.pe_code == "j"
     # Outputs exist: refused without overwrite, nothing replaced.
     with pytest.raises(OutputError):
         run_unwarp([run], b0_path, folder / "d", pe_code="j", timing_win="arguments")
@@ -330,7 +330,7 @@ def test_workflow_refuses_huge_shifts_unless_forced(scene):
         run_unwarp([run], b0_path, folder / "o", readout_time_s=0.3, timing_win="arguments")
     assert "sub-01_task-rest_bold" in str(err.value)
     (summary,) = run_unwarp([run], b0_path, folder / "o", readout_time_s=0.3, timing_win="arguments", force=True)
-    assert summary["max_abs_shift_vox"] > 6
+    assert summary.max_abs_shift_vox > 6
 
 
 def test_workflow_several_runs_share_field_map(tmp_path):
@@ -347,10 +347,10 @@ def test_workflow_several_runs_share_field_map(tmp_path):
                                                                           "EffectiveEchoSpacing": 0.0005}),
     ]
     summaries = run_unwarp(runs, b0_path, tmp_path / "out", jacobian=False, parallel=False)
-    assert [s["pe_code"] for s in summaries] == ["j", "j-"]
+    assert [s.pe_code for s in summaries] == ["j", "j-"]
     # 25 Hz x 0.5 ms x 16 lines = 0.2 voxel; the corrected line moves against the shift.
-    first = load_image(summaries[0]["outputs"]["corrected"]).get_fdata()
-    second = load_image(summaries[1]["outputs"]["corrected"]).get_fdata()
+    first = load_image(tmp_path / "out" / summaries[0].outputs.corrected).get_fdata()
+    second = load_image(tmp_path / "out" / summaries[1].outputs.corrected).get_fdata()
     assert first.shape == shape + (3,) and second.shape == shape
     profile1 = first[4, :, 1, 0]
     profile2 = second[4, :, 1]
@@ -374,7 +374,7 @@ def test_workflow_recovers_simulated_run(tmp_path):
     b0_path = save_image(tmp_path / "b0_hz.nii.gz",
                          field.reshape(16, 2, 32, 2, 3, 2).mean(axis=(1, 3, 5)), affine)
     (summary,) = run_unwarp([run], b0_path, tmp_path / "out", interp="cubic")
-    corrected = load_image(summary["outputs"]["corrected"]).get_fdata()
+    corrected = load_image(tmp_path / "out" / summary.outputs.corrected).get_fdata()
     truth = obj.reshape(16, 2, 32, 2, 3, 2).mean(axis=(1, 3, 5))
 
     def nrmse(a):
@@ -511,7 +511,7 @@ def test_workflow_refuses_bad_recon_matrix_and_non_finite_volumes(tmp_path):
             run_unwarp([run], b0_path, tmp_path / "o1")
         assert "recon.json" in str(err.value)
     run = _write_run(tmp_path / "recon.nii.gz", np.ones(shape + (2,)), affine, sidecar={**sidecar, "ReconMatrixPE": 8.0})
-    assert run_unwarp([run], b0_path, tmp_path / "o2")[0]["timing"]["n_pe_lines"] == 8
+    assert run_unwarp([run], b0_path, tmp_path / "o2")[0].timing.n_pe_lines == 8
     data = np.ones(shape + (3,))
     data[1, 2, 0, 2] = np.nan
     bad = _write_run(tmp_path / "nan_bold.nii.gz", data, affine, sidecar=sidecar)
@@ -534,7 +534,7 @@ def test_workflow_keeps_a_one_volume_run_4d_with_its_tr(tmp_path):
     loaded = load_image(run)
     assert loaded.shape == shape and loaded.file_shape == shape + (1,) and loaded.tr_s == pytest.approx(2.2)
     (summary,) = run_unwarp([run], b0_path, tmp_path / "out", jacobian=False, parallel=False)
-    out = nib.load(summary["outputs"]["corrected"])
+    out = nib.load(tmp_path / "out" / summary.outputs.corrected)
     assert out.shape == shape + (1,)
     assert out.header.get_zooms()[3] == pytest.approx(2.2)
     profile = np.asanyarray(out.dataobj)[4, :, 1, 0]

@@ -1,12 +1,11 @@
 """The whole job on an invented sample scenario, start to finish, in about a minute.
 
 :func:`run_demo` builds the scenario's dataset when it is absent (see :mod:`fieldfix.scenarios`),
-then runs the field-map, unwarping, dropout and planning workflows on its first subject and builds
-the report, all outputs in one folder.  Because the scenario is simulated, its ground truth is
-known, and the summary says how close the results came to it: the B0 map against the modelled field,
-and the unwarped run against an undistorted simulation of the same head.
-
-Steps whose workflow is not part of this installation are listed as skipped, not faked.
+then runs the field-map, unwarping, dropout and planning jobs on its first subject and builds
+the report, all outputs in one folder. Because the scenario is simulated, its ground truth is
+known, and the summary (:class:`fieldfix.outputs.DemoSummary`) says how close the results came
+to it: the B0 map against the modelled field, and the unwarped run against an undistorted
+simulation of the same head.
 
 Research software, not a medical device; the scenarios and their data are invented.
 
@@ -14,13 +13,12 @@ Example
 -------
 >>> from fieldfix.workflows.demo import run_demo               # doctest: +SKIP
 >>> summary = run_demo("demo_output")                          # doctest: +SKIP
->>> summary["report"]                                          # doctest: +SKIP
+>>> summary.report                                             # doctest: +SKIP
 'demo_output/report.html'
 """
 
 from __future__ import annotations
 
-import importlib
 import os
 import time
 from pathlib import Path
@@ -31,13 +29,24 @@ from .. import scenarios
 from .._progress import progress_bar
 from ..errors import InputError, OutputError
 from ..geometry import resample_to_grid
-from ..io import load_image, write_json
+from ..io import load_image
+from ..jsonfile import write_json
+from ..outdir import output_folder
+from ..outputs import DemoChecks, DemoStep, DemoSummary, JobOptions, PlanSummary
+from .dropout import run_dropout
+from .fieldmap import run_fieldmap
+from .plan import run_plan
+from .unwarp import run_unwarp
 
 __all__ = ["DEFAULT_SCENARIO", "run_demo", "dataset_location"]
 
 DEFAULT_SCENARIO = "orbitofrontal-3t"
-CAUTION = ("Research software, not a medical device: inspect corrected images before they are used for any "
-           "decision about a person. The demo's study and data are invented.")
+
+# Protocols the demo's plan compares: echo time, slice thickness and slice tilt around the usual
+# choices (common practice, no source), both phase-encode polarities.
+PLAN_TE_S = (0.025, 0.030, 0.035)
+PLAN_THICKNESS_MM = (2.0, 3.0)
+PLAN_TILT_DEG = (-20.0, -10.0, 0.0, 10.0, 20.0)
 
 
 def dataset_location(scenario: str, out_dir) -> Path:
@@ -59,7 +68,7 @@ def dataset_location(scenario: str, out_dir) -> Path:
 def _ensure_dataset(scenario: str, root: Path, seed: int = 0) -> tuple[dict, bool]:
     """Reuse a generated dataset whose manifest matches the definition; build it otherwise."""
     definition = scenarios.load_definition(scenario)
-    want = scenarios._definition_hash(definition)
+    want = scenarios.definition_hash(definition)
     try:
         manifest = scenarios.load_manifest(root)
         if (manifest.get("definition_sha256") == want and manifest.get("seed") == seed
@@ -68,22 +77,13 @@ def _ensure_dataset(scenario: str, root: Path, seed: int = 0) -> tuple[dict, boo
             return manifest, False
     except (InputError, KeyError, IndexError, TypeError):
         pass
-    if root.is_dir() and any(root.iterdir()):
+    if root.is_dir() and any(p.name != ".fieldfix" for p in root.iterdir()):
         # Only a folder that holds an earlier generation (it has a manifest) is rebuilt in place.
         if not (root / scenarios.TRUTH_DIR / "manifest.json").is_file():
             raise OutputError("the dataset folder holds files that are not a generated scenario", root)
-    scenarios.generate_scenario(definition, root, seed=seed, overwrite=True)
+    with output_folder(root):
+        scenarios.generate_scenario(definition, root, seed=seed, overwrite=True)
     return scenarios.load_manifest(root), True
-
-
-def _workflow(name: str, func: str):
-    try:
-        module = importlib.import_module(f"fieldfix.workflows.{name}")
-    except ModuleNotFoundError as err:
-        if err.name == f"fieldfix.workflows.{name}":
-            return None
-        raise
-    return getattr(module, func, None)
 
 
 def _load_on(path: Path, ref_path: Path, order: int = 1) -> np.ndarray:
@@ -96,8 +96,25 @@ def _load_on(path: Path, ref_path: Path, order: int = 1) -> np.ndarray:
     return values
 
 
+class _Steps:
+    """Runs the demo's steps in turn, timing each and advancing the progress bar."""
+
+    def __init__(self, progress: bool):
+        self.done: dict[str, DemoStep] = {}
+        self.bar = progress_bar(total=6, desc="demo: dataset", enabled=progress, unit="step")
+
+    def run(self, name: str, call, outputs=lambda result: []):
+        self.bar.set_description(f"demo: {name}")
+        start = time.perf_counter()
+        result = call()
+        self.done[name] = DemoStep(status="done", seconds=round(time.perf_counter() - start, 2),
+                                   outputs=[str(p) for p in outputs(result)])
+        self.bar.update(1)
+        return result
+
+
 def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = False, progress: bool = False,
-             command: str | None = None, dataset_dir=None) -> dict:
+             command: str | None = None, dataset_dir=None) -> DemoSummary:
     """Build a sample scenario (if needed) and run the whole job on it.
 
     Parameters
@@ -117,10 +134,8 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
 
     Returns
     -------
-    dict
-        JSON-serialisable summary: scenario, dataset, each step (status, seconds, outputs), the
-        numbers checked against the ground truth, the report path.  Also written as
-        ``<out_dir>/demo_summary.json``.
+    DemoSummary
+        Also written as ``<out_dir>/demo_summary.json``.
     """
     t_start = time.perf_counter()
     out = Path(out_dir)
@@ -129,129 +144,75 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
         raise OutputError("an earlier demo is in this folder; pass overwrite (--overwrite) to replace it",
                           summary_path)
     root = Path(dataset_dir) if dataset_dir is not None else dataset_location(scenario, out)
-    bar = progress_bar(total=6, desc="demo: dataset", enabled=progress, unit="step")
+    steps = _Steps(progress)
     t0 = time.perf_counter()
     manifest, built = _ensure_dataset(scenario, root)
-    bar.update(1)
-    steps: dict[str, dict] = {"dataset": {"status": "built" if built else "reused",
-                                          "seconds": round(time.perf_counter() - t0, 2), "path": str(root)}}
+    steps.bar.update(1)
+    dataset_step = DemoStep(status="built" if built else "reused", seconds=round(time.perf_counter() - t0, 2),
+                            path=str(root))
     entry = dict(manifest["entries"][0], field_strength_t=manifest["field_strength_t"])
-    run = entry["runs"][0]
-    numbers: dict[str, object] = {}
-    out.mkdir(parents=True, exist_ok=True)
-    common = dict(overwrite=overwrite, progress=progress, command=command or "fieldfix demo")
-
-    def step(name, workflow, func, call):
-        bar.set_description(f"demo: {name}")
-        fn = _workflow(workflow, func)
-        if fn is None:
-            steps[name] = {"status": "skipped", "reason": f"fieldfix.workflows.{workflow} is not available"}
-            bar.update(1)
-            return None
-        t = time.perf_counter()
-        result = call(fn)
-        steps[name] = {"status": "done", "seconds": round(time.perf_counter() - t, 2)}
-        bar.update(1)
-        return result
-
-    # --- field map ---
-    files = {k: root / v for k, v in entry["fieldmap"]["files"].items()}
-    b0_path = out / "b0_hz.nii.gz"
-    b0_mask_path = out / "b0_mask.nii.gz"
-    fm = step("field map", "fieldmap", "run_fieldmap", lambda fn: _call_fieldmap(fn, files, entry, out, common))
-    if fm is not None:
-        steps["field map"]["outputs"] = [str(b0_path)]
-        truth = _load_on(root / entry["truth"]["b0_hz"], b0_path)
-        est = load_image(b0_path).get_fdata(np.float64)
-        brain = _load_on(root / entry["truth"]["brain_mask"], b0_path, order=0) > 0.5
-        err = np.abs(est - truth)[brain]
-        numbers["b0_brain_p1_p99_hz"] = [round(float(np.percentile(truth[brain], 1)), 1),
-                                         round(float(np.percentile(truth[brain], 99)), 1)]
-        numbers["b0_error_vs_truth_median_hz"] = round(float(np.median(err)), 2)
-        numbers["b0_error_vs_truth_p95_hz"] = round(float(np.percentile(err, 95)), 2)
-
-    # --- unwarping ---
-    bold = root / run["bold"]
-    uw = None
-    if b0_path.is_file():
-        uw = step("unwarping", "unwarp", "run_unwarp",
-                  lambda fn: fn([bold], b0_path, out, b0_mask_path=b0_mask_path if b0_mask_path.is_file() else None,
-                                **common))
-    else:
-        steps["unwarping"] = {"status": "skipped", "reason": "no B0 map"}
-    if uw:
-        s = uw[0]
-        steps["unwarping"]["outputs"] = [str(v) for k, v in s.get("outputs", {}).items()][:1] or []
-        numbers["max_abs_shift_vox"] = round(float(s.get("max_abs_shift_vox", float("nan"))), 2)
-        if s.get("percent_shifted_over_1_voxel") is not None:
-            numbers["percent_shifted_over_1_voxel"] = round(float(s["percent_shifted_over_1_voxel"]), 1)
-        corrected = _corrected_path(out, bold)
-        if corrected is not None:
-            shift_path = s.get("outputs", {}).get("shift_vox")
-            numbers.update(_unwarp_numbers(root, run, bold, corrected, Path(shift_path) if shift_path else None))
-
-    # --- dropout and plan ---
-    if b0_path.is_file():
-        dr = step("dropout", "dropout", "run_dropout",
-                  lambda fn: _call_dropout(fn, b0_path, run, entry, root, out, common))
-        if dr is not None:
-            steps["dropout"]["outputs"] = [dr.get("outputs", {}).get("retention")]
-            numbers.update(_dropout_numbers(dr, out, entry, root))
-        pl = step("plan", "plan", "run_plan", lambda fn: _call_plan(fn, b0_path, run, entry, root, out, common))
-        if pl is not None:
-            steps["plan"]["outputs"] = [pl.get("outputs", {}).get("csv")]
-            numbers.update(_plan_numbers(pl))
-    else:
-        steps["dropout"] = {"status": "skipped", "reason": "no B0 map"}
-        steps["plan"] = {"status": "skipped", "reason": "no B0 map"}
-
-    # --- report ---
-    bar.set_description("demo: report")
-    report_path = None
-    try:
-        from ..report import build_report
-    except ImportError:
-        steps["report"] = {"status": "skipped", "reason": "fieldfix.report is not available"}
-    else:
-        t = time.perf_counter()
-        try:
-            report_path = build_report(out, title=f"fieldfix demo: {manifest.get('title', scenario)}",
-                                       overwrite=overwrite)
-            steps["report"] = {"status": "done", "seconds": round(time.perf_counter() - t, 2),
-                               "outputs": [str(report_path)]}
-        except InputError as err:  # nothing to report on (every step skipped)
-            steps["report"] = {"status": "skipped", "reason": str(err)}
-
-    bar.update(1)
-    bar.close()
-    summary = {
-        "scenario": manifest["scenario"],
-        "title": manifest.get("title", manifest["scenario"]),
-        "field_strength_t": manifest["field_strength_t"],
-        "subject": entry["subject"],
-        "dataset": str(root),
-        "out_dir": str(out),
-        "steps": steps,
-        "checks_against_truth": numbers,
-        "report": str(report_path) if report_path else None,
-        "seconds": round(time.perf_counter() - t_start, 1),
-        "caution": CAUTION,
-    }
-    write_json(summary_path, summary, overwrite=overwrite)
+    job = JobOptions(out_dir=out, overwrite=overwrite, progress=progress, command=command or "fieldfix demo")
+    with output_folder(out):
+        checks, report_path = _run_steps(steps, job, root, entry, manifest, scenario)
+        steps.bar.close()
+        summary = DemoSummary(
+            scenario=manifest["scenario"], title=manifest.get("title", manifest["scenario"]),
+            field_strength_t=float(manifest["field_strength_t"]), subject=entry["subject"], dataset=str(root),
+            out_dir=str(out), steps={"dataset": dataset_step, **steps.done}, checks_against_truth=checks,
+            report=str(report_path) if report_path else None, seconds=round(time.perf_counter() - t_start, 1))
+        write_json(summary_path, summary.to_json(), overwrite=overwrite)
     return summary
 
 
-def _unwarp_numbers(root: Path, run: dict, bold: Path, corrected: Path, shift_path: Path | None = None) -> dict:
+def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: dict, manifest: dict, scenario: str):
+    run = entry["runs"][0]
+    bold = root / run["bold"]
+    checks: dict = {}
+    fm = steps.run("field map", lambda: _call_fieldmap(job, root, entry), lambda s: [job.path(s.outputs.b0_hz)])
+    b0_path, mask_path = job.path(fm.outputs.b0_hz), job.path(fm.outputs.mask)
+    checks.update(_field_checks(root, entry, b0_path))
+    uw = steps.run("unwarping", lambda: run_unwarp([bold], b0_path, job, b0_mask=mask_path),
+                   lambda s: [job.path(s[0].outputs.corrected)])[0]
+    checks.update(max_abs_shift_vox=round(uw.max_abs_shift_vox, 2),
+                  percent_shifted_over_1_voxel=round(uw.percent_shifted_over_1_voxel, 1))
+    checks.update(_unwarp_checks(root, run, bold, job.path(uw.outputs.corrected), job.path(uw.outputs.shift_vox)))
+    dr = steps.run("dropout", lambda: run_dropout(b0_path, job, te_s=float(run["echo_time_s"]),
+                                                  thickness_mm=float(run["slice_thickness_mm"]), like=bold,
+                                                  mask=root / entry["truth"]["brain_mask"]),
+                   lambda s: [job.path(s.outputs.retention)])
+    checks.update(_dropout_checks(dr, job, entry, root))
+    if "roi_mask" in entry["truth"]:
+        pl = steps.run("plan", lambda: _call_plan(job, b0_path, run, entry, root), lambda s: [job.path(s.outputs.csv)])
+        checks.update(_plan_checks(pl))
+    from ..report import build_report
+
+    report_path = steps.run("report", lambda: build_report(
+        job.out_dir, title=f"fieldfix demo: {manifest.get('title', scenario)}", overwrite=job.overwrite),
+        lambda p: [p])
+    return DemoChecks(**checks), report_path
+
+
+def _field_checks(root: Path, entry: dict, b0_path: Path) -> dict:
+    truth = _load_on(root / entry["truth"]["b0_hz"], b0_path)
+    est = load_image(b0_path).get_fdata(np.float64)
+    brain = _load_on(root / entry["truth"]["brain_mask"], b0_path, order=0) > 0.5
+    err = np.abs(est - truth)[brain]
+    return {"b0_brain_p1_p99_hz": [round(float(np.percentile(truth[brain], 1)), 1),
+                                   round(float(np.percentile(truth[brain], 99)), 1)],
+            "b0_error_vs_truth_median_hz": round(float(np.median(err)), 2),
+            "b0_error_vs_truth_p95_hz": round(float(np.percentile(err, 95)), 2)}
+
+
+def _unwarp_checks(root: Path, run: dict, bold: Path, corrected: Path, shift_path: Path) -> dict:
     """First volume before and after unwarping, compared with the undistorted simulation.
 
-    * ``edge_agreement_before`` / ``_after``: agreement of image edges with those of the undistorted
+    * edge agreement before / after: agreement of image edges with those of the undistorted
       simulation (normalised gradient fields, :func:`fieldfix.report.edge_agreement`) over the head;
-      1 means every edge in place.
-    * ``edge_agreement_shifted_before`` / ``_after``: the same where the correction moves voxels by
-      more than half a voxel, the region where unwarping can make a difference (over the whole
-      head a local correction barely moves the number).
-    * ``roi_signal_kept``: mean of the corrected image in the scenario's region of interest over
-      the mean of the undistorted simulation there; what is missing was lost to through-slice
+      1 means every edge in place;
+    * the same where the correction moves voxels by more than half a voxel, the region where
+      unwarping can make a difference (over the whole head a local correction barely moves it);
+    * ROI signal kept: mean of the corrected image in the scenario's region of interest over the
+      mean of the undistorted simulation there; what is missing was lost to through-slice
       dephasing (dropout), which no unwarping can bring back.
     """
     from ..report import edge_agreement
@@ -261,84 +222,53 @@ def _unwarp_numbers(root: Path, run: dict, bold: Path, corrected: Path, shift_pa
     before = load_image(bold).volume(0).astype(np.float64)
     after = load_image(corrected).volume(0).astype(np.float64)
     head = ref > 0.1 * np.percentile(ref, 99)
-    nums = {
-        "edge_agreement_before": round(float(edge_agreement(before, ref, ref_img.affine, head)), 3),
-        "edge_agreement_after": round(float(edge_agreement(after, ref, ref_img.affine, head)), 3),
-    }
-    if shift_path is not None and shift_path.is_file():
-        shifted = head & (np.abs(load_image(shift_path).get_fdata()) > 0.5)
-        if shifted.sum() >= 50:
-            for key, image in (("before", before), ("after", after)):
-                value = edge_agreement(image, ref, ref_img.affine, shifted)
-                nums[f"edge_agreement_shifted_{key}"] = round(float(value), 3)
+    checks = {"edge_agreement_before": round(float(edge_agreement(before, ref, ref_img.affine, head)), 3),
+              "edge_agreement_after": round(float(edge_agreement(after, ref, ref_img.affine, head)), 3)}
+    shifted = head & (np.abs(load_image(shift_path).get_fdata()) > 0.5)
+    if shifted.sum() >= 50:
+        for key, image in (("before", before), ("after", after)):
+            checks[f"edge_agreement_shifted_{key}"] = round(float(edge_agreement(image, ref, ref_img.affine,
+                                                                                  shifted)), 3)
     if "roi_mask" in run:
         roi = load_image(root / run["roi_mask"]).get_fdata() > 0
         if roi.any() and ref[roi].mean() > 0:
-            nums["roi_signal_kept"] = round(float(after[roi].mean() / ref[roi].mean()), 3)
-    return nums
+            checks["roi_signal_kept"] = round(float(after[roi].mean() / ref[roi].mean()), 3)
+    return checks
 
 
-def _corrected_path(out: Path, bold: Path) -> Path | None:
-    stem = bold.name[: -len(".nii.gz")] if bold.name.endswith(".nii.gz") else bold.stem
-    candidate = out / f"{stem}_corrected.nii.gz"
-    return candidate if candidate.is_file() else None
-
-
-def _call_fieldmap(fn, files, entry, out, common):
-    field_t = entry.get("field_strength_t")
+def _call_fieldmap(job: JobOptions, root: Path, entry: dict):
+    files = {k: root / v for k, v in entry["fieldmap"]["files"].items()}
     mags = [files["magnitude1"], files["magnitude2"]]
+    field_t = entry.get("field_strength_t")
     if "phasediff" in files:
-        return fn(out, phase_diff=files["phasediff"], magnitude=mags, field_strength_t=field_t, **common)
-    return fn(out, phase=[files["phase1"], files["phase2"]], magnitude=mags, field_strength_t=field_t, **common)
+        return run_fieldmap(job, phase_diff=files["phasediff"], magnitude=mags, field_strength_t=field_t)
+    return run_fieldmap(job, phase=[files["phase1"], files["phase2"]], magnitude=mags, field_strength_t=field_t)
 
 
-def _call_dropout(fn, b0_path, run, entry, root, out, common):
-    """Retention for the scenario's own protocol, slice geometry and timing from the run."""
-    return fn(b0_path, out, te_s=float(run["echo_time_s"]), thickness_mm=float(run["slice_thickness_mm"]),
-              like_path=root / run["bold"], mask_path=root / entry["truth"]["brain_mask"], **common)
-
-
-# Protocols the demo's plan compares: echo time, slice thickness and slice tilt around the usual
-# choices (common practice, no source), both phase-encode polarities.
-PLAN_TE_S = (0.025, 0.030, 0.035)
-PLAN_THICKNESS_MM = (2.0, 3.0)
-PLAN_TILT_DEG = (-20.0, -10.0, 0.0, 10.0, 20.0)
-
-
-def _call_plan(fn, b0_path, run, entry, root, out, common):
+def _call_plan(job: JobOptions, b0_path: Path, run: dict, entry: dict, root: Path) -> PlanSummary:
     truth = entry["truth"]
-    if "roi_mask" not in truth:
-        raise InputError("the scenario names no region of interest, so there is nothing to plan for")
     pe_lines = int(round(run["total_readout_time_s"] / run["effective_echo_spacing_s"])) + 1
     bold = load_image(root / run["bold"])
     inplane = float(np.mean(np.sort(bold.zooms[:3])[:2]))
-    return fn(b0_path, out, roi_path=root / truth["roi_mask"], brain_mask_path=root / truth["brain_mask"],
-              te_s=PLAN_TE_S, thickness_mm=PLAN_THICKNESS_MM, tilt_deg=PLAN_TILT_DEG, pe_signs=(1, -1),
-              echo_spacing_s=float(run["effective_echo_spacing_s"]), pe_lines=pe_lines, inplane_mm=inplane,
-              **common)
+    return run_plan(b0_path, job, roi_path=root / truth["roi_mask"], brain_mask_path=root / truth["brain_mask"],
+                    te_s=PLAN_TE_S, thickness_mm=PLAN_THICKNESS_MM, tilt_deg=PLAN_TILT_DEG, pe_signs=(1, -1),
+                    echo_spacing_s=float(run["effective_echo_spacing_s"]), pe_lines=pe_lines, inplane_mm=inplane)
 
 
-def _dropout_numbers(result: dict, out: Path, entry: dict, root: Path) -> dict:
-    nums = {}
-    retention = result.get("retention") or {}
-    if retention.get("median") is not None:
-        nums["dropout_brain_median_retention"] = round(float(retention["median"]), 3)
-        nums["dropout_brain_percent_below_half"] = round(float(retention["pct_below"]), 1)
-    path = (result.get("outputs") or {}).get("retention")
-    if path and "roi_mask" in entry["truth"]:
-        ret = load_image(path).get_fdata(np.float64)
+def _dropout_checks(result, job: JobOptions, entry: dict, root: Path) -> dict:
+    checks = {}
+    if result.retention.median is not None:
+        checks["dropout_brain_median_retention"] = round(result.retention.median, 3)
+        checks["dropout_brain_percent_below_threshold"] = round(result.retention.percent_below_threshold, 1)
+    if "roi_mask" in entry["truth"]:
+        ret = load_image(job.path(result.outputs.retention)).get_fdata(np.float64)
         roi = load_image(root / entry["truth"]["roi_mask"]).get_fdata() > 0
         if roi.shape == ret.shape and roi.any():
-            nums["dropout_roi_mean_retention"] = round(float(ret[roi].mean()), 3)
-    return nums
+            checks["dropout_roi_mean_retention"] = round(float(ret[roi].mean()), 3)
+    return checks
 
 
-def _plan_numbers(result: dict) -> dict:
-    rec = result.get("recommended") or {}
-    nums = {"plan_protocols_compared": int(result.get("protocols", 0))}
-    if rec:
-        nums["plan_recommended"] = str(rec.get("protocol"))
-        if rec.get("roi_median") is not None:
-            nums["plan_recommended_roi_median"] = round(float(rec["roi_median"]), 3)
-        nums["plan_reason"] = str(result.get("reason", ""))
-    return nums
+def _plan_checks(result: PlanSummary) -> dict:
+    return {"plan_protocols_compared": int(result.protocols), "plan_recommended": result.recommended.protocol,
+            "plan_recommended_roi_median": round(result.recommended.roi_median, 3), "plan_reason": result.reason}
+

@@ -1,24 +1,25 @@
 """File-level dropout job: B0 map -> retention and BOLD-sensitivity maps for one protocol.
 
 The maps are computed on the B0 map's grid (undistorted space). The slice geometry comes
-from an EPI image (``like_path``: its affine, slice axis and phase-encode axis, and its
+from an EPI image (``like``: its affine, slice axis and phase-encode axis, and its
 sidecar's ``PhaseEncodingDirection``, ``SliceEncodingDirection`` and
 ``EffectiveEchoSpacing`` when not given) or from the B0 grid itself (``slice_axis``), plus
 an optional extra tilt about the left-right axis (:func:`fieldfix.dropout.tilt_rotation`).
 
-Outputs in ``out_dir`` (``<p>`` = prefix): ``<p>retention.nii.gz`` (through-plane
-retention at the nominal TE), ``<p>bold_sensitivity.nii.gz`` (when the phase-encode code
-and echo spacing are known), ``<p>dropout.json`` (parameters, geometry and statistics),
-and a provenance JSON beside each image. With an EPI image on another grid, the maps are
-also written resampled (linear interpolation, 0 outside the B0 map) onto the EPI grid:
-``<p>retention_on_epi.nii.gz`` and ``<p>bold_sensitivity_on_epi.nii.gz``, for overlays on
-the (corrected) EPI.
+Outputs (:class:`fieldfix.outputs.DropoutFiles`, ``<t>`` = the job's tag):
+``<t>retention.nii.gz`` (through-plane retention at the nominal TE),
+``<t>bold_sensitivity.nii.gz`` (when the phase-encode code and echo spacing are known),
+``<t>dropout.json`` (:class:`fieldfix.outputs.DropoutSummary`), and a provenance JSON beside
+each image. With an EPI image on another grid, the maps are also written resampled (linear
+interpolation, 0 outside the B0 map) onto the EPI grid: ``<t>retention_on_epi.nii.gz`` and
+``<t>bold_sensitivity_on_epi.nii.gz``, for overlays on the (corrected) EPI.
 
 Research software, not a medical device: predicted maps are a planning aid.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -26,16 +27,88 @@ import numpy as np
 from ..dropout import PROFILES, acquisition_window_s, dropout_maps, frame_from_affine, slice_profile, zshim_cyc_per_mm
 from ..errors import GeometryError, InputError, MetadataError
 from ..geometry import overlap_fraction, parse_pe_code, pe_world_direction, resample_to_grid, same_grid
-from ..outdir import check_name_prefix
-from ..io import Provenance, load_image, output_paths_guard, save_image, sidecar_path, write_json
+from ..io import Image, Provenance, load_image, output_paths_guard, save_image, sidecar_path
+from ..jsonfile import write_json
+from ..outdir import output_folder
+from ..shift import resolve_timing
+from ..outputs import (
+    CAUTION,
+    DropoutFiles,
+    DropoutParameters,
+    DropoutSummary,
+    FrameRecord,
+    JobOptions,
+    MapStatistics,
+    job_and_settings,
+)
 
-__all__ = ["run_dropout", "load_mask_on_grid", "CAUTION", "MAX_TE_S"]
+__all__ = ["run_dropout", "DropoutSettings", "load_mask_on_grid", "CAUTION", "MAX_TE_S"]
 
 #: Longest echo time accepted (s); longer values are almost always a unit mistake.
 MAX_TE_S = 0.5
 
-CAUTION = ("Research software, not a medical device: predicted dropout maps are a planning aid and must be "
-           "checked against acquired images before any decision about a person.")
+_DESCRIPTIONS = {"retention": "through-plane signal retention at the nominal TE",
+                 "bold_sensitivity": "BOLD sensitivity: retention at the local echo time x TE'/TE"}
+
+
+@dataclass(frozen=True)
+class DropoutSettings:
+    """The protocol to predict for, and where its geometry and statistics come from.
+
+    Attributes
+    ----------
+    te_s, thickness_mm : float
+        Echo time (s) and nominal slice thickness (mm); both required.
+    like : path, optional
+        EPI image giving the slice geometry (and sidecar timing).
+    slice_axis : int, optional
+        Voxel axis across slices (of the EPI image, or of the B0 grid without one).
+        Default: the sidecar's ``SliceEncodingDirection`` or axis 2.
+    tilt_deg : float
+        Extra tilt about the world left-right axis (positive: anterior edge up).
+    pe_code : str, optional
+        BIDS phase-encode code on the EPI grid (or the B0 grid); default: the sidecar.
+    echo_spacing_s : float, optional
+        Effective echo spacing (s); default: the sidecar's ``EffectiveEchoSpacing``.
+    profile : {'rect', 'gaussian', 'rf'}
+    tbw : float
+        Time-bandwidth product of the windowed-sinc pulse for ``profile='rf'``.
+    zshim_mtms_per_m : float
+        Z-shim moment along the slice normal (mT*ms/m).
+    partial_fourier : float
+        Fraction of k-space acquired along the phase-encode axis.
+    mask : path, optional
+        Brain mask: statistics inside it, maps set to 0 outside.
+    threshold : float
+        Level under which a voxel counts as lost in the statistics.
+    """
+
+    te_s: float | None = None
+    thickness_mm: float | None = None
+    like: object = None
+    slice_axis: int | None = None
+    tilt_deg: float = 0.0
+    pe_code: str | None = None
+    echo_spacing_s: float | None = None
+    profile: str = "rect"
+    tbw: float = 4.0
+    zshim_mtms_per_m: float = 0.0
+    partial_fourier: float = 1.0
+    mask: object = None
+    threshold: float = 0.5
+
+    def check(self) -> None:
+        if self.te_s is None or not self.te_s > 0:
+            raise InputError(f"the echo time must be positive, got {self.te_s}", parameter="te_s")
+        if self.te_s > MAX_TE_S:
+            raise InputError(f"echo time {self.te_s:g} s is implausible for a gradient-echo protocol (at most "
+                             f"{MAX_TE_S:g} s); check the unit", parameter="te_s")
+        if self.thickness_mm is None or not self.thickness_mm > 0:
+            raise InputError(f"the slice thickness must be positive, got {self.thickness_mm}",
+                             parameter="thickness_mm")
+        if self.profile not in PROFILES:
+            raise InputError(f"unknown slice profile {self.profile!r}; use one of {', '.join(PROFILES)}",
+                             parameter="profile")
 
 
 def load_mask_on_grid(path, shape, affine, *, what: str = "mask") -> np.ndarray:
@@ -57,195 +130,145 @@ def load_mask_on_grid(path, shape, affine, *, what: str = "mask") -> np.ndarray:
     return mask
 
 
-def _stats(values: np.ndarray, mask: np.ndarray, threshold: float) -> dict:
+def _stats(values: np.ndarray, mask: np.ndarray, threshold: float) -> MapStatistics:
     v = values[mask]
     if v.size == 0:
-        return {"median": None, "pct_below": None, "voxels": 0}
-    return {"median": float(np.median(v)), "pct_below": float(100.0 * np.count_nonzero(v < threshold) / v.size),
-            "voxels": int(v.size)}
+        return MapStatistics(median=None, percent_below_threshold=None, voxels=0)
+    return MapStatistics(median=float(np.median(v)),
+                         percent_below_threshold=float(100.0 * np.count_nonzero(v < threshold) / v.size),
+                         voxels=int(v.size))
 
 
-_DESCRIPTIONS = {"retention": "through-plane signal retention at the nominal TE",
-                 "bold_sensitivity": "BOLD sensitivity: retention at the local echo time x TE'/TE"}
+@dataclass
+class _Geometry:
+    """Slice frame and readout of the prediction, resolved from the settings and the EPI sidecar."""
+
+    frame: object
+    source: Image
+    pe_code: str | None
+    pe_sign: int | None
+    echo_spacing_s: float | None
+    slice_axis: int
 
 
-def run_dropout(
-    b0_path,
-    out_dir,
-    *,
-    te_s: float,
-    thickness_mm: float,
-    like_path=None,
-    slice_axis: int | None = None,
-    tilt_deg: float = 0.0,
-    pe_code: str | None = None,
-    echo_spacing_s: float | None = None,
-    profile: str = "rect",
-    tbw: float = 4.0,
-    zshim_mtms_per_m: float = 0.0,
-    partial_fourier: float = 1.0,
-    mask_path=None,
-    threshold: float = 0.5,
-    prefix: str = "",
-    overwrite: bool = False,
-    progress: bool = False,
-    command: str | None = None,
-) -> dict:
+def _geometry(s: DropoutSettings, b0_img: Image, like: Image | None) -> _Geometry:
+    sidecar = like.sidecar if like is not None else {}
+    source = like if like is not None else b0_img
+    slice_axis, pe_code, echo_spacing_s = s.slice_axis, s.pe_code, s.echo_spacing_s
+    if slice_axis is None:
+        code = sidecar.get("SliceEncodingDirection")
+        slice_axis = parse_pe_code(code)[0] if isinstance(code, str) and code.strip() else 2
+    if pe_code is None and isinstance(sidecar.get("PhaseEncodingDirection"), str):
+        pe_code = sidecar["PhaseEncodingDirection"]
+    pe_axis = pe_sign = None
+    if pe_code is not None:
+        pe_axis, pe_sign = parse_pe_code(pe_code)
+        if echo_spacing_s is None and like is not None and (
+                "EffectiveEchoSpacing" in sidecar or "TotalReadoutTime" in sidecar):
+            try:  # the sidecar's timing, by the same rules as unwarping (BIDS definitions)
+                echo_spacing_s = resolve_timing(like.shape[pe_axis], sidecar=sidecar).echo_spacing_s
+            except MetadataError as err:
+                raise MetadataError(err.message, sidecar_path(like.path)) from None
+        if pe_axis == slice_axis:
+            raise GeometryError(f"phase encoding {pe_code!r} runs along the slice axis {'ijk'[slice_axis]}",
+                                parameter="pe_code")
+        if echo_spacing_s is None:
+            raise MetadataError("BOLD sensitivity needs the effective echo spacing (echo_spacing_s, or "
+                                "EffectiveEchoSpacing in the EPI sidecar)")
+        if not 1e-6 < echo_spacing_s < 0.01:
+            raise MetadataError(f"effective echo spacing {echo_spacing_s * 1e3:g} ms is implausible "
+                                "(expected 0.001-10 ms); check the unit", parameter="echo_spacing_s")
+    frame = frame_from_affine(source.affine, slice_axis, pe_axis, tilt_deg=s.tilt_deg, shape=source.shape[:3])
+    if pe_code is not None:
+        start, _ = acquisition_window_s(s.te_s, echo_spacing_s, frame.pe_lines, s.partial_fourier)
+        if start < 0:
+            raise MetadataError(f"echo time {s.te_s * 1e3:g} ms is shorter than the time to reach the k-space centre "
+                                f"({(s.te_s - start) * 1e3:g} ms) with {frame.pe_lines} lines and this echo spacing",
+                                parameter="te_s")
+    return _Geometry(frame, source, pe_code, pe_sign, echo_spacing_s, slice_axis)
+
+
+def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None = None,
+                **changes) -> DropoutSummary:
     """Predict retention (and BOLD sensitivity) maps for one protocol and write them.
 
     Parameters
     ----------
     b0_path : path
         B0 map in Hz (3D NIfTI).
-    out_dir : path
-    te_s, thickness_mm : float
-        Echo time (s) and nominal slice thickness (mm).
-    like_path : path, optional
-        EPI image giving the slice geometry (and sidecar timing).
-    slice_axis : int, optional
-        Voxel axis across slices (of the EPI image, or of the B0 grid without one).
-        Default: the sidecar's ``SliceEncodingDirection`` or axis 2.
-    tilt_deg : float
-        Extra tilt about the world left-right axis (positive: anterior edge up).
-    pe_code : str, optional
-        BIDS phase-encode code on the EPI grid (or the B0 grid); default: the sidecar.
-    echo_spacing_s : float, optional
-        Effective echo spacing (s); default: the sidecar's ``EffectiveEchoSpacing``.
-    profile : {'rect', 'gaussian', 'rf'}
-    tbw : float
-        Time-bandwidth product of the windowed-sinc pulse for ``profile='rf'``.
-    zshim_mtms_per_m : float
-        Z-shim moment along the slice normal (mT*ms/m).
-    partial_fourier : float
-        Fraction of k-space acquired along the phase-encode axis.
-    mask_path : path, optional
-        Brain mask: statistics inside it, maps set to 0 outside.
-    threshold : float
-        Level under which a voxel counts as lost in the statistics.
-    prefix : str
-        Prepended to every output file name.
-    overwrite, progress, command
-        See the workflow conventions.
+    job : JobOptions or path
+        Output folder and writing options.
+    settings : DropoutSettings, optional
+    **changes
+        Fields of :class:`JobOptions` or :class:`DropoutSettings` to set on top.
 
     Returns
     -------
-    dict
-        JSON-serialisable summary (also written as ``<prefix>dropout.json``).
+    DropoutSummary
+        Also written as ``<tag>dropout.json``.
     """
+    job, s = job_and_settings(job, DropoutSettings, settings, changes)
+    s.check()
     b0_path = Path(b0_path)
-    out_dir = Path(out_dir)
-    if not te_s > 0:
-        raise InputError(f"the echo time must be positive, got {te_s}")
-    if te_s > MAX_TE_S:
-        raise InputError(f"echo time {te_s:g} s is implausible for a gradient-echo protocol (at most "
-                         f"{MAX_TE_S:g} s); check the unit")
-    if not thickness_mm > 0:
-        raise InputError(f"the slice thickness must be positive, got {thickness_mm}")
-    if profile not in PROFILES:
-        raise InputError(f"unknown slice profile {profile!r}; use one of {', '.join(PROFILES)}")
-    inputs = [p for p in (b0_path, like_path, mask_path) if p is not None]
-    check_name_prefix(prefix)
-    names = {"retention": out_dir / f"{prefix}retention.nii.gz",
-             "bold_sensitivity": out_dir / f"{prefix}bold_sensitivity.nii.gz",
-             "summary": out_dir / f"{prefix}dropout.json",
-             "retention_on_epi": out_dir / f"{prefix}retention_on_epi.nii.gz",
-             "bold_sensitivity_on_epi": out_dir / f"{prefix}bold_sensitivity_on_epi.nii.gz"}
+    inputs = [Path(p) for p in (b0_path, s.like, s.mask) if p is not None]
+    with output_folder(job.out_dir):
+        b0_img = load_image(b0_path, ndim=(3,))
+        b0 = b0_img.get_fdata(np.float64)
+        like = load_image(s.like, ndim=(3, 4)) if s.like is not None else None
+        if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, b0_img.affine) == 0.0:
+            raise GeometryError("the EPI image does not overlap the B0 map; check that both are in the same "
+                                "scanner space", s.like)
+        geometry = _geometry(s, b0_img, like)
+        on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, b0_img.affine)
+        files = DropoutFiles.named(job.tag, bold=geometry.pe_code is not None, on_epi=on_epi)
+        output_paths_guard(files.guarded(job.out_dir), inputs, job.overwrite)
+        mask = load_mask_on_grid(s.mask, b0.shape, b0_img.affine, what="brain mask") if s.mask is not None \
+            else np.isfinite(b0) & (b0 != 0)
+        if not np.isfinite(b0[mask]).all():
+            raise InputError("the B0 map has non-finite values inside the mask", b0_path)
+        b0 = np.where(np.isfinite(b0), b0, 0.0)
+        summary = _predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs)
+        write_json(job.path(files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
+    return summary
 
-    b0_img = load_image(b0_path, ndim=(3,))
-    b0 = b0_img.get_fdata(np.float64)
-    like = load_image(like_path, ndim=(3, 4)) if like_path is not None else None
-    sidecar = like.sidecar if like is not None else {}
-    geometry_src = like if like is not None else b0_img
-    if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, b0_img.affine) == 0.0:
-        raise GeometryError("the EPI image does not overlap the B0 map; check that both are in the same "
-                            "scanner space", like_path)
 
-    if slice_axis is None:
-        code = sidecar.get("SliceEncodingDirection")
-        slice_axis = parse_pe_code(code)[0] if isinstance(code, str) and code.strip() else 2
-    if pe_code is None and like is not None and isinstance(sidecar.get("PhaseEncodingDirection"), str):
-        pe_code = sidecar["PhaseEncodingDirection"]
-    if echo_spacing_s is None and like is not None and sidecar.get("EffectiveEchoSpacing") is not None:
-        try:
-            echo_spacing_s = float(sidecar["EffectiveEchoSpacing"])
-        except (TypeError, ValueError):
-            raise MetadataError("EffectiveEchoSpacing in the sidecar is not a number", like_path) from None
-    pe_axis = pe_sign = None
-    if pe_code is not None:
-        pe_axis, pe_sign = parse_pe_code(pe_code)
-        if pe_axis == slice_axis:
-            raise GeometryError(f"phase encoding {pe_code!r} runs along the slice axis {'ijk'[slice_axis]}")
-        if echo_spacing_s is None:
-            raise MetadataError("BOLD sensitivity needs the effective echo spacing (--echo-spacing, or "
-                                "EffectiveEchoSpacing in the EPI sidecar)")
-        if not 1e-6 < echo_spacing_s < 0.01:
-            raise MetadataError(f"effective echo spacing {echo_spacing_s * 1e3:g} ms is implausible "
-                                "(expected 0.001-10 ms); check the unit")
-    frame = frame_from_affine(geometry_src.affine, slice_axis, pe_axis, tilt_deg=tilt_deg,
-                              shape=geometry_src.shape[:3])
-    if pe_code is not None:
-        start, _ = acquisition_window_s(te_s, echo_spacing_s, frame.pe_lines, partial_fourier)
-        if start < 0:
-            raise MetadataError(f"echo time {te_s * 1e3:g} ms is shorter than the time to reach the k-space centre "
-                                f"({(te_s - start) * 1e3:g} ms) with {frame.pe_lines} lines and this echo spacing")
-
-    on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, b0_img.affine)
-    kinds = ["retention"] + (["bold_sensitivity"] if pe_code is not None else [])
-    kinds += [f"{k}_on_epi" for k in kinds] if on_epi else []
-    wanted = [names["summary"]] + [names[k] for k in kinds] + [sidecar_path(names[k]) for k in kinds]
-    output_paths_guard(wanted, inputs, overwrite)
-
-    if mask_path is not None:
-        mask = load_mask_on_grid(mask_path, b0.shape, b0_img.affine, what="brain mask")
-    else:
-        mask = np.isfinite(b0) & (b0 != 0)
-    if not np.isfinite(b0[mask]).all():
-        raise InputError("the B0 map has non-finite values inside the mask", b0_path)
-    b0 = np.where(np.isfinite(b0), b0, 0.0)
-
-    prof = slice_profile(profile, tbw=tbw)
-    maps = dropout_maps(b0, b0_img.affine, frame, te_s=te_s, thickness_mm=thickness_mm, profile=prof,
-                        zshim_cyc_per_mm=zshim_cyc_per_mm(zshim_mtms_per_m), pe_sign=pe_sign,
-                        echo_spacing_s=echo_spacing_s if pe_code is not None else None,
-                        partial_fourier=partial_fourier)
-    parameters = {
-        "te_s": te_s, "thickness_mm": thickness_mm, "tilt_deg": tilt_deg, "slice_axis": "ijk"[slice_axis],
-        "pe_code": pe_code, "echo_spacing_s": echo_spacing_s, "partial_fourier": partial_fourier,
-        "zshim_mtms_per_m": zshim_mtms_per_m, "threshold": threshold, **prof.as_dict(),
-    }
-    provenance = Provenance(command, parameters, inputs)
-    retention = np.where(mask, maps["retention"], 0.0)
-    save_image(names["retention"], retention, b0_img.affine, template=b0_img, inputs=inputs, overwrite=overwrite,
-               provenance=provenance, sidecar_extra={"Description": _DESCRIPTIONS["retention"]})
-    outputs = {"retention": str(names["retention"])}
-    written = {"retention": retention}  # masked maps on the B0 grid, for the EPI-grid copies
-    summary = {
-        "b0": str(b0_path),
-        "geometry_from": str(like_path) if like_path is not None else "B0 grid",
-        "frame": frame.as_dict(),
-        "parameters": parameters,
-        "mask": str(mask_path) if mask_path is not None else "non-zero B0 voxels",
-        "retention": _stats(maps["retention"], mask, threshold),
-    }
-    if pe_code is not None:
-        bs = np.where(mask, maps["bold_sensitivity"], 0.0)
-        save_image(names["bold_sensitivity"], bs, b0_img.affine, template=b0_img, inputs=inputs,
-                   overwrite=overwrite, provenance=provenance,
-                   sidecar_extra={"Description": _DESCRIPTIONS["bold_sensitivity"]})
-        outputs["bold_sensitivity"] = str(names["bold_sensitivity"])
-        written["bold_sensitivity"] = bs
-        summary["pe_direction_world"] = pe_world_direction(pe_code, geometry_src.affine)
-        summary["bold_sensitivity"] = _stats(maps["bold_sensitivity"], mask, threshold)
-        summary["percent_echo_lost"] = float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
-    if on_epi:  # the same maps on the EPI grid, for overlays
-        for kind, values in written.items():
+def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: DropoutFiles, s: DropoutSettings,
+                       job: JobOptions, inputs) -> DropoutSummary:
+    profile = slice_profile(s.profile, tbw=s.tbw)
+    maps = dropout_maps(b0, b0_img.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm, profile=profile,
+                        zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m), pe_sign=geometry.pe_sign,
+                        echo_spacing_s=geometry.echo_spacing_s if geometry.pe_code is not None else None,
+                        partial_fourier=s.partial_fourier)
+    parameters = DropoutParameters(
+        te_s=s.te_s, thickness_mm=s.thickness_mm, tilt_deg=s.tilt_deg, slice_axis="ijk"[geometry.slice_axis],
+        pe_code=geometry.pe_code, echo_spacing_s=geometry.echo_spacing_s, partial_fourier=s.partial_fourier,
+        zshim_mtms_per_m=s.zshim_mtms_per_m, threshold=s.threshold, **_profile_fields(profile))
+    provenance = Provenance(job.command, parameters.to_json(), inputs)
+    common = dict(inputs=inputs, overwrite=job.overwrite, provenance=provenance)
+    written = {"retention": np.where(mask, maps["retention"], 0.0)}
+    if geometry.pe_code is not None:
+        written["bold_sensitivity"] = np.where(mask, maps["bold_sensitivity"], 0.0)
+    for kind, values in written.items():
+        save_image(job.path(getattr(files, kind)), values, b0_img.affine, template=b0_img, **common,
+                   sidecar_extra={"Description": _DESCRIPTIONS[kind]})
+        if files.retention_on_epi is not None:  # the same maps on the EPI grid, for overlays
             resampled, _ = resample_to_grid(values, b0_img.affine, like.shape[:3], like.affine, order=1, outside=0.0)
             note = f"{_DESCRIPTIONS[kind]}, resampled (linear) onto the grid of {like.path.name}"
-            save_image(names[f"{kind}_on_epi"], resampled, like.affine, template=like, inputs=inputs,
-                       overwrite=overwrite, provenance=provenance, sidecar_extra={"Description": note})
-            outputs[f"{kind}_on_epi"] = str(names[f"{kind}_on_epi"])
-    outputs["summary"] = str(names["summary"])
-    summary["outputs"] = outputs
-    summary["caution"] = CAUTION
-    write_json(names["summary"], summary, inputs=inputs, overwrite=overwrite)
-    return summary
+            save_image(job.path(getattr(files, f"{kind}_on_epi")), resampled, like.affine, template=like, **common,
+                       sidecar_extra={"Description": note})
+    bold = geometry.pe_code is not None
+    return DropoutSummary(
+        b0=str(b0_img.path), geometry_from=str(s.like) if s.like is not None else "B0 grid",
+        frame=FrameRecord.from_json(geometry.frame.as_dict()), parameters=parameters,
+        mask=str(s.mask) if s.mask is not None else "non-zero B0 voxels",
+        retention=_stats(maps["retention"], mask, s.threshold), outputs=files,
+        bold_sensitivity=_stats(maps["bold_sensitivity"], mask, s.threshold) if bold else None,
+        pe_direction_world=pe_world_direction(geometry.pe_code, geometry.source.affine) if bold else None,
+        percent_echo_lost=float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
+        if bold else None)
+
+
+def _profile_fields(profile) -> dict:
+    fields = profile.as_dict()
+    return {"profile": fields["profile"], "time_bandwidth": fields.get("time_bandwidth"),
+            "window": fields.get("window")}

@@ -1,8 +1,8 @@
 """File-level planning job: B0 map + ROI -> ranked protocol table, recommendation and figure.
 
-Outputs in ``out_dir`` (``<p>`` = prefix): ``<p>plan.csv`` (ranked table, one row per
-protocol), ``<p>plan.json`` (parameters, recommendation with its reason, all rows) and
-``<p>plan.png`` (trade-off figure). The masks are brought onto the B0 grid (nearest
+Outputs (:class:`fieldfix.outputs.PlanFiles`, ``<t>`` = the job's tag): ``<t>plan.csv``
+(ranked table, one row per protocol), ``<t>plan.json`` (:class:`fieldfix.outputs.PlanSummary`:
+parameters, recommendation with its reason, all rows) and ``<t>plan.png`` (trade-off figure). The masks are brought onto the B0 grid (nearest
 neighbour through the affines) when they are on another grid.
 
 Research software, not a medical device: predictions are a planning aid.
@@ -11,21 +11,23 @@ Research software, not a medical device: predictions are a planning aid.
 from __future__ import annotations
 
 import csv
+import dataclasses
 import io as _stdio
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
-from ..outdir import check_name_prefix
-from ..io import Provenance, atomic_output, load_image, output_paths_guard, write_json
+from ..io import Provenance, load_image
+from ..jsonfile import to_jsonable, write_json
+from ..outdir import atomic_output, output_folder, output_paths_guard
+from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
 from ..plan import CSV_COLUMNS, plot_tradeoffs, recommend, sweep
 from .dropout import load_mask_on_grid
 
 __all__ = ["run_plan", "CAUTION"]
 
-CAUTION = ("Research software, not a medical device: the ranking predicts signal from a field map and is a "
-           "planning aid; check acquired images before any decision about a person.")
 
 
 def _csv_text(rows: list[dict]) -> str:
@@ -45,7 +47,7 @@ def _csv_text(rows: list[dict]) -> str:
 
 def run_plan(
     b0_path,
-    out_dir,
+    job: JobOptions | str,
     *,
     roi_path,
     brain_mask_path=None,
@@ -69,11 +71,8 @@ def run_plan(
     max_tr_s: float | None = None,
     tolerance: float = 0.01,
     coverage: str = "brain",
-    prefix: str = "",
-    overwrite: bool = False,
-    progress: bool = False,
-    command: str | None = None,
-) -> dict:
+    **job_changes,
+) -> PlanSummary:
     """Sweep candidate protocols over a B0 map, rank them and write the table and figure.
 
     Parameters are those of :func:`fieldfix.plan.sweep` (lists for the swept values) and
@@ -85,23 +84,40 @@ def run_plan(
         Region-of-interest mask.
     brain_mask_path : path, optional
         Whole-brain mask (default: the non-zero voxels of the B0 map).
-    out_dir : path
-    prefix : str
-        Prepended to every output file name.
+    job : JobOptions or path
+        Output folder and writing options (``**job_changes`` names their fields).
 
     Returns
     -------
-    dict
-        Summary: recommended protocol and reason, counts, output paths (the full table is
-        in ``plan.json``).
+    PlanSummary
+        The recommended protocol and reason, counts and output names; ``plan.json`` holds it
+        with the parameters, provenance and the full table.
     """
+    job, _ = job_and_settings(job, _NoSettings, None, job_changes)
     b0_path = Path(b0_path)
-    out_dir = Path(out_dir)
-    inputs = [p for p in (b0_path, roi_path, brain_mask_path) if p is not None]
-    check_name_prefix(prefix)
-    names = {"csv": out_dir / f"{prefix}plan.csv", "json": out_dir / f"{prefix}plan.json",
-             "figure": out_dir / f"{prefix}plan.png"}
-    output_paths_guard(names.values(), inputs, overwrite)
+    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path) if p is not None]
+    files = PlanFiles.named(job.tag)
+    names = {k: job.path(v) for k, v in files.to_json().items()}
+    with output_folder(job.out_dir):
+        output_paths_guard(names.values(), inputs, job.overwrite)
+        return _plan_in_folder(
+            b0_path, job, files, names, inputs, roi_path=roi_path, brain_mask_path=brain_mask_path, te_s=te_s,
+            thickness_mm=thickness_mm, tilt_deg=tilt_deg, pe_signs=pe_signs, zshim_mtms_per_m=zshim_mtms_per_m,
+            orientation=orientation, pe_world_axis=pe_world_axis, inplane_mm=inplane_mm, pe_lines=pe_lines,
+            echo_spacing_s=echo_spacing_s, partial_fourier=partial_fourier, profile=profile, tbw=tbw,
+            threshold=threshold, slice_gap_mm=slice_gap_mm, time_per_slice_s=time_per_slice_s, multiband=multiband,
+            max_tr_s=max_tr_s, tolerance=tolerance, coverage=coverage)
+
+
+@dataclass(frozen=True)
+class _NoSettings:
+    """The planning job takes its sweep as keyword arguments."""
+
+
+def _plan_in_folder(b0_path, job, files, names, inputs, *, roi_path, brain_mask_path, te_s, thickness_mm, tilt_deg,
+                    pe_signs, zshim_mtms_per_m, orientation, pe_world_axis, inplane_mm, pe_lines, echo_spacing_s,
+                    partial_fourier, profile, tbw, threshold, slice_gap_mm, time_per_slice_s, multiband, max_tr_s,
+                    tolerance, coverage) -> PlanSummary:
     b0_img = load_image(b0_path, ndim=(3,))
     b0 = b0_img.get_fdata(np.float64)
     roi = load_mask_on_grid(roi_path, b0.shape, b0_img.affine, what="ROI mask")
@@ -130,25 +146,16 @@ def run_plan(
         "slice_gap_mm": slice_gap_mm, "time_per_slice_s": time_per_slice_s, "multiband": multiband,
         "max_tr_s": max_tr_s, "tolerance": tolerance, "coverage": coverage,
     }
-    with atomic_output(names["csv"], inputs, overwrite) as temporary:
+    with atomic_output(names["csv"], inputs, job.overwrite) as temporary:
         temporary.write_text(_csv_text(rows), encoding="utf-8")
-    with atomic_output(names["figure"], inputs, overwrite) as temporary:
+    with atomic_output(names["figure"], inputs, job.overwrite) as temporary:
         plot_tradeoffs(rows, temporary, recommended=choice)
-    summary = {
-        "b0": str(b0_path),
-        "roi": str(roi_path),
-        "brain_mask": str(brain_mask_path) if brain_mask_path is not None else "non-zero B0 voxels",
-        "roi_voxels": int(roi.sum()),
-        "protocols": len(rows),
-        "metric": rows[0]["metric"],
-        "recommended": {k: choice[k] for k in ("protocol", "thickness_mm", "te_s", "tilt_deg", "pe_polarity",
-                                                "pe_direction", "zshim_mtms_per_m", "roi_median", "roi_pct_below",
-                                                "brain_median", "brain_pct_below", "n_slices", "tr_s", "rank")},
-        "reason": reason,
-        "outputs": {k: str(v) for k, v in names.items()},
-        "caution": CAUTION,
-    }
-    record = dict(summary, parameters=parameters, provenance=Provenance(command, parameters, inputs).as_dict(),
-                  rows=rows)
-    write_json(names["json"], record, inputs=inputs, overwrite=overwrite)
+    summary = PlanSummary(
+        b0=str(b0_path), roi=str(roi_path),
+        brain_mask=str(brain_mask_path) if brain_mask_path is not None else "non-zero B0 voxels",
+        roi_voxels=int(roi.sum()), protocols=len(rows), metric=rows[0]["metric"],
+        recommended=PlanChoice.from_json({f.name: choice[f.name] for f in dataclasses.fields(PlanChoice)}),
+        reason=reason, outputs=files, parameters=parameters,
+        provenance=Provenance(job.command, parameters, inputs).as_dict(), rows=to_jsonable(rows))
+    write_json(names["json"], summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary

@@ -1,0 +1,524 @@
+"""The contract between layers: each job's output files and its typed summary.
+
+Workflows (``fieldfix.workflows``) write these records; the CLI, the report and the batch
+read them back with :meth:`~fieldfix.records.Record.read`, never by guessing keys. One
+name per quantity holds everywhere: in the library, in the JSON files, in the CSV tables
+and in the report.
+
+* **Job options** (:class:`JobOptions`): output folder, the tag put at the start of every
+  output file name, overwrite, progress, the command line for provenance.
+* **File lists** (:class:`FieldMapFiles`, :class:`UnwarpFiles`, :class:`DropoutFiles`,
+  :class:`PlanFiles`): the registry of output names. A summary stores its outputs as names
+  relative to its own folder, so a folder can be moved and nothing outside it is ever
+  referred to as an output.
+* **Summaries** (:class:`FieldMapSummary`, :class:`UnwarpSummary`, :class:`DropoutSummary`,
+  :class:`PlanSummary`): what each job reports, units in the field names.
+* :func:`find_summaries` lists the summaries in a folder by the registry's names.
+
+Examples
+--------
+>>> files = FieldMapFiles.named(tag="sub-01_")
+>>> files.b0_hz, files.summary
+('sub-01_b0_hz.nii.gz', 'sub-01_b0_summary.json')
+>>> UnwarpFiles.named("sub-01_task-rest_bold").corrected
+'sub-01_task-rest_bold_corrected.nii.gz'
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+from .errors import InputError
+from .outdir import check_name_prefix
+from .records import Record, SummaryError
+
+__all__ = [
+    "CAUTION",
+    "JobOptions",
+    "job_and_settings",
+    "FieldMapFiles",
+    "UnwarpFiles",
+    "DropoutFiles",
+    "PlanFiles",
+    "PhaseUnitsRecord",
+    "TimingRecord",
+    "FieldMapSummary",
+    "UnwarpSummary",
+    "MapStatistics",
+    "DropoutParameters",
+    "FrameRecord",
+    "DropoutSummary",
+    "PlanChoice",
+    "PlanSummary",
+    "FolderSummaries",
+    "find_summaries",
+    "SummaryError",
+]
+
+#: The caution every command, sidecar, summary and report carries (one text everywhere).
+CAUTION = ("Research software, not a medical device: inspect corrected images, B0 maps and dropout "
+           "predictions before they are used for any decision about a person.")
+
+
+# ----------------------------------------------------------------------------------- options
+@dataclass(frozen=True)
+class JobOptions:
+    """Where and how a file-level job writes.
+
+    Attributes
+    ----------
+    out_dir : Path
+        Output folder (created if missing).
+    tag : str
+        Put at the start of every output file name (``"sub-01_"`` gives
+        ``sub-01_b0_hz.nii.gz``); a plain part of a file name, no folders.
+    overwrite : bool
+        Replace earlier outputs fieldfix wrote (never inputs, never other files).
+    progress : bool
+        Show progress bars on standard error.
+    command : str, optional
+        The command line or call recorded in the provenance sidecars.
+    """
+
+    out_dir: Path
+    tag: str = ""
+    overwrite: bool = False
+    progress: bool = False
+    command: str | None = None
+
+    def __post_init__(self):
+        object.__setattr__(self, "out_dir", Path(self.out_dir))
+        check_name_prefix(self.tag, "tag")
+
+    def path(self, name: str) -> Path:
+        """Absolute-or-relative path of an output name inside the output folder."""
+        return self.out_dir / name
+
+
+def job_and_settings(job, settings_type, settings, changes: dict):
+    """Build a job's :class:`JobOptions` and its settings dataclass from a call's arguments.
+
+    `job` is a :class:`JobOptions` or an output folder; `settings` an instance of
+    `settings_type` or None (its defaults); `changes` keyword arguments naming fields of
+    either, applied on top (so ``run_unwarp(runs, b0, "out", pe_code="j-", overwrite=True)``
+    works as well as passing the objects).
+
+    Raises
+    ------
+    TypeError
+        For a keyword that is a field of neither.
+    """
+    job = job if isinstance(job, JobOptions) else JobOptions(out_dir=job)
+    settings = settings if settings is not None else settings_type()
+    job_fields = {f.name for f in dataclasses.fields(JobOptions)}
+    setting_fields = {f.name for f in dataclasses.fields(settings_type)}
+    unknown = sorted(set(changes) - job_fields - setting_fields)
+    if unknown:
+        raise TypeError(f"unexpected keyword argument {unknown[0]!r}")
+    job_changes = {k: v for k, v in changes.items() if k in job_fields}
+    setting_changes = {k: v for k, v in changes.items() if k in setting_fields}
+    if job_changes:
+        job = dataclasses.replace(job, **job_changes)
+    if setting_changes:
+        settings = dataclasses.replace(settings, **setting_changes)
+    return job, settings
+
+
+# ----------------------------------------------------------------------------------- files
+class _Files(Record):
+    """A job's output names (relative to its folder); image roles get provenance sidecars."""
+
+    SUMMARY_SUFFIX = ""
+    IMAGES: tuple = ()
+
+    def paths(self, folder: str | os.PathLike) -> dict[str, Path]:
+        """Role -> path inside `folder`, for the outputs this job writes."""
+        folder = Path(folder)
+        return {f.name: folder / getattr(self, f.name) for f in dataclasses.fields(self)
+                if getattr(self, f.name) is not None}
+
+    def image_roles(self) -> list[str]:
+        return [role for role in self.IMAGES if getattr(self, role) is not None]
+
+    def guarded(self, folder: str | os.PathLike) -> list[Path]:
+        """Every path the job will write: the outputs and their provenance sidecars."""
+        from .io import sidecar_path
+
+        paths = self.paths(folder)
+        return list(paths.values()) + [sidecar_path(paths[role]) for role in self.image_roles()]
+
+
+@dataclass(frozen=True)
+class FieldMapFiles(_Files):
+    """Outputs of the field-map job."""
+
+    b0_hz: str
+    mask: str
+    magnitude: str
+    summary: str
+    b0_rads: str | None = None
+    b0_ppm: str | None = None
+
+    SUMMARY_SUFFIX = "b0_summary.json"
+    IMAGES = ("b0_hz", "mask", "magnitude", "b0_rads", "b0_ppm")
+
+    @classmethod
+    def named(cls, tag: str = "", also_units=()) -> "FieldMapFiles":
+        units = set(also_units)
+        return cls(b0_hz=f"{tag}b0_hz.nii.gz", mask=f"{tag}b0_mask.nii.gz",
+                   magnitude=f"{tag}b0_magnitude.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
+                   b0_rads=f"{tag}b0_rads.nii.gz" if "rad/s" in units else None,
+                   b0_ppm=f"{tag}b0_ppm.nii.gz" if "ppm" in units else None)
+
+
+@dataclass(frozen=True)
+class UnwarpFiles(_Files):
+    """Outputs of the unwarping job for one run (``<tag><run stem>_...``)."""
+
+    corrected: str
+    shift_vox: str
+    jacobian: str
+    fold_mask: str
+    displacement_mm: str
+    summary: str
+
+    SUMMARY_SUFFIX = "_unwarp.json"
+    IMAGES = ("corrected", "shift_vox", "jacobian", "fold_mask", "displacement_mm")
+
+    @classmethod
+    def named(cls, run_stem: str, tag: str = "") -> "UnwarpFiles":
+        stem = f"{tag}{run_stem}"
+        return cls(corrected=f"{stem}_corrected.nii.gz", shift_vox=f"{stem}_shift_vox.nii.gz",
+                   jacobian=f"{stem}_jacobian.nii.gz", fold_mask=f"{stem}_fold_mask.nii.gz",
+                   displacement_mm=f"{stem}_displacement_mm.nii.gz", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
+
+
+@dataclass(frozen=True)
+class DropoutFiles(_Files):
+    """Outputs of the dropout job (the BOLD-sensitivity and EPI-grid maps when made)."""
+
+    retention: str
+    summary: str
+    bold_sensitivity: str | None = None
+    retention_on_epi: str | None = None
+    bold_sensitivity_on_epi: str | None = None
+
+    SUMMARY_SUFFIX = "dropout.json"
+    IMAGES = ("retention", "bold_sensitivity", "retention_on_epi", "bold_sensitivity_on_epi")
+
+    @classmethod
+    def named(cls, tag: str = "", *, bold: bool = False, on_epi: bool = False) -> "DropoutFiles":
+        return cls(retention=f"{tag}retention.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
+                   bold_sensitivity=f"{tag}bold_sensitivity.nii.gz" if bold else None,
+                   retention_on_epi=f"{tag}retention_on_epi.nii.gz" if on_epi else None,
+                   bold_sensitivity_on_epi=f"{tag}bold_sensitivity_on_epi.nii.gz" if bold and on_epi else None)
+
+
+@dataclass(frozen=True)
+class PlanFiles(_Files):
+    """Outputs of the planning job."""
+
+    csv: str
+    json: str
+    figure: str
+
+    SUMMARY_SUFFIX = "plan.json"
+
+    @classmethod
+    def named(cls, tag: str = "") -> "PlanFiles":
+        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png")
+
+
+# ----------------------------------------------------------------------------------- summaries
+@dataclass(frozen=True)
+class PhaseUnitsRecord(Record):
+    """How the units of one phase image were established."""
+
+    path: str
+    units: str
+    how: str
+
+
+@dataclass(frozen=True)
+class FieldMapSummary(Record):
+    """What the field-map job reports (``<tag>b0_summary.json``).
+
+    ``unaliased_range_hz`` is the half-width: fields within +-that value are unambiguous.
+    """
+
+    KIND = "fieldmap"
+
+    input_kind: str
+    method: str
+    echo_times_s: list[float] | None
+    echo_times_source: str | None
+    delta_te_s: float | None
+    unaliased_range_hz: float | None
+    phase_units: list[PhaseUnitsRecord]
+    mask_source: str
+    mask_voxels: int
+    mask_volume_ml: float
+    mask_fraction_of_grid: float
+    field_percentiles_hz: dict[str, float]
+    field_mean_hz: float
+    voxels_offset_changed: int
+    mask_regions: int
+    outlier_voxels: int
+    smooth_fwhm_mm: float
+    unwrap_method: str | None
+    voxel_size_mm: list[float]
+    field_strength_t: float | None
+    outputs: FieldMapFiles
+    field_percentiles_ppm: dict[str, float] | None = None
+    percent_mask_beyond_unaliased_range: float | None = None
+    caution: str = CAUTION
+
+
+@dataclass(frozen=True)
+class TimingRecord(Record):
+    """Readout timing as used (see :class:`fieldfix.shift.Timing`)."""
+
+    echo_spacing_s: float
+    readout_time_s: float
+    n_pe_lines: int
+    source: str
+
+
+@dataclass(frozen=True)
+class UnwarpSummary(Record):
+    """What the unwarping job reports for one run (``<tag><stem>_unwarp.json``)."""
+
+    KIND = "unwarp"
+
+    run: str
+    b0_map: str
+    b0_mask: str | None
+    statistics_region: str
+    n_volumes: int
+    pe_code: str
+    pe_axis: int
+    pe_direction_world: str
+    timing: TimingRecord
+    interp: str
+    jacobian: bool
+    max_abs_shift_vox: float
+    max_abs_shift_mm: float
+    percent_shifted_over_1_voxel: float
+    folded_voxels: int
+    voxels_in_mask: int
+    pe_voxel_size_mm: float
+    jacobian_floor: float
+    folded_voxels_total: int
+    coverage_percent: float
+    partial_coverage: bool
+    warnings: list[str]
+    voxel_size_mm: list[float]
+    displacement_convention: str
+    folded_voxel_rule: str
+    outputs: UnwarpFiles
+    caution: str = CAUTION
+
+
+@dataclass(frozen=True)
+class MapStatistics(Record):
+    """A predicted map inside the statistics mask: median, share below the threshold."""
+
+    median: float | None
+    percent_below_threshold: float | None
+    voxels: int
+
+
+@dataclass(frozen=True)
+class DropoutParameters(Record):
+    """The protocol a dropout prediction was made for."""
+
+    te_s: float
+    thickness_mm: float
+    tilt_deg: float
+    slice_axis: str
+    pe_code: str | None
+    echo_spacing_s: float | None
+    partial_fourier: float
+    zshim_mtms_per_m: float
+    threshold: float
+    profile: str
+    time_bandwidth: float | None = None
+    window: str | None = None
+
+
+@dataclass(frozen=True)
+class FrameRecord(Record):
+    """The slice frame of a dropout prediction (see :class:`fieldfix.dropout.SliceFrame`)."""
+
+    slice_normal_world: list[float]
+    tilt_deg: float
+    pe_step_world_mm: list[float] | None = None
+    readout_step_world_mm: list[float] | None = None
+    pe_lines: int | None = None
+    description: str | None = None
+
+
+@dataclass(frozen=True)
+class DropoutSummary(Record):
+    """What the dropout job reports (``<tag>dropout.json``)."""
+
+    KIND = "dropout"
+
+    b0: str
+    geometry_from: str
+    frame: FrameRecord
+    parameters: DropoutParameters
+    mask: str
+    retention: MapStatistics
+    outputs: DropoutFiles
+    bold_sensitivity: MapStatistics | None = None
+    pe_direction_world: str | None = None
+    percent_echo_lost: float | None = None
+    caution: str = CAUTION
+
+
+@dataclass(frozen=True)
+class PlanChoice(Record):
+    """The recommended protocol of a plan, with its predicted signal."""
+
+    protocol: str
+    thickness_mm: float
+    te_s: float
+    tilt_deg: float
+    pe_polarity: str | None
+    pe_direction: str | None
+    zshim_mtms_per_m: float
+    roi_median: float
+    roi_pct_below: float
+    brain_median: float | None
+    brain_pct_below: float | None
+    n_slices: int
+    tr_s: float
+    rank: int
+
+
+@dataclass(frozen=True)
+class PlanSummary(Record):
+    """What the planning job reports (``<tag>plan.json`` holds it with the full table)."""
+
+    KIND = "plan"
+
+    b0: str
+    roi: str
+    brain_mask: str
+    roi_voxels: int
+    protocols: int
+    metric: str
+    recommended: PlanChoice
+    reason: str
+    outputs: PlanFiles
+    parameters: dict[str, object] = field(default_factory=dict)
+    provenance: dict[str, object] = field(default_factory=dict)
+    rows: list[dict[str, object]] = field(default_factory=list)
+    caution: str = CAUTION
+
+
+# ----------------------------------------------------------------------------------- discovery
+@dataclass(frozen=True)
+class FolderSummaries:
+    """The summaries found in one folder, each with the path it was read from."""
+
+    field_maps: list[tuple[Path, FieldMapSummary]]
+    runs: list[tuple[Path, UnwarpSummary]]
+    dropout: list[tuple[Path, DropoutSummary]]
+    plans: list[tuple[Path, PlanSummary]]
+
+    @property
+    def empty(self) -> bool:
+        return not (self.field_maps or self.runs or self.dropout or self.plans)
+
+
+def _matching(folder: Path, suffix: str) -> Iterator[Path]:
+    for path in sorted(folder.glob(f"*{suffix}")):
+        if path.is_file() and not path.name.startswith("."):
+            yield path
+
+
+def find_summaries(folder: str | os.PathLike) -> FolderSummaries:
+    """Read every job summary in `folder` (not its subfolders), by the registry's names.
+
+    Raises
+    ------
+    InputError
+        When `folder` is not a folder; :class:`SummaryError` for a summary that does not
+        match its record (naming the file and the key).
+    """
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError("not a folder", folder)
+    plans = [(p, PlanSummary.read(p)) for p in _matching(folder, PlanFiles.SUMMARY_SUFFIX)]
+    return FolderSummaries(
+        field_maps=[(p, FieldMapSummary.read(p)) for p in _matching(folder, FieldMapFiles.SUMMARY_SUFFIX)],
+        runs=[(p, UnwarpSummary.read(p)) for p in _matching(folder, UnwarpFiles.SUMMARY_SUFFIX)],
+        dropout=[(p, DropoutSummary.read(p)) for p in _matching(folder, DropoutFiles.SUMMARY_SUFFIX)],
+        plans=plans,
+    )
+
+
+# ----------------------------------------------------------------------------------- demo
+@dataclass(frozen=True)
+class DemoStep(Record):
+    """One step of the demo: what happened, how long it took, its main output."""
+
+    status: str
+    seconds: float | None = None
+    outputs: list[str] = field(default_factory=list)
+    reason: str | None = None
+    path: str | None = None
+
+
+@dataclass(frozen=True)
+class DemoChecks(Record):
+    """The demo's results checked against the scenario's ground truth (None: not measured).
+
+    Edge agreements are normalised-gradient-field agreements with the undistorted
+    simulation (1: every edge in place), over the head and where the correction moved
+    voxels by more than half a voxel.
+    """
+
+    b0_brain_p1_p99_hz: list[float] | None = None
+    b0_error_vs_truth_median_hz: float | None = None
+    b0_error_vs_truth_p95_hz: float | None = None
+    max_abs_shift_vox: float | None = None
+    percent_shifted_over_1_voxel: float | None = None
+    edge_agreement_before: float | None = None
+    edge_agreement_after: float | None = None
+    edge_agreement_shifted_before: float | None = None
+    edge_agreement_shifted_after: float | None = None
+    roi_signal_kept: float | None = None
+    dropout_brain_median_retention: float | None = None
+    dropout_brain_percent_below_threshold: float | None = None
+    dropout_roi_mean_retention: float | None = None
+    plan_protocols_compared: int | None = None
+    plan_recommended: str | None = None
+    plan_recommended_roi_median: float | None = None
+    plan_reason: str | None = None
+
+
+@dataclass(frozen=True)
+class DemoSummary(Record):
+    """What the demo reports (``demo_summary.json``)."""
+
+    KIND = "demo"
+
+    scenario: str
+    title: str
+    field_strength_t: float
+    subject: str
+    dataset: str
+    out_dir: str
+    steps: dict[str, DemoStep]
+    checks_against_truth: DemoChecks
+    report: str | None
+    seconds: float
+    warnings: list[str] = field(default_factory=list)
+    caution: str = CAUTION + " The demo's study and data are invented."

@@ -1,0 +1,251 @@
+"""Reading and checking the inputs of the field-map job, one reader per input kind.
+
+Each reader takes the job's :class:`~fieldfix.workflows.fieldmap.FieldMapSettings` and
+returns a :class:`FieldMapData`: the reference image (whose grid the map is written on),
+what the computation needs (complex echoes, a phase difference, or a ready map) and what
+the summary reports about the inputs (echo times and their source, phase units).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import FieldfixError, GeometryError, InputError, MetadataError
+from ..io import Image, load_image, sidecar_path
+from ..outputs import PhaseUnitsRecord
+from ..phase import (
+    complex_from_polar,
+    complex_from_real_imag,
+    detect_phase_units,
+    phase_to_radians,
+    phase_units as lookup_phase_units,
+)
+
+__all__ = ["FieldMapData", "READERS", "as_list", "check_grid", "read_mask", "read_magnitude", "MAX_ECHO_TIME_S"]
+
+#: Longest echo time accepted for a gradient-echo field map; a larger value is almost surely
+#: seconds written as milliseconds (field-map echo times are milliseconds to tens of
+#: milliseconds: common practice, no source).
+MAX_ECHO_TIME_S = 0.5
+
+
+@dataclass
+class FieldMapData:
+    """What one input kind provides to the computation."""
+
+    reference: Image
+    magnitudes: list[Image]
+    echo_times_s: list[float] | None = None
+    echo_times_source: str | None = None
+    echoes: list[np.ndarray] | None = None
+    phase_diff_rad: np.ndarray | None = None
+    b0_values: np.ndarray | None = None
+    b0_units: str | None = None
+    phase_units: list[PhaseUnitsRecord] = field(default_factory=list)
+
+
+def as_list(value) -> list:
+    if value is None:
+        return []
+    if isinstance(value, (str, os.PathLike)):
+        return [value]
+    return list(value)
+
+
+def check_grid(images: list[Image], reference: Image) -> None:
+    for img in images:
+        if img.shape != reference.shape:
+            raise GeometryError(f"image shape {img.shape} differs from {reference.path.name}'s {reference.shape}; "
+                                "all field-map images must share one grid", img.path)
+        if not np.allclose(img.affine, reference.affine, atol=1e-3, rtol=0):
+            raise GeometryError(f"image affine differs from {reference.path.name}'s; all field-map images must "
+                                "share one grid", img.path)
+
+
+def _sidecar_time(img: Image, key: str) -> float | None:
+    if key not in img.sidecar:
+        return None
+    value = img.sidecar[key]
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+        raise MetadataError(f"{key} in the sidecar is not a positive number of seconds ({value!r})",
+                            sidecar_path(img.path))
+    if value > 1.0:
+        raise MetadataError(f"{key} = {value} in the sidecar is over one second; BIDS echo times are in seconds "
+                            "(was it written in milliseconds?)", sidecar_path(img.path))
+    return float(value)
+
+
+def _check_argument_times(arg: list[float], n_needed: int) -> None:
+    if len(arg) != n_needed:
+        raise InputError(f"echo_times_s: {len(arg)} echo times given but {n_needed} are needed")
+    if any(not (t > 0) for t in arg):
+        raise InputError("echo_times_s: echo times must be positive")
+    if any(t > MAX_ECHO_TIME_S for t in arg):
+        raise InputError(f"echo_times_s: {max(arg) * 1e3:g}ms is longer than a field-map echo time can be "
+                         f"({MAX_ECHO_TIME_S * 1e3:g}ms at most); was a value in seconds written as ms?")
+
+
+def resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
+    """Pick echo times from the argument or the sidecars; returns (times, source).
+
+    Errors about sidecar values name the first source's sidecar; errors about the
+    argument name the parameter.
+    """
+    where = sidecar_path(sources[0]) if sources else None
+    side = None
+    if sidecar_times and all(t is not None for t in sidecar_times):
+        side = [float(t) for t in sidecar_times]
+    elif sidecar_times and any(t is not None for t in sidecar_times):
+        missing = [str(p) for p, t in zip(sources, sidecar_times) if t is None]
+        if argument is None:
+            raise MetadataError("echo time missing from the sidecar of " + ", ".join(missing)
+                                + "; give the echo times explicitly", where)
+    arg = None if argument is None else [float(t) for t in argument]
+    if arg is not None:
+        _check_argument_times(arg, n_needed)
+    if arg is None and side is None:
+        raise MetadataError("no echo times: give them (echo_times_s, for example 4.92ms and 7.38ms) or provide a "
+                            "BIDS sidecar with EchoTime / EchoTime1 and EchoTime2", sources[0] if sources else None)
+    if arg is None:
+        return side, "sidecar"
+    if side is None:
+        return arg, "arguments"
+    if np.allclose(arg, side, rtol=1e-4, atol=1e-7):
+        return arg, "arguments+sidecar"
+    if win == "arguments":
+        return arg, "arguments (sidecar overruled)"
+    if win == "sidecar":
+        return side, "sidecar (arguments overruled)"
+    shown = ", ".join(f"{t * 1e3:g}ms" for t in side)
+    given = ", ".join(f"{t * 1e3:g}ms" for t in arg)
+    raise MetadataError(f"echo times {given} given contradict the sidecar ({shown}); say which one wins "
+                        "(echo_times_win: arguments or sidecar)", where)
+
+
+def read_phase(img: Image, units, report: list) -> np.ndarray:
+    values = img.get_fdata(np.float64)
+    if not np.all(np.isfinite(values)):
+        raise InputError("phase image contains NaN or infinite values", img.path)
+    if units is None:
+        try:
+            unit = detect_phase_units(values)
+        except FieldfixError as err:
+            raise type(err)(err.message, img.path) from None
+        source = unit.reason
+    else:
+        unit = lookup_phase_units(units)
+        source = "given"
+    report.append(PhaseUnitsRecord(path=str(img.path), units=unit.name, how=source))
+    return phase_to_radians(values, unit)
+
+
+def read_magnitude(img: Image) -> np.ndarray:
+    values = img.get_fdata(np.float64)
+    if not np.all(np.isfinite(values)):
+        raise InputError("magnitude image contains NaN or infinite values", img.path)
+    return np.abs(values)
+
+
+def _read_phase_echoes(s) -> FieldMapData:
+    if len(s.phase) < 2:
+        raise InputError("phase input needs at least two echoes (or use a phase difference)")
+    ph_imgs = [load_image(p, ndim=(3,)) for p in s.phase]
+    mag_imgs = [load_image(p, ndim=(3,)) for p in s.magnitude]
+    if len(mag_imgs) not in (0, 1, len(ph_imgs)):
+        raise InputError(f"{len(mag_imgs)} magnitude images for {len(ph_imgs)} phase images; give one per echo or a "
+                         "single one")
+    if not mag_imgs and s.mask is None:
+        raise InputError("phase images need magnitude images (or at least a mask)")
+    reference = ph_imgs[0]
+    check_grid(ph_imgs + mag_imgs, reference)
+    tes, source = resolve_echo_times(s.echo_times_s, [_sidecar_time(i, "EchoTime") for i in ph_imgs], s.phase,
+                                     len(ph_imgs), s.echo_times_win)
+    report: list = []
+    phases = [read_phase(i, s.phase_units, report) for i in ph_imgs]
+    mags = [read_magnitude(i) for i in mag_imgs] or [np.ones(reference.shape)]
+    if len(mags) == 1:
+        mags = mags * len(phases)
+    echoes = [complex_from_polar(m, p) for m, p in zip(mags, phases)]
+    return FieldMapData(reference, mag_imgs, tes, source, echoes=echoes, phase_units=report)
+
+
+def _read_real_imag(s) -> FieldMapData:
+    if len(s.real) != len(s.imag) or len(s.real) < 2:
+        raise InputError(f"real/imaginary input needs the same number (at least two) of each; got {len(s.real)} real "
+                         f"and {len(s.imag)} imaginary")
+    re_imgs = [load_image(p, ndim=(3,)) for p in s.real]
+    im_imgs = [load_image(p, ndim=(3,)) for p in s.imag]
+    mag_imgs = [load_image(p, ndim=(3,)) for p in s.magnitude]
+    reference = re_imgs[0]
+    check_grid(re_imgs + im_imgs + mag_imgs, reference)
+    tes, source = resolve_echo_times(s.echo_times_s, [_sidecar_time(i, "EchoTime") for i in re_imgs], s.real,
+                                     len(re_imgs), s.echo_times_win)
+    echoes = [complex_from_real_imag(r.get_fdata(np.float64), i.get_fdata(np.float64))
+              for r, i in zip(re_imgs, im_imgs)]
+    if not all(np.all(np.isfinite(z)) for z in echoes):
+        raise InputError("real/imaginary images contain NaN or infinite values", s.real[0])
+    return FieldMapData(reference, mag_imgs, tes, source, echoes=echoes)
+
+
+def _read_phase_difference(s) -> FieldMapData:
+    pd_img = load_image(s.phase_diff, ndim=(3,))
+    mag_imgs = [load_image(p, ndim=(3,)) for p in s.magnitude]
+    check_grid(mag_imgs, pd_img)
+    if not mag_imgs and s.mask is None:
+        raise InputError("a phase difference needs a magnitude image (or at least a mask)", s.phase_diff)
+    side = [_sidecar_time(pd_img, "EchoTime1"), _sidecar_time(pd_img, "EchoTime2")]
+    if side == [None, None] and len(mag_imgs) == 2:  # fall back to the magnitudes' EchoTime
+        side = [_sidecar_time(mag_imgs[0], "EchoTime"), _sidecar_time(mag_imgs[1], "EchoTime")]
+    tes, source = resolve_echo_times(s.echo_times_s, side, [s.phase_diff, s.phase_diff], 2, s.echo_times_win)
+    report: list = []
+    dphi = read_phase(pd_img, s.phase_units, report)
+    t1, t2 = tes
+    if t2 < t1:
+        raise MetadataError(f"EchoTime2 ({t2 * 1e3:g} ms) is shorter than EchoTime1 ({t1 * 1e3:g} ms); the phase "
+                            "difference is taken as echo 2 minus echo 1", s.phase_diff)
+    return FieldMapData(pd_img, mag_imgs, tes, source, phase_diff_rad=dphi, phase_units=report)
+
+
+def _read_ready_map(s) -> FieldMapData:
+    b0_img = load_image(s.b0, ndim=(3,))
+    mag_imgs = [load_image(p, ndim=(3,)) for p in s.magnitude]
+    check_grid(mag_imgs, b0_img)
+    units = s.b0_units or b0_img.sidecar.get("Units")
+    if units is None:
+        raise InputError("give the units of the ready B0 map (Hz, rad/s, ppm or T); the sidecar has no Units", s.b0)
+    values = b0_img.get_fdata(np.float64)
+    if not np.any(np.isfinite(values)):
+        raise InputError("the B0 map has no finite values", s.b0)
+    return FieldMapData(b0_img, mag_imgs, b0_values=values, b0_units=str(units))
+
+
+#: One reader per input kind (the kind names are those the summary reports).
+READERS = {
+    "phase": _read_phase_echoes,
+    "real-imag": _read_real_imag,
+    "phase-difference": _read_phase_difference,
+    "ready map": _read_ready_map,
+}
+
+
+def read_mask(path, reference: Image) -> np.ndarray | None:
+    """A mask on the field-map grid (non-zero inside), or None when no path is given."""
+    if path is None:
+        return None
+    mask_img = load_image(path, ndim=(3,))
+    check_grid([mask_img], reference)
+    values = mask_img.get_fdata(np.float64) > 0.5
+    if not values.any():
+        raise InputError("mask is empty", path)
+    return values
+
+
+def input_paths(s) -> list[Path]:
+    """Every input file of the job (they are never overwritten)."""
+    return [Path(p) for p in [*s.phase, *s.magnitude, *s.real, *s.imag, s.phase_diff, s.b0, s.mask]
+            if p is not None]
