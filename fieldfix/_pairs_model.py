@@ -174,8 +174,9 @@ class Objective:
     """
 
     def __init__(self, level: Level, bending_weight: float, motion=None, offsets_hz=None,
-                 laplacian_weight: float = 0.0):
+                 laplacian_weight: float = 0.0, robust_scale: float | None = None):
         self.level = level
+        self.robust = None if not robust_scale else float(robust_scale)
         n = len(level.images)
         self.motion = motion or [None] * n
         self.offsets = offsets_hz or [None] * n
@@ -216,6 +217,25 @@ class Objective:
             grad += weight * separable(c, grams)
         return float((c * grad).sum()) / self.size, 2.0 * grad / self.size
 
+    def _data(self, parts, mean):
+        """Data term and its gradient with respect to each corrected image.
+
+        Least squares: ``rho(r) = r^2``. Robust (``robust_scale`` s): the Cauchy loss
+        ``rho(r) = s^2 log(1 + r^2 / s^2)``, which caps the pull of voxels the model cannot
+        match (folds, ringing). The gradient through the mean image is kept: with
+        ``psi = rho'``, image g receives ``psi(r_g) - mean_h psi(r_h)``.
+        """
+        residuals = [p[0] - mean for p in parts]
+        if self.robust is None:
+            data = sum(float((r ** 2).sum()) for r in residuals) / self.size
+            psi = [2.0 * r / self.size for r in residuals]
+        else:
+            s2 = self.robust ** 2
+            data = sum(float((s2 * np.log1p(r ** 2 / s2)).sum()) for r in residuals) / self.size
+            psi = [2.0 * r / (1.0 + r ** 2 / s2) / self.size for r in residuals]
+        average = sum(psi) / len(psi)
+        return data, [p - average for p in psi]
+
     def __call__(self, coefficients: np.ndarray):
         self.evaluations += 1
         c = coefficients.reshape(self.shape)
@@ -223,11 +243,9 @@ class Objective:
         mean = sum(p[0] for p in parts) / len(parts)
         g_field = np.zeros(self.level.images[0].shape)
         g_deriv = {a: np.zeros_like(g_field) for a in self._deriv}
-        data = 0.0
+        data, influence = self._data(parts, mean)
         for g, (image, dshift, value, dvalue) in enumerate(parts):
-            residual = image - mean
-            data += float((residual ** 2).sum()) / self.size
-            grad_image = 2.0 * residual / self.size
+            grad_image = influence[g]
             if self.motion[g] is not None:
                 grad_image = kernels.rigid_pull_adjoint(grad_image, *self.motion[g])
             axis = self.level.axes[g]
