@@ -7,15 +7,17 @@ matrices (``B``, ``B'``, ``B''`` per axis) with the coefficients, and their tran
 the gradient with respect to the coefficients.
 
 Cost of one level (images normalised to a signal mean of 1, so the terms are
-dimensionless apart from the weight)::
+dimensionless apart from the weights)::
 
-    E(c) = (1 / V) sum_groups sum_x (C_g(x) - M(x))^2  +  lam * (1 / V) sum_x S(b)(x)
+    E(c) = (1 / V) sum_groups sum_x rho(C_g(x) - M(x))  +  (1 / V) sum_x [lam S(b) + mu (lap b)^2](x)
 
 ``C_g = g_g I_g(y + s_g(y)) (1 + d s_g / d y)`` is group g's image unwarped with its own
 shift ``s_g = sign * echo_spacing * n_pe_lines * b`` (voxels) and Jacobian, ``M`` the mean of
-the ``C_g``, V the number of voxels, and ``S`` the bending energy
-``sum_a (d2 b/dxa2)^2 + 2 sum_{a<b} (d2 b/dxa dxb)^2`` in (Hz/mm^2)^2, so ``lam`` is in
-mm^4/Hz^2. This is the least-squares formulation with a smooth field and Jacobian
+the ``C_g``, V the number of voxels, ``rho`` the squared difference or the Cauchy loss
+``s^2 log(1 + r^2/s^2)``, ``S`` the bending energy
+``sum_a (d2 b/dxa2)^2 + 2 sum_{a<b} (d2 b/dxa dxb)^2`` and ``lap b`` the Laplacian, both in
+Hz/mm^2, so ``lam`` and ``mu`` are in mm^4/Hz^2. Derivatives of the field come from the
+spline itself (analytic), the Jacobian ``1 + d s / d y`` from the derivative of the field. This is the least-squares formulation with a smooth field and Jacobian
 modulation of Andersson, Skare & Ashburner 2003 (NeuroImage 20(2):870-888, from memory),
 with the symmetric treatment of both polarities of Holland, Kuperman & Dale 2010
 (NeuroImage 50(1):175-183, from memory); the bending energy stands in for the

@@ -36,7 +36,13 @@ Method (field)
   estimated by alternating with the field on the same cost: after each field fit the
   corrected group images are registered rigidly (least squares), and the next fit
   compares ``C_g(T_g x)`` with the others while group g's field is ``b(T_g^-1 y)`` (the
-  field moves with the head). The field is in the first group's frame.
+  field moves with the head). The field is in the first group's frame. Motion along the
+  PE axis (translation, and the PE components of the rotations) cannot be told from a
+  field that is uniform or linear across the other axes, since both move the two
+  polarities rigidly apart: such motion ends up in the field.
+* Robustness: the image differences enter through a Cauchy loss (``robust_scale``), so
+  voxels the model cannot match (folds, pile-ups, ringing at sharp edges) do not drag the
+  field along whole PE lines.
 
 Examples
 --------
@@ -59,6 +65,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import optimize
+from threadpoolctl import threadpool_limits
 
 from . import _pairs_kernels as kernels
 from . import _pairs_model as model
@@ -525,7 +532,11 @@ def field_from_pairs(images, encodings, affine_or_voxel_mm, *, options: PairOpti
     means, volume_motion = _average_groups(data, of_volume, len(keys), voxel_mm, options.align_within_groups)
     normalised, gains = _normalise(means)
     axes, per_hz = tuple(k[0] for k in keys), tuple(k[2] for k in keys)
-    coef, knots, params, iterations, converged = _optimise(normalised, axes, per_hz, voxel_mm, options, progress)
+    # The spline products are many small matrix products: one BLAS thread runs them several times
+    # faster than a pool (measured: 55 ms against 220 ms per cost evaluation on 2 busy cores).
+    with threadpool_limits(limits=1, user_api="blas"):
+        coef, knots, params, iterations, converged = _optimise(normalised, axes, per_hz, voxel_mm, options,
+                                                               progress)
     positions = [np.arange(n) * v for n, v in zip(data.shape[:3], voxel_mm)]
     b0_hz = model.separable(coef, [model.basis(p, k) for p, k in zip(positions, knots)])
     fields = _group_fields(b0_hz, params, voxel_mm)

@@ -108,6 +108,7 @@ def test_kspace_simulated_pair_recovers_the_field():
     assert np.all(result.confidence[result.extended] == 0) and result.confidence[result.mask].max() > 0.5
 
 
+@pytest.mark.slow
 def test_agrees_with_gradient_echo_field_mapping_of_the_same_head():
     # Outside reference within fieldfix: dual-echo gradient-echo data of the same head and field
     # (fieldfix.simulate.simulate_gradient_echo) mapped by fieldfix.b0_from_echoes.
@@ -149,6 +150,7 @@ def test_four_codes_in_one_4d_array_with_repeats_gain_and_motion_within_groups()
     assert result.corrected.shape == shape + (5,)
 
 
+@pytest.mark.slow
 def test_rigid_motion_between_polarities_is_estimated_jointly():
     shape = (32, 40, 16)
     obj = ndimage.gaussian_filter(_textured_head(shape, 5), 0.7)
