@@ -71,6 +71,11 @@ def basis(positions_mm: np.ndarray, knots: np.ndarray, derivative: int = 0) -> n
     return bspline(t, derivative) / h ** derivative
 
 
+def contract(values: np.ndarray, matrix: np.ndarray, axis: int) -> np.ndarray:
+    """Apply `matrix` along one axis: ``out[..., i, ...] = sum_a matrix[i, a] values[..., a, ...]``."""
+    return np.moveaxis(np.tensordot(matrix, values, axes=(1, axis)), 0, axis)
+
+
 def separable(values: np.ndarray, matrices) -> np.ndarray:
     """Apply one matrix per axis: ``out[i,j,k] = sum m0[i,a] m1[j,b] m2[k,c] values[a,b,c]``."""
     out = np.tensordot(matrices[0], values, axes=(1, 0))
@@ -193,9 +198,7 @@ class Objective:
 
     def corrected(self, coefficients: np.ndarray):
         """Per group: corrected image (level grid, after motion), and the kernel by-products."""
-        c = coefficients.reshape(self.shape)
-        field = separable(c, self._field)
-        deriv = {a: separable(c, mats) for a, mats in self._deriv.items()}
+        field, deriv = self._synthesis(coefficients.reshape(self.shape))
         out = []
         for g, (coef, axis, factor) in enumerate(zip(self.level.coefs, self.level.axes, self.level.factor)):
             b = field if self.offsets[g] is None else field + self.offsets[g]
@@ -211,6 +214,36 @@ class Objective:
                 image = kernels.rigid_pull(image, *self.motion[g])
             out.append((image, dshift, value, dvalue))
         return out
+
+    def _synthesis(self, c: np.ndarray):
+        """Field (Hz) and its derivatives along the PE axes (Hz/mm) on the level grid.
+
+        With one PE axis the contractions along the two other axes are shared.
+        """
+        if len(self._deriv) != 1:
+            return separable(c, self._field), {a: separable(c, mats) for a, mats in self._deriv.items()}
+        (axis,) = self._deriv
+        shared = c
+        for a in range(3):
+            if a != axis:
+                shared = contract(shared, self._field[a], a)
+        return contract(shared, self._field[axis], axis), {axis: contract(shared, self._deriv[axis][axis], axis)}
+
+    def _adjoint(self, g_field: np.ndarray, g_deriv: dict) -> np.ndarray:
+        """Transpose of :meth:`_synthesis` (the derivative terms scaled by the PE voxel size)."""
+        vox = self.level.voxel_mm
+        if len(self._deriv) != 1:
+            grad = separable(g_field, [m.T for m in self._field])
+            for a, mats in self._deriv.items():
+                grad += vox[a] * separable(g_deriv[a], [m.T for m in mats])
+            return grad
+        (axis,) = self._deriv
+        total = contract(g_field, self._field[axis].T, axis)
+        total += vox[axis] * contract(g_deriv[axis], self._deriv[axis][axis].T, axis)
+        for a in range(3):
+            if a != axis:
+                total = contract(total, self._field[a].T, a)
+        return total
 
     def penalty(self, c: np.ndarray):
         """Weighted penalty (mean over voxels) and its gradient with respect to the coefficients."""
@@ -254,9 +287,7 @@ class Objective:
             kernels.accumulate_gradient(np.ascontiguousarray(np.moveaxis(grad_image, axis, -1)), dshift, value,
                                         dvalue, self.level.factor[g], np.moveaxis(g_field, axis, -1),
                                         np.moveaxis(g_deriv[axis], axis, -1))
-        grad = separable(g_field, [m.T for m in self._field])
-        for a, mats in self._deriv.items():
-            grad += self.level.voxel_mm[a] * separable(g_deriv[a], [m.T for m in mats])
+        grad = self._adjoint(g_field, g_deriv)
         bend, bend_grad = self.penalty(c)
         return data + bend, (grad + bend_grad).ravel()
 
