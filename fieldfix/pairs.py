@@ -599,8 +599,8 @@ def restore_jointly(images, encodings, b0_hz: np.ndarray, *, penalty: float = 1e
     --------
     >>> import numpy as np
     >>> from fieldfix.unwarp import distort_with_field
-    >>> obj = np.zeros((2, 32, 2)); obj[:, 10:20] = 1.0
-    >>> b0 = np.tile(30.0 * np.sin(np.arange(32) / 5.0)[None, :, None], (2, 1, 2))
+    >>> obj = np.zeros((4, 32, 4)); obj[:, 10:20] = 1.0
+    >>> b0 = np.tile(30.0 * np.sin(np.arange(32) / 5.0)[None, :, None], (4, 1, 4))
     >>> pair = [distort_with_field(obj, b0, c, 1e-3) for c in ("j", "j-")]
     >>> enc = [PhaseEncoding("j", 1e-3), PhaseEncoding("j-", 1e-3)]
     >>> bool(np.abs(restore_jointly(pair, enc, b0) - obj).max() < 0.05)
