@@ -15,6 +15,8 @@ Shifts and unwarping
     :func:`displacement_field_mm`, :func:`echo_spacing_from_readout_time`,
     :func:`build_tables`, :func:`apply_tables`, :func:`unwarp_array`, :func:`distort`,
     :func:`distort_with_field`
+Fields from reversed phase-encode pairs
+    :func:`field_from_pairs`, :func:`restore_jointly`, :class:`PhaseEncoding`, :class:`PairOptions`
 Dropout and planning
     :func:`frame_from_affine`, :func:`frame_from_orientation`, :func:`dropout_maps`,
     :func:`through_plane_retention`, :func:`bold_sensitivity`, :func:`sweep`,
@@ -53,6 +55,7 @@ _EXPORTS = {
     "shift": ["shift_vox_from_field", "jacobian_from_shift", "fold_mask", "displacement_field_mm",
               "echo_spacing_from_readout_time"],
     "unwarp": ["build_tables", "apply_tables", "unwarp_array", "distort", "distort_with_field"],
+    "pairs": ["field_from_pairs", "restore_jointly", "PhaseEncoding", "PairOptions"],
     "dropout": ["frame_from_affine", "frame_from_orientation", "dropout_maps", "through_plane_retention",
                 "bold_sensitivity"],
     "plan": ["sweep", "recommend"],
