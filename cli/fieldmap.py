@@ -20,6 +20,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     src.add_argument("--b0", metavar="MAP", default=None, help="ready field map, converted to Hz and extended")
     src.add_argument("--b0-units", choices=("hz", "rad/s", "ppm", "T"), default=None,
                      help="units of --b0 (default: the sidecar's Units)")
+    src.add_argument("--epi-pair", nargs="+", metavar="EPI", default=[],
+                     help="EPI images (3D or 4D) acquired with reversed phase encoding (blip up / blip down, "
+                          "e.g. the BIDS fmap/*_dir-*_epi images); codes and timing from their sidecars")
     opts = parser.add_argument_group("options")
     opts.add_argument("--echo-times", nargs="+", metavar="TIME", default=None,
                       help="echo times with units, e.g. 4.92ms 7.38ms (default: BIDS sidecars)")
@@ -39,20 +42,35 @@ def configure(parser: argparse.ArgumentParser) -> None:
     opts.add_argument("--also", nargs="+", choices=("rad/s", "ppm"), default=[],
                       help="also write the map in these units")
     opts.add_argument("--keep-outliers", action="store_true", help="do not replace outlier voxels")
+    pair = parser.add_argument_group("reversed phase-encode images (with --epi-pair)")
+    pair.add_argument("--phase-encoding", nargs="+", metavar="CODE", default=None,
+                      help="BIDS phase-encode code per image, or per volume (default: each sidecar's "
+                           "PhaseEncodingDirection)")
+    pair.add_argument("--readout-time", nargs="+", metavar="TIME", default=None,
+                      help="total readout time per image, or per volume, with its unit, e.g. 45.6ms "
+                           "(default: each sidecar's TotalReadoutTime / EffectiveEchoSpacing)")
+    pair.add_argument("--timing-wins", choices=("arguments", "sidecar"), default=None,
+                      help="which source wins when codes or timing given here contradict a sidecar "
+                           "(default: stop with an error)")
+    pair.add_argument("--pair-motion", action="store_true",
+                      help="also estimate a rigid head motion between the polarities")
     from .main import add_tag_option
 
     add_tag_option(opts)
     parser.epilog = (
         "Field (Hz) = phase gained between the echoes / (2 pi x echo spacing), unambiguous within "
-        "+-1/(2 x spacing) before unwrapping. --out receives b0_hz.nii.gz (extended beyond the mask), "
-        "b0_mask.nii.gz, b0_magnitude.nii.gz and b0_summary.json."
+        "+-1/(2 x spacing) before unwrapping. With --epi-pair the field is the smooth one under which the "
+        "images, each unwarped with its own shift and Jacobian, agree. --out receives b0_hz.nii.gz (extended "
+        "beyond the mask), b0_mask.nii.gz, b0_magnitude.nii.gz and b0_summary.json; with --epi-pair also "
+        "b0_confidence.nii.gz and b0_epi_corrected.nii.gz (the inputs corrected)."
     )
 
 
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"echo_times_s": "--echo-times", "echo_times_win": "--echo-times-win", "phase_units": "--phase-units",
          "smooth_mm": "--smooth", "unwrap_method": "--unwrap", "field_strength_t": "--field-strength",
-         "also_units": "--also", "b0_units": "--b0-units", "tag": "--tag"}
+         "also_units": "--also", "b0_units": "--b0-units", "tag": "--tag", "epi_pe_codes": "--phase-encoding",
+         "epi_readout_times_s": "--readout-time", "epi_win": "--timing-wins", "epi": "--epi-pair"}
 
 
 def run(args) -> dict:
@@ -68,7 +86,10 @@ def run(args) -> dict:
         echo_times_win=args.echo_times_win, phase_units=args.phase_units, smooth_mm=parse_length_mm(args.smooth),
         unwrap_method=args.unwrap,
         field_strength_t=parse_field_t(args.field_strength) if args.field_strength else None,
-        also_units=args.also, reject_outliers=not args.keep_outliers)
+        also_units=args.also, reject_outliers=not args.keep_outliers, epi=args.epi_pair,
+        epi_pe_codes=args.phase_encoding,
+        epi_readout_times_s=[parse_time_s(t) for t in args.readout_time] if args.readout_time else None,
+        epi_win=args.timing_wins, pair_motion=args.pair_motion)
     summary = run_fieldmap(job_options(args), settings)
     if getattr(args, "json", False):
         return summary
@@ -84,6 +105,8 @@ def run(args) -> dict:
         "field_hz_p5_p50_p95": [pct["p5"], pct["p50"], pct["p95"]],
         "voxels_offset_changed": summary.voxels_offset_changed,
         "outlier_voxels": summary.outlier_voxels,
+        "images_agree": (f"normalised RMS difference {summary.pair.nrmsd_before:.3f} as acquired -> "
+                         f"{summary.pair.nrmsd_after:.3f} corrected" if summary.pair else None),
         "caution": summary.caution,
     }
     return {k: v for k, v in short.items() if v is not None}

@@ -25,6 +25,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-jacobian", action="store_true", help="skip the Jacobian intensity correction")
     parser.add_argument("--b0-mask", metavar="MASK", default=None,
                         help="mask of the B0 map, for the statistics (default: b0_mask beside the B0 map if present)")
+    parser.add_argument("--combine-polarities", action="store_true",
+                        help="with two runs of opposite phase-encode polarity (blip up / blip down), also write one "
+                             "run restored jointly from both (<first stem>_combined.nii.gz), which recovers "
+                             "compressed regions a single polarity cannot")
     parser.add_argument("--force", action="store_true",
                         help="correct even when shifts exceed a quarter of the field of view")
     from .main import add_tag_option
@@ -44,7 +48,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"pe_code": "--phase-encoding", "readout_time_s": "--readout-time", "echo_spacing_s": "--echo-spacing",
          "timing_win": "--timing-wins", "interp": "--interp", "b0_mask": "--b0-mask", "force": "--force",
-         "tag": "--tag"}
+         "tag": "--tag", "combine_polarities": "--combine-polarities"}
 DASH_VALUES = ("--phase-encoding",)
 
 
@@ -61,7 +65,7 @@ def run(args) -> dict:
         readout_time_s=parse_time_s(args.readout_time) if args.readout_time is not None else None,
         echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing is not None else None,
         timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
-        force=args.force)
+        force=args.force, combine_polarities=args.combine_polarities)
     job = job_options(args)
     summaries = run_unwarp(args.runs, args.b0, job, settings)
     runs = []
@@ -80,6 +84,11 @@ def run(args) -> dict:
         for warning in item.warnings:
             print(f"fieldfix unwarp: warning: {item.run}: {warning}", file=sys.stderr)
     result = {"runs": runs}
+    if args.combine_polarities:
+        from fieldfix.io import image_stem
+        from fieldfix.outputs import CombinedFiles
+
+        result["combined"] = str(job.path(CombinedFiles.named(image_stem(args.runs[0]), job.tag).corrected))
     if not args.no_report:
         from fieldfix.report import build_report
 

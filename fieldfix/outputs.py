@@ -44,7 +44,10 @@ __all__ = [
     "UnwarpFiles",
     "DropoutFiles",
     "PlanFiles",
+    "CombinedFiles",
+    "CombinedSummary",
     "PhaseUnitsRecord",
+    "PairRecord",
     "TimingRecord",
     "FieldMapSummary",
     "UnwarpSummary",
@@ -149,7 +152,10 @@ class _Files(Record):
         from .io import sidecar_path
 
         paths = self.paths(folder)
-        return list(paths.values()) + [sidecar_path(paths[role]) for role in self.image_roles()]
+        every = list(paths.values()) + [sidecar_path(paths[role]) for role in self.image_roles()]
+        if len(set(every)) != len(every):  # a registry entry whose names collide is a bug, not user error
+            raise AssertionError(f"{type(self).__name__}: two outputs share a name: {sorted(map(str, every))}")
+        return every
 
 
 @dataclass(frozen=True)
@@ -162,17 +168,23 @@ class FieldMapFiles(_Files):
     summary: str
     b0_rads: str | None = None
     b0_ppm: str | None = None
+    confidence: str | None = None
+    epi_corrected: str | None = None
 
     SUMMARY_SUFFIX = "b0_summary.json"
-    IMAGES = ("b0_hz", "mask", "magnitude", "b0_rads", "b0_ppm")
+    IMAGES = ("b0_hz", "mask", "magnitude", "b0_rads", "b0_ppm", "confidence", "epi_corrected")
 
     @classmethod
-    def named(cls, tag: str = "", also_units=()) -> "FieldMapFiles":
+    def named(cls, tag: str = "", also_units=(), *, epi_pair: bool = False) -> "FieldMapFiles":
+        """The names; a field map from reversed phase-encode images also has its confidence map
+        and the input images corrected with it (``b0_epi_corrected``, 4D)."""
         units = set(also_units)
         return cls(b0_hz=f"{tag}b0_hz.nii.gz", mask=f"{tag}b0_mask.nii.gz",
                    magnitude=f"{tag}b0_magnitude.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
                    b0_rads=f"{tag}b0_rads.nii.gz" if "rad/s" in units else None,
-                   b0_ppm=f"{tag}b0_ppm.nii.gz" if "ppm" in units else None)
+                   b0_ppm=f"{tag}b0_ppm.nii.gz" if "ppm" in units else None,
+                   confidence=f"{tag}b0_confidence.nii.gz" if epi_pair else None,
+                   epi_corrected=f"{tag}b0_epi_corrected.nii.gz" if epi_pair else None)
 
 
 @dataclass(frozen=True)
@@ -195,6 +207,22 @@ class UnwarpFiles(_Files):
         return cls(corrected=f"{stem}_corrected.nii.gz", shift_vox=f"{stem}_shift_vox.nii.gz",
                    jacobian=f"{stem}_jacobian.nii.gz", fold_mask=f"{stem}_fold_mask.nii.gz",
                    displacement_mm=f"{stem}_displacement_mm.nii.gz", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
+
+
+@dataclass(frozen=True)
+class CombinedFiles(_Files):
+    """Outputs of the joint restoration of runs of opposite polarity (named after the first run)."""
+
+    corrected: str
+    summary: str
+
+    SUMMARY_SUFFIX = "_combination.json"
+    IMAGES = ("corrected",)
+
+    @classmethod
+    def named(cls, run_stem: str, tag: str = "") -> "CombinedFiles":
+        stem = f"{tag}{run_stem}"
+        return cls(corrected=f"{stem}_combined.nii.gz", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
 
 
 @dataclass(frozen=True)
@@ -244,6 +272,30 @@ class PhaseUnitsRecord(Record):
 
 
 @dataclass(frozen=True)
+class PairRecord(Record):
+    """How a field map from reversed phase-encode images came out.
+
+    ``nrmsd_*``: normalised RMS difference between the images of the different codes, each
+    unwarped with its own shift and Jacobian ("after") or as acquired ("before"), inside
+    the mask, relative to their mean (0: identical); ``correlation_*``: their mean
+    Pearson correlation there. This agreement is the field map's quality number.
+    """
+
+    pe_codes: list[str]
+    volumes: int
+    echo_spacing_s: list[float]
+    nrmsd_before: float
+    nrmsd_after: float
+    correlation_before: float
+    correlation_after: float
+    iterations: list[int]
+    converged: bool
+    motion_mm_deg: list[list[float]]
+    extended_percent: float
+    method: str
+
+
+@dataclass(frozen=True)
 class FieldMapSummary(Record):
     """What the field-map job reports (``<tag>b0_summary.json``).
 
@@ -275,6 +327,7 @@ class FieldMapSummary(Record):
     outputs: FieldMapFiles
     field_percentiles_ppm: dict[str, float] | None = None
     percent_mask_beyond_unaliased_range: float | None = None
+    pair: PairRecord | None = None
     caution: str = CAUTION
 
 
@@ -320,6 +373,21 @@ class UnwarpSummary(Record):
     displacement_convention: str
     folded_voxel_rule: str
     outputs: UnwarpFiles
+    caution: str = CAUTION
+
+
+@dataclass(frozen=True)
+class CombinedSummary(Record):
+    """What the joint restoration of runs of opposite polarity reports."""
+
+    KIND = "combined"
+
+    runs: list[str]
+    pe_codes: list[str]
+    n_volumes: int
+    penalty: float
+    method: str
+    outputs: CombinedFiles
     caution: str = CAUTION
 
 

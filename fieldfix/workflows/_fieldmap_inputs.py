@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import FieldfixError, GeometryError, InputError, MetadataError
+from ..geometry import parse_pe_code
 from ..io import Image, load_image, sidecar_path
 from ..outputs import PhaseUnitsRecord
 from ..phase import (
@@ -47,6 +48,10 @@ class FieldMapData:
     b0_values: np.ndarray | None = None
     b0_units: str | None = None
     phase_units: list[PhaseUnitsRecord] = field(default_factory=list)
+    epi_volumes: list[np.ndarray] | None = None
+    epi_encodings: list | None = None
+    epi_sources: list[tuple[Path, int]] = field(default_factory=list)
+    pair: object = None  # the fieldfix.pairs.PairFieldResult, once computed
 
 
 def as_list(value) -> list:
@@ -224,12 +229,95 @@ def _read_ready_map(s) -> FieldMapData:
     return FieldMapData(b0_img, mag_imgs, b0_values=values, b0_units=str(units))
 
 
+def _per_image(values, n_images: int, n_volumes: int, name: str) -> list | None:
+    """Values given per image, or per volume (then grouped back per image); None when not given."""
+    if values is None:
+        return None
+    values = list(values)
+    if len(values) == n_images:
+        return [[v] for v in values]
+    if len(values) == sum(n_volumes):
+        out, start = [], 0
+        for n in n_volumes:
+            out.append(values[start:start + n])
+            start += n
+        return out
+    raise InputError(f"{len(values)} values for {n_images} images ({sum(n_volumes)} volumes); give one per image "
+                     "or one per volume", parameter=name)
+
+
+def _epi_code(img: Image, given: str | None, win: str | None) -> str:
+    side = img.sidecar.get("PhaseEncodingDirection")
+    if side is not None and not isinstance(side, str):
+        raise MetadataError(f"PhaseEncodingDirection is {side!r}, not one of i j k i- j- k-", sidecar_path(img.path))
+    if given is None and side is None:
+        raise MetadataError("no phase-encode code: give one per image (epi_pe_codes) or add PhaseEncodingDirection "
+                            "to its sidecar", img.path)
+    chosen = given if given is not None else side
+    if given is not None and side is not None and given != side:
+        if win is None:
+            raise MetadataError(f"phase-encode code {given} given contradicts the sidecar's {side}; say which one wins "
+                                "(epi_win: arguments or sidecar)", img.path)
+        chosen = given if win == "arguments" else side
+    try:
+        parse_pe_code(chosen)
+    except InputError:
+        raise MetadataError(f"phase-encode code {chosen!r} is not one of i j k i- j- k-", img.path) from None
+    return chosen
+
+
+def _read_epi_pair(s) -> FieldMapData:
+    from ..pairs import PhaseEncoding
+    from ..shift import resolve_timing
+
+    images = [load_image(p, ndim=(3, 4)) for p in s.epi]
+    if len(images) < 1 or (len(images) == 1 and images[0].n_volumes < 2):
+        raise InputError("reversed phase-encode field maps need at least two images (or one 4D image with "
+                         "per-volume codes)", s.epi[0] if s.epi else None)
+    reference = images[0]
+    for img in images[1:]:
+        if img.shape[:3] != reference.shape[:3] or not np.allclose(img.affine, reference.affine, atol=1e-3, rtol=0):
+            raise GeometryError(f"grid {img.shape[:3]} / affine differs from {reference.path.name}'s; all images of a "
+                                "reversed phase-encode field map must share one grid", img.path)
+    n_volumes = [img.n_volumes for img in images]
+    codes = _per_image(s.epi_pe_codes, len(images), n_volumes, "epi_pe_codes")
+    readouts = _per_image(s.epi_readout_times_s, len(images), n_volumes, "epi_readout_times_s")
+    volumes, encodings, sources = [], [], []
+    for i, img in enumerate(images):
+        for t in range(img.n_volumes):
+            given = None if codes is None else codes[i][t if len(codes[i]) > 1 else 0]
+            code = _epi_code(img, given, s.epi_win)
+            axis = parse_pe_code(code)[0]
+            readout = None if readouts is None else readouts[i][t if len(readouts[i]) > 1 else 0]
+            try:
+                timing = resolve_timing(img.shape[axis], readout_time_s=readout, sidecar=img.sidecar,
+                                        timing_win=s.epi_win)
+            except MetadataError as err:
+                raise MetadataError(err.message, img.path) from None
+            volume = img.volume(t, np.float64)
+            if not np.isfinite(volume).all():
+                raise InputError(f"volume {t} contains NaN or infinite values", img.path)
+            volumes.append(volume)
+            encodings.append(PhaseEncoding(code, timing.echo_spacing_s, timing.n_pe_lines))
+            sources.append((img.path, t))
+    axes = {}
+    for enc, (path, _) in zip(encodings, sources):
+        axis, sign = parse_pe_code(enc.pe_code)
+        axes.setdefault(axis, set()).add(sign)
+    if not any(len(signs) == 2 for signs in axes.values()):
+        raise MetadataError("all images have the same phase-encode polarity; a reversed phase-encode field map needs "
+                            f"opposite codes on one axis (found {sorted({e.pe_code for e in encodings})})",
+                            images[0].path)
+    return FieldMapData(reference, [], epi_volumes=volumes, epi_encodings=encodings, epi_sources=sources)
+
+
 #: One reader per input kind (the kind names are those the summary reports).
 READERS = {
     "phase": _read_phase_echoes,
     "real-imag": _read_real_imag,
     "phase-difference": _read_phase_difference,
     "ready map": _read_ready_map,
+    "epi-pair": _read_epi_pair,
 }
 
 
@@ -247,5 +335,5 @@ def read_mask(path, reference: Image) -> np.ndarray | None:
 
 def input_paths(s) -> list[Path]:
     """Every input file of the job (they are never overwritten)."""
-    return [Path(p) for p in [*s.phase, *s.magnitude, *s.real, *s.imag, s.phase_diff, s.b0, s.mask]
+    return [Path(p) for p in [*s.phase, *s.magnitude, *s.real, *s.imag, *s.epi, s.phase_diff, s.b0, s.mask]
             if p is not None]

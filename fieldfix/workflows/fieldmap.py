@@ -7,7 +7,12 @@ Takes exactly one kind of input (see :class:`FieldMapSettings`):
   echo, or a single one used for every echo);
 * ``real`` + ``imag``: two or more pairs of real and imaginary images;
 * ``phase_diff`` (+ ``magnitude``, one or two): a phase-difference image and two echo times;
-* ``b0``: a ready field map with ``b0_units`` (``hz``, ``rad/s``, ``ppm`` or ``T``).
+* ``b0``: a ready field map with ``b0_units`` (``hz``, ``rad/s``, ``ppm`` or ``T``);
+* ``epi``: EPI images (3D or 4D) acquired with reversed phase encoding ("blip up / blip
+  down"), each image's code and readout timing from its sidecar (``PhaseEncodingDirection``,
+  ``TotalReadoutTime`` / ``EffectiveEchoSpacing``) or given per image or per volume
+  (``epi_pe_codes``, ``epi_readout_times_s``); the field is the smooth one under which the
+  images, each unwarped with its own shift and Jacobian, agree (:mod:`fieldfix.pairs`).
 
 Echo times come from the BIDS sidecars (``EchoTime`` per echo, or ``EchoTime1`` /
 ``EchoTime2`` beside a phase difference) or from ``echo_times_s``; when both exist and
@@ -18,7 +23,11 @@ Outputs (:class:`fieldfix.outputs.FieldMapFiles`, ``<t>`` = the job's tag):
 ``<t>b0_hz.nii.gz`` (field in Hz on the field-map grid, extended beyond the mask),
 ``<t>b0_mask.nii.gz``, ``<t>b0_magnitude.nii.gz`` (reference magnitude),
 ``<t>b0_summary.json`` (:class:`fieldfix.outputs.FieldMapSummary`), optionally
-``<t>b0_rads.nii.gz`` / ``<t>b0_ppm.nii.gz``, and a provenance JSON beside each image.
+``<t>b0_rads.nii.gz`` / ``<t>b0_ppm.nii.gz``, and a provenance JSON beside each image. From
+reversed phase-encode images also ``<t>b0_confidence.nii.gz`` (how strongly the images pin
+the field, 0 where it is only extended) and ``<t>b0_epi_corrected.nii.gz`` (every input
+volume unwarped with the field, 4D, in input order), and the reference magnitude is the
+mean corrected image.
 
 Research software, not a medical device: inspect the B0 map, and any image corrected with
 it, before it is used for any decision about a person.
@@ -39,7 +48,7 @@ from ..geometry import voxel_sizes_mm
 from ..io import Provenance, output_paths_guard, save_image, sidecar_path
 from ..jsonfile import write_json
 from ..outdir import output_folder
-from ..outputs import CAUTION, FieldMapFiles, FieldMapSummary, JobOptions, job_and_settings
+from ..outputs import CAUTION, FieldMapFiles, FieldMapSummary, JobOptions, PairRecord, job_and_settings
 from ..phase import phase_units as lookup_phase_units
 from ..unwrap import METHODS
 from ._fieldmap_inputs import READERS, FieldMapData, as_list, input_paths, read_magnitude, read_mask
@@ -79,6 +88,16 @@ class FieldMapSettings:
     also_units : sequence of {"rad/s", "ppm"}
         Extra copies of the map in these units.
     reject_outliers : bool
+    epi : sequence of paths
+        EPI images with reversed phase encoding (3D or 4D).
+    epi_pe_codes : sequence of str, optional
+        BIDS phase-encode code per image, or per volume (default: each sidecar).
+    epi_readout_times_s : sequence of float, optional
+        Total readout time per image, or per volume, in s (default: each sidecar).
+    epi_win : {None, "arguments", "sidecar"}
+        Which source wins when given codes or timing contradict a sidecar.
+    pair_motion : bool
+        Also estimate a rigid head motion between the polarities.
     """
 
     phase: Sequence = ()
@@ -97,19 +116,26 @@ class FieldMapSettings:
     field_strength_t: float | None = None
     also_units: Sequence[str] = ()
     reject_outliers: bool = True
+    epi: Sequence = ()
+    epi_pe_codes: Sequence[str] | None = None
+    epi_readout_times_s: Sequence[float] | None = None
+    epi_win: str | None = None
+    pair_motion: bool = False
 
     def __post_init__(self):
-        for name in ("phase", "magnitude", "real", "imag"):
+        for name in ("phase", "magnitude", "real", "imag", "epi"):
             object.__setattr__(self, name, tuple(as_list(getattr(self, name))))
         object.__setattr__(self, "also_units", tuple(_extra_unit(u) for u in self.also_units))
 
     def input_kind(self) -> str:
         kinds = [k for k, present in (("phase", bool(self.phase)), ("real-imag", bool(self.real or self.imag)),
                                       ("phase-difference", self.phase_diff is not None),
-                                      ("ready map", self.b0 is not None)) if present]
+                                      ("ready map", self.b0 is not None), ("epi-pair", bool(self.epi)))
+                 if present]
         if len(kinds) != 1:
             raise InputError("give exactly one kind of field-map input: phase images, real+imaginary images, a "
-                             "phase difference, or a ready B0 map" + (f" (got {', '.join(kinds)})" if kinds else ""))
+                             "phase difference, a ready B0 map, or EPI images with reversed phase encoding"
+                             + (f" (got {', '.join(kinds)})" if kinds else ""))
         return kinds[0]
 
     def check(self) -> None:
@@ -124,8 +150,9 @@ class FieldMapSettings:
         if self.field_strength_t is not None and not (self.field_strength_t > 0):
             raise InputError(f"field strength must be positive, got {self.field_strength_t}",
                              parameter="field_strength_t")
-        if self.echo_times_win not in (None, "arguments", "sidecar"):
-            raise InputError("must be 'arguments' or 'sidecar'", parameter="echo_times_win")
+        for name in ("echo_times_win", "epi_win"):
+            if getattr(self, name) not in (None, "arguments", "sidecar"):
+                raise InputError("must be 'arguments' or 'sidecar'", parameter=name)
         if self.phase_units is not None:
             lookup_phase_units(self.phase_units)
 
@@ -168,7 +195,7 @@ def run_fieldmap(job: JobOptions | str, settings: FieldMapSettings | None = None
     job, s = job_and_settings(job, FieldMapSettings, settings, changes)
     kind = s.input_kind()
     s.check()
-    files = FieldMapFiles.named(job.tag, s.also_units)
+    files = FieldMapFiles.named(job.tag, s.also_units, epi_pair=kind == "epi-pair")
     inputs = input_paths(s)
     with output_folder(job.out_dir):
         output_paths_guard(files.guarded(job.out_dir), inputs, job.overwrite)
@@ -200,6 +227,8 @@ def _compute(kind: str, data: FieldMapData, s: FieldMapSettings, mask) -> FieldM
             else sidecar_path(data.reference.path)
         raise MetadataError("echo times must differ from each other "
                             f"({', '.join(f'{t * 1e3:g}ms' for t in data.echo_times_s)})", where)
+    if data.epi_volumes is not None:
+        return _field_from_epi(data, s, mask)
     try:
         if data.echoes is not None:
             result = b0_from_echoes(data.echoes, data.echo_times_s, unwrap_method=s.unwrap_method, **common)
@@ -223,12 +252,42 @@ def _compute(kind: str, data: FieldMapData, s: FieldMapSettings, mask) -> FieldM
     return result
 
 
+def _field_from_epi(data: FieldMapData, s: FieldMapSettings, mask) -> FieldMapResult:
+    """The field from reversed phase-encode images; the pair result rides along for the outputs."""
+    from ..pairs import PairOptions, field_from_pairs
+
+    try:
+        pair = field_from_pairs(data.epi_volumes, data.epi_encodings, data.reference.affine,
+                                options=PairOptions(motion=s.pair_motion))
+    except FieldfixError as err:
+        if err.path is not None:
+            raise
+        raise type(err)(err.message, data.reference.path) from None
+    magnitude = pair.corrected.mean(axis=3)
+    mask = pair.mask if mask is None else mask
+    result = FieldMapResult(b0_hz=pair.b0_hz.astype(np.float64), mask=mask, magnitude=magnitude,
+                            raw_b0_hz=np.where(mask, pair.b0_hz, 0.0), outliers=np.zeros(mask.shape, bool),
+                            n_regions=1, method=PAIR_METHOD)
+    data.pair = pair
+    return result
+
+
+#: How a field from reversed phase-encode images is made (see :mod:`fieldfix.pairs`).
+PAIR_METHOD = ("reversed phase-encode images: smooth (cubic B-spline) field fitted by robust least squares so that "
+               "the images, each unwarped with its own shift and Jacobian, agree (after Andersson, Skare and "
+               "Ashburner 2003, NeuroImage), coarse to fine")
+
+
 def _parameters(kind: str, s: FieldMapSettings, data: FieldMapData) -> dict:
     parameters = {"input_kind": kind, "smooth_fwhm_mm": float(s.smooth_mm), "unwrap_method": s.unwrap_method,
                   "phase_units": s.phase_units, "field_strength_t": s.field_strength_t,
                   "reject_outliers": s.reject_outliers}
     if data.b0_units is not None:
         parameters["b0_units"] = data.b0_units
+    if kind == "epi-pair":
+        parameters.update(smooth_fwhm_mm=0.0, unwrap_method=None, pair_motion=s.pair_motion,
+                          pe_codes=[e.pe_code for e in data.epi_encodings],
+                          echo_spacing_s=[e.echo_spacing_s for e in data.epi_encodings])
     return parameters
 
 
@@ -247,6 +306,15 @@ def _write_maps(job: JobOptions, files: FieldMapFiles, result: FieldMapResult, d
         if name is not None:
             save_image(job.path(name), hz_to_units(result.b0_hz, unit, field_strength_t=s.field_strength_t),
                        reference.affine, **common, sidecar_extra={"Units": unit})
+    if data.pair is not None:
+        save_image(job.path(files.confidence), data.pair.confidence, reference.affine, **common,
+                   sidecar_extra={"Description": "how strongly the images pin the field (0 to 1; 0 where the field "
+                                                 "is only the smooth extension)"})
+        sources = [f"{path.name}[{t}]" for path, t in data.epi_sources]
+        save_image(job.path(files.epi_corrected), data.pair.corrected, reference.affine, **common,
+                   sidecar_extra={"Description": "input volumes unwarped with the field, in input order",
+                                  "PhaseEncodingDirection": [e.pe_code for e in data.epi_encodings],
+                                  "SourceVolumes": sources})
 
 
 def _summary(kind: str, data: FieldMapData, s: FieldMapSettings, result: FieldMapResult,
@@ -267,11 +335,30 @@ def _summary(kind: str, data: FieldMapData, s: FieldMapSettings, result: FieldMa
         echo_times_s=list(tes) if tes is not None else None, echo_times_source=data.echo_times_source,
         delta_te_s=(max(tes) - min(tes)) if tes is not None and len(tes) == 2 else None,
         unaliased_range_hz=result.unaliased_range_hz, phase_units=list(data.phase_units),
-        mask_source="given" if s.mask is not None else "magnitude (Otsu rule, see fieldfix.phase)",
+        mask_source="given" if s.mask is not None else (
+            "mean corrected image (Otsu rule, see fieldfix.phase)" if kind == "epi-pair"
+            else "magnitude (Otsu rule, see fieldfix.phase)"),
         mask_voxels=int(result.mask.sum()), mask_volume_ml=float(result.mask.sum()) * voxel_ml,
         mask_fraction_of_grid=float(result.mask.mean()), field_percentiles_hz=percentiles,
         field_mean_hz=float(inside.mean()), voxels_offset_changed=int(result.n_offset_changed),
         mask_regions=int(result.n_regions), outlier_voxels=int(result.outliers.sum()),
-        smooth_fwhm_mm=float(s.smooth_mm), unwrap_method=s.unwrap_method if kind != "ready map" else None,
+        smooth_fwhm_mm=0.0 if kind == "epi-pair" else float(s.smooth_mm),
+        unwrap_method=s.unwrap_method if kind not in ("ready map", "epi-pair") else None,
         voxel_size_mm=voxel_mm, field_strength_t=s.field_strength_t, outputs=files,
-        field_percentiles_ppm=ppm, percent_mask_beyond_unaliased_range=beyond)
+        field_percentiles_ppm=ppm, percent_mask_beyond_unaliased_range=beyond,
+        pair=_pair_record(data) if data.pair is not None else None)
+
+
+def _pair_record(data: FieldMapData) -> PairRecord:
+    pair = data.pair
+    spacing = {}
+    for enc in data.epi_encodings:
+        spacing.setdefault(enc.pe_code, enc.echo_spacing_s)
+    return PairRecord(
+        pe_codes=list(pair.group_codes), volumes=len(data.epi_volumes),
+        echo_spacing_s=[float(spacing[c]) for c in pair.group_codes],
+        nrmsd_before=float(pair.nrmsd_before), nrmsd_after=float(pair.nrmsd_after),
+        correlation_before=float(pair.correlation_before), correlation_after=float(pair.correlation_after),
+        iterations=[int(i) for i in pair.iterations], converged=bool(pair.converged),
+        motion_mm_deg=[[float(v) for v in row] for row in pair.motion_mm_deg],
+        extended_percent=float(100.0 * pair.extended.mean()), method=PAIR_METHOD)

@@ -33,7 +33,7 @@ from ..geometry import parse_pe_code, pe_world_direction, resample_to_grid, voxe
 from ..io import NIFTI_INTENT_DISPVECT, Image, Provenance, image_stem, load_image, output_paths_guard, save_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
-from ..outputs import CAUTION, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
+from ..outputs import CAUTION, CombinedFiles, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
 from ..shift import DEFAULT_JACOBIAN_FLOOR, Timing, displacement_field_mm, resolve_timing, shift_summary
 from ..unwarp import INTERPOLATIONS, ShiftMaps, apply_tables, build_tables, shift_maps
 from ._run_checks import (
@@ -44,6 +44,7 @@ from ._run_checks import (
     find_b0_mask,
     resolve_pe_code,
 )
+from ._combine import check_combinable, write_combined_run
 from ._stream import write_corrected_run
 
 __all__ = ["run_unwarp", "UnwarpSettings", "MAX_SHIFT_FOV_FRACTION", "CAUTION"]
@@ -81,6 +82,10 @@ class UnwarpSettings:
         Correct even when shifts exceed a quarter of the field of view.
     parallel : bool
         Run the kernel on all numba threads; False when several jobs share the cores.
+    combine_polarities : bool
+        With exactly two runs of opposite polarity on one grid, also write one run restored
+        jointly from both (``<tag><first stem>_combined.nii.gz``, see
+        :mod:`fieldfix.workflows._combine`); each run is still unwarped on its own too.
     """
 
     pe_code: str | None = None
@@ -93,6 +98,7 @@ class UnwarpSettings:
     b0_mask: object = None
     force: bool = False
     parallel: bool = True
+    combine_polarities: bool = False
 
     def check(self) -> None:
         if self.interp not in INTERPOLATIONS:
@@ -111,6 +117,7 @@ class _RunPlan:
     maps: ShiftMaps
     mask: np.ndarray
     files: UnwarpFiles
+    field_hz: np.ndarray
 
 
 def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettings | None = None,
@@ -169,10 +176,19 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
         runs = [load_image(p, ndim=(3, 4)) for p in run_paths]
         inputs = [*run_paths, b0_path] + ([mask_path] if mask_path is not None else [])
         files = [UnwarpFiles.named(image_stem(p), job.tag) for p in run_paths]
-        output_paths_guard([p for f in files for p in f.guarded(job.out_dir)], inputs, job.overwrite)
+        guarded = [p for f in files for p in f.guarded(job.out_dir)]
+        if s.combine_polarities:
+            guarded += CombinedFiles.named(image_stem(run_paths[0]), job.tag).guarded(job.out_dir)
+        output_paths_guard(guarded, inputs, job.overwrite)
         # Metadata, shift maps and their size check for every run before any output is written.
         plans = [_plan_run(image, f, s, b0, field_hz, mask_values) for image, f in zip(runs, files)]
-        return [_unwarp_one(plan, b0, mask_path, job, s, inputs) for plan in plans]
+        if s.combine_polarities:
+            check_combinable(plans)
+        summaries = [_unwarp_one(plan, b0, mask_path, job, s, inputs) for plan in plans]
+        if s.combine_polarities:
+            parameters = {"runs": [str(p.image.path) for p in plans], "pe_codes": [p.pe_code for p in plans]}
+            write_combined_run(plans, job, inputs, Provenance(job.command, parameters, inputs))
+        return summaries
 
 
 def _read_mask(mask_path, shape) -> np.ndarray | None:
@@ -194,9 +210,9 @@ def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, fi
                                 sidecar=image.sidecar, timing_win=s.timing_win)
     except MetadataError as err:
         raise MetadataError(err.message, image.path) from None
-    maps, mask = _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, s.jacobian_floor)
+    maps, mask, field = _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, s.jacobian_floor)
     check_shift_size(maps, mask, image.path, b0.path, s.force)
-    return _RunPlan(image, code, code_source, timing, maps, mask, files)
+    return _RunPlan(image, code, code_source, timing, maps, mask, files, field)
 
 
 def _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, jacobian_floor):
@@ -213,7 +229,7 @@ def _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, jacobian_f
         mask = covered
     maps = shift_maps(field, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines, inside=covered,
                       jacobian_floor=jacobian_floor)
-    return maps, mask
+    return maps, mask, field
 
 
 def _parameters(plan: _RunPlan, s: UnwarpSettings) -> dict:
