@@ -90,10 +90,10 @@ def v_cycle(levels: list[_Level], b: np.ndarray, depth: int = 0) -> np.ndarray:
             _smooth(level, x, b, (1, 0))
         return x
     _smooth(level, x, b, (0, 1))
-    r = np.empty(b.shape, np.float32)
+    r = np.zeros(b.shape, np.float32)  # the padding must hold zeros too
     _k.residual_nb(x, b, level.unknown, *level.coef, r)
     coarse = levels[depth + 1]
-    rc = np.empty(coarse.unknown.shape, np.float32)
+    rc = np.zeros(coarse.unknown.shape, np.float32)
     _k.restrict_nb(r, coarse.unknown, rc)
     del r
     _k.prolong_add_nb(v_cycle(levels, rc, depth + 1), coarse.unknown, x, CORRECTION_WEIGHT)
@@ -112,14 +112,14 @@ def harmonic_fill(values: np.ndarray, known: np.ndarray, coef, *, rtol: float, m
     inner = (slice(1, -1),) * 3
     # right-hand side: the known neighbours' values moved over, b = -A(boundary) on the unknowns
     boundary = _pad(np.where(known, values, 0.0))
-    b = np.empty(boundary.shape)
+    b = np.zeros(boundary.shape)  # kernels write the interior only: the padding stays 0
     _k.apply_nb(boundary, _pad(np.ones(known.shape, bool), False), *fine.coef, b)
     del boundary
     b *= -1.0
     b[~fine.unknown] = 0.0
 
     def apply_a(x):
-        out = np.empty(x.shape)
+        out = np.zeros(x.shape)
         _k.apply_nb(x, fine.unknown, *fine.coef, out)
         return out
 
