@@ -9,10 +9,20 @@ Accuracy is the number of mask voxels left off by a multiple of 2*pi relative to
 correct unwrap of the noisy phase (truth + wrap(noisy - truth)), after removing the one
 global multiple each method is free to choose.
 
-Goal: at least 2x faster than scikit-image at equal or better accuracy.
+Goal: at least 2x faster than scikit-image at equal or better accuracy (warm process).
+
+``unwrap_quality_fresh``: the same SNR-8 case with each side in a fresh process that
+imports its library and unwraps once (numba cache loading and set-up included, as a user
+pays them), medians of three alternating runs; see ``bench_fieldmap.py`` for the scripts.
+Goal: at least 1.5x scikit-image's speed with no more wrap errors.
 """
 
 from __future__ import annotations
+
+import shutil
+import statistics
+import tempfile
+from pathlib import Path
 
 import numpy as np
 from _harness import compare
@@ -39,6 +49,31 @@ def _errors(unwrapped, target, mask):
     k = np.round((unwrapped - target) / TWO_PI)[mask]
     values, counts = np.unique(k, return_counts=True)
     return int(np.count_nonzero(k != values[np.argmax(counts)]))
+
+
+def _fresh_record(shape, dphi, mask, target) -> dict:
+    from bench_fieldmap import _SKIMAGE, _UNWRAP, _run, _wrap_errors
+
+    folder = Path(tempfile.mkdtemp(prefix="fieldfix-bench-unwrap-"))
+    try:
+        np.save(folder / "dphi.npy", dphi)
+        np.save(folder / "mask.npy", mask)
+        _run(_UNWRAP, folder)  # the numba cache is filled once, outside the timings
+        ours, base = [], []
+        for _ in range(3):
+            ours.append(_run(_UNWRAP, folder)["seconds"])
+            base.append(_run(_SKIMAGE, folder)["seconds"])
+        ours_s, base_s = statistics.median(ours), statistics.median(base)
+        ours_err = _wrap_errors(np.load(folder / "ours_unwrapped.npy"), target, mask)
+        base_err = _wrap_errors(np.load(folder / "skimage_unwrapped.npy"), target, mask)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    return {"benchmark": f"unwrap_quality_fresh {shape[0]}x{shape[1]}x{shape[2]} SNR 8", "ours_s": ours_s,
+            "baseline": "skimage.restoration.unwrap_phase (fresh process)", "baseline_s": base_s,
+            "ratio": base_s / ours_s, "ours_s_runs": ours, "baseline_s_runs": base,
+            "ours_2pi_error_voxels": ours_err, "baseline_2pi_error_voxels": base_err,
+            "goal": ">= 1.5x scikit-image's speed from a fresh process, no more wrap errors",
+            "met": bool(base_s / ours_s >= 1.5 and ours_err <= base_err)}
 
 
 def run(quick: bool) -> list[dict]:
@@ -77,4 +112,5 @@ def run(quick: bool) -> list[dict]:
     record["ours_2pi_error_voxels"] = _errors(ours, target, mask)
     record["baseline_2pi_error_voxels"] = _errors(base, target, mask)
     records.append(record)
+    records.append(_fresh_record(shape, dphi, mask, target))
     return records

@@ -32,18 +32,24 @@ def conjugate_gradient(apply_a: Callable[[np.ndarray], np.ndarray], b: np.ndarra
     x = np.array(x0, dtype=np.float64, copy=True)
     r = b - apply_a(x)
     bnorm = float(np.linalg.norm(b)) or 1.0
-    z = precond(r)
-    p = z.copy()
-    rz = float(np.vdot(r, z))
+    p = precond(r)
+    rz = float(np.vdot(r, p))
     iterations = 0
+    # updates in place: besides x, r and p, one operator result and one preconditioned
+    # residual exist at a time (full-size temporaries dominate the memory of large solves)
     while iterations < maxiter and np.linalg.norm(r) > rtol * bnorm and rz > 0:
         ap = apply_a(p)
         alpha = rz / float(np.vdot(p, ap))
-        x += alpha * p
-        r -= alpha * ap
+        ap *= alpha
+        r -= ap
+        np.multiply(p, alpha, out=ap)
+        x += ap
+        del ap
         z = precond(r)
         rz_new = float(np.vdot(r, z))
-        p = z + (rz_new / rz) * p
+        p *= rz_new / rz
+        p += z
+        del z
         rz = rz_new
         iterations += 1
     return x, iterations

@@ -173,15 +173,16 @@ def _edge_count(mask):
 def edges_nb(mask, dvalue, n_keys):
     """Edges between 6-neighbours inside the mask with their quantised cost keys.
 
-    Returns ``(a, b, keys)``: flat C-order voxel indices (``a < b``) and integer keys
-    (small = reliable).  Edge order: voxel ``a`` in C order, then its +axis0, +axis1,
+    Returns ``(a, b, keys)``: flat C-order voxel indices (``a < b``, int32: callers
+    check that the grid has fewer than 2**31 voxels) and uint16 keys (small = reliable;
+    ``N_KEYS`` is 65536).  Edge order: voxel ``a`` in C order, then its +axis0, +axis1,
     +axis2 neighbour.
     """
     nx, ny, nz = mask.shape
     n = _edge_count(mask)
-    a = np.empty(n, dtype=np.int64)
-    b = np.empty(n, dtype=np.int64)
-    keys = np.empty(n, dtype=np.int64)
+    a = np.empty(n, dtype=np.int32)
+    b = np.empty(n, dtype=np.int32)
+    keys = np.empty(n, dtype=np.uint16)
     e = 0
     for i in range(nx):
         for j in range(ny):
@@ -278,13 +279,13 @@ def prepare_reference(phase, mask):
 
 @njit(cache=True)
 def counting_order_nb(keys, n_keys):
-    """Stable ascending order of integer ``keys`` in ``0..n_keys-1`` (counting sort)."""
+    """Stable ascending order (int32) of integer ``keys`` in ``0..n_keys-1`` (counting sort)."""
     counts = np.zeros(n_keys + 1, dtype=np.int64)
     for i in range(keys.size):
         counts[keys[i] + 1] += 1
     for i in range(n_keys):
         counts[i + 1] += counts[i]
-    order = np.empty(keys.size, dtype=np.int64)
+    order = np.empty(keys.size, dtype=np.int32)
     for i in range(keys.size):
         kk = keys[i]
         order[counts[kk]] = i
@@ -301,19 +302,24 @@ def counting_order_reference(keys, n_keys=N_KEYS):
 # merging groups along sorted edges
 # --------------------------------------------------------------------------------------
 @njit(cache=True)
-def _find(parent, offset, v):
+def _find(node, v):
+    """Root of voxel v and v's 2*pi multiple relative to it, with path compression.
+
+    ``node[v, 0]`` is the parent (or ``-size`` at a root), ``node[v, 1]`` the offset to
+    the parent: both in one row, so one cache line serves a step up the tree.
+    """
     root = v
     total = 0
-    while parent[root] != root:
-        total += offset[root]
-        root = parent[root]
+    while node[root, 0] >= 0:
+        total += node[root, 1]
+        root = node[root, 0]
     cur = v
     acc = total
-    while parent[cur] != cur:
-        nxt = parent[cur]
-        old = offset[cur]
-        parent[cur] = root
-        offset[cur] = acc
+    while node[cur, 0] >= 0:
+        nxt = node[cur, 0]
+        old = node[cur, 1]
+        node[cur, 0] = root
+        node[cur, 1] = acc
         acc -= old
         cur = nxt
     return root, total
@@ -322,36 +328,37 @@ def _find(parent, offset, v):
 @njit(cache=True)
 def merge_nb(phase_flat, a, b, order, n_voxels):
     """Visit edges in ``order`` and merge groups; return the 2*pi multiple per voxel
-    (relative to its group root) and the root label per voxel.
+    (relative to its group root, int32) and the root voxel per voxel (int64).
 
+    Union by size with path compression; parent, size and offset share one int32 row
+    per voxel, half the memory of separate int64 arrays and one cache line per step.
     Voxels touched by no edge stay their own group with multiple 0.
     """
-    parent = np.arange(n_voxels)
-    offset = np.zeros(n_voxels, dtype=np.int64)
-    size = np.ones(n_voxels, dtype=np.int64)
+    node = np.zeros((n_voxels, 2), dtype=np.int32)
+    node[:, 0] = -1
     for t in range(order.size):
         e = order[t]
         va = a[e]
         vb = b[e]
-        ra, ka = _find(parent, offset, va)
-        rb, kb = _find(parent, offset, vb)
+        ra, ka = _find(node, va)
+        rb, kb = _find(node, vb)
         if ra == rb:
             continue
         # required k_b - k_a so that the step across the edge equals its wrapped value
         d = -np.int64(np.floor((phase_flat[vb] - phase_flat[va]) / TWO_PI + 0.5))
         rel = d + ka - kb  # k_rb - k_ra
-        if size[ra] >= size[rb]:
-            parent[rb] = ra
-            offset[rb] = rel
-            size[ra] += size[rb]
+        if node[ra, 0] <= node[rb, 0]:  # ra is the larger group (sizes stored negated)
+            node[ra, 0] += node[rb, 0]
+            node[rb, 0] = ra
+            node[rb, 1] = rel
         else:
-            parent[ra] = rb
-            offset[ra] = -rel
-            size[rb] += size[ra]
-    multiple = np.zeros(n_voxels, dtype=np.int64)
+            node[rb, 0] += node[ra, 0]
+            node[ra, 0] = rb
+            node[ra, 1] = -rel
+    multiple = np.zeros(n_voxels, dtype=np.int32)
     roots = np.empty(n_voxels, dtype=np.int64)
     for v in range(n_voxels):
-        r, kk = _find(parent, offset, v)
+        r, kk = _find(node, v)
         multiple[v] = kk
         roots[v] = r
     return multiple, roots

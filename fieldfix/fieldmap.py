@@ -39,10 +39,10 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.fft
 import scipy.ndimage as ndi
 
-from ._solvers import conjugate_gradient
+from . import _fieldmap_kernels as _fk
+from ._multigrid import harmonic_fill
 from .errors import InputError, UnitError
 from .phase import magnitude_mask, phase_difference
 from .units import GAMMA_HZ_PER_T
@@ -284,28 +284,23 @@ def fit_multi_echo(echoes, echo_times_s, mask=None, *, unwrap_method="quality"):
 # ------------------------------------------------------------------------------------------
 # regularisation
 # ------------------------------------------------------------------------------------------
-def _nearest_fill(values, mask):
-    if mask.all() or not mask.any():
-        return values.copy()
-    _, idx = ndi.distance_transform_edt(~mask, return_indices=True)
-    return values[tuple(idx)]
-
-
 def find_outliers(b0_hz, mask, *, threshold: float = 6.0, min_hz: float = 10.0, size_vox: int = 3):
     """Mask voxels that disagree with their neighbourhood far more than it varies.
 
-    With ``r = b0 - median_3x3x3(b0)``, a voxel is an outlier when ``|r|`` exceeds
+    With ``r = b0 - median`` (the median of the mask voxels in the voxel's 3x3x3
+    neighbourhood, itself included), a voxel is an outlier when ``|r|`` exceeds
     ``min_hz`` and ``threshold`` robust standard deviations, taken as the larger of
 
     * the global scale, 1.4826 * median absolute deviation of ``r`` over the mask, and
-    * the local scale, the standard deviation of the voxel's 26 neighbours (the voxel
-      itself left out, so that a spike does not raise its own limit).
+    * the local scale, the standard deviation of ``r`` over the voxel's mask neighbours
+      (the voxel itself left out, so that a spike does not raise its own limit).
 
     The local scale keeps steep but real fields (next to air cavities, hundreds of Hz per
     centimetre at 7 T) from being taken for outliers, while an isolated spike such as a
     missed 2*pi jump in a locally smooth map is still caught. The 1.4826 factor makes a
     MAD a standard deviation for Gaussian data (Rousseeuw and Croux 1993, JASA).
-    Outside the mask the field is filled with the nearest mask value before filtering.
+    Only mask voxels enter the neighbourhoods (numba kernel in
+    :mod:`fieldfix._fieldmap_kernels`; 3x3x3 only, `size_vox` must be 3).
 
     Example
     -------
@@ -313,24 +308,40 @@ def find_outliers(b0_hz, mask, *, threshold: float = 6.0, min_hz: float = 10.0, 
     >>> int(find_outliers(f, np.ones(f.shape, bool)).sum())
     1
     """
-    b0_hz = np.asarray(b0_hz, dtype=np.float64)
-    mask = np.asarray(mask, dtype=bool)
+    if size_vox != 3:
+        raise InputError(f"size_vox must be 3 (a 3x3x3 neighbourhood), got {size_vox}")
+    mask = np.ascontiguousarray(mask, dtype=bool)
     if not mask.any():
         return np.zeros(mask.shape, dtype=bool)
-    filled = _nearest_fill(b0_hz, mask)
-    med = ndi.median_filter(filled, size=size_vox, mode="nearest")
-    resid = (b0_hz - med)[mask]
+    residual, local_scale = _fk.local_residuals_nb(np.ascontiguousarray(b0_hz, dtype=np.float64), mask)
+    resid = residual[mask]
     global_scale = 1.4826 * np.median(np.abs(resid - np.median(resid)))
-    count = size_vox ** 3
-    centred = filled - med  # centring keeps the running sums well conditioned
-    total = ndi.uniform_filter(centred, size=size_vox, mode="nearest") * count - centred
-    total_sq = ndi.uniform_filter(centred ** 2, size=size_vox, mode="nearest") * count - centred ** 2
-    mean = total / (count - 1)
-    local_scale = np.sqrt(np.maximum(total_sq / (count - 1) - mean ** 2, 0.0))[mask]
-    limit = np.maximum(threshold * np.maximum(global_scale, local_scale), min_hz)
+    limit = np.maximum(threshold * np.maximum(global_scale, local_scale[mask]), min_hz)
     out = np.zeros(mask.shape, dtype=bool)
     out[mask] = np.abs(resid) > limit
     return out
+
+
+def _normalised_gaussian(values, weights, sigma):
+    """``(G * (w v), G * w)`` with zero outside the grid, computed on the bounding box of ``w != 0``.
+
+    Exact: outside the box the weights vanish, so cropping to the box grown by the kernel
+    radius (scipy's ``truncate=4`` sigmas) changes no sum; it only skips empty space.
+    Returns the two arrays on the cropped box and the box's slices.
+    """
+    nonzero = np.nonzero(np.any(weights != 0, axis=(1, 2)))[0], np.nonzero(np.any(weights != 0, axis=(0, 2)))[0], \
+        np.nonzero(np.any(weights != 0, axis=(0, 1)))[0]
+    box = []
+    for axis, idx in enumerate(nonzero):
+        if idx.size == 0:
+            return None, None, None
+        radius = int(4.0 * float(sigma[axis]) + 0.5) + 1
+        box.append(slice(max(int(idx[0]) - radius, 0), min(int(idx[-1]) + 1 + radius, weights.shape[axis])))
+    box = tuple(box)
+    w = weights[box]
+    num = ndi.gaussian_filter(w * values[box], sigma, mode="constant")
+    den = ndi.gaussian_filter(w, sigma, mode="constant")
+    return num, den, box
 
 
 def _sigma_vox(fwhm_mm, voxel_size_mm):
@@ -359,11 +370,12 @@ def smooth_masked(b0_hz, mask, *, fwhm_mm: float, voxel_size_mm=(1.0, 1.0, 1.0),
     w = np.ones(f.shape) if weights is None else np.asarray(weights, dtype=np.float64)
     wm = np.where(m, w, 0.0)
     sigma = _sigma_vox(fwhm_mm, voxel_size_mm)
-    num = ndi.gaussian_filter(wm * np.where(m, f, 0.0), sigma, mode="constant")
-    den = ndi.gaussian_filter(wm, sigma, mode="constant")
+    num, den, box = _normalised_gaussian(np.where(m, f, 0.0), wm, sigma)
     out = f.copy()
-    ok = m & (den > 1e-12 * max(den.max(), 1e-300))
-    out[ok] = num[ok] / den[ok]
+    if box is None:
+        return out
+    ok = m[box] & (den > 1e-12 * max(den.max(), 1e-300))
+    out[box][ok] = num[ok] / den[ok]
     return out
 
 
@@ -372,9 +384,9 @@ def extend_harmonic(b0_hz, mask, *, voxel_size_mm=(1.0, 1.0, 1.0), rtol: float =
 
     Inside the mask the field is kept (Dirichlet condition); outside, the discrete
     Laplacian (7-point, with the voxel spacings) is zero, with zero normal derivative
-    at the edge of the grid.  Solved by conjugate gradients started from the
-    nearest-mask-value fill and preconditioned with the whole-grid Neumann Laplacian,
-    inverted exactly by the DCT-II.
+    at the edge of the grid.  Solved by conjugate gradients preconditioned with one
+    geometric multigrid V-cycle (:mod:`fieldfix._multigrid`), to a residual of `rtol`
+    times that of the zero start; the work grows linearly with the number of voxels.
 
     Example
     -------
@@ -392,51 +404,8 @@ def extend_harmonic(b0_hz, mask, *, voxel_size_mm=(1.0, 1.0, 1.0), rtol: float =
     if not m.any():
         raise InputError("cannot extend a field map from an empty mask")
     vs = np.broadcast_to(np.asarray(voxel_size_mm, dtype=np.float64), (3,))
-    coef = 1.0 / vs**2
-    u = ~m  # unknowns
-    pairs = []
-    for ax in range(3):
-        lo = [slice(None)] * 3
-        hi = [slice(None)] * 3
-        lo[ax] = slice(0, -1)
-        hi[ax] = slice(1, None)
-        pairs.append((tuple(lo), tuple(hi), coef[ax]))
-    diag = np.zeros(f.shape)
-    for lo, hi, c in pairs:
-        diag[lo] += c
-        diag[hi] += c
-    diag = np.where(u, diag, 1.0)
-
-    def apply_a(x):  # (-L) restricted to unknowns, x zero on the mask
-        out = diag * x
-        for lo, hi, c in pairs:
-            out[lo] -= c * x[hi]
-            out[hi] -= c * x[lo]
-        return np.where(u, out, 0.0)
-
-    known = np.where(m, f, 0.0)
-    b = np.zeros(f.shape)
-    for lo, hi, c in pairs:
-        b[lo] += c * known[hi]
-        b[hi] += c * known[lo]
-    b = np.where(u, b, 0.0)
-    # preconditioner: the whole-box Neumann problem, inverted exactly with the DCT-II
-    eig = np.zeros(f.shape)
-    for ax, n in enumerate(f.shape):
-        lam = coef[ax] * 2.0 * (1.0 - np.cos(np.pi * np.arange(n) / n))
-        shp = [1, 1, 1]
-        shp[ax] = n
-        eig = eig + lam.reshape(shp)
-    positive = eig[eig > 0]
-    eig.flat[0] = positive.min() if positive.size else 1.0
-
-    def precond(r):
-        return np.where(u, scipy.fft.idctn(scipy.fft.dctn(r, type=2, norm="ortho") / eig,
-                                           type=2, norm="ortho"), 0.0)
-
-    x0 = np.where(u, _nearest_fill(f, m), 0.0)
-    x, _ = conjugate_gradient(apply_a, b, x0, precond, rtol=rtol, maxiter=maxiter)
-    return np.where(m, f, x)
+    out, _ = harmonic_fill(f, m, tuple(1.0 / vs**2), rtol=rtol, maxiter=maxiter)
+    return out
 
 
 def regularise_b0(b0_hz, mask, *, voxel_size_mm=(1.0, 1.0, 1.0), weights=None, smooth_fwhm_mm: float = 0.0,
@@ -454,12 +423,12 @@ def regularise_b0(b0_hz, mask, *, voxel_size_mm=(1.0, 1.0, 1.0), weights=None, s
         # replace each outlier by the normalised Gaussian average of its good neighbours
         fill_fwhm = max(smooth_fwhm_mm, 2.0 * float(np.max(voxel_size_mm)))
         sigma = _sigma_vox(fill_fwhm, voxel_size_mm)
-        wm = np.where(good, w, 0.0)
-        num = ndi.gaussian_filter(wm * np.where(good, f, 0.0), sigma, mode="constant")
-        den = ndi.gaussian_filter(wm, sigma, mode="constant")
-        ok = outliers & (den > 1e-12 * max(float(den.max()), 1e-300))
-        f = f.copy()
-        f[ok] = num[ok] / den[ok]
+        num, den, box = _normalised_gaussian(np.where(good, f, 0.0), np.where(good, w, 0.0), sigma)
+        ok = np.zeros(mask.shape, bool)
+        if box is not None:
+            ok[box] = outliers[box] & (den > 1e-12 * max(float(den.max()), 1e-300))
+            f = f.copy()
+            f[box][ok[box]] = num[ok[box]] / den[ok[box]]
         good = good | ok
     if smooth_fwhm_mm > 0:
         f = smooth_masked(f, good, fwhm_mm=smooth_fwhm_mm, voxel_size_mm=voxel_size_mm, weights=w)

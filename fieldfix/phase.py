@@ -284,7 +284,14 @@ def magnitude_mask(magnitude, *, threshold_scale: float = 1.0, min_piece_fractio
         keep = np.flatnonzero(sizes >= min_piece_fraction * sizes.max()) + 1
         mask = np.isin(labels, keep)
     if fill_holes:
-        mask = ndi.binary_fill_holes(mask)
+        # holes: background pieces (6-connected, as scipy's binary_fill_holes) off the grid's edge
+        background, n_pieces = ndi.label(~mask)
+        edge = np.zeros(n_pieces + 1, bool)
+        for axis in range(mask.ndim):
+            for end in (0, -1):
+                edge[np.take(background, end, axis=axis)] = True
+        edge[0] = False  # label 0 is the mask itself
+        mask = ~edge[background]
     if erode_voxels > 0:
         mask = ndi.binary_erosion(mask, iterations=int(erode_voxels))
     return mask

@@ -12,12 +12,15 @@ applied to every volume by a parallel numba kernel (:mod:`fieldfix._unwarp_kerne
 
 Interpolation along the PE axis (``interp``):
 
-``'linear'``
-    Two taps.
-``'cubic'``
+``'cubic'`` (the default)
     Cubic B-spline, four taps on coefficients obtained by the 1D B-spline prefilter along
     the PE axis only (mirror boundary), as in Unser, Aldroubi & Eden 1993, IEEE Trans.
     Signal Process. 41(2); values agree with ``scipy.ndimage.map_coordinates(order=3)``.
+    The tables hold one float32 position and one float32 factor per voxel; the kernel
+    prefilters and samples each block of lines in one pass
+    (:func:`fieldfix._unwarp_kernels.cubic_lines`).
+``'linear'``
+    Two taps.
 ``'sinc'``
     Band-limited: Lanczos-windowed sinc with radius 4 (eight taps, weights normalised to
     sum to one, mirror boundary).
@@ -40,7 +43,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from . import _unwarp_kernels as kernels
 from .errors import GeometryError, InputError
@@ -98,9 +100,14 @@ class ShiftMaps:
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
 
 
-@dataclass
 class UnwarpTables:
-    """Index and weight tables of one run: computed once, applied to every volume.
+    """Tables of one run: computed once, applied to every volume.
+
+    Linear and sinc tables list the taps of every voxel (`index`, `weight`). Cubic tables
+    store one float32 position along the PE axis and one float32 factor per voxel; the
+    kernel recomputes the four weights and prefilters each line itself
+    (:func:`fieldfix._unwarp_kernels.cubic_lines`), so no index table exists. For
+    inspection, `index` and `weight` of cubic tables are derived on demand.
 
     Attributes
     ----------
@@ -113,18 +120,50 @@ class UnwarpTables:
         Memory order of the volumes the tables index: rows and flat positions follow it.
         NIfTI volumes read through nibabel are Fortran-ordered; using ``'F'`` for them
         avoids a transposing copy on the way in and on the way out.
+    position : (n_voxels,) float32 or None
+        Cubic only: sampling position along the PE axis (voxels, clipped to the axis).
+    scale : (n_voxels,) float32 or None
+        Cubic only: intensity weight, 0 where the position lies outside the field of view.
     """
 
-    shape: tuple
-    pe_axis: int
-    interp: str
-    index: np.ndarray
-    weight: np.ndarray
-    layout: str = "C"
+    def __init__(self, shape, pe_axis, interp, index=None, weight=None, layout="C", *, position=None, scale=None):
+        self.shape = tuple(shape)
+        self.pe_axis = int(pe_axis)
+        self.interp = interp
+        self.layout = layout
+        self.position = position
+        self.scale = scale
+        self._index = index
+        self._weight = weight
+
+    def __repr__(self) -> str:
+        return (f"UnwarpTables(shape={self.shape}, pe_axis={self.pe_axis}, interp={self.interp!r}, "
+                f"layout={self.layout!r}, nbytes={self.nbytes})")
+
+    @property
+    def index(self) -> np.ndarray:
+        if self._index is None:
+            self._index, self._weight = _explicit_cubic(self)
+        return self._index
+
+    @property
+    def weight(self) -> np.ndarray:
+        if self._weight is None:
+            self._index, self._weight = _explicit_cubic(self)
+        return self._weight
+
+    @property
+    def lines(self) -> tuple[int, int, int]:
+        """``(outer, n, inner)``: the flat volume in `layout` order seen as lines along the PE axis."""
+        a = self.pe_axis
+        before = int(np.prod(self.shape[:a], dtype=np.int64))
+        after = int(np.prod(self.shape[a + 1:], dtype=np.int64))
+        return (after, self.shape[a], before) if self.layout == "F" else (before, self.shape[a], after)
 
     @property
     def nbytes(self) -> int:
-        return int(self.index.nbytes + self.weight.nbytes)
+        parts = (self.position, self.scale) if self.interp == "cubic" else (self._index, self._weight)
+        return int(sum(p.nbytes for p in parts if p is not None))
 
 
 def field_on_grid(
@@ -221,23 +260,51 @@ def interpolate_along_axis(volume: np.ndarray, positions: np.ndarray, axis: int,
     within half a voxel outside, zero further out). Useful as a reference and for
     one-off resampling.
     """
-    tables = _build(np.asarray(positions, float), axis, interp, None, "C")
-    return apply_tables(tables, volume)
+    return apply_tables(_tables_for(np.asarray(positions, float), axis, interp, None, "C"), volume)
 
 
 #: Voxels per slab while building tables (bounds the temporary arrays to a few MiB).
 _SLAB_VOXELS = 1 << 17
 
 
-def _build(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None, layout: str) -> UnwarpTables:
+def _tables_for(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None, layout: str) -> UnwarpTables:
+    """Tables for sampling at `position` along `axis` (compact for cubic, taps otherwise)."""
+    if layout not in ("C", "F"):
+        raise InputError(f"layout must be 'C' or 'F', got {layout!r}")
+    if interp == "cubic":
+        return _build_cubic(position, axis, scale, layout)
+    return _build_taps(position, axis, interp, scale, layout)
+
+
+def _build_cubic(position: np.ndarray, axis: int, scale: np.ndarray | None, layout: str) -> UnwarpTables:
+    """Cubic tables: the clipped position and the factor (0 outside the field of view), float32."""
+    n = position.shape[axis]
+    flat = np.asarray(position).ravel(order=layout)
+    ok = (flat >= -0.5) & (flat <= n - 0.5)
+    factor = ok.astype(np.float32)
+    if scale is not None:
+        factor *= np.asarray(scale, np.float32).ravel(order=layout)
+    clipped = np.clip(flat, 0.0, n - 1.0).astype(np.float32)
+    # float32 rounding must not lift a position to n - 1 + ulp: the kernel takes floor by truncation
+    np.minimum(clipped, np.float32(n - 1), out=clipped)
+    return UnwarpTables(position.shape, axis, "cubic", layout=layout, position=clipped, scale=factor)
+
+
+def _explicit_cubic(tables: UnwarpTables) -> tuple[np.ndarray, np.ndarray]:
+    """The four taps per voxel of cubic tables (indices into the prefiltered volume, weights)."""
+    position = tables.position.astype(np.float64).reshape(tables.shape, order=tables.layout)
+    scale = tables.scale.reshape(tables.shape, order=tables.layout)
+    explicit = _build_taps(position, tables.pe_axis, "cubic", scale, tables.layout)
+    return explicit.index, explicit.weight
+
+
+def _build_taps(position: np.ndarray, axis: int, interp: str, scale: np.ndarray | None, layout: str) -> UnwarpTables:
     """Tables for sampling at `position` along `axis`, built slab by slab.
 
     Rows follow the voxels in `layout` order, so slabs along the slowest axis of that
     order (the first for C, the last for F) fill contiguous blocks of rows; the
     temporaries of one slab are all that exists besides the finished tables.
     """
-    if layout not in ("C", "F"):
-        raise InputError(f"layout must be 'C' or 'F', got {layout!r}")
     shape = position.shape
     ndim = len(shape)
     n = shape[axis]
@@ -283,7 +350,7 @@ def build_tables(
     shift_vox: np.ndarray,
     pe_axis: int,
     *,
-    interp: str = "linear",
+    interp: str = "cubic",
     jacobian: bool = True,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
     layout: str = "C",
@@ -294,7 +361,8 @@ def build_tables(
     ----------
     shift_vox : (X, Y, Z) array, voxels along `pe_axis`
     pe_axis : int
-    interp : {'linear', 'cubic', 'sinc'}
+    interp : {'cubic', 'linear', 'sinc'}
+        Interpolation along the PE axis (default cubic B-spline).
     jacobian : bool
         Multiply by the Jacobian intensity weight (floor in folded voxels).
     jacobian_floor : float
@@ -314,14 +382,7 @@ def build_tables(
     own = np.indices(shift_vox.shape, sparse=True)[pe_axis]
     position = own + shift_vox
     scale = intensity_weight(jacobian_from_shift(shift_vox, pe_axis), jacobian_floor) if jacobian else None
-    return _build(position, pe_axis, interp, scale, layout)
-
-
-def _prefilter(volume: np.ndarray, axis: int, layout: str) -> np.ndarray:
-    """1D cubic B-spline prefilter along one axis (mirror boundary), float64 in `layout` order."""
-    out = np.empty(volume.shape, np.float64, order=layout)
-    ndimage.spline_filter1d(volume, order=3, axis=axis, mode="mirror", output=out)
-    return out
+    return _tables_for(position, pe_axis, interp, scale, layout)
 
 
 def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | None = None, *,
@@ -346,17 +407,20 @@ def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | Non
     layout = tables.layout
     if volume.shape != tables.shape:
         raise GeometryError(f"volume shape {volume.shape} does not match the tables' grid {tables.shape}")
-    if tables.interp == "cubic":
-        source = _prefilter(volume, tables.pe_axis, layout).ravel(order=layout)
-    else:
-        if volume.dtype not in (np.float32, np.float64):
-            volume = volume.astype(np.float32)
-        source = volume.ravel(order=layout)  # a view when the volume is already in that order
     if out is None:
         out = np.empty(tables.shape, np.float32, order=layout)
     flat_out = out.ravel(order=layout)
     if out.dtype != np.float32 or not np.shares_memory(flat_out, out):
         raise ValueError(f"out must be a float32 array contiguous in {layout!r} order")
+    if tables.interp == "cubic":
+        lines = tables.lines
+        source = volume.astype(np.float32, order=layout, copy=False).ravel(order=layout)
+        kernels.cubic_lines(source.reshape(lines), tables.position.reshape(lines), tables.scale.reshape(lines),
+                            flat_out.reshape(lines), parallel=parallel)
+        return out
+    if volume.dtype not in (np.float32, np.float64):
+        volume = volume.astype(np.float32)
+    source = volume.ravel(order=layout)  # a view when the volume is already in that order
     kernels.gather(source, tables.index, tables.weight, flat_out, parallel=parallel)
     return out
 
@@ -366,7 +430,7 @@ def unwarp_volume(
     shift_vox: np.ndarray,
     pe_axis: int,
     *,
-    interp: str = "linear",
+    interp: str = "cubic",
     jacobian: bool = True,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
 ) -> np.ndarray:
@@ -376,7 +440,7 @@ def unwarp_volume(
     --------
     >>> import numpy as np
     >>> vol = np.zeros((1, 9, 1)); vol[0, 5, 0] = 1.0
-    >>> unwarp_volume(vol, np.full(vol.shape, 2.0), 1)[0, :, 0].tolist()
+    >>> unwarp_volume(vol, np.full(vol.shape, 2.0), 1)[0, :, 0].tolist()  # cubic: exact on samples
     [0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 0.0]
     """
     if np.ndim(volume) != 3:
@@ -389,7 +453,7 @@ def unwarp_array(
     shift_vox: np.ndarray,
     pe_axis: int,
     *,
-    interp: str = "linear",
+    interp: str = "cubic",
     jacobian: bool = True,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
 ) -> np.ndarray:

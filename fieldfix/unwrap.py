@@ -222,6 +222,8 @@ def unwrap_quality(wrapped_rad, mask=None):
     (True, 1)
     """
     arr, m, squeeze, original = _prepare(wrapped_rad, mask)
+    if arr.size >= 2**31:
+        raise ValueError(f"phase image of {arr.size} voxels is too large (the edge lists use 32-bit indices)")
     dval = _k.second_difference_nb(arr, m, _k.DIRECTIONS)
     a, b, keys = _k.edges_nb(m, dval, _k.N_KEYS)
     del dval
