@@ -16,8 +16,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help=f"sample scenario name ({', '.join(names) or 'none found'}) or a folder holding "
                              f"a scenario.json (default: {DEFAULT_SCENARIO})")
     parser.epilog = (
-        "The scenario's dataset (BIDS layout, with its ground truth) is built on first use into "
-        "sample_scenarios/NAME/generated/ and reused afterwards. --out receives the B0 map, the corrected "
+        "The scenario's dataset (BIDS layout, with its ground truth) is built into DIR/dataset on first use "
+        "and reused by later runs into the same DIR. --out receives the B0 map, the corrected "
         "run with its shift and Jacobian maps, dropout and plan results, report.html and demo_summary.json."
     )
 

@@ -22,8 +22,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="BIDS phase-encode code (i, i-, j, j-, k, k-) on the --like grid or the B0 grid")
     parser.add_argument("--echo-spacing", metavar="TIME", default=None,
                         help="effective echo spacing, e.g. 0.5ms (needed for BOLD sensitivity)")
-    parser.add_argument("--partial-fourier", metavar="FRACTION", default="1",
-                        help="fraction of k-space acquired along phase encoding, e.g. 6/8 or 0.75 (default 1)")
+    parser.add_argument("--partial-fourier", metavar="FRACTION", default=None,
+                        help="fraction of k-space acquired along phase encoding, e.g. 6/8 or 0.75 (default: the "
+                             "--like sidecar's PartialFourier, else 1)")
     parser.add_argument("--profile", choices=("rect", "gaussian", "rf"), default="rect",
                         help="slice profile: ideal slab, Gaussian, or windowed-sinc RF pulse (default rect)")
     parser.add_argument("--tbw", type=float, default=4.0, help="time-bandwidth product of the RF pulse (default 4)")
@@ -71,7 +72,8 @@ def run(args) -> dict:
         te_s=parse_time_s(args.te), thickness_mm=parse_length_mm(args.thickness), like=args.like,
         slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None, tilt_deg=parse_angle_deg(args.tilt),
         pe_code=args.phase_encoding, echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing else None,
-        partial_fourier=parse_fraction(args.partial_fourier), profile=args.profile, tbw=args.tbw,
+        partial_fourier=parse_fraction(args.partial_fourier) if args.partial_fourier else None,
+        profile=args.profile, tbw=args.tbw,
         zshim_mtms_per_m=parse_quantity(args.zshim, "moment") if args.zshim else 0.0, mask=args.mask,
         threshold=args.threshold)
     job = job_options(args)

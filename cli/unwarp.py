@@ -30,7 +30,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                              "run restored jointly from both (<first stem>_combined.nii.gz), which recovers "
                              "compressed regions a single polarity cannot")
     parser.add_argument("--force", action="store_true",
-                        help="correct even when shifts exceed a quarter of the field of view")
+                        help="correct even when shifts over the run's signal exceed half the field of view along "
+                             "the phase-encode axis, which almost always means a unit or timing mistake (large but "
+                             "plausible shifts are corrected with a warning)")
     from .main import add_tag_option
 
     add_tag_option(parser)

@@ -343,7 +343,13 @@ class TimingRecord(Record):
 
 @dataclass(frozen=True)
 class UnwarpSummary(Record):
-    """What the unwarping job reports for one run (``<tag><stem>_unwarp.json``)."""
+    """What the unwarping job reports for one run (``<tag><stem>_unwarp.json``).
+
+    Shift statistics ``max_abs_shift_*``, ``percent_shifted_over_1_voxel``, ``folded_voxels`` and
+    ``voxels_in_mask`` are over the statistics region (the field map's mask on the run grid);
+    ``signal_*_abs_shift_vox`` over the voxels where the run has signal inside it, the region of
+    the shift-size guard; ``large_shifts`` flags large but plausible shifts (see ``warnings``).
+    """
 
     KIND = "unwarp"
 
@@ -369,6 +375,9 @@ class UnwarpSummary(Record):
     coverage_percent: float
     partial_coverage: bool
     warnings: list[str]
+    signal_max_abs_shift_vox: float
+    signal_p99_abs_shift_vox: float
+    large_shifts: bool
     voxel_size_mm: list[float]
     displacement_convention: str
     folded_voxel_rule: str

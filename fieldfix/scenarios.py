@@ -641,11 +641,10 @@ def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int 
 
 
 def _write_text(path: Path, text: str, overwrite: bool) -> None:
-    if path.exists() and not overwrite:
-        raise OutputError("output exists; pass overwrite to replace it", path)
-    tmp = path.with_name(f".{path.name}.part")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
+    from .outdir import atomic_output
+
+    with atomic_output(path, overwrite=overwrite) as temporary:
+        temporary.write_text(text, encoding="utf-8")
 
 
 def load_manifest(root) -> dict:

@@ -423,8 +423,8 @@ REFUSALS = [
     pytest.param(simple_case(lambda f: ["batch", f / "missing", "--out", f / "out"], r"not a folder",
                              lambda f: [f / "missing"]), id="batch-root-missing"),
     # ---- implausible shifts --------------------------------------------------------------------
-    pytest.param(unwarp_case(r"exceed a quarter of the field of view", b0_kw={"values": field_hz(peak_hz=300.0)}),
-                 id="unwarp-shift-over-quarter-fov"),
+    pytest.param(unwarp_case(r"exceed half the field of view.*unit or timing mistake", b0_kw={"values": field_hz(peak_hz=300.0)}),
+                 id="unwarp-shift-over-half-fov"),
 ]
 
 

@@ -100,3 +100,18 @@ def test_sample_scenario_end_to_end(tmp_path):
     # the dropout workflow's prediction (sinc of the through-slice gradient) agrees with the EPI
     # simulation's sub-slice integration of the same field, independently computed
     assert abs(n.dropout_roi_mean_retention - n.roi_signal_kept) < 0.1
+
+
+@pytest.mark.slow
+def test_seven_tesla_scenario_end_to_end(tmp_path):
+    """Large but plausible shifts beside the air cavities are corrected with a warning, not refused."""
+    summary = run_demo(tmp_path / "out", scenario="temporal-7t")
+    n = summary.checks_against_truth
+    assert summary.steps["unwarping"].status == "done" and summary.steps["report"].status == "done"
+    assert summary.dataset == str(tmp_path / "out" / "dataset")  # built inside the output folder
+    assert n.b0_error_vs_truth_median_hz < 3.0
+    assert n.max_abs_shift_vox > 0.25 * 128  # beside the cavities, beyond a quarter of the field of view
+    assert any("large shifts" in w for w in summary.warnings)
+    unwarp = json.loads((tmp_path / "out" / "sub-01_task-memory_bold_unwarp.json").read_text())
+    assert unwarp["large_shifts"] and unwarp["signal_p99_abs_shift_vox"] < 0.5 * 128
+    assert n.edge_agreement_shifted_after > n.edge_agreement_shifted_before

@@ -50,18 +50,9 @@ PLAN_TILT_DEG = (-20.0, -10.0, 0.0, 10.0, 20.0)
 
 
 def dataset_location(scenario: str, out_dir) -> Path:
-    """Where the demo keeps a scenario's generated dataset.
-
-    A sample scenario of a source checkout is built once into ``sample_scenarios/<name>/generated/``
-    (ignored by git) and reused; otherwise, or when that folder cannot be written, into
-    ``<out_dir>/dataset``.
-    """
-    definition = scenarios.scenario_path(scenario)
-    folder = definition.parent
-    in_checkout = (scenarios.SAMPLE_SCENARIOS_DIR.parent / "fieldfix" / "__init__.py").is_file()
-    if in_checkout and folder.parent.resolve() == scenarios.SAMPLE_SCENARIOS_DIR.resolve() \
-            and os.access(folder, os.W_OK):
-        return folder / "generated"
+    """Where the demo builds a scenario's dataset: ``<out_dir>/dataset`` (fieldfix writes only inside
+    the output folder; a dataset already there, from the same definition, is reused)."""
+    scenarios.scenario_path(scenario)  # refuses an unknown scenario early, naming the sample scenarios
     return Path(out_dir) / "dataset"
 
 
@@ -153,13 +144,14 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
     entry = dict(manifest["entries"][0], field_strength_t=manifest["field_strength_t"])
     job = JobOptions(out_dir=out, overwrite=overwrite, progress=progress, command=command or "fieldfix demo")
     with output_folder(out):
-        checks, report_path = _run_steps(steps, job, root, entry, manifest, scenario)
+        checks, report_path, warnings = _run_steps(steps, job, root, entry, manifest, scenario)
         steps.bar.close()
         summary = DemoSummary(
             scenario=manifest["scenario"], title=manifest.get("title", manifest["scenario"]),
             field_strength_t=float(manifest["field_strength_t"]), subject=entry["subject"], dataset=str(root),
             out_dir=str(out), steps={"dataset": dataset_step, **steps.done}, checks_against_truth=checks,
-            report=str(report_path) if report_path else None, seconds=round(time.perf_counter() - t_start, 1))
+            report=str(report_path) if report_path else None, seconds=round(time.perf_counter() - t_start, 1),
+            warnings=warnings)
         write_json(summary_path, summary.to_json(), overwrite=overwrite)
     return summary
 
@@ -189,7 +181,7 @@ def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: dict, manifest
     report_path = steps.run("report", lambda: build_report(
         job.out_dir, title=f"fieldfix demo: {manifest.get('title', scenario)}", overwrite=job.overwrite),
         lambda p: [p])
-    return DemoChecks(**checks), report_path
+    return DemoChecks(**checks), report_path, [f"unwarping: {w}" for w in uw.warnings]
 
 
 def _field_checks(root: Path, entry: dict, b0_path: Path) -> dict:

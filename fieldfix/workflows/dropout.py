@@ -75,8 +75,9 @@ class DropoutSettings:
         Time-bandwidth product of the windowed-sinc pulse for ``profile='rf'``.
     zshim_mtms_per_m : float
         Z-shim moment along the slice normal (mT*ms/m).
-    partial_fourier : float
-        Fraction of k-space acquired along the phase-encode axis.
+    partial_fourier : float, optional
+        Fraction of k-space acquired along the phase-encode axis; default: the EPI sidecar's
+        ``PartialFourier``, else 1.
     mask : path, optional
         Brain mask: statistics inside it, maps set to 0 outside.
     threshold : float
@@ -93,7 +94,7 @@ class DropoutSettings:
     profile: str = "rect"
     tbw: float = 4.0
     zshim_mtms_per_m: float = 0.0
-    partial_fourier: float = 1.0
+    partial_fourier: float | None = None
     mask: object = None
     threshold: float = 0.5
 
@@ -149,6 +150,7 @@ class _Geometry:
     pe_sign: int | None
     echo_spacing_s: float | None
     slice_axis: int
+    partial_fourier: float
 
 
 def _geometry(s: DropoutSettings, b0_img: Image, like: Image | None) -> _Geometry:
@@ -178,14 +180,28 @@ def _geometry(s: DropoutSettings, b0_img: Image, like: Image | None) -> _Geometr
         if not 1e-6 < echo_spacing_s < 0.01:
             raise MetadataError(f"effective echo spacing {echo_spacing_s * 1e3:g} ms is implausible "
                                 "(expected 0.001-10 ms); check the unit", parameter="echo_spacing_s")
+    partial_fourier = _partial_fourier(s.partial_fourier, sidecar, like)
     frame = frame_from_affine(source.affine, slice_axis, pe_axis, tilt_deg=s.tilt_deg, shape=source.shape[:3])
     if pe_code is not None:
-        start, _ = acquisition_window_s(s.te_s, echo_spacing_s, frame.pe_lines, s.partial_fourier)
+        start, _ = acquisition_window_s(s.te_s, echo_spacing_s, frame.pe_lines, partial_fourier)
         if start < 0:
             raise MetadataError(f"echo time {s.te_s * 1e3:g} ms is shorter than the time to reach the k-space centre "
                                 f"({(s.te_s - start) * 1e3:g} ms) with {frame.pe_lines} lines and this echo spacing",
                                 parameter="te_s")
-    return _Geometry(frame, source, pe_code, pe_sign, echo_spacing_s, slice_axis)
+    return _Geometry(frame, source, pe_code, pe_sign, echo_spacing_s, slice_axis, partial_fourier)
+
+
+def _partial_fourier(given: float | None, sidecar: dict, like: Image | None) -> float:
+    """The partial Fourier fraction: given, else the EPI sidecar's ``PartialFourier``, else 1."""
+    if given is not None:
+        return float(given)
+    value = sidecar.get("PartialFourier")
+    if value is None:
+        return 1.0
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0.5 < value <= 1.0:
+        raise MetadataError(f"PartialFourier {value!r} in the sidecar is not a fraction in (0.5, 1]",
+                            sidecar_path(like.path))
+    return float(value)
 
 
 def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None = None,
@@ -238,10 +254,10 @@ def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: Dropo
     maps = dropout_maps(b0, b0_img.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm, profile=profile,
                         zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m), pe_sign=geometry.pe_sign,
                         echo_spacing_s=geometry.echo_spacing_s if geometry.pe_code is not None else None,
-                        partial_fourier=s.partial_fourier)
+                        partial_fourier=geometry.partial_fourier)
     parameters = DropoutParameters(
         te_s=s.te_s, thickness_mm=s.thickness_mm, tilt_deg=s.tilt_deg, slice_axis="ijk"[geometry.slice_axis],
-        pe_code=geometry.pe_code, echo_spacing_s=geometry.echo_spacing_s, partial_fourier=s.partial_fourier,
+        pe_code=geometry.pe_code, echo_spacing_s=geometry.echo_spacing_s, partial_fourier=geometry.partial_fourier,
         zshim_mtms_per_m=s.zshim_mtms_per_m, threshold=s.threshold, **_profile_fields(profile))
     provenance = Provenance(job.command, parameters.to_json(), inputs)
     common = dict(inputs=inputs, overwrite=job.overwrite, provenance=provenance)

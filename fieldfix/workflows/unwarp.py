@@ -40,9 +40,12 @@ from ._run_checks import (
     MAX_SHIFT_FOV_FRACTION,
     b0_values,
     check_recon_matrix,
+    ShiftCheck,
     check_shift_size,
     find_b0_mask,
+    finite_volume,
     resolve_pe_code,
+    signal_mask,
 )
 from ._combine import check_combinable, write_combined_run
 from ._stream import write_corrected_run
@@ -79,7 +82,8 @@ class UnwarpSettings:
         ``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz`` when present, else the part of
         the run covered by the B0 map.
     force : bool
-        Correct even when shifts exceed a quarter of the field of view.
+        Correct even when the shifts over the run's signal exceed half the field of view along
+        the phase-encode axis (the guard against unit and timing mistakes).
     parallel : bool
         Run the kernel on all numba threads; False when several jobs share the cores.
     combine_polarities : bool
@@ -118,6 +122,7 @@ class _RunPlan:
     mask: np.ndarray
     files: UnwarpFiles
     field_hz: np.ndarray
+    shift_check: ShiftCheck
 
 
 def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettings | None = None,
@@ -211,8 +216,9 @@ def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, fi
     except MetadataError as err:
         raise MetadataError(err.message, image.path) from None
     maps, mask, field = _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, s.jacobian_floor)
-    check_shift_size(maps, mask, image.path, b0.path, s.force)
-    return _RunPlan(image, code, code_source, timing, maps, mask, files, field)
+    signal = signal_mask(finite_volume(image, image.volume(0), 0), mask)
+    checked = check_shift_size(maps, signal, image.path, b0.path, s.force)
+    return _RunPlan(image, code, code_source, timing, maps, mask, files, field, checked)
 
 
 def _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, jacobian_floor):
@@ -266,7 +272,7 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
     maps, affine = plan.maps, plan.image.affine
     stats = shift_summary(maps.shift_vox, maps.jacobian, maps.pe_axis, affine, plan.mask, s.jacobian_floor)
     coverage_percent = float(100.0 * maps.inside.mean())
-    warnings = []
+    warnings = [plan.shift_check.warning] if plan.shift_check.warning else []
     if coverage_percent < PARTIAL_COVERAGE_PERCENT:
         warnings.append(f"partial coverage: the B0 map covers {coverage_percent:.1f}% of this run's voxels; "
                         "outside it the field is continued from the map's nearest edge, so the correction "
@@ -280,6 +286,8 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
         timing=TimingRecord(**plan.timing.as_dict()), interp=s.interp, jacobian=bool(s.jacobian), **stats,
         folded_voxels_total=int(np.count_nonzero(maps.fold)), coverage_percent=coverage_percent,
         partial_coverage=coverage_percent < PARTIAL_COVERAGE_PERCENT, warnings=warnings,
+        signal_max_abs_shift_vox=plan.shift_check.max_abs_shift_vox,
+        signal_p99_abs_shift_vox=plan.shift_check.robust_abs_shift_vox, large_shifts=plan.shift_check.large,
         voxel_size_mm=[float(v) for v in voxel_sizes_mm(affine)],
         displacement_convention="world mm (NIfTI RAS+), from each corrected voxel to where its signal lies in the "
                                 "distorted run",
