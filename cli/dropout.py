@@ -9,19 +9,24 @@ HELP = "predict signal retention and BOLD sensitivity for one protocol from a B0
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (3D NIfTI)")
-    parser.add_argument("--te", required=True, metavar="TIME", help="echo time with its unit, e.g. 30ms")
-    parser.add_argument("--thickness", required=True, metavar="LENGTH", help="slice thickness, e.g. 3mm")
+    from .main import plausible
+
+    parser.add_argument("--te", required=True, metavar="TIME",
+                        help=f"echo time with its unit, e.g. 30ms ({plausible('te_s')})")
+    parser.add_argument("--thickness", required=True, metavar="LENGTH",
+                        help=f"slice thickness, e.g. 3mm ({plausible('thickness_mm')})")
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--like", metavar="EPI", default=None,
                        help="EPI image whose grid gives the slice and phase-encode geometry (and sidecar timing)")
     where.add_argument("--slice-axis", metavar="AXIS", choices=("i", "j", "k"), default=None,
                        help="voxel axis of the B0 grid across slices: i, j or k (default k)")
     parser.add_argument("--tilt", metavar="ANGLE", default="0deg",
-                        help="extra tilt about the left-right axis, e.g. 15deg (positive: anterior edge up)")
+                        help="extra tilt about the left-right axis, e.g. 15deg (positive: anterior edge up; "
+                             f"{plausible('tilt_deg')})")
     parser.add_argument("--phase-encoding", metavar="CODE", default=None,
                         help="BIDS phase-encode code (i, i-, j, j-, k, k-) on the --like grid or the B0 grid")
     parser.add_argument("--echo-spacing", metavar="TIME", default=None,
-                        help="effective echo spacing, e.g. 0.5ms (needed for BOLD sensitivity)")
+                        help=f"effective echo spacing, e.g. 0.5ms (needed for BOLD sensitivity; {plausible('echo_spacing_s')})")
     parser.add_argument("--partial-fourier", metavar="FRACTION", default=None,
                         help="fraction of k-space acquired along phase encoding, e.g. 6/8 or 0.75 (default: the "
                              "--like sidecar's PartialFourier, else 1)")
@@ -29,7 +34,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="slice profile: ideal slab, Gaussian, or windowed-sinc RF pulse (default rect)")
     parser.add_argument("--tbw", type=float, default=4.0, help="time-bandwidth product of the RF pulse (default 4)")
     parser.add_argument("--zshim", metavar="MOMENT", default=None,
-                        help="z-shim moment along the slice normal, e.g. -0.5mT*ms/m")
+                        help=f"z-shim moment along the slice normal, e.g. -0.5mT*ms/m ({plausible('zshim_mtms_per_m')})")
     parser.add_argument("--mask", metavar="MASK", default=None, help="brain mask (statistics; maps are 0 outside)")
     parser.add_argument("--threshold", type=float, default=0.5, help="level counted as lost (default 0.5)")
     from .main import add_tag_option
@@ -63,18 +68,19 @@ DASH_VALUES = ("--tilt", "--zshim", "--phase-encoding", "--te", "--thickness", "
 
 
 def run(args) -> dict:
-    from fieldfix.units import parse_angle_deg, parse_length_mm, parse_quantity, parse_time_s
+    from fieldfix.units import parse_checked
     from fieldfix.workflows.dropout import DropoutSettings, run_dropout
 
     from .main import job_options
 
     settings = DropoutSettings(
-        te_s=parse_time_s(args.te), thickness_mm=parse_length_mm(args.thickness), like=args.like,
-        slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None, tilt_deg=parse_angle_deg(args.tilt),
-        pe_code=args.phase_encoding, echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing else None,
+        te_s=parse_checked(args.te, "te_s"), thickness_mm=parse_checked(args.thickness, "thickness_mm"), like=args.like,
+        slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None,
+        tilt_deg=parse_checked(args.tilt, "tilt_deg"), pe_code=args.phase_encoding,
+        echo_spacing_s=parse_checked(args.echo_spacing, "echo_spacing_s") if args.echo_spacing else None,
         partial_fourier=parse_fraction(args.partial_fourier) if args.partial_fourier else None,
         profile=args.profile, tbw=args.tbw,
-        zshim_mtms_per_m=parse_quantity(args.zshim, "moment") if args.zshim else 0.0, mask=args.mask,
+        zshim_mtms_per_m=parse_checked(args.zshim, "zshim_mtms_per_m") if args.zshim else 0.0, mask=args.mask,
         threshold=args.threshold)
     job = job_options(args)
     summary = run_dropout(args.b0, job, settings)

@@ -8,6 +8,8 @@ HELP = "make a B0 map in Hz from dual-/multi-echo gradient-echo images, with 3D 
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
+    from .main import plausible
+
     src = parser.add_argument_group("inputs (one kind)")
     src.add_argument("--phase", nargs="+", metavar="P", default=[],
                      help="phase image per echo (radians, degrees or scanner integer counts)")
@@ -25,7 +27,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                           "e.g. the BIDS fmap/*_dir-*_epi images); codes and timing from their sidecars")
     opts = parser.add_argument_group("options")
     opts.add_argument("--echo-times", nargs="+", metavar="TIME", default=None,
-                      help="echo times with units, e.g. 4.92ms 7.38ms (default: BIDS sidecars)")
+                      help=f"echo times with units, e.g. 4.92ms 7.38ms (default: BIDS sidecars; {plausible('echo_times_s')})")
     opts.add_argument("--echo-times-win", choices=("arguments", "sidecar"), default=None,
                       help="which echo times win when --echo-times contradicts the sidecars "
                            "(default: stop with an error)")
@@ -38,7 +40,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
     opts.add_argument("--unwrap", choices=("quality", "laplacian"), default="quality",
                       help="spatial unwrapping: quality-guided (default) or Laplacian (for very noisy data)")
     opts.add_argument("--field-strength", metavar="FIELD", default=None,
-                      help="main field, e.g. 3T (needed for ppm)")
+                      help=f"main field, e.g. 3T (needed for ppm; default: the sidecar's MagneticFieldStrength; "
+                           f"{plausible('field_strength_t')})")
     opts.add_argument("--also", nargs="+", choices=("rad/s", "ppm"), default=[],
                       help="also write the map in these units")
     opts.add_argument("--keep-outliers", action="store_true", help="do not replace outlier voxels")
@@ -74,7 +77,7 @@ FLAGS = {"echo_times_s": "--echo-times", "echo_times_win": "--echo-times-win", "
 
 
 def run(args) -> dict:
-    from fieldfix.units import parse_field_t, parse_length_mm, parse_time_s
+    from fieldfix.units import parse_checked
     from fieldfix.workflows.fieldmap import FieldMapSettings, run_fieldmap
 
     from .main import job_options
@@ -82,13 +85,14 @@ def run(args) -> dict:
     settings = FieldMapSettings(
         phase=args.phase, magnitude=args.magnitude, real=args.real, imag=args.imag, phase_diff=args.phase_diff,
         b0=args.b0, b0_units=args.b0_units, mask=args.mask,
-        echo_times_s=[parse_time_s(t) for t in args.echo_times] if args.echo_times else None,
-        echo_times_win=args.echo_times_win, phase_units=args.phase_units, smooth_mm=parse_length_mm(args.smooth),
-        unwrap_method=args.unwrap,
-        field_strength_t=parse_field_t(args.field_strength) if args.field_strength else None,
+        echo_times_s=[parse_checked(t, "echo_times_s") for t in args.echo_times] if args.echo_times else None,
+        echo_times_win=args.echo_times_win, phase_units=args.phase_units,
+        smooth_mm=parse_checked(args.smooth, "smooth_mm"), unwrap_method=args.unwrap,
+        field_strength_t=parse_checked(args.field_strength, "field_strength_t") if args.field_strength else None,
         also_units=args.also, reject_outliers=not args.keep_outliers, epi=args.epi_pair,
         epi_pe_codes=args.phase_encoding,
-        epi_readout_times_s=[parse_time_s(t) for t in args.readout_time] if args.readout_time else None,
+        epi_readout_times_s=[parse_checked(t, "readout_time_s", "epi_readout_times_s") for t in args.readout_time]
+        if args.readout_time else None,
         epi_win=args.timing_wins, pair_motion=args.pair_motion)
     summary = run_fieldmap(job_options(args), settings)
     if getattr(args, "json", False):

@@ -69,6 +69,13 @@ def add_common_options(parser: argparse.ArgumentParser, *, out_required: bool = 
     group.add_argument("--debug", action="store_true", help="show the full traceback of an error")
 
 
+def plausible(name: str) -> str:
+    """The plausible range of a quantity, for --help texts (see fieldfix.units.PLAUSIBLE)."""
+    from fieldfix.units import PLAUSIBLE
+
+    return f"plausible {PLAUSIBLE[name].text()}"
+
+
 def add_tag_option(parser: argparse.ArgumentParser) -> None:
     """The option that puts a tag at the start of every output file name."""
     parser.add_argument("--tag", default="", metavar="TEXT",

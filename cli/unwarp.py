@@ -9,15 +9,18 @@ HELP = "unwarp EPI runs along the phase-encode axis with a B0 map (Hz), with Jac
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
+    from .main import plausible
+
     parser.add_argument("runs", nargs="+", metavar="RUN", help="EPI runs (3D or 4D NIfTI) sharing one B0 map")
     parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (undistorted space)")
     parser.add_argument("--phase-encoding", metavar="CODE", default=None,
                         help="BIDS phase-encode code: i, i-, j, j-, k or k- (default: the run's sidecar)")
     timing = parser.add_mutually_exclusive_group()
     timing.add_argument("--readout-time", metavar="TIME", default=None,
-                        help="total readout time with its unit, e.g. 45.6ms (default: the sidecar)")
+                        help=f"total readout time with its unit, e.g. 45.6ms (default: the sidecar; {plausible('readout_time_s')})")
     timing.add_argument("--echo-spacing", metavar="TIME", default=None,
-                        help="effective echo spacing with its unit, e.g. 0.5ms (default: the sidecar)")
+                        help=f"effective echo spacing with its unit, e.g. 0.5ms (default: the sidecar; "
+                             f"{plausible('echo_spacing_s')})")
     parser.add_argument("--timing-wins", choices=("arguments", "sidecar"), default=None,
                         help="which source wins when the options contradict a sidecar (default: stop with an error)")
     parser.add_argument("--interp", choices=("linear", "cubic", "sinc"), default="linear",
@@ -57,15 +60,15 @@ DASH_VALUES = ("--phase-encoding",)
 def run(args) -> dict:
     from pathlib import Path
 
-    from fieldfix.units import parse_time_s
+    from fieldfix.units import parse_checked
     from fieldfix.workflows.unwarp import UnwarpSettings, run_unwarp
 
     from .main import job_options
 
     settings = UnwarpSettings(
         pe_code=args.phase_encoding,
-        readout_time_s=parse_time_s(args.readout_time) if args.readout_time is not None else None,
-        echo_spacing_s=parse_time_s(args.echo_spacing) if args.echo_spacing is not None else None,
+        readout_time_s=parse_checked(args.readout_time, "readout_time_s") if args.readout_time is not None else None,
+        echo_spacing_s=parse_checked(args.echo_spacing, "echo_spacing_s") if args.echo_spacing is not None else None,
         timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
         force=args.force, combine_polarities=args.combine_polarities)
     job = job_options(args)

@@ -26,6 +26,7 @@ from .errors import GeometryError, InputError
 
 __all__ = [
     "PE_CODES",
+    "pe_code_hint",
     "parse_pe_code",
     "pe_code",
     "axis_direction_world",
@@ -69,10 +70,38 @@ def parse_pe_code(code: str) -> tuple[int, int]:
     >>> parse_pe_code("i")
     (0, 1)
     """
-    text = str(code).strip()
+    text = str(code).strip() if isinstance(code, str) else code
     if text not in PE_CODES:
-        raise InputError(f"unknown phase-encode code {code!r}; expected one of {', '.join(PE_CODES)}")
+        raise InputError(f"unknown phase-encode code {code!r}; expected one of {', '.join(PE_CODES)}"
+                         + pe_code_hint(code))
     return "ijk".index(text[0]), (-1 if text.endswith("-") else 1)
+
+
+_ANATOMICAL = {"ap", "pa", "lr", "rl", "si", "is", "ras", "lps"}
+
+
+def pe_code_hint(code) -> str:
+    """A hint for a near miss of a BIDS phase-encode code ("" when there is none to give).
+
+    Examples
+    --------
+    >>> pe_code_hint("-j")
+    ' (write j-: the voxel axis first, then the sign)'
+    """
+    if not isinstance(code, str):
+        return f" (it is {type(code).__name__} {code!r}; BIDS codes are text such as \"j-\")"
+    text = code.strip().lower()
+    if len(text) == 2 and text[0] in "+-" and text[1] in "ijk":
+        return f" (write {text[1]}{'-' if text[0] == '-' else ''}: the voxel axis first, then the sign)"
+    if text.rstrip("+-") in ("x", "y", "z") and len(text) <= 2:
+        axis = "ijk"["xyz".index(text[0])]
+        return f" (BIDS codes use voxel axes i, j, k, not x, y, z: did you mean {axis}{'-' if text.endswith('-') else ''}?)"
+    if text.replace("-", "").replace(">", "").replace("2", "") in _ANATOMICAL:
+        return (" (BIDS codes name voxel axes, not anatomical directions: give the code of the voxel axis that runs "
+                "that way in this image; with j running posterior to anterior, AP is j- and PA is j)")
+    if text.endswith("+") and text[:-1] in ("i", "j", "k"):
+        return f" (write {text[:-1]}: the positive polarity has no sign)"
+    return ""
 
 
 def pe_code(axis: int, sign: int) -> str:

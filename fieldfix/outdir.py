@@ -53,7 +53,7 @@ import tempfile
 from pathlib import Path
 from typing import Iterable, Iterator
 
-from .errors import OutputError
+from .errors import InputError, OutputError
 
 __all__ = [
     "STATE_DIR",
@@ -341,12 +341,39 @@ def folder_for(path: str | os.PathLike) -> OutputFolder:
     return OutputFolder(Path(os.path.abspath(os.fspath(path))).parent)
 
 
+def raw_dataset_holding(root: str | os.PathLike) -> Path | None:
+    """The raw BIDS dataset `root` lies in outside its ``derivatives/`` folder, if any.
+
+    The nearest folder at or above `root` with a ``dataset_description.json`` decides: a raw
+    dataset (``DatasetType`` missing or ``"raw"``) is returned unless `root` lies below its
+    ``derivatives`` folder; a derivative dataset, or none at all, gives None.
+    """
+    from .jsonfile import read_json
+
+    root = Path(os.path.abspath(os.fspath(root))).resolve()
+    for folder in (root, *root.parents):
+        description = folder / "dataset_description.json"
+        if not description.is_file():
+            continue
+        try:
+            kind = read_json(description).get("DatasetType", "raw")
+        except InputError:
+            return None
+        if kind == "derivative":
+            return None
+        inside = root.relative_to(folder).parts
+        return None if inside and inside[0] == "derivatives" else folder
+    return None
+
+
 @contextlib.contextmanager
-def output_folder(root: str | os.PathLike) -> Iterator[OutputFolder]:
+def output_folder(root: str | os.PathLike, *, raw_dataset: bool = False) -> Iterator[OutputFolder]:
     """Make `root` the output folder of everything written inside the block.
 
     A block inside an active folder joins it when `root` lies inside that folder (a job
     writing into a subfolder of a batch's derivatives, say); a `root` outside it is refused.
+    A new folder inside a raw BIDS dataset (outside its ``derivatives/``) is refused unless
+    `raw_dataset` (the scenario generator writes raw datasets).
     """
     active = _ACTIVE.get()
     if active is not None:
@@ -354,6 +381,10 @@ def output_folder(root: str | os.PathLike) -> Iterator[OutputFolder]:
             active.relative(Path(root) / "x")  # raises when outside
         yield active
         return
+    dataset = None if raw_dataset else raw_dataset_holding(root)
+    if dataset is not None:
+        raise OutputError(f"lies inside the raw BIDS dataset {dataset}; fieldfix writes into a dataset only below its "
+                          "derivatives/ folder (e.g. <dataset>/derivatives/fieldfix)", root)
     folder = OutputFolder(root)
     token = _ACTIVE.set(folder)
     try:

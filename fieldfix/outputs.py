@@ -382,6 +382,7 @@ class UnwarpSummary(Record):
     displacement_convention: str
     folded_voxel_rule: str
     outputs: UnwarpFiles
+    b0_units: str = "Hz"
     caution: str = CAUTION
 
 
@@ -455,6 +456,7 @@ class DropoutSummary(Record):
     bold_sensitivity: MapStatistics | None = None
     pe_direction_world: str | None = None
     percent_echo_lost: float | None = None
+    b0_units: str = "Hz"
     caution: str = CAUTION
 
 

@@ -52,6 +52,9 @@ __all__ = [
     "PhaseUnits",
     "PHASE_UNITS",
     "detect_phase_units",
+    "check_given_phase_units",
+    "implied_field_spread_hz",
+    "MIN_FIELD_SPREAD_HZ",
     "phase_units",
     "phase_to_radians",
     "complex_from_polar",
@@ -118,8 +121,33 @@ def phase_units(name: str | PhaseUnits) -> PhaseUnits:
     return PHASE_UNITS[key]
 
 
-def detect_phase_units(phase, *, min_coverage: float = 0.5) -> PhaseUnits:
+#: Smallest spread of a field map across a head that any scanner gives, Hz: even a well shimmed
+#: brain at 1.5 T spans tens of hertz from the sinuses to the vertex (common practice, no source).
+#: A phase convention implying less than this is physically implausible.
+MIN_FIELD_SPREAD_HZ = 10.0
+
+
+def implied_field_spread_hz(spread: float, unit: PhaseUnits, delta_te_s: float) -> float:
+    """The field spread (Hz) a phase spread means in convention `unit` for echoes `delta_te_s` apart.
+
+    Examples
+    --------
+    >>> round(implied_field_spread_hz(np.pi, PHASE_UNITS["rad"], 0.0025), 1)
+    200.0
+    """
+    return spread * unit.to_rad / (TWO_PI * delta_te_s)
+
+
+def detect_phase_units(phase, *, min_coverage: float = 0.5, delta_te_s: float | None = None,
+                       hint: str | None = None) -> PhaseUnits:
     """Decide the phase convention of an image by the rule in the module docstring.
+
+    With `delta_te_s` (a phase difference) whose background is masked (more than 5% of the
+    voxels exactly zero), physical plausibility decides as well: a convention under which the
+    values would mean a field spread below :data:`MIN_FIELD_SPREAD_HZ` across the image is
+    dropped, and one that fits the value range and implies a plausible field is accepted even
+    when it covers under half of its cycle. `hint` (e.g. a sidecar's ``Units``)
+    settles a choice between conventions that are both plausible.
 
     Parameters
     ----------
@@ -127,6 +155,10 @@ def detect_phase_units(phase, *, min_coverage: float = 0.5) -> PhaseUnits:
         Phase values as stored (after the header's scaling).
     min_coverage : float
         Fraction of the period the spread of values must exceed to be plausible.
+    delta_te_s : float, optional
+        Echo-time difference of a phase difference, s.
+    hint : str, optional
+        A convention named by the metadata.
 
     Returns
     -------
@@ -162,6 +194,22 @@ def detect_phase_units(phase, *, min_coverage: float = 0.5) -> PhaseUnits:
             if spread > min_coverage * period:
                 plausible.append(unit)
     span_text = f"values span {lo:.6g}..{hi:.6g}"
+    masked = np.count_nonzero(values == 0) > 0.05 * values.size  # zero outside the head
+    if delta_te_s is not None and masked:
+        physical = [PHASE_UNITS[n] for n in fitting
+                    if implied_field_spread_hz(spread, PHASE_UNITS[n], delta_te_s) >= MIN_FIELD_SPREAD_HZ]
+        plausible = [u for u in plausible if u in physical] or physical
+        if len(plausible) == 1:
+            unit = plausible[0]
+            field = implied_field_spread_hz(spread, unit, delta_te_s)
+            return PhaseUnits(unit.name, unit.period, unit.integer,
+                              f"detected: {span_text}; in {unit.name} that is a field spread of {field:.0f} Hz, the "
+                              f"only plausible reading")
+    if len(plausible) > 1 and hint is not None:
+        named = [u for u in plausible if u.name == phase_units(hint).name]
+        if named:
+            return PhaseUnits(named[0].name, named[0].period, named[0].integer,
+                              f"{span_text} fits several conventions; the sidecar names {named[0].name}")
     if len(plausible) == 1:
         unit = plausible[0]
         return PhaseUnits(unit.name, unit.period, unit.integer,
@@ -172,6 +220,37 @@ def detect_phase_units(phase, *, min_coverage: float = 0.5) -> PhaseUnits:
                         "give them explicitly (rad, deg, counts4096 or counts8192)")
     names = ", ".join(u.name for u in plausible)
     raise UnitError(f"phase units are ambiguous: {span_text} fits {names}; give them explicitly")
+
+
+def check_given_phase_units(phase, unit: PhaseUnits, delta_te_s: float) -> None:
+    """Refuse a phase convention that the data contradict, with both readings in the message.
+
+    Raises
+    ------
+    UnitError
+        When the values fall outside the convention's range, or, read in it, mean a field spread
+        below :data:`MIN_FIELD_SPREAD_HZ` (e.g. degrees given for an image spanning -pi..pi).
+    """
+    values = np.asarray(phase, dtype=np.float64)
+    values = values[np.isfinite(values)]
+    if values.size == 0:
+        return
+    lo, hi = float(values.min()), float(values.max())
+    spread = hi - lo
+    period = unit.period
+    in_range = lo >= -period / 2 - 1e-3 * period and hi <= period * 1.001 and spread <= period * 1.001
+    field = implied_field_spread_hz(spread, unit, delta_te_s)
+    if in_range and field >= MIN_FIELD_SPREAD_HZ:
+        return
+    others = [u for u in PHASE_UNITS.values() if u.name != unit.name
+              and -u.period / 2 <= lo and hi <= u.period * 1.001 and spread <= u.period * 1.001
+              and implied_field_spread_hz(spread, u, delta_te_s) >= MIN_FIELD_SPREAD_HZ]
+    other = (f"; read as {others[0].name} they mean {implied_field_spread_hz(spread, others[0], delta_te_s):.0f} Hz"
+             if others else "")
+    why = (f"in {unit.name} they would mean a field spread of {field:.1f} Hz across the image, which no scanner gives"
+           if in_range else f"they do not fit the {unit.name} range")
+    raise UnitError(f"phase units {unit.name} were given, but the values span {lo:.6g}..{hi:.6g}: {why}{other}; "
+                    "check the units")
 
 
 def phase_to_radians(phase, units: str | PhaseUnits):

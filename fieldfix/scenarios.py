@@ -67,6 +67,7 @@ from . import susceptibility as sus
 from .errors import InputError, OutputError
 from .geometry import parse_pe_code
 from .io import save_image, write_json
+from .outdir import output_folder
 
 from .simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
 from .simulate.gradient_echo import simulate_gradient_echo
@@ -600,7 +601,11 @@ def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int 
     if root.is_dir() and any(root.iterdir()) and not overwrite:
         raise OutputError("the dataset folder is not empty; pass overwrite to regenerate", root)
     root.mkdir(parents=True, exist_ok=True)
+    with output_folder(root, raw_dataset=True):  # a raw dataset is what the generator makes
+        return _write_dataset(d, p, root, seed, overwrite)
 
+
+def _write_dataset(d: dict, p: dict, root: Path, seed: int, overwrite: bool) -> Path:
     public = {k: v for k, v in d.items() if not k.startswith("_")}
     write_json(root / "dataset_description.json", {
         "Name": f"fieldfix sample scenario: {d.get('title', d['name'])}",

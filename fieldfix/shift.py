@@ -63,6 +63,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .units import check_plausible
 from .errors import GeometryError, InputError, MetadataError
 from .geometry import parse_pe_code, voxel_sizes_mm
 
@@ -284,6 +285,7 @@ def shift_vox_from_field(
     """
     b0_hz = np.asarray(b0_hz, dtype=float)
     axis, sign = parse_pe_code(pe_code)
+    check_plausible("echo_spacing_s", echo_spacing_s)
     if b0_hz.ndim != 3:
         raise GeometryError(f"the B0 map must be 3D, got {b0_hz.ndim} dimensions")
     if n_pe_lines is None:

@@ -34,6 +34,10 @@ __all__ = [
     "parse_frequency_hz",
     "parse_field_t",
     "format_quantity",
+    "PLAUSIBLE",
+    "Plausible",
+    "check_plausible",
+    "parse_checked",
 ]
 
 #: Proton gyromagnetic ratio divided by 2*pi, in Hz/T (CODATA, via scipy.constants).
@@ -177,3 +181,105 @@ def format_quantity(value: float, dimension: str) -> str:
     if dimension == "time":
         return f"{value * 1e3:.6g}ms"
     return f"{value:.6g}{_CANONICAL[dimension]}"
+
+
+class Plausible:
+    """The plausible range of one quantity, and how to say it.
+
+    Attributes
+    ----------
+    dimension : str
+        The quantity's dimension (its canonical unit: see :func:`parse_quantity`).
+    low, high : float
+        Inclusive bounds in the canonical unit.
+    what : str
+        Words for the quantity in messages.
+    why : str
+        Where the bounds come from.
+    """
+
+    def __init__(self, dimension: str, low: float, high: float, what: str, why: str):
+        self.dimension, self.low, self.high, self.what, self.why = dimension, low, high, what, why
+
+    def text(self) -> str:
+        """``"1ms to 200ms"`` in the units a user types."""
+        return f"{format_quantity(self.low, self.dimension)} to {format_quantity(self.high, self.dimension)}"
+
+
+#: Plausible ranges of the quantities users give (canonical units). A value outside is almost always
+#: a unit slip (30us for 30ms, 3cm for 3mm) and is refused. The bounds are generous limits of human
+#: MRI practice (common practice, no source), not recommendations.
+PLAUSIBLE: dict[str, Plausible] = {
+    "te_s": Plausible("time", 1e-3, 0.2, "an EPI echo time", "gradient-echo EPI echo times are 10-80 ms"),
+    "echo_times_s": Plausible("time", 0.2e-3, 0.1, "a field-map echo time",
+                              "gradient-echo field maps use echoes of a few milliseconds"),
+    "echo_spacing_s": Plausible("time", 10e-6, 5e-3, "an effective echo spacing",
+                                "EPI lines are 0.2-1.5 ms apart, less with in-plane acceleration"),
+    "readout_time_s": Plausible("time", 1e-3, 0.3, "a total readout time",
+                                "EPI readouts last 10-100 ms; BIDS gives them in seconds"),
+    "thickness_mm": Plausible("length", 0.3, 10.0, "a slice thickness", "EPI slices are 1-5 mm thick"),
+    "inplane_mm": Plausible("length", 0.2, 10.0, "an in-plane voxel size", "EPI voxels are 1-4 mm across"),
+    "smooth_mm": Plausible("length", 0.0, 50.0, "a smoothing width (FWHM)", "field maps are smoothed by a few mm"),
+    "slice_gap_mm": Plausible("length", 0.0, 20.0, "a gap between slices", "slice gaps are 0-100% of a slice"),
+    "tilt_deg": Plausible("angle", -60.0, 60.0, "a slice tilt",
+                          "slices are tilted by tens of degrees at most; larger tilts change the orientation"),
+    "field_strength_t": Plausible("field", 0.05, 12.0, "a main field strength", "human MRI runs at 0.05-11.7 T"),
+    "time_per_slice_s": Plausible("time", 5e-3, 1.0, "a time per slice", "one EPI slice takes 20-150 ms"),
+    "max_tr_s": Plausible("time", 0.1, 30.0, "a repetition time", "fMRI repetition times are 0.3-5 s"),
+    "t2star_s": Plausible("time", 5e-3, 0.2, "a T2*", "T2* of brain tissue is 20-80 ms at 1.5-7 T"),
+    "zshim_mtms_per_m": Plausible("moment", -10.0, 10.0, "a z-shim moment",
+                                  "z-shim moments are a few mT*ms/m"),
+}
+
+
+def check_plausible(name: str, value: float, typed: str | None = None, parameter: str | None = None) -> float:
+    """Refuse a value outside the plausible range of quantity `name` (see :data:`PLAUSIBLE`).
+
+    Parameters
+    ----------
+    name : str
+        Key of :data:`PLAUSIBLE` (the library's parameter name, units in it).
+    value : float
+        In the canonical unit.
+    typed : str, optional
+        The text the user typed, quoted in the message instead of the converted value.
+    parameter : str, optional
+        The parameter the error names (default `name`).
+
+    Raises
+    ------
+    UnitError
+        With the range and where it comes from.
+
+    Examples
+    --------
+    >>> check_plausible("te_s", 0.03)
+    0.03
+    >>> check_plausible("te_s", 30e-6, typed="30us")  # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    fieldfix.errors.UnitError: te_s: 30us is not plausible as an EPI echo time ...
+    """
+    rule = PLAUSIBLE[name]
+    if value is None or not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value) \
+            or not rule.low <= value <= rule.high:
+        shown = typed.strip() if isinstance(typed, str) else (format_quantity(value, rule.dimension)
+                                                               if isinstance(value, (int, float)) else repr(value))
+        raise UnitError(f"{shown} is not plausible as {rule.what} (expected {rule.text()}: {rule.why}); check the "
+                        "unit", parameter=parameter or name)
+    return float(value)
+
+
+def parse_checked(text: str, name: str, parameter: str | None = None) -> float:
+    """Parse a quantity typed for parameter `name` and check its plausible range, quoting the text.
+
+    Examples
+    --------
+    >>> parse_checked("3mm", "thickness_mm")
+    3.0
+    """
+    rule = PLAUSIBLE[name]
+    try:
+        value = parse_quantity(text, rule.dimension)
+    except UnitError as err:
+        raise UnitError(err.message, parameter=parameter or name) from None
+    return check_plausible(name, value, typed=text, parameter=parameter)

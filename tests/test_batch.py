@@ -290,7 +290,7 @@ def test_refuses_foreign_output_folder(dataset, tmp_path, fake_workflows):
         json.dumps({"Name": "x", "GeneratedBy": [{"Name": "another-tool"}]}))
     from fieldfix.errors import OutputError
 
-    with pytest.raises(OutputError, match="another dataset"):
+    with pytest.raises(OutputError, match="another dataset|raw BIDS dataset"):
         batch.run_batch(dataset, other)
     with pytest.raises(InputError, match="subject"):
         batch.run_batch(dataset, dataset / "sub-01" / "out")

@@ -467,7 +467,7 @@ def test_run_dropout_refuses_implausible_te_empty_mask_and_distant_epi(tmp_path)
     from fieldfix.workflows.dropout import run_dropout
 
     affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
-    with pytest.raises(InputError, match="implausible"):
+    with pytest.raises(InputError, match="not plausible as an EPI echo time"):
         run_dropout(b0_path, tmp_path / "a", te_s=30.0, thickness_mm=3.0)
     empty = _write_nifti(tmp_path / "mask.nii.gz", np.zeros(shape), affine)
     with pytest.raises(InputError, match="empty"):

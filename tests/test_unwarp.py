@@ -325,20 +325,21 @@ def test_workflow_metadata_errors(scene):
 
 def test_workflow_corrects_large_shifts_with_a_warning_and_refuses_unit_mistakes(scene):
     folder, run, b0_path, data, affine = scene
-    # 0.3 s readout (the plausible bound) with +-50 Hz: up to 0.3 / 23 * 50 * 24 = 15.6 voxels, more than a
-    # quarter of the 24 voxels: large but plausible, corrected with a warning and flagged.
-    (summary,) = run_unwarp([run], b0_path, folder / "o", readout_time_s=0.3, timing_win="arguments")
+    # The field doubled (-60..+100 Hz) with a 0.1 s readout (4.3 ms per line): up to 0.1 / 23 * 100 * 24 =
+    # 10.4 voxels, more than a quarter of the 24 voxels: large but plausible, corrected with a warning.
+    b0 = load_image(b0_path)
+    strong = save_image(folder / "b0_strong_hz.nii.gz", b0.get_fdata() * 2, b0.affine)
+    (summary,) = run_unwarp([run], strong, folder / "o", readout_time_s=0.1, timing_win="arguments")
     assert summary.max_abs_shift_vox > 6 and summary.large_shifts
     assert summary.signal_max_abs_shift_vox > 0.25 * 24 and summary.signal_p99_abs_shift_vox <= 0.5 * 24
     assert any("large shifts" in w for w in summary.warnings)
     # The same map written in rad/s and read as Hz (x 2 pi): the bulk of the signal would move by more
     # than half the field of view, which means a unit mistake: refused unless forced.
-    b0 = load_image(b0_path)
-    rads = save_image(folder / "b0_rads_as_hz.nii.gz", b0.get_fdata() * 2 * np.pi, b0.affine)
+    rads = save_image(folder / "b0_rads_as_hz.nii.gz", b0.get_fdata() * 2 * 2 * np.pi, b0.affine)
     with pytest.raises(GeometryError, match="half the field of view.*unit or timing mistake") as err:
-        run_unwarp([run], rads, folder / "p", readout_time_s=0.3, timing_win="arguments")
+        run_unwarp([run], rads, folder / "p", readout_time_s=0.1, timing_win="arguments")
     assert "sub-01_task-rest_bold" in str(err.value)
-    (forced,) = run_unwarp([run], rads, folder / "p", readout_time_s=0.3, timing_win="arguments", force=True)
+    (forced,) = run_unwarp([run], rads, folder / "p", readout_time_s=0.1, timing_win="arguments", force=True)
     assert forced.signal_p99_abs_shift_vox > 0.5 * 24
 
 
@@ -480,11 +481,11 @@ def test_workflow_failure_mid_run_leaves_no_partial_output(scene, monkeypatch):
 def test_workflow_checks_every_run_before_writing(tmp_path):
     affine = np.eye(4)
     shape = (6, 16, 2)
-    b0_path = save_image(tmp_path / "field.nii.gz", np.full(shape, 100.0), affine)
+    b0_path = save_image(tmp_path / "field.nii.gz", np.full(shape, 150.0), affine)
     fine = _write_run(tmp_path / "fine.nii.gz", np.ones(shape + (2,)), affine,
-                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.005})  # 0.53 voxel
+                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.005})  # 0.8 voxel
     huge = _write_run(tmp_path / "huge.nii.gz", np.ones(shape + (2,)), affine,
-                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.09})  # 9.6 voxels > 16 / 2
+                      sidecar={"PhaseEncodingDirection": "j", "TotalReadoutTime": 0.06})  # 9.6 voxels > 16 / 2
     with pytest.raises(GeometryError, match="huge.nii.gz"):
         run_unwarp([fine, huge], b0_path, tmp_path / "out")
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())

@@ -19,7 +19,9 @@ from ..errors import FieldfixError, GeometryError, InputError, MetadataError
 from ..geometry import parse_pe_code
 from ..io import Image, load_image, sidecar_path
 from ..outputs import PhaseUnitsRecord
+from ..units import PLAUSIBLE, check_plausible
 from ..phase import (
+    check_given_phase_units,
     complex_from_polar,
     complex_from_real_imag,
     detect_phase_units,
@@ -29,10 +31,10 @@ from ..phase import (
 
 __all__ = ["FieldMapData", "READERS", "as_list", "check_grid", "read_mask", "read_magnitude", "MAX_ECHO_TIME_S"]
 
-#: Longest echo time accepted for a gradient-echo field map; a larger value is almost surely
-#: seconds written as milliseconds (field-map echo times are milliseconds to tens of
-#: milliseconds: common practice, no source).
-MAX_ECHO_TIME_S = 0.5
+_PHASE_UNIT_WORDS = {"rad", "radian", "radians", "deg", "degree", "degrees"}
+
+#: Longest echo time accepted for a gradient-echo field map (see fieldfix.units.PLAUSIBLE).
+MAX_ECHO_TIME_S = PLAUSIBLE["echo_times_s"].high
 
 
 @dataclass
@@ -88,11 +90,8 @@ def _sidecar_time(img: Image, key: str) -> float | None:
 def _check_argument_times(arg: list[float], n_needed: int) -> None:
     if len(arg) != n_needed:
         raise InputError(f"echo_times_s: {len(arg)} echo times given but {n_needed} are needed")
-    if any(not (t > 0) for t in arg):
-        raise InputError("echo_times_s: echo times must be positive")
-    if any(t > MAX_ECHO_TIME_S for t in arg):
-        raise InputError(f"echo_times_s: {max(arg) * 1e3:g}ms is longer than a field-map echo time can be "
-                         f"({MAX_ECHO_TIME_S * 1e3:g}ms at most); was a value in seconds written as ms?")
+    for t in arg:
+        check_plausible("echo_times_s", t)
 
 
 def resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
@@ -132,19 +131,28 @@ def resolve_echo_times(argument, sidecar_times, sources, n_needed, win):
                         "(echo_times_win: arguments or sidecar)", where)
 
 
-def read_phase(img: Image, units, report: list) -> np.ndarray:
+def read_phase(img: Image, units, report: list, delta_te_s: float | None = None) -> np.ndarray:
+    """Phase in radians; units given, named by the sidecar, or detected (physically, for a difference).
+
+    With `delta_te_s` (a phase difference) a given or sidecar unit is checked against the field it
+    implies (:func:`fieldfix.phase.check_given_phase_units`).
+    """
     values = img.get_fdata(np.float64)
     if not np.all(np.isfinite(values)):
         raise InputError("phase image contains NaN or infinite values", img.path)
-    if units is None:
-        try:
-            unit = detect_phase_units(values)
-        except FieldfixError as err:
-            raise type(err)(err.message, img.path) from None
-        source = unit.reason
-    else:
-        unit = lookup_phase_units(units)
-        source = "given"
+    side = img.sidecar.get("Units")
+    side = side if isinstance(side, str) and side.strip().lower() in _PHASE_UNIT_WORDS else None
+    try:
+        if units is None and side is None:
+            unit = detect_phase_units(values, delta_te_s=delta_te_s)
+            source = unit.reason
+        else:
+            unit = lookup_phase_units(units if units is not None else side)
+            source = "given" if units is not None else "the sidecar's Units"
+            if delta_te_s:
+                check_given_phase_units(values, unit, delta_te_s)
+    except FieldfixError as err:
+        raise type(err)(err.message, img.path) from None
     report.append(PhaseUnitsRecord(path=str(img.path), units=unit.name, how=source))
     return phase_to_radians(values, unit)
 
@@ -208,7 +216,7 @@ def _read_phase_difference(s) -> FieldMapData:
         side = [_sidecar_time(mag_imgs[0], "EchoTime"), _sidecar_time(mag_imgs[1], "EchoTime")]
     tes, source = resolve_echo_times(s.echo_times_s, side, [s.phase_diff, s.phase_diff], 2, s.echo_times_win)
     report: list = []
-    dphi = read_phase(pd_img, s.phase_units, report)
+    dphi = read_phase(pd_img, s.phase_units, report, delta_te_s=abs(tes[1] - tes[0]) or None)
     t1, t2 = tes
     if t2 < t1:
         raise MetadataError(f"EchoTime2 ({t2 * 1e3:g} ms) is shorter than EchoTime1 ({t1 * 1e3:g} ms); the phase "

@@ -72,7 +72,7 @@ def _ensure_dataset(scenario: str, root: Path, seed: int = 0) -> tuple[dict, boo
         # Only a folder that holds an earlier generation (it has a manifest) is rebuilt in place.
         if not (root / scenarios.TRUTH_DIR / "manifest.json").is_file():
             raise OutputError("the dataset folder holds files that are not a generated scenario", root)
-    with output_folder(root):
+    with output_folder(root, raw_dataset=True):
         scenarios.generate_scenario(definition, root, seed=seed, overwrite=True)
     return scenarios.load_manifest(root), True
 

@@ -19,6 +19,7 @@ Research software, not a medical device: predicted maps are a planning aid.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -31,6 +32,9 @@ from ..io import Image, Provenance, load_image, output_paths_guard, save_image, 
 from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..shift import resolve_timing
+from ._b0 import read_field_hz
+from ._run_checks import find_b0_mask
+from ..units import PLAUSIBLE, check_plausible
 from ..outputs import (
     CAUTION,
     DropoutFiles,
@@ -45,7 +49,7 @@ from ..outputs import (
 __all__ = ["run_dropout", "DropoutSettings", "load_mask_on_grid", "CAUTION", "MAX_TE_S"]
 
 #: Longest echo time accepted (s); longer values are almost always a unit mistake.
-MAX_TE_S = 0.5
+MAX_TE_S = PLAUSIBLE["te_s"].high
 
 _DESCRIPTIONS = {"retention": "through-plane signal retention at the nominal TE",
                  "bold_sensitivity": "BOLD sensitivity: retention at the local echo time x TE'/TE"}
@@ -79,9 +83,16 @@ class DropoutSettings:
         Fraction of k-space acquired along the phase-encode axis; default: the EPI sidecar's
         ``PartialFourier``, else 1.
     mask : path, optional
-        Brain mask: statistics inside it, maps set to 0 outside.
+        Mask of the statistics (maps set to 0 outside); default: the field map's mask
+        (``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz``), else the non-zero B0 voxels.
     threshold : float
         Level under which a voxel counts as lost in the statistics.
+    b0_units : str, optional
+        Units of the B0 map (Hz, rad/s, ppm, T); default: its sidecar's ``Units``, else Hz.
+    field_strength_t : float, optional
+        For a map in ppm; default: the sidecar's ``MagneticFieldStrength``.
+
+    The plausible ranges of the quantities are those of :data:`fieldfix.units.PLAUSIBLE`.
     """
 
     te_s: float | None = None
@@ -97,16 +108,16 @@ class DropoutSettings:
     partial_fourier: float | None = None
     mask: object = None
     threshold: float = 0.5
+    b0_units: str | None = None
+    field_strength_t: float | None = None
 
     def check(self) -> None:
-        if self.te_s is None or not self.te_s > 0:
-            raise InputError(f"the echo time must be positive, got {self.te_s}", parameter="te_s")
-        if self.te_s > MAX_TE_S:
-            raise InputError(f"echo time {self.te_s:g} s is implausible for a gradient-echo protocol (at most "
-                             f"{MAX_TE_S:g} s); check the unit", parameter="te_s")
-        if self.thickness_mm is None or not self.thickness_mm > 0:
-            raise InputError(f"the slice thickness must be positive, got {self.thickness_mm}",
-                             parameter="thickness_mm")
+        check_plausible("te_s", self.te_s)
+        check_plausible("thickness_mm", self.thickness_mm)
+        check_plausible("tilt_deg", self.tilt_deg)
+        check_plausible("zshim_mtms_per_m", self.zshim_mtms_per_m)
+        if self.echo_spacing_s is not None:
+            check_plausible("echo_spacing_s", self.echo_spacing_s)
         if self.profile not in PROFILES:
             raise InputError(f"unknown slice profile {self.profile!r}; use one of {', '.join(PROFILES)}",
                              parameter="profile")
@@ -118,6 +129,11 @@ def load_mask_on_grid(path, shape, affine, *, what: str = "mask") -> np.ndarray:
     data = image.get_fdata(np.float32)
     if not np.isfinite(data).all():
         raise InputError(f"the {what} contains non-finite values", path)
+    values = np.unique(data)
+    if values.size > 2 or not np.all(np.isin(values, (0.0, 1.0))):
+        shown = ", ".join(f"{v:g}" for v in values[:6]) + (", ..." if values.size > 6 else "")
+        raise InputError(f"the {what} is not a binary mask (values {shown}; a mask holds 0 and 1 only: a label "
+                         "image needs its label chosen, a probability map a threshold)", path)
     if not (data > 0.5).any():
         raise InputError(f"the {what} is empty (no voxel above 0.5)", path)
     if same_grid(image.shape, image.affine, shape, affine):
@@ -226,10 +242,11 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
     job, s = job_and_settings(job, DropoutSettings, settings, changes)
     s.check()
     b0_path = Path(b0_path)
-    inputs = [Path(p) for p in (b0_path, s.like, s.mask) if p is not None]
+    mask_path = find_b0_mask(b0_path, s.mask)
+    inputs = [Path(p) for p in (b0_path, s.like, mask_path) if p is not None]
     with output_folder(job.out_dir):
         b0_img = load_image(b0_path, ndim=(3,))
-        b0 = b0_img.get_fdata(np.float64)
+        b0, b0_units = read_field_hz(b0_img, s.b0_units, s.field_strength_t, finite_everywhere=False)
         like = load_image(s.like, ndim=(3, 4)) if s.like is not None else None
         if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, b0_img.affine) == 0.0:
             raise GeometryError("the EPI image does not overlap the B0 map; check that both are in the same "
@@ -238,12 +255,13 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
         on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, b0_img.affine)
         files = DropoutFiles.named(job.tag, bold=geometry.pe_code is not None, on_epi=on_epi)
         output_paths_guard(files.guarded(job.out_dir), inputs, job.overwrite)
-        mask = load_mask_on_grid(s.mask, b0.shape, b0_img.affine, what="brain mask") if s.mask is not None \
+        mask = load_mask_on_grid(mask_path, b0.shape, b0_img.affine, what="mask") if mask_path is not None \
             else np.isfinite(b0) & (b0 != 0)
         if not np.isfinite(b0[mask]).all():
             raise InputError("the B0 map has non-finite values inside the mask", b0_path)
         b0 = np.where(np.isfinite(b0), b0, 0.0)
-        summary = _predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs)
+        summary = dataclasses.replace(_predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs),
+                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask))
         write_json(job.path(files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
@@ -282,6 +300,13 @@ def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: Dropo
         pe_direction_world=pe_world_direction(geometry.pe_code, geometry.source.affine) if bold else None,
         percent_echo_lost=float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
         if bold else None)
+
+
+def _mask_words(mask_path, given) -> str:
+    """Which mask the statistics are over (every summary names it)."""
+    if mask_path is None:
+        return "non-zero B0 voxels (no mask given and none beside the B0 map)"
+    return str(mask_path) if given is not None else f"{mask_path} (the field map's mask, found beside it)"
 
 
 def _profile_fields(profile) -> dict:

@@ -35,7 +35,7 @@ it, before it is used for any decision about a person.
 
 from __future__ import annotations
 
-import math
+import dataclasses
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -50,7 +50,9 @@ from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..outputs import CAUTION, FieldMapFiles, FieldMapSummary, JobOptions, PairRecord, job_and_settings
 from ..phase import phase_units as lookup_phase_units
+from ..units import check_plausible
 from ..unwrap import METHODS
+from ._b0 import field_strength_from
 from ._fieldmap_inputs import READERS, FieldMapData, as_list, input_paths, read_magnitude, read_mask
 
 __all__ = ["run_fieldmap", "FieldMapSettings", "CAUTION"]
@@ -143,13 +145,9 @@ class FieldMapSettings:
         if self.unwrap_method not in METHODS:
             raise InputError(f"unknown unwrap method {self.unwrap_method!r}; choose {' or '.join(METHODS)}",
                              parameter="unwrap_method")
-        if self.smooth_mm is None or self.smooth_mm < 0 or not math.isfinite(self.smooth_mm):
-            raise InputError(f"smoothing width must be zero or positive, got {self.smooth_mm}", parameter="smooth_mm")
-        if "ppm" in self.also_units and not self.field_strength_t:
-            raise InputError("ppm output needs the field strength (for example 3T)", parameter="field_strength_t")
-        if self.field_strength_t is not None and not (self.field_strength_t > 0):
-            raise InputError(f"field strength must be positive, got {self.field_strength_t}",
-                             parameter="field_strength_t")
+        check_plausible("smooth_mm", self.smooth_mm)
+        if self.field_strength_t is not None:
+            check_plausible("field_strength_t", self.field_strength_t)
         for name in ("echo_times_win", "epi_win"):
             if getattr(self, name) not in (None, "arguments", "sidecar"):
                 raise InputError("must be 'arguments' or 'sidecar'", parameter=name)
@@ -202,6 +200,7 @@ def run_fieldmap(job: JobOptions | str, settings: FieldMapSettings | None = None
         steps = progress_bar(total=4, desc="fieldmap", enabled=job.progress, unit="step")
         try:
             data = READERS[kind](s)
+            s = _with_field_strength(s, data)
             mask = read_mask(s.mask, data.reference)
             steps.update(1)
             result = _compute(kind, data, s, mask)
@@ -214,6 +213,19 @@ def run_fieldmap(job: JobOptions | str, settings: FieldMapSettings | None = None
         finally:
             steps.close()
     return summary
+
+
+def _with_field_strength(s: FieldMapSettings, data: FieldMapData) -> FieldMapSettings:
+    """The field strength given, else from the images' sidecars (MagneticFieldStrength); ppm needs it."""
+    field_t = s.field_strength_t
+    for image in [data.reference, *data.magnitudes]:
+        if field_t is None:
+            field_t = field_strength_from(image, None)
+    needs = "ppm" in s.also_units or str(data.b0_units or "").strip().lower() == "ppm"
+    if needs and field_t is None:
+        raise InputError("a map in ppm needs the field strength: give it (for example 3T) or add "
+                         "MagneticFieldStrength to the sidecar", parameter="field_strength_t")
+    return dataclasses.replace(s, field_strength_t=field_t)
 
 
 def _compute(kind: str, data: FieldMapData, s: FieldMapSettings, mask) -> FieldMapResult:

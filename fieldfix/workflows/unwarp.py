@@ -22,6 +22,7 @@ for any decision about a person.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -35,10 +36,10 @@ from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..outputs import CAUTION, CombinedFiles, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
 from ..shift import DEFAULT_JACOBIAN_FLOOR, Timing, displacement_field_mm, resolve_timing, shift_summary
+from ..units import check_plausible
 from ..unwarp import INTERPOLATIONS, ShiftMaps, apply_tables, build_tables, shift_maps
 from ._run_checks import (
     MAX_SHIFT_FOV_FRACTION,
-    b0_values,
     check_recon_matrix,
     ShiftCheck,
     check_shift_size,
@@ -47,6 +48,7 @@ from ._run_checks import (
     resolve_pe_code,
     signal_mask,
 )
+from ._b0 import read_field_hz
 from ._combine import check_combinable, write_combined_run
 from ._stream import write_corrected_run
 
@@ -86,6 +88,11 @@ class UnwarpSettings:
         the phase-encode axis (the guard against unit and timing mistakes).
     parallel : bool
         Run the kernel on all numba threads; False when several jobs share the cores.
+    b0_units : str, optional
+        Units of the B0 map (Hz, rad/s, ppm, T); default: its sidecar's ``Units``, else Hz. A
+        phase image is refused.
+    field_strength_t : float, optional
+        For a map in ppm; default: the sidecar's ``MagneticFieldStrength``.
     combine_polarities : bool
         With exactly two runs of opposite polarity on one grid, also write one run restored
         jointly from both (``<tag><first stem>_combined.nii.gz``, see
@@ -103,8 +110,13 @@ class UnwarpSettings:
     force: bool = False
     parallel: bool = True
     combine_polarities: bool = False
+    b0_units: str | None = None
+    field_strength_t: float | None = None
 
     def check(self) -> None:
+        for name in ("readout_time_s", "echo_spacing_s"):
+            if getattr(self, name) is not None:
+                check_plausible(name, getattr(self, name))
         if self.interp not in INTERPOLATIONS:
             raise InputError(f"unknown interpolation {self.interp!r}; choose one of {', '.join(INTERPOLATIONS)}",
                              parameter="interp")
@@ -175,7 +187,7 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
     b0_path = Path(b0_path)
     with output_folder(job.out_dir):
         b0 = load_image(b0_path, ndim=(3,))
-        field_hz = b0_values(b0)
+        field_hz, b0_units = read_field_hz(b0, s.b0_units, s.field_strength_t)
         mask_path = find_b0_mask(b0_path, s.b0_mask)
         mask_values = _read_mask(mask_path, field_hz.shape)
         runs = [load_image(p, ndim=(3, 4)) for p in run_paths]
@@ -189,7 +201,7 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
         plans = [_plan_run(image, f, s, b0, field_hz, mask_values) for image, f in zip(runs, files)]
         if s.combine_polarities:
             check_combinable(plans)
-        summaries = [_unwarp_one(plan, b0, mask_path, job, s, inputs) for plan in plans]
+        summaries = [_unwarp_one(plan, b0, mask_path, job, s, inputs, b0_units) for plan in plans]
         if s.combine_polarities:
             parameters = {"runs": [str(p.image.path) for p in plans], "pe_codes": [p.pe_code for p in plans]}
             write_combined_run(plans, job, inputs, Provenance(job.command, parameters, inputs))
@@ -246,7 +258,8 @@ def _parameters(plan: _RunPlan, s: UnwarpSettings) -> dict:
             "jacobian_floor": float(s.jacobian_floor), "force": bool(s.force)}
 
 
-def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: UnwarpSettings, inputs) -> UnwarpSummary:
+def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: UnwarpSettings, inputs,
+                b0_units: str) -> UnwarpSummary:
     image, maps = plan.image, plan.maps
     affine = image.affine
     # NIfTI volumes come Fortran-ordered from nibabel and are written the same way.
@@ -263,7 +276,7 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     displacement = displacement_field_mm(maps.shift_vox, maps.pe_axis, affine)
     save_image(job.path(plan.files.displacement_mm), displacement[:, :, :, None, :], affine,
                intent=NIFTI_INTENT_DISPVECT, **common)
-    summary = _summary(plan, b0, mask_path, s, n_volumes)
+    summary = dataclasses.replace(_summary(plan, b0, mask_path, s, n_volumes), b0_units=b0_units)
     write_json(job.path(plan.files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
