@@ -20,7 +20,7 @@ from scipy import ndimage
 
 from ..errors import InputError
 from ..outputs import PlanChoice, ReportDropout, ReportFieldMap, ReportPlan
-from .figures.panels import pick_slices
+from .figures.panels import pick_slices, worst_slices
 from .orientation import DisplayGrid
 from .stats import mask_coverage, symmetric_limit
 
@@ -153,7 +153,7 @@ def measure_dropout(found) -> tuple[ReportDropout, DropoutView | None]:
         shown = [(label, grid.show(values)) for label, values in maps]
         mask_shown = grid.show(mask) if mask is not None else None
         lost = (shown[0][1] < s.parameters.threshold) & (mask_shown if mask_shown is not None else True)
-        slices = pick_slices(mask_shown, 4, focus=lost, n_z=shown[0][1].shape[2], count=True)
+        slices = worst_slices(lost, mask_shown, 4)
         view = DropoutView(grid, shown, mask_shown, slices, s.parameters.threshold)
     record = ReportDropout(name=found.name, subject=found.subject, parameters=s.parameters, mask=mask_name(s.mask),
                            retention=s.retention, bold_sensitivity=s.bold_sensitivity,

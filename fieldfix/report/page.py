@@ -72,9 +72,12 @@ def _field_tile(data) -> dict:
     if fms[0].get("unaliased_range_hz") is not None:
         lines.append(("beyond the unaliased range",
                       [num(data, "field_maps.0.percent_mask_beyond_unaliased_range", "{:.2f}", "% of mask")]))
+    for j, m in enumerate(data["headline"]):
+        if m["kind"] == "truth_b0_error":
+            lines.append((f"{m['label']} ({m['region']})", [num(data, f"headline.{j}.after", "{:.2f}", m["unit"])]))
     coverage = fms[0].get("mask_coverage")
-    bad = bool(beyond) or (coverage is not None and coverage < 0.7)
-    return _tile(state="bad" if bad else "ok", lines=lines, more=len(fms) - 1)
+    look = bool(beyond) or (coverage is not None and coverage < 0.7)
+    return _tile(state="look" if look else "ok", lines=lines, more=len(fms) - 1)
 
 
 def _correction_tile(data) -> dict:
@@ -113,7 +116,8 @@ def _loss_tile(data) -> dict:
 
 def _suspicious_tile(data) -> dict:
     warnings = data["warnings"]
-    return _tile(state="bad" if warnings else "ok", count=len(warnings),
+    state = "bad" if any(w["code"] == "edges_worse" for w in warnings) else ("look" if warnings else "ok")
+    return _tile(state=state, count=len(warnings),
                  first=[f"{w['where']}: {w['message']}" for w in warnings[:2]])
 
 
@@ -144,7 +148,11 @@ def _sections(data, pictures) -> dict:
     dropout = []
     for i, drop in enumerate(data["dropout"]):
         protocol, stats = dropout_facts(data, i)
-        dropout.append({"data": drop, "protocol": protocol, "stats": stats, "grid": pictures.dropout_grids[i]})
+        q = f"dropout.{i}.parameters"
+        headline = [num(data, f"{q}.te_s", "TE {:.1f}", "ms", 1000.0),
+                    num(data, f"{q}.thickness_mm", "{:g}", "mm slices"), num(data, f"{q}.tilt_deg", "tilt {:g}", "\u00b0")]
+        dropout.append({"data": drop, "headline": headline, "protocol": protocol, "stats": stats,
+                        "grid": pictures.dropout_grids[i]})
     plans = [{"data": plan, "facts": plan_facts(data, i), "table": plan_table(data, i),
               "picture": pictures.plans[i]} for i, plan in enumerate(data["plans"])]
     return {"field_maps": field_maps, "runs": runs, "dropout": dropout, "plans": plans}

@@ -17,6 +17,7 @@ from .figures import _style
 from .figures.charts import field_histogram, profile_figure, tradeoff_figure
 from .figures.paper import PaperPanel, summary_figure
 from .figures.panels import Layers, Scale, colourbar_png, panel_png, pick_slices
+from .view import METRIC_WORDS
 
 __all__ = ["Panel", "GridRow", "PanelGrid", "Picture", "run_grid", "field_grid", "dropout_grid", "field_picture",
            "profile_picture", "plan_picture", "paper_panels"]
@@ -156,8 +157,8 @@ def dropout_grid(view, index: int, name: str, dpi: int) -> PanelGrid:
         panels = [_panel(view.grid, values, k, scale, Layers(mask=view.mask),
                          f"{label}, {name}, {view.grid.slice_label(k)}", dpi) for k in view.slices]
         rows.append(GridRow(label, panels, colourbar_png(scale, dpi=dpi)))
-    caption = (f"The slices include the one with the most voxels under {view.threshold:g} (fraction of signal); "
-               "dark: outside the mask the job used.")
+    caption = (f"The slices with the most voxels under {view.threshold:g} (fraction of signal), at least two slices "
+               "apart; dark: outside the mask the job used.")
     return PanelGrid(id=f"dropout{index}", headers=[], column_bars=[], rows=rows, caption=caption)
 
 
@@ -175,7 +176,8 @@ def plan_picture(view, record, index: int, dpi: int) -> Picture | None:
         return None
     fig = tradeoff_figure(view.rows, recommended=view.recommended)
     return Picture(id=f"plan{index}", png=_style.figure_png(fig, dpi=dpi), alt="protocol trade-offs",
-                   caption=f"Predicted median {record.metric.replace('_', ' ')} in the region of interest for "
+                   caption=f"Predicted median {METRIC_WORDS.get(record.metric, record.metric)} in the region of "
+                           f"interest for "
                            f"{record.protocols} protocols (ringed: the recommended one).")
 
 

@@ -24,6 +24,8 @@ __all__ = ["Num", "Text", "num", "lookup", "format_number", "field_map_facts", "
            "plan_facts", "plan_table", "MISSING"]
 
 MISSING = "n/a"
+#: How a plan's metric is named on the page.
+METRIC_WORDS = {"bold_sensitivity": "BOLD sensitivity", "retention": "through-plane retention"}
 
 
 def lookup(data, key: str):
@@ -112,28 +114,29 @@ def text(data, key: str) -> Text:
     return Text(MISSING if value is None else str(value), key)
 
 
-def field_map_facts(data, i: int) -> list[tuple[str, object]]:
-    """(label, cell) rows of a field map, in the order a physicist checks them."""
+def field_map_facts(data, i: int) -> list[tuple[str, list[tuple[str, object]]]]:
+    """Groups of (label, cell) rows of a field map: the field, its measurement, mask and processing."""
     p = f"field_maps.{i}"
-    rows = [("1st percentile of the field", num(data, f"{p}.field_percentiles_hz.p1", "{:+.1f}", "Hz")),
-            ("Median field", num(data, f"{p}.field_percentiles_hz.p50", "{:+.1f}", "Hz")),
-            ("99th percentile of the field", num(data, f"{p}.field_percentiles_hz.p99", "{:+.1f}", "Hz")),
-            ("Mean field", num(data, f"{p}.field_mean_hz", "{:+.1f}", "Hz")),
-            ("Unaliased range", num(data, f"{p}.unaliased_range_hz", "\u00b1{:.1f}", "Hz")),
-            ("Mask beyond the unaliased range", num(data, f"{p}.percent_mask_beyond_unaliased_range", "{:.2f}",
-                                                    "% of mask")),
-            ("Echo times", num(data, f"{p}.echo_times_s", "{:.2f}", "ms", 1000.0)),
-            ("Echo-time difference", num(data, f"{p}.delta_te_s", "{:.2f}", "ms", 1000.0)),
-            ("Input", text(data, f"{p}.input_kind")),
-            ("Phase units", Text("; ".join(lookup(data, f"{p}.phase_units") or []) or MISSING)),
-            ("Mask", text(data, f"{p}.mask_source")),
-            ("Mask volume", num(data, f"{p}.mask_volume_ml", "{:.1f}", "ml")),
-            ("Mask coverage of the bright magnitude", num(data, f"{p}.mask_coverage", "{:.0f}", "% (Otsu)", 100.0)),
-            ("Voxels whose 2\u03c0 offset changed", num(data, f"{p}.voxels_offset_changed", "{:d}", "voxels")),
-            ("Outlier voxels replaced", num(data, f"{p}.outlier_voxels", "{:d}", "voxels")),
-            ("Smoothing", num(data, f"{p}.smooth_fwhm_mm", "{:g}", "mm FWHM")),
-            ("Field strength", num(data, f"{p}.field_strength_t", "{:g}", "T"))]
-    return rows
+    field = [("1st percentile", num(data, f"{p}.field_percentiles_hz.p1", "{:+.1f}", "Hz")),
+             ("Median", num(data, f"{p}.field_percentiles_hz.p50", "{:+.1f}", "Hz")),
+             ("99th percentile", num(data, f"{p}.field_percentiles_hz.p99", "{:+.1f}", "Hz")),
+             ("Mean", num(data, f"{p}.field_mean_hz", "{:+.1f}", "Hz")),
+             ("Unaliased range", num(data, f"{p}.unaliased_range_hz", "\u00b1{:.1f}", "Hz")),
+             ("Beyond the unaliased range", num(data, f"{p}.percent_mask_beyond_unaliased_range", "{:.2f}",
+                                                "% of mask"))]
+    measured = [("Input", text(data, f"{p}.input_kind")),
+                ("Echo times", num(data, f"{p}.echo_times_s", "{:.2f}", "ms", 1000.0)),
+                ("Echo-time difference", num(data, f"{p}.delta_te_s", "{:.2f}", "ms", 1000.0)),
+                ("Phase units", Text("; ".join(lookup(data, f"{p}.phase_units") or []) or MISSING)),
+                ("Field strength", num(data, f"{p}.field_strength_t", "{:g}", "T"))]
+    processing = [("Mask", text(data, f"{p}.mask_source")),
+                  ("Mask volume", num(data, f"{p}.mask_volume_ml", "{:.1f}", "ml")),
+                  ("Mask coverage of the bright magnitude",
+                   num(data, f"{p}.mask_coverage", "{:.0f}", "% (Otsu)", 100.0)),
+                  ("Voxels whose 2\u03c0 offset changed", num(data, f"{p}.voxels_offset_changed", "{:d}", "voxels")),
+                  ("Outlier voxels replaced", num(data, f"{p}.outlier_voxels", "{:d}", "voxels")),
+                  ("Smoothing", num(data, f"{p}.smooth_fwhm_mm", "{:g}", "mm FWHM"))]
+    return [("Field inside the mask", field), ("Measurement", measured), ("Mask and processing", processing)]
 
 
 def run_facts(data, i: int) -> list[tuple[str, list[tuple[str, object]]]]:
@@ -213,7 +216,7 @@ def plan_facts(data, i: int) -> tuple[list, list]:
             ("Region of interest", num(data, f"{p}.roi_voxels", "{:d}", "voxels")),
             ("Whole-brain statistics inside", text(data, f"{p}.brain_mask")),
             ("Protocols compared", num(data, f"{p}.protocols", "{:d}", "protocols")),
-            ("Ranked by", Text(str(lookup(data, f"{p}.metric") or MISSING).replace("_", " ")))]
+            ("Ranked by", Text(METRIC_WORDS.get(lookup(data, f"{p}.metric"), MISSING)))]
     fixed = []
     for key, (label, fmt, unit, scale) in _PLAN_FIXED.items():
         if key in (lookup(data, f"{p}.fixed") or {}):

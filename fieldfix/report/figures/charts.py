@@ -46,8 +46,9 @@ def field_histogram(field_hz: np.ndarray, *, limit_hz: float, unaliased_hz: floa
         for side in (-1, 1):
             ax.axvline(side * unaliased_hz, color=LINE_COLOURS[1], lw=1.2, ls="--")
     ax.set_xlim(-span, span)
+    ax.set_yscale("log")
     ax.set_xlabel("field (Hz)", fontsize=8.5)
-    ax.set_ylabel("voxels", fontsize=8.5)
+    ax.set_ylabel("voxels (log scale)", fontsize=8.5)
     ax.set_title("Field inside the mask (shaded: 1st to 99th percentile)", fontsize=9, loc="left")
     _tidy(ax)
     return fig

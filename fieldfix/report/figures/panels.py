@@ -29,7 +29,7 @@ from ..orientation import DisplayGrid
 from ._style import BACKGROUND, EDGE_COLOUR, FOLD_COLOUR, PROFILE_COLOUR, colormap, figure_png, new_figure
 
 __all__ = ["Scale", "Layers", "panel_rgba", "draw_axial", "panel_figure", "panel_png", "colourbar_png",
-           "reference_edges", "pick_slices", "PANEL_PX", "EDGE_UPSAMPLE"]
+           "reference_edges", "pick_slices", "worst_slices", "PANEL_PX", "EDGE_UPSAMPLE"]
 
 PANEL_WIDTH_IN = 2.3
 #: Width of a page panel in pixels at 100 dpi (scaled with the resolution).
@@ -108,6 +108,30 @@ def pick_slices(mask_display: np.ndarray | None, n_slices: int, *, focus: np.nda
             if peak not in chosen:
                 chosen[min(range(len(chosen)), key=lambda n: abs(chosen[n] - peak))] = peak
     return sorted(set(chosen))
+
+
+def worst_slices(flag_display: np.ndarray, mask_display: np.ndarray | None, n_slices: int, *,
+                 spacing: int = 2) -> list[int]:
+    """The display slices where `flag_display` (display order) is true most often, at least
+    `spacing` slices apart, completed by slices spread over the mask when too few are flagged.
+
+    Examples
+    --------
+    >>> flag = np.zeros((3, 3, 12), bool); flag[:, :, 3] = flag[0, :, 4] = flag[0, 0, 9] = True
+    >>> worst_slices(flag, None, 2)
+    [3, 9]
+    """
+    counts = np.asarray(flag_display, bool).sum(axis=(0, 1))
+    chosen: list[int] = []
+    for k in np.argsort(-counts, kind="stable"):
+        if counts[k] == 0 or len(chosen) == n_slices:
+            break
+        if all(abs(int(k) - c) >= spacing for c in chosen):
+            chosen.append(int(k))
+    for k in pick_slices(mask_display, n_slices, n_z=len(counts)):
+        if len(chosen) < n_slices and all(abs(k - c) >= spacing for c in chosen):
+            chosen.append(k)
+    return sorted(chosen)
 
 
 def reference_edges(reference_display: np.ndarray, k: int, upsample: int = EDGE_UPSAMPLE) -> np.ndarray:
