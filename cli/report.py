@@ -11,11 +11,14 @@ HELP = ("build a self-contained HTML quality report (plus a summary PNG and JSON
 OUT_REQUIRED = False
 
 
-def _default_folder(sources):
-    from pathlib import Path
+def _source(args):
+    return args.sources[0] if len(args.sources) == 1 else list(args.sources)
 
-    first = Path(sources[0])
-    return first if first.is_dir() else first.parent
+
+def _default_folder(args):
+    from fieldfix.report import report_files
+
+    return report_files(_source(args))[0]
 
 
 def output_root(args):
@@ -24,7 +27,7 @@ def output_root(args):
     from pathlib import Path
 
     if args.out is None:
-        return _default_folder(args.sources)
+        return _default_folder(args)
     out = Path(args.out)
     return out.parent if out.suffix.lower() in (".html", ".htm") else out
 
@@ -36,7 +39,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--title", default=None, help="page title (default: the folder name)")
     parser.epilog = (
         "Writes report.html (one file, everything inline, no network requests), report_summary.png "
-        "and report.json into --out (default: the folder, or the first summary's folder). --out may "
+        "and report.json into --out (default: the folder, or the folder holding all the summaries). --out may "
         "also name the page itself, e.g. --out qc/sub-01.html."
     )
 
@@ -45,9 +48,8 @@ def run(args) -> dict:
     from fieldfix.outputs import ReportSummary
     from fieldfix.report import build_report
 
-    source = args.sources[0] if len(args.sources) == 1 else list(args.sources)
-    out = args.out if args.out is not None else _default_folder(args.sources)
-    page = build_report(source, out, title=args.title, overwrite=args.overwrite)
+    out = args.out if args.out is not None else _default_folder(args)
+    page = build_report(_source(args), out, title=args.title, overwrite=args.overwrite)
     record = ReportSummary.read(page.with_name(page.stem + ".json"))
     return {"report": str(page), "summary_figure": str(page.with_name(record.outputs.png)),
             "numbers": str(page.with_name(record.outputs.json)),

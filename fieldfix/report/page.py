@@ -52,7 +52,9 @@ def content_security_policy(css: str, script: str) -> str:
 
 
 def _tile(**fields) -> dict:
-    return {"state": "none", "lines": [], "empty": None, "more": 0, "item": None, "count": 0, "first": [], **fields}
+    tile = {"state": "none", "lines": [], "empty": None, "more": 0, "item": None, "count": 0, "first": [], **fields}
+    tile.setdefault("linked", tile["empty"] is None)
+    return tile
 
 
 def _state(measure) -> str:
@@ -86,7 +88,7 @@ def _correction_tile(data) -> dict:
     if not data["runs"]:
         return _tile(empty="no unwarped run in this report")
     if first is None:
-        return _tile(empty="no anatomy reference: edge agreement not measured")
+        return _tile(empty="no anatomy reference: edge agreement not measured", linked=True)
     i, m = first
     lines = [(m["label"], [num(data, f"headline.{i}.before", "{:.3f}", m["unit"]),
                            num(data, f"headline.{i}.after", "{:.3f}", m["unit"]),
