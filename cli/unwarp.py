@@ -95,9 +95,13 @@ def run(args) -> dict:
 
         result["combined"] = str(job.path(CombinedFiles.named(image_stem(args.runs[0]), job.tag).corrected))
     if not args.no_report:
-        from fieldfix.report import build_report
+        from fieldfix.report import build_report, field_map_summary_beside, summary_paths
 
+        sources = summary_paths(args.out)
+        beside = field_map_summary_beside(args.b0)  # the field map the runs were corrected with
+        if beside is not None and all(p.resolve() != beside.resolve() for p in sources):
+            sources.append(beside)
         target = Path(args.out) / f"{job.tag}report.html"
-        result["report"] = str(build_report(args.out, out_path=target, overwrite=args.overwrite))
+        result["report"] = str(build_report(sources, target, overwrite=args.overwrite))
     result["caution"] = summaries[0].caution
     return result

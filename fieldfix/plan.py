@@ -373,17 +373,10 @@ def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0
 
 # --------------------------------------------------------------------------- figure
 
-_PALETTE = ("#264653", "#2a9d8f", "#e9c46a", "#f4a261", "#e76f51", "#8d5a97", "#6a994e", "#577590")
-
 
 def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = None, title: str | None = None):
-    """Trade-off figure of a sweep: ROI metric against tilt, echo time and TR.
-
-    Three panels: (a) ROI median against tilt and (b) against echo time, one line per
-    slice thickness at the recommended protocol's other settings; (c) every protocol's
-    ROI median against its shortest TR, coloured by thickness, triangle markers by
-    phase-encode polarity, the recommended protocol ringed. Uses matplotlib's Agg canvas
-    directly (no global backend change); imported only when called.
+    """Trade-off figure of a sweep (:func:`fieldfix.report.figures.tradeoff_figure`), written
+    as a PNG to `path` when given.
 
     Parameters
     ----------
@@ -398,58 +391,9 @@ def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = No
     -------
     matplotlib.figure.Figure
     """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+    from .report.figures import tradeoff_figure
 
-    if not rows:
-        raise InputError("no protocols to plot")
-    rec = recommended or rows[0]
-    metric = "BOLD sensitivity" if rec["metric"] == "bold_sensitivity" else "retention"
-    thicknesses = sorted({r["thickness_mm"] for r in rows})
-    colour = {d: _PALETTE[i % len(_PALETTE)] for i, d in enumerate(thicknesses)}
-
-    fig = Figure(figsize=(12.0, 4.2), dpi=100)
-    FigureCanvasAgg(fig)
-    axes = fig.subplots(1, 3)
-
-    def same(r, keys):
-        return all(r[k] == rec[k] for k in keys)
-
-    for ax, xkey, others, xlabel in (
-        (axes[0], "tilt_deg", ("te_s", "pe_sign", "zshim_mtms_per_m"), "slice tilt (deg)"),
-        (axes[1], "te_ms", ("tilt_deg", "pe_sign", "zshim_mtms_per_m"), "echo time (ms)"),
-    ):
-        for d in thicknesses:
-            sel = sorted((r for r in rows if r["thickness_mm"] == d and same(r, others)), key=lambda r: r[xkey])
-            if sel:
-                ax.plot([r[xkey] for r in sel], [r["roi_median"] for r in sel], "-o", color=colour[d], ms=3.5,
-                        lw=1.6, label=f"{d:g} mm")
-        ax.axvline(rec[xkey], color="#999999", lw=0.8, ls=":")
-        ax.set_xlabel(xlabel)
-        ax.set_ylabel(f"ROI median {metric}")
-        ax.grid(True, color="#e6e6e6", lw=0.6)
-    axes[0].legend(title="thickness", fontsize=8, title_fontsize=8, frameon=False)
-    axes[0].set_title("(a) against tilt", loc="left", fontsize=10)
-    axes[1].set_title("(b) against echo time", loc="left", fontsize=10)
-
-    ax = axes[2]
-    for sign, marker in ((1, "^"), (-1, "v"), (0, "o")):
-        for d in thicknesses:
-            sel = [r for r in rows if r["thickness_mm"] == d and r["pe_sign"] == sign]
-            if sel:
-                ax.scatter([r["tr_s"] for r in sel], [r["roi_median"] for r in sel], s=14, marker=marker,
-                           color=colour[d], alpha=0.7, linewidths=0)
-    ax.scatter([rec["tr_s"]], [rec["roi_median"]], s=140, facecolors="none", edgecolors="#111111", linewidths=1.4)
-    ax.annotate("recommended", (rec["tr_s"], rec["roi_median"]), xytext=(8, -14), textcoords="offset points",
-                fontsize=8)
-    ax.set_xlabel("shortest TR (s)")
-    ax.set_ylabel(f"ROI median {metric}")
-    ax.set_title("(c) every protocol (\u25b2 PE +, \u25bc PE \u2212)", loc="left", fontsize=10)
-    ax.grid(True, color="#e6e6e6", lw=0.6)
-    fig.suptitle(title or f"Protocol trade-offs; recommended: {rec['protocol']}", fontsize=11)
-    fig.text(0.995, 0.005, "fieldfix prediction for planning; research software, not a medical device",
-             ha="right", va="bottom", fontsize=7, color="#777777")
-    fig.tight_layout(rect=(0, 0.02, 1, 0.95))
+    fig = tradeoff_figure(rows, recommended=recommended, title=title)
     if path is not None:
         fig.savefig(str(path), dpi=100)
     return fig

@@ -1,9 +1,9 @@
-"""Small synthetic output folders for the report tests (invented data, written with fieldfix.io).
+"""Small synthetic studies for the report tests (invented data), run through the real jobs.
 
-The folder mimics what the fieldmap, unwarp, dropout and plan workflows leave behind:
-an anatomy-like magnitude image, a smooth B0 bump in front of it, an EPI run distorted by
-that bump along j (the phase-encode axis) and a "corrected" run. Values are chosen so that
-the expected numbers can be computed independently in the tests.
+An anatomy-like magnitude image, a smooth B0 bump in front of it, an EPI run distorted by
+that bump along j (the phase-encode axis, code "j-") through the project's forward model,
+then the real field-map (from a wrapped phase difference), unwarping, dropout and planning jobs write their
+outputs and typed summaries into one folder, as a user's would be.
 """
 
 from __future__ import annotations
@@ -14,13 +14,13 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage
 
-from fieldfix.io import NIFTI_INTENT_DISPVECT, Provenance, save_image, write_json
+from fieldfix.io import save_image
 
 SHAPE = (24, 28, 10)
 ZOOMS_MM = (2.5, 2.5, 3.0)
 ECHO_SPACING_S = 0.0005
 PE_SIGN = -1  # code "j-"
-DELTA_TE_S = 0.00246
+ECHO_TIMES_S = (0.00492, 0.00738)  # the phase difference's echo times; unaliased range +-203.3 Hz
 
 
 def affine() -> np.ndarray:
@@ -52,118 +52,77 @@ def shift_vox_of(field: np.ndarray) -> np.ndarray:
     return PE_SIGN * field * ECHO_SPACING_S * SHAPE[1]
 
 
-def distort(image: np.ndarray, shift_vox: np.ndarray) -> np.ndarray:
-    """What an EPI acquisition shows: signal moved along j by `shift_vox`, conserving signal
-    (compression brightens), through the project's forward model."""
-    from fieldfix.unwarp import distort as forward
+def write_inputs(root: Path, *, stem: str, n_volumes: int, peak_hz: float, grid=None, pe_first: bool = False) -> dict:
+    """The raw inputs: magnitude, field (Hz), masks and the distorted run with its sidecar.
 
-    return forward(image, shift_vox, 1)
-
-
-def write_outputs(
-    root: str | Path,
-    *,
-    folded_voxels: int = 3,
-    peak_hz: float = 240.0,
-    wrong_polarity: bool = False,
-    n_volumes: int = 3,
-    with_dropout: bool = True,
-    with_plan: bool = True,
-    stem: str = "sub-01_task-rest_bold",
-) -> dict:
-    """Write a synthetic output folder `root/out` (and the raw run in `root/raw`).
-
-    Returns the expected values the tests check (independently of fieldfix.report).
+    With `pe_first`, every image is stored with its first two voxel axes swapped (and the
+    affine's columns with them): the same head, phase encoding along voxel axis 0 ("i-").
     """
-    root = Path(root)
-    out, raw = root / "out", root / "raw"
-    out.mkdir(parents=True, exist_ok=True)
+    from fieldfix.unwarp import distort
+
+    aff = affine() if grid is None else np.asarray(grid, float)
+    order = (1, 0, 2) if pe_first else (0, 1, 2)
+    if pe_first:
+        aff = aff[:, [1, 0, 2, 3]]
+    raw = root / "raw"
     raw.mkdir(parents=True, exist_ok=True)
-    aff = affine()
-    anat = anatomy()
-    mask = anat > 20.0
-    field = field_hz(peak_hz)
-    shift = shift_vox_of(field)
+    anat = np.transpose(anatomy(), order)
+    head = anat > 20.0
+    brain = head & (ndimage.binary_erosion(head, iterations=2))
+    field = np.transpose(field_hz(peak_hz), order)
+    pe_axis = 0 if pe_first else 1
+    distorted = distort(anat, np.transpose(shift_vox_of(field_hz(peak_hz)), order), pe_axis)
     rng = np.random.default_rng(7)
-
-    # Field-map outputs.
-    b0 = save_image(out / "b0_hz.nii.gz", field, aff, provenance=Provenance("synthetic", {}, []))
-    save_image(out / "b0_mask.nii.gz", mask, aff)
-    save_image(out / "b0_magnitude.nii.gz", anat, aff)
-    unaliased = 1.0 / (2.0 * DELTA_TE_S)
-    write_json(out / "b0_summary.json", {
-        "echo_times_s": [0.00492, 0.00492 + DELTA_TE_S],
-        "unaliased_range_hz": [-unaliased, unaliased],
-        "phase_units": "radians",
-        "mask_volume_ml": float(mask.sum() * np.prod(ZOOMS_MM) / 1000.0),
-    })
-
-    # The distorted run (in raw/) and the correction (in out/).
-    distorted = distort(anat, shift)
-    # A perfect correction gives the anatomy back; one with the wrong polarity doubles the distortion.
-    corrected = distort(distorted, shift) if wrong_polarity else anat.copy()
-    epi_scale = 7.0  # EPI intensities differ from the magnitude's (the measure must not care)
-    run = np.stack([epi_scale * distorted + rng.normal(0, 1.0, SHAPE) for _ in range(n_volumes)], axis=-1)
-    fixed = np.stack([epi_scale * corrected + rng.normal(0, 1.0, SHAPE) for _ in range(n_volumes)], axis=-1)
-    run_path = save_image(raw / f"{stem}.nii.gz", run, aff)
-    (raw / f"{stem}.json").write_text(json.dumps({"PhaseEncodingDirection": "j-",
+    run = np.stack([7.0 * distorted + rng.normal(0, 1.0, anat.shape) for _ in range(n_volumes)], axis=-1)
+    delta_te_s = ECHO_TIMES_S[1] - ECHO_TIMES_S[0]
+    paths = {"magnitude": save_image(raw / "magnitude.nii.gz", anat, aff),
+             "phasediff": save_image(raw / "phasediff.nii.gz", np.angle(np.exp(2j * np.pi * field * delta_te_s)), aff),
+             "head": save_image(raw / "head_mask.nii.gz", head.astype(np.uint8), aff),
+             "brain": save_image(raw / "brain_mask.nii.gz", brain.astype(np.uint8), aff),
+             "run": save_image(raw / f"{stem}.nii.gz", run, aff)}
+    roi = np.zeros(SHAPE, bool)
+    roi[8:16, 18:24, 1:5] = True
+    paths["roi"] = save_image(raw / "roi_mask.nii.gz", (np.transpose(roi, order) & head).astype(np.uint8), aff)
+    (raw / "phasediff.json").write_text(json.dumps({"EchoTime1": ECHO_TIMES_S[0], "EchoTime2": ECHO_TIMES_S[1]}))
+    (raw / f"{stem}.json").write_text(json.dumps({"PhaseEncodingDirection": "i-" if pe_first else "j-",
                                                   "EffectiveEchoSpacing": ECHO_SPACING_S}))
-    provenance = Provenance("fieldfix unwarp (synthetic)", {"phase_encoding": "j-"}, [run_path, b0])
-    save_image(out / f"{stem}_corrected.nii.gz", fixed, aff, provenance=provenance)
-    save_image(out / f"{stem}_shift_vox.nii.gz", shift, aff, provenance=provenance)
-    jac = 1.0 + np.gradient(shift, axis=1)
-    folds = np.zeros(SHAPE, bool)
-    inside = np.argwhere(mask)
-    for n in range(folded_voxels):
-        folds[tuple(inside[len(inside) // 2 + 7 * n])] = True
-    jac[folds] = -0.2
-    save_image(out / f"{stem}_jacobian.nii.gz", jac, aff)
-    save_image(out / f"{stem}_fold_mask.nii.gz", folds, aff)
-    displacement = shift[..., None] * aff[:3, 1]
-    save_image(out / f"{stem}_displacement_mm.nii.gz", displacement[:, :, :, None, :], aff,
-               intent=NIFTI_INTENT_DISPVECT)
-    readout = ECHO_SPACING_S * (SHAPE[1] - 1)
-    write_json(out / f"{stem}_unwarp.json", {
-        "timing": {"readout_time_s": readout, "echo_spacing_s": ECHO_SPACING_S, "n_pe_lines": SHAPE[1]},
-        "phase_encoding_direction": "j-",
-        "pe_voxel_size_mm": ZOOMS_MM[1],
-        "max_abs_shift_mm": float(np.abs(shift[mask]).max() * ZOOMS_MM[1]),
-    })
+    return paths
 
-    expected = {
-        "out": out,
-        "stem": stem,
-        "max_abs_shift_mm": float(np.abs(shift[mask]).max() * ZOOMS_MM[1]),
-        "percent_over_one_voxel": float(100.0 * np.mean(np.abs(shift[mask]) > 1.0)),
-        "folded_voxels": int(folded_voxels),
-        "field_max_hz": float(field[mask].max()),
-        "field_min_hz": float(field[mask].min()),
-        "field_p50_hz": float(np.percentile(field[mask], 50)),
-        "unaliased_hz": unaliased,
-        "beyond_unaliased": int(np.count_nonzero(np.abs(field[mask]) > unaliased)),
-        "mask_volume_ml": float(mask.sum() * np.prod(ZOOMS_MM) / 1000.0),
-    }
 
+def write_outputs(root: str | Path, *, peak_hz: float = 240.0, wrong_polarity: bool = False, n_volumes: int = 3,
+                  with_dropout: bool = True, with_plan: bool = True, with_fieldmap: bool = True,
+                  stem: str = "sub-01_task-rest_bold", out_name: str = "out", grid=None,
+                  pe_first: bool = False) -> dict:
+    """Run the real jobs on a synthetic study into `root/<out_name>` (raw inputs in `root/raw`).
+
+    Returns the folder, the summaries the jobs returned and facts the tests check
+    independently of fieldfix.report.
+    """
+    from fieldfix.workflows.dropout import run_dropout
+    from fieldfix.workflows.fieldmap import run_fieldmap
+    from fieldfix.workflows.plan import run_plan
+    from fieldfix.workflows.unwarp import run_unwarp
+
+    root = Path(root)
+    out = root / out_name
+    paths = write_inputs(root, stem=stem, n_volumes=n_volumes, peak_hz=peak_hz, grid=grid, pe_first=pe_first)
+    jobs = {}
+    fm_out = out if with_fieldmap else root / "fieldmap-elsewhere"
+    jobs["fieldmap"] = run_fieldmap(fm_out, phase_diff=paths["phasediff"], magnitude=[paths["magnitude"]],
+                                    mask=paths["head"], smooth_mm=0.0, reject_outliers=False, field_strength_t=3.0,
+                                    phase_units="rad")
+    b0 = fm_out / jobs["fieldmap"].outputs.b0_hz
+    unwarp = {"pe_code": "i" if pe_first else "j", "timing_win": "arguments"} if wrong_polarity else {}
+    jobs["unwarp"] = run_unwarp([paths["run"]], b0, out, b0_mask=fm_out / jobs["fieldmap"].outputs.mask,
+                                **unwarp)[0]
     if with_dropout:
-        retention = np.clip(1.0 - field / (1.2 * peak_hz), 0.0, 1.0) ** 2
-        save_image(out / "retention.nii.gz", retention, aff, provenance=Provenance("synthetic", {}, [b0]))
-        save_image(out / "bold_sensitivity.nii.gz", 0.9 * retention, aff)
-        write_json(out / "dropout.json", {"retention_threshold": 0.5, "te_s": 0.03})
-        expected["retention_median"] = float(np.median(retention[mask]))
-        expected["retention_below"] = float(100.0 * np.mean(retention[mask] < 0.5))
-
+        jobs["dropout"] = run_dropout(b0, out, te_s=0.03, thickness_mm=3.0, like=paths["run"], mask=paths["brain"])
     if with_plan:
-        header = ["rank", "thickness_mm", "te_s", "tilt_deg", "pe", "roi_median_retention"]
-        rows = [[1, 2.0, 0.025, -20, "j-", 0.91], [2, 2.5, 0.025, -20, "j-", 0.88], [3, 3.0, 0.030, 0, "j", 0.71]]
-        (out / "plan.csv").write_text("\n".join(",".join(map(str, r)) for r in [header, *rows]) + "\n")
-        write_json(out / "plan.json", {"recommended": "2 mm, TE 25 ms, tilt -20 deg, j-",
-                                       "reason": "thinnest slice and earlier echo keep the most signal in the ROI",
-                                       "protocols": [dict(zip(header, r)) for r in rows]})
-        from matplotlib.figure import Figure
-
-        fig = Figure(figsize=(3, 2), dpi=60)
-        ax = fig.subplots()
-        ax.plot([2.0, 2.5, 3.0], [0.91, 0.88, 0.71], "o-")
-        ax.set_xlabel("thickness (mm)")
-        fig.savefig(out / "plan.png", format="png")
-    return expected
+        jobs["plan"] = run_plan(b0, out, roi_path=paths["roi"], brain_mask_path=paths["brain"], te_s=(0.025, 0.035),
+                                thickness_mm=(2.0, 3.0), tilt_deg=(-10.0, 0.0, 10.0), pe_signs=(1, -1),
+                                echo_spacing_s=ECHO_SPACING_S, pe_lines=SHAPE[1], inplane_mm=2.5)
+    head = anatomy() > 20.0
+    shift = shift_vox_of(field_hz(peak_hz))
+    return {"out": out, "stem": stem, "jobs": jobs, "paths": paths, "fieldmap_out": fm_out,
+            "max_abs_shift_vox": float(np.abs(shift[head]).max()),
+            "field_p50_hz": float(np.percentile(field_hz(peak_hz)[head], 50))}

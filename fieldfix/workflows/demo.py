@@ -179,8 +179,8 @@ def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: dict, manifest
     from ..report import build_report
 
     report_path = steps.run("report", lambda: build_report(
-        job.out_dir, title=f"fieldfix demo: {manifest.get('title', scenario)}", overwrite=job.overwrite),
-        lambda p: [p])
+        job.out_dir, title=f"fieldfix demo: {manifest.get('title', scenario)}", overwrite=job.overwrite,
+        truth=DemoChecks(**checks)), lambda p: [p])
     return DemoChecks(**checks), report_path, [f"unwarping: {w}" for w in uw.warnings]
 
 
