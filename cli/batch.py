@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import re
 import sys
 
 from fieldfix.batch import BatchOptions, run_batch
@@ -78,8 +79,13 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 class _FailureLines(logging.Handler):
+    """One line per failed task on standard error, the library's parameter names shown as options."""
+
     def emit(self, record):
-        print(f"fieldfix batch: {record.getMessage()}", file=sys.stderr)
+        text = record.getMessage()
+        for parameter, flag in FLAGS.items():
+            text = re.sub(rf"(?<![\w-]){re.escape(parameter)}(?![\w-])", flag, text)
+        print(f"fieldfix batch: {text}", file=sys.stderr)
 
 
 def _options(args) -> BatchOptions:

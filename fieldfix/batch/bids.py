@@ -167,7 +167,7 @@ def check_label(text: str, what: str = "label") -> str:
     """
     label = text[4:] if text.startswith("sub-") else text
     if not _LABEL.match(label):
-        raise InputError(f"{what} {text!r} is not a BIDS label (letters and digits only)", parameter=what)
+        raise InputError(f"{text!r} is not a BIDS label (letters and digits only)", parameter=what)
     return label
 
 

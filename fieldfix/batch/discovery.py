@@ -232,6 +232,7 @@ def _add_gre_file(context: _Context, groups: dict, path: Path, name, subject: st
     fm.files[name.suffix] = rel
     meta = context.sidecars.metadata(path)
     fm.metadata[name.suffix] = meta.values
+    fm.unreadable.extend(meta.problems)
     for problem in meta.problems + [p for p in [context.input_problem(path)] if p]:
         fm.add_problem(problem)
 
@@ -291,8 +292,11 @@ def _link(context: _Context, subject_dir: Path, fmaps: list[FieldMapAcquisition]
                 if (key, "IntendedFor") not in claims.get(run.path, []):
                     claims.setdefault(run.path, []).append((key, "B0FieldSource"))
     usable = {fm.key for fm in fmaps if not fm.problems}
+    unreadable = list(dict.fromkeys(p for fm in fmaps for p in fm.unreadable))
     for run in runs:
         _choose(run, claims.get(run.path, []), usable)
+        if run.fieldmap is None and unreadable and not run.problems:
+            run.problems.append("whether a field map is meant for this run cannot be told: " + "; ".join(unreadable))
     for fm in fmaps:
         fm.targets = sorted(r.path for r in runs if r.fieldmap == fm.key)
 

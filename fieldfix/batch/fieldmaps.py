@@ -111,6 +111,7 @@ def epi_groups(context, subject: str, members: list[tuple[Path, str]], taken: se
             role = path.name.split(".")[0]
             fm.files[role] = context.relative(path)
             fm.metadata[role] = meta
+            fm.unreadable.extend(p for p in problems if not p.startswith(fm.files[role]))
             for problem in problems:
                 fm.add_problem(problem)
             _check_member(fm, context.relative(path), meta, codes)
@@ -136,10 +137,11 @@ def check_declared_phase_units(values: np.ndarray, declared: str, delta_te_s: fl
     """Refuse a declared phase unit that the values contradict, naming both readings.
 
     The field a reading implies decides (common practice, no source): wrapped phase in
-    radians lies in [-pi, pi]; a phase-difference image declared in degrees whose values
-    span more than pi but stay within +-pi (with 1% tolerance) would mean fields of at
-    most pi/180 / (2 pi dTE), a few Hz for millisecond echo spacings, across a whole
-    head; declared in radians, values beyond +-pi cannot be wrapped radians.
+    radians lies in [-pi, pi]; a phase image declared in degrees whose values all stay
+    within +-pi (1% tolerance) would mean fields of at most pi/180 / (2 pi dTE), a few Hz
+    for millisecond echo spacings, across a whole head, which no scanner gives; declared
+    in radians, values beyond +-pi cannot be wrapped radians. A nearly constant image
+    (spread under 0.1) decides nothing.
 
     Raises
     ------
@@ -165,9 +167,9 @@ def check_declared_phase_units(values: np.ndarray, declared: str, delta_te_s: fl
 
     readings = (f"read as degrees the field would span {field_hz(math.pi / 180)}, read as radians "
                 f"{field_hz(1.0)}")
-    if declared == "deg" and within_pi and hi - lo > math.pi:
-        raise UnitError(f"the sidecar says Units deg, but the values span {lo:.3g} to {hi:.3g}, the range of "
-                        f"radians; {readings}; no scanner gives a field of a few Hz across a head: give the phase "
+    if declared == "deg" and within_pi and hi - lo > 0.1:
+        raise UnitError(f"the sidecar says Units deg, but the values span {lo:.3g} to {hi:.3g}, within the range "
+                        f"of radians; {readings}; no scanner gives a field of a few Hz across a head: give the phase "
                         "units explicitly (phase_units)", path)
     if declared == "rad" and not within_pi:
         raise UnitError(f"the sidecar says Units rad, but the values span {lo:.3g} to {hi:.3g}, beyond +-pi; "

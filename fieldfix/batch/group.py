@@ -38,7 +38,7 @@ def _summary(result: TaskResult | None, deriv: Path, record_type):
 
 
 def _status(run, unwarp: TaskResult | None, dropout: TaskResult | None) -> tuple[str, str]:
-    if run.fieldmap is None:
+    if run.fieldmap is None and unwarp is None:
         return "no field map", run.note
     done = [r for r in (unwarp, dropout) if r is not None]
     if done and all(r.ok for r in done):

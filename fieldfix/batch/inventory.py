@@ -38,6 +38,8 @@ class FieldMapAcquisition:
         What makes it unusable; its task fails at once with them.
     warnings : list of str
         What was worked around (a missing ``magnitude1`` ...).
+    unreadable : list of str
+        Its sidecars that could not be read (then its targets are unknown).
     """
 
     key: str
@@ -51,6 +53,7 @@ class FieldMapAcquisition:
     other_targets: list[str] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    unreadable: list[str] = field(default_factory=list)
 
     @property
     def primary(self) -> str:

@@ -182,6 +182,13 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
     return [unwarp, dropout]
 
 
+def _unreadable_run_task(run: Run, root: Path, deriv: Path) -> Task:
+    """A task that fails at once with the problems of a run whose field map cannot be told."""
+    return Task(task_id=f"unwarp:{run.stem}", kind="unwarp", subject=run.subject, session=run.session, deps=(),
+                inputs={}, params={}, out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
+                source=Path(run.path).name, dataset=str(root), problems=list(run.problems))
+
+
 def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: bool = True,
                options: BatchOptions | None = None) -> list[Task]:
     """Turn an inventory into an ordered list of tasks with their dependencies.
@@ -214,6 +221,9 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: boo
         by_subject.setdefault(fm.subject, []).append(tasks[-1].task_id)
     for run in inventory.runs:
         if run.fieldmap is None:
+            if run.problems:  # e.g. an unreadable sidecar: whether it has a field map cannot be told
+                tasks.append(_unreadable_run_task(run, root, deriv))
+                by_subject.setdefault(run.subject, []).append(tasks[-1].task_id)
             continue
         pair = _run_tasks(run, planned[run.fieldmap], root, deriv, options)
         tasks.extend(pair)
@@ -250,6 +260,9 @@ def run_entries(inventory: Inventory, tasks: list[Task]) -> list[RunPlanEntry]:
         fm = next((f for f in inventory.fieldmaps if f.key == run.fieldmap), None)
         files = sorted(fm.files.values()) if fm is not None else []
         unwarp = by_id.get(f"unwarp:{run.stem}")
+        if fm is None and unwarp is not None:
+            entries.append(RunPlanEntry(run=run.path, fieldmap=[], action="skip", reason="; ".join(unwarp.problems)))
+            continue
         if fm is None or unwarp is None:
             entries.append(RunPlanEntry(run=run.path, fieldmap=files, action="skip", reason=run.note))
             continue
