@@ -7,7 +7,6 @@ import logging
 import re
 import sys
 
-from fieldfix.batch import BatchOptions, run_batch
 from fieldfix.errors import InputError
 from fieldfix.units import parse_angle_deg, parse_length_mm, parse_time_s
 
@@ -88,17 +87,20 @@ class _FailureLines(logging.Handler):
         print(f"fieldfix batch: {text}", file=sys.stderr)
 
 
-def _options(args) -> BatchOptions:
+def _options(args, options_type):
     given = {"phase_units": args.phase_units, "unwrap_method": args.unwrap, "interp": args.interp,
              "masks": args.masks,
              "smooth_mm": parse_length_mm(args.smooth) if args.smooth else None,
              "dropout_te_s": parse_time_s(args.dropout_te) if args.dropout_te else None,
              "dropout_thickness_mm": parse_length_mm(args.dropout_thickness) if args.dropout_thickness else None,
              "dropout_tilt_deg": parse_angle_deg(args.dropout_tilt) if args.dropout_tilt else None}
-    return BatchOptions(**{k: v for k, v in given.items() if v is not None})
+    return options_type(**{k: v for k, v in given.items() if v is not None})
 
 
 def run(args):
+    # heavy (the workflows, numba, the report): imported when a batch runs, not for every command's start
+    from fieldfix.batch import BatchOptions, run_batch
+
     if args.out is None:
         raise InputError("--out DIR is required")
     handler = None
@@ -111,7 +113,7 @@ def run(args):
             args.bids_root, args.out, participant_labels=args.participant_label, jobs=args.jobs,
             scheduler=args.scheduler, scheduler_file=args.scheduler_file,
             command=getattr(args, "command_line", None), progress=args.progress, redo=args.overwrite,
-            reports=not args.no_report, options=_options(args), config=args.config,
+            reports=not args.no_report, options=_options(args, BatchOptions), config=args.config,
             allow_outside_inputs=args.allow_outside_inputs, dry_run=args.dry_run)
     finally:
         if handler is not None:

@@ -88,8 +88,8 @@ def _name(kind: str, role: str, source: BidsName) -> str:
     if role == "summary":
         desc = {"fieldmap": "fieldmap"}.get(kind, f"{source.suffix}{kind}")
         return derivative_name(source, desc=desc, suffix=SUMMARY_SUFFIX, extension=".json")
-    if kind == "fieldmap":
-        desc, suffix = _FIELDMAP.get(role, (_alnum(role), "fieldmap"))
+    if kind == "fieldmap":  # roles not known yet (the EPI-pair job's corrected inputs) by their role's name
+        desc, suffix = _FIELDMAP.get(role, (_alnum(role), "epi" if "epi" in role else "fieldmap"))
         return derivative_name(source, desc=desc, suffix=suffix)
     if kind == "unwarp":
         return _unwarp_name(role, source)
@@ -101,8 +101,9 @@ def derivative_names(kind: str, roles: dict, source: str) -> dict:
 
     Examples
     --------
-    >>> derivative_names("unwarp", {"corrected": "x", "summary": "y"}, "sub-01_task-rest_bold.nii.gz")
-    {'corrected': 'sub-01_task-rest_desc-corrected_bold.nii.gz', 'summary': 'sub-01_task-rest_desc-boldunwarp_summary.json'}
+    >>> names = derivative_names("unwarp", {"corrected": "x", "summary": "y"}, "sub-01_task-rest_bold.nii.gz")
+    >>> names["corrected"], names["summary"]
+    ('sub-01_task-rest_desc-corrected_bold.nii.gz', 'sub-01_task-rest_desc-boldunwarp_summary.json')
     """
     parsed = parse_bids_name(source)
     if parsed is None:

@@ -169,7 +169,8 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
     common = dict(subject=run.subject, session=run.session, deps=(f"fieldmap:{fm.key}",),
                   inputs={"run": str(root / run.path)},
                   out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
-                  source=Path(run.path).name, dataset=str(root), metadata=dict(meta), grids={"run": run.path, "fieldmap": fm.primary})
+                  source=Path(run.path).name, dataset=str(root), metadata=dict(meta),
+                  grids={"run": run.path, "fieldmap": fm.primary})
     timing = {"pe_code": pe if problem is None else None, "readout_time_s": readout, "echo_spacing_s": spacing}
     unwarp = Task(task_id=f"unwarp:{run.stem}", kind="unwarp", params={**timing, **options.unwarp_params()},
                   problems=problems, **common)

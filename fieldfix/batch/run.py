@@ -111,23 +111,29 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         return BatchPlan(dataset=str(root), derivatives=str(deriv), runs=run_entries(inventory, tasks),
                          tasks=[t.task_id for t in tasks], dataset_remarks=list(inventory.problems),
                          options=options.changed(), config=config_record)
+    with output_folder(deriv), BatchLock(deriv, command) as lock:
+        return _run_held(root, deriv, inventory, tasks, lock, dict(
+            jobs=jobs, scheduler=scheduler, scheduler_file=scheduler_file, command=command, progress=progress,
+            redo=redo), options=options, config=config_record)
+
+
+def _run_held(root: Path, deriv: Path, inventory: Inventory, tasks: list[Task], lock: BatchLock, how: dict, *,
+              options: BatchOptions, config) -> BatchSummary:
+    """The batch once it holds its output folder: checks, cleanup, execution, summaries."""
     started = datetime.datetime.now(datetime.timezone.utc)
     files = BatchFiles.named(started.strftime("%Y%m%dT%H%M%SZ"))
-    with output_folder(deriv), BatchLock(deriv, command) as lock:
-        # files of the whole batch: refused up front when someone else's file has their name
-        output_paths_guard([deriv / p for p in (files.group_csv, files.group_json, files.group_figure)],
-                           overwrite=True)
-        notices = [lock.notice] if lock.notice else []
-        removed = clean_leftovers(deriv, WORK_FOLDER)
-        if removed:
-            notices.append(f"removed {len(removed)} leftovers of killed runs: " + ", ".join(removed[:5])
-                           + (" ..." if len(removed) > 5 else ""))
-        write_dataset_description(deriv, root)
-        write_bidsignore(deriv)
-        results, mode = _execute(tasks, deriv, jobs=jobs, scheduler=scheduler, scheduler_file=scheduler_file,
-                                 command=command, progress=progress, redo=redo)
-        return _finish(root, deriv, inventory, tasks, results, files, mode=mode, started=started, command=command,
-                       options=options, config=config_record, notices=notices)
+    # files of the whole batch: refused up front when someone else's file has their name
+    output_paths_guard([deriv / p for p in (files.group_csv, files.group_json, files.group_figure)], overwrite=True)
+    notices = [lock.notice] if lock.notice else []
+    removed = clean_leftovers(deriv, WORK_FOLDER)
+    if removed:
+        notices.append(f"removed {len(removed)} leftovers of killed runs: " + ", ".join(removed[:5])
+                       + (" ..." if len(removed) > 5 else ""))
+    write_dataset_description(deriv, root)
+    write_bidsignore(deriv)
+    results, mode = _execute(tasks, deriv, **how)
+    return _finish(root, deriv, inventory, tasks, results, files, mode=mode, started=started, command=how["command"],
+                   options=options, config=config, notices=notices)
 
 
 def _execute(tasks: list[Task], deriv: Path, *, jobs, scheduler, scheduler_file, command, progress, redo):
