@@ -26,6 +26,7 @@ Examples
 
 from __future__ import annotations
 
+import json
 import os
 import re
 from dataclasses import dataclass, field
@@ -225,8 +226,8 @@ def pe_code_problem(value: Any, where: str) -> str | None:
         return f"{where}: sidecar has no PhaseEncodingDirection"
     if isinstance(value, str) and value in PE_CODES:
         return None
-    return f"{where}: PhaseEncodingDirection is {value!r}, not one of {' '.join(PE_CODES)}" \
-        if isinstance(value, str) else f"{where}: PhaseEncodingDirection is {value}, not one of {' '.join(PE_CODES)}"
+    shown = repr(value) if isinstance(value, str) else json.dumps(value)
+    return f"{where}: PhaseEncodingDirection is {shown}, not one of {' '.join(PE_CODES)}"
 
 
 def bids_uri(relative: str, dataset: str = "raw") -> str:

@@ -258,9 +258,8 @@ def _runs_in(context: _Context, container: Path, subject: str, session: str) -> 
 def _claims_through_intended(context: _Context, subject_dir: Path, fmaps, run_index) -> dict:
     claims: dict[str, list[tuple[str, str]]] = {}
     for fm in fmaps:
-        entries = list(dict.fromkeys(e if isinstance(e, str) else repr(e) for meta in fm.metadata.values()
-                                     for e in as_list(meta.get("IntendedFor"))))
-        for entry in entries:
+        entries = {repr(e): e for meta in fm.metadata.values() for e in as_list(meta.get("IntendedFor"))}
+        for entry in entries.values():
             target: IntendedTarget = resolve_intended_for(entry, context.root, subject_dir, context.self_names)
             if target.relative in run_index:
                 claims.setdefault(target.relative, []).append((fm.key, "IntendedFor"))
