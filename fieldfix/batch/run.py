@@ -129,6 +129,8 @@ def _run_held(root: Path, deriv: Path, inventory: Inventory, tasks: list[Task], 
     if removed:
         notices.append(f"removed {len(removed)} leftovers of killed runs: " + ", ".join(removed[:5])
                        + (" ..." if len(removed) > 5 else ""))
+    for notice in notices:
+        _log.warning("%s", notice)
     write_dataset_description(deriv, root)
     write_bidsignore(deriv)
     results, mode = _execute(tasks, deriv, **how)
