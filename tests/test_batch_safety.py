@@ -250,3 +250,20 @@ def test_workers_end_when_the_batch_process_is_killed(tmp_path):
     assert rerun.returncode == 0, rerun.stderr
     assert any("took over the batch lock" in n for n in json.loads(rerun.stdout)["notices"])
     assert not list(out.rglob(".fieldfix-work/*"))
+
+
+def test_staging_folders_of_dead_runs_are_recognised_on_hosts_with_dotted_names(tmp_path, monkeypatch):
+    from fieldfix.batch import lock
+    from fieldfix.io import write_json
+    from fieldfix.outdir import output_folder
+
+    monkeypatch.setattr(lock, "host_label", lambda: "node1.cluster.example")
+    dead = _dead_pid()
+    mine = tmp_path / ".fieldfix-work" / f"unwarp-sub-01_task-rest_bold.node1.cluster.example-{dead}.0badc0de"
+    other_host = tmp_path / ".fieldfix-work" / f"unwarp-sub-02_task-rest_bold.node2.cluster.example-{dead}.0badc0de"
+    with output_folder(tmp_path):
+        write_json(mine / "x.json", {})
+        write_json(other_host / "y.json", {})  # another host's process may still run: kept
+        removed = lock.clean_leftovers(tmp_path, ".fieldfix-work")
+    assert removed == [f".fieldfix-work/{mine.name}/"]
+    assert not mine.exists() and (other_host / "y.json").exists()

@@ -32,7 +32,8 @@ __all__ = ["LOCK_NAME", "LockHolder", "BatchLock", "host_label", "process_alive"
            "clean_leftovers"]
 
 LOCK_NAME = ".fieldfix-batch.lock"
-_STAGING = re.compile(r"^.+\.(?P<host>[A-Za-z0-9_.]+)-(?P<pid>\d+)\.[0-9a-f]+(?:-in)?$")
+#: Staging folder names: ``<task id, letters digits _ ->.<host>-<pid>.<random hex>`` (``-in``: the report's).
+_STAGING = re.compile(r"^[A-Za-z0-9_-]+\.(?P<host>[A-Za-z0-9_.]+)-(?P<pid>\d+)\.[0-9a-f]+(?:-in)?$")
 
 
 def host_label() -> str:
