@@ -581,3 +581,25 @@ def test_task_collector_scope_frees_task_garbage_and_restores_state():
         assert gc.get_freeze_count() > 0 and gc.get_threshold() == thresholds
     finally:
         gc.unfreeze()
+
+
+def test_bids_uris_of_this_dataset_and_of_others(tmp_path):
+    # BIDS URIs (specification 1.9, "BIDS URI"): bids::<path> is this dataset, bids:<name>:<path> the
+    # dataset DatasetLinks calls <name>; a name that links back to this dataset is this dataset too
+    root = tmp_path / "ds"
+    (root / "sub-01").mkdir(parents=True)
+    (root / "dataset_description.json").write_text(json.dumps(
+        {"Name": "x", "BIDSVersion": "1.9.0", "DatasetLinks": {"here": ".", "atlas": "https://example.org/a"}}))
+    f = root / "sub-01" / "fmap"
+    _write(f / "sub-01_acq-a_fieldmap.nii.gz", {"Units": "Hz", "IntendedFor": [
+        "bids:here:sub-01/func/sub-01_task-a_bold.nii.gz", "bids:atlas:sub-01/func/sub-01_task-b_bold.nii.gz",
+        "bids::sub-01/../../outside_bold.nii.gz", "bids:here"]})
+    _write(f / "sub-01_acq-a_magnitude.nii.gz", {})
+    for task in ("a", "b"):
+        _write(root / "sub-01" / "func" / f"sub-01_task-{task}_bold.nii.gz", {"PhaseEncodingDirection": "j"})
+    inv = batch.discover(root)
+    runs = {Path(r.path).name: r.fieldmap for r in inv.runs}
+    assert runs == {"sub-01_task-a_bold.nii.gz": "sub-01_acq-a", "sub-01_task-b_bold.nii.gz": None}
+    text = " ".join(inv.problems)
+    assert "points into another dataset ('atlas')" in text and "leaves the dataset" in text
+    assert "malformed BIDS URI 'bids:here'" in text
