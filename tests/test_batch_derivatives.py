@@ -302,3 +302,23 @@ def test_reversed_phase_encode_runs_are_corrected_or_fail_with_the_reason(epi_da
     (epi_dataset / "sub-01/fmap/sub-01_acq-se_dir-PA_epi.nii.gz").unlink()
     inv = batch.discover(epi_dataset)
     assert any("at least two phase-encode directions" in p for p in inv.fieldmap("sub-01_acq-se").problems)
+
+
+def test_group_table_columns_come_from_the_typed_summaries(derivatives):
+    from fieldfix.outputs import DropoutSummary, GroupRow
+
+    _, out = derivatives
+    table = json.loads((out / "group" / "group_runs.json").read_text())
+    import dataclasses
+
+    assert table["columns"] == [f.name for f in dataclasses.fields(GroupRow)]
+    for row in map(GroupRow.from_json, table["rows"]):
+        func = out / f"sub-01/ses-{row.session}/func"
+        unwarp = UnwarpSummary.read(func / f"{row.run[:-5]}_desc-boldunwarp_summary.json")
+        dropout = DropoutSummary.read(func / f"{row.run[:-5]}_desc-bolddropout_summary.json")
+        assert row.status == "ok" and row.max_abs_shift_vox == unwarp.max_abs_shift_vox
+        assert row.retention_percent_below_threshold == dropout.retention.percent_below_threshold
+        # the invented runs were distorted along the phase-encode axis: correcting them aligns the edges
+        # better with the undistorted field-map magnitude (normalised gradient fields, Haber and
+        # Modersitzki 2006), so the report's gain is positive
+        assert row.alignment_gain is not None and row.alignment_gain > 0
