@@ -7,7 +7,7 @@ import logging
 import re
 import sys
 
-from fieldfix.errors import InputError
+from fieldfix.errors import FieldfixError, InputError
 from fieldfix.units import parse_angle_deg, parse_length_mm, parse_time_s
 
 HELP = "correct every run of a BIDS dataset into a derivatives dataset (local processes or dask)"
@@ -87,13 +87,21 @@ class _FailureLines(logging.Handler):
         print(f"fieldfix batch: {text}", file=sys.stderr)
 
 
+def _quantity(text, parse, flag: str):
+    if text is None:
+        return None
+    try:
+        return parse(text)
+    except FieldfixError as err:
+        raise InputError(err.message, parameter=flag) from None
+
+
 def _options(args, options_type):
     given = {"phase_units": args.phase_units, "unwrap_method": args.unwrap, "interp": args.interp,
-             "masks": args.masks,
-             "smooth_mm": parse_length_mm(args.smooth) if args.smooth else None,
-             "dropout_te_s": parse_time_s(args.dropout_te) if args.dropout_te else None,
-             "dropout_thickness_mm": parse_length_mm(args.dropout_thickness) if args.dropout_thickness else None,
-             "dropout_tilt_deg": parse_angle_deg(args.dropout_tilt) if args.dropout_tilt else None}
+             "masks": args.masks, "smooth_mm": _quantity(args.smooth, parse_length_mm, "--smooth"),
+             "dropout_te_s": _quantity(args.dropout_te, parse_time_s, "--dropout-te"),
+             "dropout_thickness_mm": _quantity(args.dropout_thickness, parse_length_mm, "--dropout-thickness"),
+             "dropout_tilt_deg": _quantity(args.dropout_tilt, parse_angle_deg, "--dropout-tilt")}
     return options_type(**{k: v for k, v in given.items() if v is not None})
 
 
