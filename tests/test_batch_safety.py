@@ -79,6 +79,8 @@ def test_hostile_metadata_fails_only_the_runs_it_concerns_with_one_line_reasons(
     # duplicate keys: parsers disagree on which one wins, so the sidecar is refused
     _sidecar(dataset, "sub-02/func/sub-02_task-rest_bold.nii.gz").write_text(
         '{"B0FieldSource": "gre2echo", "B0FieldSource": "other"}')
+    # a field map in the BIDS sense that is not there
+    _edit(_sidecar(dataset, "sub-02/func/sub-02_task-motor_bold.nii.gz"), B0FieldSource="nowhere")
     (dataset / "sub-0_1").mkdir()  # not a BIDS label: skipped with a remark
     status, out, err = _batch(capsys, dataset, "--out", tmp_path / "out", "--no-report", "--json")
     assert status == 1
@@ -90,6 +92,8 @@ def test_hostile_metadata_fails_only_the_runs_it_concerns_with_one_line_reasons(
         runs["sub-01/ses-2/func/sub-01_ses-2_task-rest_bold.nii.gz"]["reason"]
     bad = runs["sub-02/func/sub-02_task-rest_bold.nii.gz"]
     assert bad["action"] == "failed" and "sub-02_task-rest_bold.json: duplicate key 'B0FieldSource'" in bad["reason"]
+    motor = runs["sub-02/func/sub-02_task-motor_bold.nii.gz"]
+    assert motor["action"] == "failed" and "B0FieldSource 'nowhere' matches no B0FieldIdentifier" in motor["reason"]
     assert runs["sub-03/func/sub-03_task-rest_bold.nii.gz"]["action"] == "corrected"  # the rest goes on
     assert any("sub-0_1" in r and "letters and digits" in r for r in summary["dataset_remarks"])
     assert {f["subject"] for f in summary["failures"]} == {"sub-01", "sub-02"}

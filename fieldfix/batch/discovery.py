@@ -284,8 +284,9 @@ def _link(context: _Context, subject_dir: Path, fmaps: list[FieldMapAcquisition]
         for source in as_list(run.metadata.get("B0FieldSource")):
             keys = by_ident.get(str(source))
             if not keys:
-                if run.path not in members:
-                    context.problems.append(f"{run.path}: B0FieldSource {source!r} matches no B0FieldIdentifier")
+                if run.path not in members:  # it has a field map in the BIDS sense, which cannot be found
+                    run.problems.append(f"{run.path}: B0FieldSource {source!r} matches no B0FieldIdentifier of "
+                                        f"sub-{run.subject}")
                 continue
             for key in keys:
                 if (key, "IntendedFor") not in claims.get(run.path, []):

@@ -183,8 +183,8 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
     return [unwarp, dropout]
 
 
-def _unreadable_run_task(run: Run, root: Path, deriv: Path) -> Task:
-    """A task that fails at once with the problems of a run whose field map cannot be told."""
+def _unlinked_run_task(run: Run, root: Path, deriv: Path) -> Task:
+    """A task that fails at once with the problems of a run whose field map cannot be found."""
     return Task(task_id=f"unwarp:{run.stem}", kind="unwarp", subject=run.subject, session=run.session, deps=(),
                 inputs={}, params={}, out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
                 source=Path(run.path).name, dataset=str(root), problems=list(run.problems))
@@ -222,8 +222,8 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: boo
         by_subject.setdefault(fm.subject, []).append(tasks[-1].task_id)
     for run in inventory.runs:
         if run.fieldmap is None:
-            if run.problems:  # e.g. an unreadable sidecar: whether it has a field map cannot be told
-                tasks.append(_unreadable_run_task(run, root, deriv))
+            if run.problems:  # an unreadable sidecar, a B0FieldSource that names nothing ...
+                tasks.append(_unlinked_run_task(run, root, deriv))
                 by_subject.setdefault(run.subject, []).append(tasks[-1].task_id)
             continue
         pair = _run_tasks(run, planned[run.fieldmap], root, deriv, options)
