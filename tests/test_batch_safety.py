@@ -271,3 +271,26 @@ def test_staging_folders_of_dead_runs_are_recognised_on_hosts_with_dotted_names(
         removed = lock.clean_leftovers(tmp_path, ".fieldfix-work")
     assert removed == [f".fieldfix-work/{mine.name}/"]
     assert not mine.exists() and (other_host / "y.json").exists()
+
+
+def test_markers_of_an_earlier_format_are_redone_and_their_outputs_removed(dataset, tmp_path,
+                                                                           fake_workflows):  # noqa: F811
+    from fieldfix.io import write_json
+    from fieldfix.outdir import output_folder
+
+    out = tmp_path / "out"
+    batch.run_batch(dataset, out, participant_labels=["01"], reports=False)
+    fmap = out / "sub-01/ses-1/fmap"
+    marker = fmap / ".sub-01_ses-1_fieldmap_fieldmap.fieldfix-task.json"
+    old_name = "sub-01_ses-1_desc-b0mask_fieldmap.nii.gz"  # a name an earlier fieldfix gave
+    with output_folder(out):
+        write_json(fmap / old_name, {"stand-in": "image"})
+        write_json(marker, {"task_id": "fieldmap:sub-01_ses-1", "kind": "fieldmap", "hash": "0" * 64, "format": 1,
+                            "summary": {"b0_hz": "x"},
+                            "outputs": {"b0_mask.nii.gz": {"path": f"sub-01/ses-1/fmap/{old_name}", "size": 1}}},
+                   overwrite=True)
+    again = batch.run_batch(dataset, out, participant_labels=["01"], reports=False)
+    log = json.loads((out / again.log).read_text())
+    assert {t["task_id"]: t["status"] for t in log["tasks"]}["fieldmap:sub-01_ses-1"] == "done"
+    assert not (fmap / old_name).exists() and (fmap / "sub-01_ses-1_desc-b0_mask.nii.gz").is_file()
+    assert again.exit_status == 0

@@ -88,10 +88,25 @@ def _read_marker(path: Path) -> tuple[TaskMarker | None, str | None]:
     try:
         marker = TaskMarker.read(path)
     except FieldfixError as err:
-        return None, f"ignored {path.name}: {err.message}"
+        marker = _earlier_format(path)
+        if marker is None:
+            return None, f"ignored {path.name}: {err.message}"
     if not all(folder.contains(folder.root / o.path) for o in marker.outputs.values()):
         return None, f"ignored {path.name}: it names files outside the derivatives folder"
     return marker, None
+
+
+def _earlier_format(path: Path) -> TaskMarker | None:
+    """A marker fieldfix wrote in an earlier format, read for its outputs only (it never matches a hash,
+    so the task is redone and the outputs it lists, where still fieldfix's, are removed first)."""
+    try:
+        data = read_json(path)
+        outputs = {str(k): MarkerOutput(path=v["path"], size=int(v.get("size", 0)))
+                   for k, v in data["outputs"].items()}
+        return TaskMarker(task_id=str(data["task_id"]), kind=str(data["kind"]), hash="", format=0, params={},
+                          inputs={}, upstream={}, outputs=outputs)
+    except (FieldfixError, KeyError, TypeError, AttributeError, ValueError):
+        return None
 
 
 def _intact(marker: TaskMarker, deriv: Path) -> bool:
