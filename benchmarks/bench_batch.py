@@ -12,12 +12,16 @@
   finished (each task only hashes its inputs and checks its marker), beside the same
   re-run in-process; and a fresh batch on dask against jobs=1.
 
-Peak memory is that of this (driving) process; the workers' memory is not included.
+Peak memory: ``peak_process_mib`` is the largest resident set of any single process the
+``fieldfix batch`` runs started (the batch process or one of its workers; from
+``getrusage(RUSAGE_CHILDREN)``, which covers descendants that were waited for);
+``driver_peak_mib`` of the dask record is that of this (driving) process.
 """
 
 from __future__ import annotations
 
 import os
+import resource
 import statistics
 import sys
 import tempfile
@@ -52,8 +56,8 @@ def run(quick: bool) -> list[dict]:
     def batch(jobs):
         def call():
             summary = run_batch(root, work / f"out{next(counter)}", jobs=jobs)
-            if summary["exit_status"] != 0:
-                raise RuntimeError(f"batch failed: {summary['failures']}")
+            if summary.exit_status != 0:
+                raise RuntimeError(f"batch failed: {summary.failures}")
             return summary
         return call
 
@@ -87,7 +91,8 @@ def run(quick: bool) -> list[dict]:
         "goal": ">= 1.7x faster with --jobs 2 on 2 cores", "met": one_s / two_s >= 1.7,
         "runs_jobs1_s": [round(x, 2) for x in ones], "runs_jobs2_s": [round(x, 2) for x in twos],
         "grid": "x".join(map(str, shape)), "volumes": volumes,
-        "tasks": sum(summary["tasks"].values()),
+        "tasks": sum(summary.tasks.values()),
+        "peak_process_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0,
         # other work on the machine makes the ratio meaningless: record the load
         "load_avg_1min_before": load_before, "load_avg_1min_after": os.getloadavg()[0],
     }
@@ -101,7 +106,7 @@ def run(quick: bool) -> list[dict]:
     start = time.perf_counter()
     local = run_batch(root, finished, jobs=1)
     local_s = time.perf_counter() - start
-    n_tasks = local["tasks"]["reused"]
+    n_tasks = local.tasks["reused"]
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster:
         run_batch(root, finished, scheduler=cluster.scheduler_address)  # workers import
@@ -123,7 +128,7 @@ def run(quick: bool) -> list[dict]:
             futures = [executor.submit(_noop, i) for i in range(n_noop)]
             assert [f.result() for f in futures] == list(range(n_noop))
             noop_s = time.perf_counter() - start
-    assert on_dask["tasks"]["reused"] == n_tasks and fresh["exit_status"] == 0
+    assert on_dask.tasks["reused"] == n_tasks and fresh.exit_status == 0
     records.append({
         "benchmark": "batch_dask_overhead",
         "tasks": n_tasks,

@@ -100,7 +100,7 @@ def test_discover_problems_are_reported(tmp_path):
            {"EchoTime1": 0.005, "IntendedFor": ["func/sub-01_task-x_bold.nii.gz",
                                                 "func/missing_bold.nii.gz",
                                                 "bids:other:sub-01/func/a_bold.nii.gz"]})
-    # reversed phase-encode pair: found but unsupported
+    # a reversed phase-encode image alone: found, with what it lacks
     _write(f / "sub-01_dir-AP_epi.nii.gz", {})
     # two claims on one run: the usable acquisition wins
     _write(f / "sub-01_acq-b_fieldmap.nii.gz", {"Units": "Hz", "B0FieldIdentifier": ["b"]})
@@ -113,7 +113,8 @@ def test_discover_problems_are_reported(tmp_path):
     assert a.kind == "phasediff"
     assert any("magnitude1" in p for p in a.problems)
     assert any("EchoTime2" in p for p in a.problems)
-    assert inv.fieldmap("sub-01_dir-AP").kind == "unsupported"
+    epi = inv.fieldmap("sub-01")
+    assert epi.kind == "epi" and any("two phase-encode directions" in p for p in epi.problems)
     run = inv.runs[0]
     assert run.fieldmap == "sub-01_acq-b" and "also claimed by sub-01_acq-a" in run.note
     text = " ".join(inv.problems)
@@ -121,7 +122,7 @@ def test_discover_problems_are_reported(tmp_path):
     # the broken acquisition gives a task that fails at once with its reasons
     tasks = {t.task_id: t for t in batch.plan_tasks(inv, tmp_path / "out")}
     assert tasks["fieldmap:sub-01_acq-a"].problems
-    assert "fieldmap:sub-01_dir-AP" not in tasks
+    assert tasks["fieldmap:sub-01"].problems
     assert any("TotalReadoutTime" in p for p in tasks["unwarp:sub-01_task-x_bold"].problems)
     assert any("EchoTime" in p for p in tasks["dropout:sub-01_task-x_bold"].problems)
 
@@ -154,35 +155,90 @@ def test_plan_dependencies_and_layout(dataset, tmp_path):
 # resume and isolation logic be checked apart from the numerics.
 
 
+def _stub(cls, **given):
+    """A record of `cls` with every required field filled by a neutral value of its type."""
+    import dataclasses
+    import typing
+
+    from fieldfix.records import Record
+
+    hints = typing.get_type_hints(cls)
+    values = {}
+    for f in dataclasses.fields(cls):
+        if f.name in given or f.default is not dataclasses.MISSING or f.default_factory is not dataclasses.MISSING:
+            continue
+        tp = hints[f.name]
+        origin = typing.get_origin(tp)
+        if origin in (typing.Union, __import__("types").UnionType):
+            values[f.name] = None
+        elif isinstance(tp, type) and issubclass(tp, Record):
+            values[f.name] = _stub(tp)
+        else:
+            values[f.name] = {str: "", int: 0, float: 0.0, bool: False, list: [], dict: {}}.get(origin or tp)
+    return cls(**values, **given)
+
+
+def _small(staging, name, like, data=None):
+    from fieldfix.io import save_image
+
+    save_image(staging / name, like.get_fdata() if data is None else data, like.affine)
+
+
 def _fake_fieldmap(task, upstream, deriv, staging, command):
     from fieldfix.io import Provenance, load_image, save_image
+    from fieldfix.outputs import FieldMapFiles, FieldMapSummary
 
     primary = next(task.inputs[r] for r in ("phasediff", "phase1", "fieldmap") if r in task.inputs)
     img = load_image(primary)  # the broken file of sub-03 fails here
-    save_image(staging / "b0_hz.nii.gz", img.get_fdata() * 2.0, img.affine,
+    files = FieldMapFiles.named()
+    save_image(staging / files.b0_hz, img.get_fdata() * 2.0, img.affine,
                provenance=Provenance(command, task.params, [primary]))
-    return {"b0_hz": str(staging / "b0_hz.nii.gz")}
+    _small(staging, files.mask, img, np.ones(img.shape))
+    _small(staging, files.magnitude, img)
+    return _stub(FieldMapSummary, outputs=files)
 
 
 def _fake_unwarp(task, upstream, deriv, staging, command):
-    from fieldfix.io import load_image, save_image
+    from fieldfix.io import Provenance, image_stem, load_image, save_image
+    from fieldfix.outputs import UnwarpFiles, UnwarpSummary
 
-    stem = Path(task.source).name.split(".")[0]
     img = load_image(task.inputs["run"])
-    save_image(staging / f"{stem}_corrected.nii.gz", img.get_fdata(), img.affine)
-    return {"max_abs_shift_vox": 1.5, "corrected": str(staging / f"{stem}_corrected.nii.gz")}
+    files = UnwarpFiles.named(image_stem(task.inputs["run"]))
+    save_image(staging / files.corrected, img.get_fdata(), img.affine, provenance=Provenance(command, {}, []))
+    for role in ("shift_vox", "jacobian", "fold_mask", "displacement_mm"):
+        _small(staging, getattr(files, role), img, np.zeros(img.shape[:3]))
+    return _stub(UnwarpSummary, outputs=files, max_abs_shift_vox=1.5, run=task.inputs["run"])
 
 
 def _fake_dropout(task, upstream, deriv, staging, command):
-    from fieldfix.io import write_json
+    from fieldfix.io import load_image
+    from fieldfix.outputs import DropoutFiles, DropoutSummary, MapStatistics
 
-    write_json(staging / "dropout.json", {"dropout_percent": 4.0})
-    return {"dropout_percent": 4.0}
+    img = load_image(task.inputs["run"])
+    files = DropoutFiles.named(image_stem_tag(task))
+    _small(staging, files.retention, img, np.ones(img.shape[:3]))
+    return _stub(DropoutSummary, outputs=files,
+                 retention=MapStatistics(median=1.0, percent_below_threshold=4.0, voxels=10))
+
+
+def image_stem_tag(task):
+    from fieldfix.io import image_stem
+
+    return image_stem(task.inputs["run"]) + "_"
 
 
 def _fake_report(task, upstream, deriv, staging, command):
-    (staging / "report.html").write_text("<html>" + " ".join(sorted(upstream)) + "</html>")
-    return {"runs": []}
+    from fieldfix.batch.reports import SubjectReport
+    from fieldfix.io import write_json
+    from fieldfix.outdir import atomic_output
+    from fieldfix.outputs import ReportFiles
+
+    with atomic_output(staging / "report.html") as temporary:
+        temporary.write_text("<html>" + " ".join(sorted(upstream)) + "</html>")
+    with atomic_output(staging / "report_summary.png") as temporary:
+        temporary.write_bytes(b"not really a png")
+    write_json(staging / "report.json", {"runs": []})
+    return SubjectReport(outputs=ReportFiles.named("report"))
 
 
 @pytest.fixture
@@ -210,8 +266,9 @@ def test_isolation_resume_and_rehash(dataset, tmp_path, fake_workflows):
     assert failed["unwarp:sub-03_task-rest_bold"]["status"] == "skipped"
     assert "fieldmap:sub-03" in failed["unwarp:sub-03_task-rest_bold"]["reason"]
     assert first["tasks"]["done"] == 12 and first["tasks"]["failed"] == 1
-    assert first["runs_without_fieldmap"][0]["run"].endswith("sub-02_task-motor_bold.nii.gz")
-    assert first["fieldmaps_without_target"][0]["fieldmap"] == "sub-02_acq-spare"
+    skipped = [r for r in first["runs"] if r["action"] == "skip"]
+    assert [r.run for r in skipped] == ["sub-02/func/sub-02_task-motor_bold.nii.gz"]
+    assert first["fieldmaps_without_target"] == ["sub-02_acq-spare"]
 
     # derivatives layout: description with GeneratedBy, BIDS names, sidecars with provenance
     desc = json.loads((out / "dataset_description.json").read_text())
@@ -226,8 +283,8 @@ def test_isolation_resume_and_rehash(dataset, tmp_path, fake_workflows):
     assert side["FieldfixBatch"]["TaskId"] == "fieldmap:sub-01_ses-2"
     assert side["Inputs"][0]["sha256"]  # provenance written by the workflow is kept
     rows = {r["run"]: r for r in json.loads((out / "group" / "group_runs.json").read_text())["rows"]}
-    assert rows["sub-01_ses-1_task-rest_bold"]["max_shift_vox"] == 1.5
-    assert rows["sub-01_ses-1_task-rest_bold"]["dropout_percent"] == 4.0
+    assert rows["sub-01_ses-1_task-rest_bold"]["max_abs_shift_vox"] == 1.5
+    assert rows["sub-01_ses-1_task-rest_bold"]["retention_percent_below_threshold"] == 4.0
     assert rows["sub-02_task-motor_bold"]["status"] == "no field map"
     assert rows["sub-03_task-rest_bold"]["status"] == "failed"
     assert (out / "group" / "group_runs.png").read_bytes()[:4] == b"\x89PNG"
@@ -266,7 +323,9 @@ def test_interrupted_task_leaves_no_marker_and_is_redone(dataset, tmp_path, fake
     out = tmp_path / "deriv"
 
     def interrupted(task, upstream, deriv, staging, command):
-        (staging / "dropout.json").write_text("{}")  # half-written work
+        from fieldfix.io import write_json
+
+        write_json(staging / "dropout.json", {})  # work of the task, unfinished
         raise KeyboardInterrupt
 
     monkeypatch.setitem(batch._RUNNERS, "dropout", interrupted)
@@ -309,7 +368,7 @@ def _images(out: Path) -> dict[str, Path]:
 def _files(out: Path) -> set[str]:
     return {p.relative_to(out).as_posix() for p in out.rglob("*")
             if p.is_file() and p.parts[len(out.parts)] not in ("logs", ".fieldfix")
-            and "figures" not in p.parts}
+            and "inspection" not in p.parts}
 
 
 @pytest.fixture(scope="module")
@@ -370,7 +429,7 @@ def test_backends_give_identical_outputs(three_runs):
     # the task hashes (inputs + parameters) agree as well
     for marker in (base / "jobs1").rglob("*.fieldfix-task.json"):
         rel = marker.relative_to(base / "jobs1")
-        if "figures" in rel.parts:
+        if "inspection" in rel.parts:
             continue
         assert json.loads(marker.read_text())["hash"] == \
             json.loads((base / "dask" / rel).read_text())["hash"]
@@ -395,13 +454,13 @@ def test_broken_subject_fails_alone_with_real_workflows(three_runs):
                 "sub-02/func/sub-02_task-rest"):
         assert (out / f"{run}_desc-corrected_bold.nii.gz").is_file(), run
     assert not list((out / "sub-02").rglob("*task-motor*"))  # no field map: not touched
-    assert (out / "sub-01" / "figures" / "sub-01_desc-report_report.html").is_file()
+    assert (out / "inspection" / "sub-01" / "report.html").is_file()
     rows = {r["run"]: r for r in json.loads((out / "group" / "group_runs.json").read_text())["rows"]}
     # shift in voxels = field (Hz) x total readout time (s) -- common practice, no source.
     # The invented field peaks near 60-70 Hz plus an 8 Hz gradient, readout 30 ms: ~2 voxels.
     for stem in ("sub-01_ses-1_task-rest_bold", "sub-02_task-rest_bold"):
-        assert 1.0 < rows[stem]["max_shift_vox"] < 3.5, rows[stem]
-        assert rows[stem]["dropout_percent"] is not None
+        assert 1.0 < rows[stem]["max_abs_shift_vox"] < 3.5, rows[stem]
+        assert rows[stem]["retention_percent_below_threshold"] is not None
         assert rows[stem]["status"] == "ok"
     assert rows["sub-02_task-motor_bold"]["status"] == "no field map"
     assert rows["sub-03_task-rest_bold"]["status"] == "failed"
@@ -470,11 +529,11 @@ def test_tasks_run_on_one_thread_in_process_and_limits_are_restored():
     import numba
     from threadpoolctl import threadpool_info
 
-    from fieldfix.batch import _ThreadLimit
+    from fieldfix.batch import ThreadLimit
 
     before_numba = numba.get_num_threads()
     before_pools = [(i["prefix"], i["num_threads"]) for i in threadpool_info()]
-    with _ThreadLimit():
+    with ThreadLimit():
         assert numba.get_num_threads() == 1
         assert all(i["num_threads"] == 1 for i in threadpool_info())
     assert numba.get_num_threads() == before_numba
@@ -498,7 +557,7 @@ def test_task_collector_scope_frees_task_garbage_and_restores_state():
     import gc
     import weakref
 
-    from fieldfix.batch import _YoungObjectsOnly
+    from fieldfix.batch import YoungObjectsOnly
 
     class Node:
         pass
@@ -508,7 +567,7 @@ def test_task_collector_scope_frees_task_garbage_and_restores_state():
     old_ref = weakref.ref(old)
     del old
     thresholds = gc.get_threshold()
-    with _YoungObjectsOnly():
+    with YoungObjectsOnly():
         assert gc.get_freeze_count() > 0
         young = Node()
         young.self = young  # cyclic garbage made by the task
@@ -520,8 +579,30 @@ def test_task_collector_scope_frees_task_garbage_and_restores_state():
     assert old_ref() is None  # back in the normal generations and collectable
     gc.freeze()  # a process that froze objects itself is left alone (objects freed by reference
     try:         # counting leave the permanent generation, so its size is not compared exactly)
-        with _YoungObjectsOnly():
+        with YoungObjectsOnly():
             assert gc.get_threshold() == thresholds
         assert gc.get_freeze_count() > 0 and gc.get_threshold() == thresholds
     finally:
         gc.unfreeze()
+
+
+def test_bids_uris_of_this_dataset_and_of_others(tmp_path):
+    # BIDS URIs (specification 1.9, "BIDS URI"): bids::<path> is this dataset, bids:<name>:<path> the
+    # dataset DatasetLinks calls <name>; a name that links back to this dataset is this dataset too
+    root = tmp_path / "ds"
+    (root / "sub-01").mkdir(parents=True)
+    (root / "dataset_description.json").write_text(json.dumps(
+        {"Name": "x", "BIDSVersion": "1.9.0", "DatasetLinks": {"here": ".", "atlas": "https://example.org/a"}}))
+    f = root / "sub-01" / "fmap"
+    _write(f / "sub-01_acq-a_fieldmap.nii.gz", {"Units": "Hz", "IntendedFor": [
+        "bids:here:sub-01/func/sub-01_task-a_bold.nii.gz", "bids:atlas:sub-01/func/sub-01_task-b_bold.nii.gz",
+        "bids::sub-01/../../outside_bold.nii.gz", "bids:here"]})
+    _write(f / "sub-01_acq-a_magnitude.nii.gz", {})
+    for task in ("a", "b"):
+        _write(root / "sub-01" / "func" / f"sub-01_task-{task}_bold.nii.gz", {"PhaseEncodingDirection": "j"})
+    inv = batch.discover(root)
+    runs = {Path(r.path).name: r.fieldmap for r in inv.runs}
+    assert runs == {"sub-01_task-a_bold.nii.gz": "sub-01_acq-a", "sub-01_task-b_bold.nii.gz": None}
+    text = " ".join(inv.problems)
+    assert "points into another dataset ('atlas')" in text and "leaves the dataset" in text
+    assert "malformed BIDS URI 'bids:here'" in text

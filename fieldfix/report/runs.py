@@ -22,7 +22,8 @@ import numpy as np
 from scipy import ndimage
 
 from ..geometry import resample_to_grid
-from ..outputs import ReportRun, UnwarpFiles
+from ..io import image_stem
+from ..outputs import ReportRun
 from .agreement import edge_agreement, edge_agreement_by_slice, moved_region
 from .figures.charts import Profile
 from .figures.panels import pick_slices, reference_edges
@@ -38,7 +39,6 @@ EDGE_DILATION_VOX = 2  # the statistics mask grown by this for the whole-mask ag
 MIN_REGION_VOXELS = 50  # fewer voxels than this: no regional agreement (ours)
 SLICE_WORSE_TOLERANCE = 0.02  # per-slice drop that counts as worse (ours; slices are noisier)
 SLICE_MIN_VOXELS = 20
-_CORRECTED = UnwarpFiles.named("").corrected  # the registry's "_corrected.nii.gz"
 
 
 @dataclass
@@ -209,8 +209,7 @@ def _view(a: _Arrays, s, profile, point) -> RunView:
 
 
 def _record(found, field_map, s, edges: _Edges, region: str | None, slices_mm, point_mm, notes, before_view):
-    corrected = s.outputs.corrected
-    stem = corrected[: -len(_CORRECTED)] if corrected.endswith(_CORRECTED) else found.path.stem
+    stem = image_stem(s.run)  # the run's own name: the same in a job folder and in batch derivatives
     return ReportRun(
         stem=stem, name=found.name, subject=found.subject,
         field_map=field_map.name if field_map is not None else None, pe_code=s.pe_code, pe_axis=s.pe_axis,
