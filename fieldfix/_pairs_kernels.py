@@ -319,7 +319,7 @@ def _mark_folded(xnode, wnode, floor, bad):  # pragma: no cover - compiled
 
 
 @njit(cache=True)
-def _quadrature_piece(a, b, x0, w0, slope, n, bad, amat, first, last, along_x, along_w):  # pragma: no cover
+def _quadrature_piece(a, b, x0, w0, slope, n, bad, any_bad, amat, first, last, along_x, along_w):  # pragma: no cover
     """Add the exact integrals over [a, b] (both kernels polynomial there) to the rows of `amat`."""
     for g in range(4):
         x = a + (b - a) * _GAUSS_X[g]
@@ -344,20 +344,27 @@ def _quadrature_piece(a, b, x0, w0, slope, n, bad, amat, first, last, along_x, a
         v = 1.0 - u
         kerns = (((-0.5 * (1.0 + u) + 2.5) * (1.0 + u) - 4.0) * (1.0 + u) + 2.0, (1.5 * u - 2.5) * u * u + 1.0,
                  (1.5 * v - 2.5) * v * v + 1.0, ((-0.5 * (1.0 + v) + 2.5) * (1.0 + v) - 4.0) * (1.0 + v) + 2.0)
-        for r in range(4):
-            j = centre - 1 + r
-            if j < 0 or j >= n or bad[j]:
-                continue
-            kern = kerns[r]
-            along_x[j] += h * abs(kern)
-            along_w[j] += h * abs(kern) * slope
-            hk = h * kern
-            for t in range(4):
-                amat[j, cols[t]] += hk * taps[t]
-            if first[j] < 0 or low < first[j]:
-                first[j] = low
-            if high > last[j]:
-                last[j] = high
+        if any_bad or centre < 1 or centre > n - 3:
+            for r in range(4):
+                j = centre - 1 + r
+                if j < 0 or j >= n or bad[j]:
+                    continue
+                _add_to_row(amat, j, h * kerns[r], slope, cols, taps, low, high, first, last, along_x, along_w)
+        else:  # all four rows inside the line and none left out
+            for r in range(4):
+                _add_to_row(amat, centre - 1 + r, h * kerns[r], slope, cols, taps, low, high, first, last, along_x,
+                            along_w)
+
+
+@njit(cache=True, inline="always")
+def _add_to_row(amat, j, hk, slope, cols, taps, low, high, first, last, along_x, along_w):  # pragma: no cover
+    weight = abs(hk)
+    along_x[j] += weight
+    along_w[j] += weight * slope
+    for t in range(4):
+        amat[j, cols[t]] += hk * taps[t]
+    first[j] = min(first[j], low)
+    last[j] = max(last[j], high)
 
 
 @njit(cache=True)
@@ -373,9 +380,12 @@ def _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along
     n = shift.shape[0]
     _line_nodes(shift, xnode, wnode)
     _mark_folded(xnode, wnode, floor, bad)
+    any_bad = False
+    for j in range(n):
+        any_bad |= bad[j]
     along_x[:] = 0.0
     along_w[:] = 0.0
-    first[:] = -1
+    first[:] = n  # empty rows keep first = n, last = -1
     last[:] = -1
     for i in range(n + 1):
         x0 = xnode[i]
@@ -389,7 +399,7 @@ def _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along
         for m in range(int(np.floor(w0)) + 1, m_last + 2):
             b = x1 if m > m_last else min(x0 + (m - w0) / slope, x1)
             if b > a:
-                _quadrature_piece(a, b, x0, w0, slope, n, bad, amat, first, last, along_x, along_w)
+                _quadrature_piece(a, b, x0, w0, slope, n, bad, any_bad, amat, first, last, along_x, along_w)
                 a = b
     for j in range(n):
         jac[j] = along_w[j] / along_x[j] if along_x[j] > 0.0 else 0.0
@@ -401,9 +411,9 @@ def _accumulate_normal(amat, first, last, jac, y, normal, rhs):  # pragma: no co
     band = 0
     for j in range(amat.shape[0]):
         lo = first[j]
-        if lo < 0:
-            continue
         hi = last[j]
+        if hi < 0:
+            continue
         weight = jac[j] * jac[j]
         band = max(band, hi - lo)
         for a in range(lo, hi + 1):
