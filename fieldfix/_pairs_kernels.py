@@ -17,9 +17,12 @@ parallel over the first axis.
   units, positions clamped to the grid as ``scipy.ndimage`` mode ``'nearest'``) and its
   exact transpose (a splat), for the rigid motion between polarities.
 * ``restore_lines``: the joint least-squares restoration of Andersson, Skare & Ashburner
-  2003 (NeuroImage 20(2), from memory) line by line: the normal matrix of the
-  signal-conserving forward models of all images plus a small first-difference
-  penalty, solved by a banded Cholesky factorisation.
+  2003 (NeuroImage 20(2), from memory) line by line, with a band-limited forward model:
+  the undistorted line is a cubic B-spline, each distorted sample integrates it through
+  the Keys 1981 cubic-convolution kernel (IEEE Trans. Acoust. Speech Signal Process.
+  29(6), from memory) placed at the sample in distorted coordinates (exact Gauss
+  quadrature, :func:`forward_matrix`); weighted normal equations of all images plus a
+  scale-free second-difference penalty, solved by a banded Cholesky factorisation.
 
 The ``*_reference`` functions compute the same with plain numpy (and scipy.ndimage);
 tests/test_pairs_kernels.py compares them against the kernels.
@@ -34,10 +37,10 @@ __all__ = [
     "warp_lines", "warp_lines_reference",
     "accumulate_gradient", "accumulate_gradient_reference",
     "rigid_pull", "rigid_pull_adjoint", "rigid_pull_reference", "rigid_pull_adjoint_reference",
-    "restore_lines", "restore_lines_reference", "forward_matrix_reference",
+    "restore_lines", "restore_lines_reference", "forward_matrix", "forward_matrix_reference",
+    "keys_reference", "bspline3_reference", "line_map_reference", "KEYS_RADIUS",
 ]
 
-_MIN_WIDTH = 1e-9
 
 
 @njit(cache=True, inline="always")
@@ -254,29 +257,197 @@ def rigid_pull_adjoint_reference(grad, matrix, offset):
 # Joint restoration
 # ---------------------------------------------------------------------------------------------
 
+#: Radius (voxels) of the band-limiting kernel of the restoration's forward model (Keys cubic convolution).
+KEYS_RADIUS = 2
+#: Four-point Gauss-Legendre rule on [0, 1]: exact for polynomials up to degree 7.
+_GAUSS_X = np.array([0.5 - 0.4305681557970263, 0.5 - 0.1699905217924281, 0.5 + 0.1699905217924281,
+                     0.5 + 0.4305681557970263])
+_GAUSS_W = np.array([0.1739274225687269, 0.3260725774312731, 0.3260725774312731, 0.1739274225687269])
+#: Tikhonov ridge (relative to the mean data curvature) that keeps every line solvable.
+RESTORE_RIDGE = 1e-9
+
 
 @njit(cache=True, inline="always")
-def _fill_forward(lo_line, hi_line, amat):  # pragma: no cover - compiled
-    """amat[i, j] = fraction of source voxel j's signal landing in cell i (as splat_lines)."""
-    n = lo_line.shape[0]
-    for j in range(n):
-        lo = lo_line[j]
-        hi = hi_line[j]
-        if hi < lo:
-            lo, hi = hi, lo
-        width = hi - lo
-        if width < _MIN_WIDTH:
-            cell = int(np.floor(lo + 0.5))
-            if 0 <= cell < n:
-                amat[cell, j] += 1.0
+def _keys(t):  # pragma: no cover - compiled
+    """Keys 1981 cubic convolution kernel (a = -1/2), support [-2, 2]."""
+    a = abs(t)
+    if a < 1.0:
+        return (1.5 * a - 2.5) * a * a + 1.0
+    if a < 2.0:
+        return ((-0.5 * a + 2.5) * a - 4.0) * a + 2.0
+    return 0.0
+
+
+@njit(cache=True, inline="always")
+def _bspline3(t):  # pragma: no cover - compiled
+    a = abs(t)
+    if a < 1.0:
+        return 2.0 / 3.0 - a * a + 0.5 * a * a * a
+    if a < 2.0:
+        return (2.0 - a) ** 3 / 6.0
+    return 0.0
+
+
+@njit(cache=True)
+def _line_nodes(shift, xnode, wnode):  # pragma: no cover - compiled
+    """Nodes of the piecewise-linear map w(x) = x + s(x) on [-1/2, n - 1/2] (ends extrapolated)."""
+    n = shift.shape[0]
+    xnode[0] = -0.5
+    wnode[0] = -0.5 + shift[0] - 0.5 * (shift[1] - shift[0])
+    for k in range(n):
+        xnode[k + 1] = k
+        wnode[k + 1] = k + shift[k]
+    xnode[n + 1] = n - 0.5
+    wnode[n + 1] = n - 0.5 + shift[n - 1] + 0.5 * (shift[n - 1] - shift[n - 2])
+
+
+@njit(cache=True)
+def _mark_folded(xnode, wnode, floor, bad):  # pragma: no cover - compiled
+    """Rows whose kernel reaches a segment with slope <= floor (folded or compressed beyond recovery)."""
+    n = bad.shape[0]
+    bad[:] = False
+    for i in range(n + 1):
+        w0 = wnode[i]
+        w1 = wnode[i + 1]
+        if (w1 - w0) / (xnode[i + 1] - xnode[i]) > floor:
             continue
-        first = max(int(np.floor(lo + 0.5)), 0)
-        last = min(int(np.floor(hi + 0.5)), n - 1)
-        for cell in range(first, last + 1):
-            a = max(lo, cell - 0.5)
-            b = min(hi, cell + 0.5)
+        lo = min(w0, w1) - KEYS_RADIUS
+        hi = max(w0, w1) + KEYS_RADIUS
+        for j in range(max(int(np.floor(lo)), 0), min(int(np.ceil(hi)), n - 1) + 1):
+            if lo < j < hi:
+                bad[j] = True
+
+
+@njit(cache=True)
+def _quadrature_piece(a, b, x0, w0, slope, n, bad, any_bad, amat, first, last, along_x, along_w):  # pragma: no cover
+    """Add the exact integrals over [a, b] (both kernels polynomial there) to the rows of `amat`."""
+    for g in range(4):
+        x = a + (b - a) * _GAUSS_X[g]
+        h = (b - a) * _GAUSS_W[g]
+        w = w0 + slope * (x - x0)
+        base = int(np.floor(x))
+        f = x - base
+        f2 = f * f
+        f3 = f2 * f
+        taps = ((1.0 - f) ** 3 / 6.0, (4.0 - 6.0 * f2 + 3.0 * f3) / 6.0, (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) / 6.0,
+                f3 / 6.0)
+        if 1 <= base <= n - 3:  # all four taps inside the line
+            cols = (base - 1, base, base + 1, base + 2)
+            low = base - 1
+            high = base + 2
+        else:
+            cols = (_mirror(base - 1, n), _mirror(base, n), _mirror(base + 1, n), _mirror(base + 2, n))
+            low = min(min(cols[0], cols[1]), min(cols[2], cols[3]))
+            high = max(max(cols[0], cols[1]), max(cols[2], cols[3]))
+        centre = int(np.floor(w))
+        u = w - centre  # rows centre - 1 .. centre + 2 sit at kernel arguments -1 - u, -u, 1 - u, 2 - u
+        v = 1.0 - u
+        kerns = (((-0.5 * (1.0 + u) + 2.5) * (1.0 + u) - 4.0) * (1.0 + u) + 2.0, (1.5 * u - 2.5) * u * u + 1.0,
+                 (1.5 * v - 2.5) * v * v + 1.0, ((-0.5 * (1.0 + v) + 2.5) * (1.0 + v) - 4.0) * (1.0 + v) + 2.0)
+        if any_bad or centre < 1 or centre > n - 3:
+            for r in range(4):
+                j = centre - 1 + r
+                if j < 0 or j >= n or bad[j]:
+                    continue
+                _add_to_row(amat, j, h * kerns[r], slope, cols, taps, low, high, first, last, along_x, along_w)
+        else:  # all four rows inside the line and none left out
+            for r in range(4):
+                _add_to_row(amat, centre - 1 + r, h * kerns[r], slope, cols, taps, low, high, first, last, along_x,
+                            along_w)
+
+
+@njit(cache=True, inline="always")
+def _add_to_row(amat, j, hk, slope, cols, taps, low, high, first, last, along_x, along_w):  # pragma: no cover
+    weight = abs(hk)
+    along_x[j] += weight
+    along_w[j] += weight * slope
+    for t in range(4):
+        amat[j, cols[t]] += hk * taps[t]
+    first[j] = min(first[j], low)
+    last[j] = max(last[j], high)
+
+
+@njit(cache=True)
+def _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along_x, along_w):  # pragma: no cover
+    """Rows of the forward model of one line into `amat` (zero on entry); row Jacobians into `jac`.
+
+    ``amat[j, k] = integral over x of beta3(x - k) * keys(j - w(x))`` with ``w(x) = x + s(x)``
+    piecewise linear (nodes at the voxel centres, ends extrapolated), ``x`` over the field of
+    view [-1/2, n - 1/2], spline coefficients mirrored at the ends. Every piece between integer
+    ``x`` and integer ``w`` is polynomial in ``x`` (degree 6), so the four-point Gauss rule is exact.
+    Rows reached by a segment with slope <= `floor` are flagged in `bad` and left empty.
+    """
+    n = shift.shape[0]
+    _line_nodes(shift, xnode, wnode)
+    _mark_folded(xnode, wnode, floor, bad)
+    any_bad = False
+    for j in range(n):
+        any_bad |= bad[j]
+    along_x[:] = 0.0
+    along_w[:] = 0.0
+    first[:] = n  # empty rows keep first = n, last = -1
+    last[:] = -1
+    for i in range(n + 1):
+        x0 = xnode[i]
+        x1 = xnode[i + 1]
+        w0 = wnode[i]
+        slope = (wnode[i + 1] - w0) / (x1 - x0)
+        if slope <= floor:
+            continue
+        a = x0
+        m_last = int(np.ceil(wnode[i + 1])) - 1
+        for m in range(int(np.floor(w0)) + 1, m_last + 2):
+            b = x1 if m > m_last else min(x0 + (m - w0) / slope, x1)
             if b > a:
-                amat[cell, j] += (b - a) / width
+                _quadrature_piece(a, b, x0, w0, slope, n, bad, any_bad, amat, first, last, along_x, along_w)
+                a = b
+    for j in range(n):
+        jac[j] = along_w[j] / along_x[j] if along_x[j] > 0.0 else 0.0
+
+
+@njit(cache=True)
+def _accumulate_normal(amat, first, last, jac, y, normal, rhs):  # pragma: no cover - compiled
+    """Add one image's weighted normal equations (weights jac**2) and clear the used parts of `amat`."""
+    band = 0
+    for j in range(amat.shape[0]):
+        lo = first[j]
+        hi = last[j]
+        if hi < 0:
+            continue
+        weight = jac[j] * jac[j]
+        band = max(band, hi - lo)
+        for a in range(lo, hi + 1):
+            va = weight * amat[j, a]
+            if va == 0.0:
+                continue
+            rhs[a] += va * y[j]
+            for b in range(lo, a + 1):
+                normal[a, b] += va * amat[j, b]
+        amat[j, lo:hi + 1] = 0.0
+    return band
+
+
+@njit(cache=True)
+def _add_penalty(normal, penalty):  # pragma: no cover - compiled
+    """Scale-free second-difference penalty on the coefficients, plus a tiny ridge; returns the scale."""
+    n = normal.shape[0]
+    scale = 0.0
+    for i in range(n):
+        scale += normal[i, i]
+    scale /= n
+    if scale <= 0.0:
+        return 0.0
+    p = penalty * scale
+    for r in range(1, n - 1):  # (c[r-1] - 2 c[r] + c[r+1])^2, lower triangle
+        normal[r - 1, r - 1] += p
+        normal[r, r] += 4.0 * p
+        normal[r + 1, r + 1] += p
+        normal[r, r - 1] -= 2.0 * p
+        normal[r + 1, r] -= 2.0 * p
+        normal[r + 1, r - 1] += p
+    for i in range(n):
+        normal[i, i] += RESTORE_RIDGE * scale
+    return scale
 
 
 @njit(cache=True, inline="always")
@@ -305,86 +476,220 @@ def _band_cholesky_solve(mat, rhs, band):  # pragma: no cover - compiled
         rhs[i] = acc / mat[i, i]
 
 
+#: Lines per task of the restoration kernel (scratch arrays are allocated once per task).
+_RESTORE_CHUNK = 64
+
+
 @njit(cache=True, parallel=True)
-def _restore_kernel(images, lo, hi, penalty, out):  # pragma: no cover - compiled
-    n_img, n_lines, n = images.shape
-    for line in prange(n_lines):
+def _restore_kernel(images, shifts, penalty, floor, output_rows, out):  # pragma: no cover - compiled
+    n_img, n_outer, n, n_inner = images.shape
+    n_lines = n_outer * n_inner
+    n_tasks = (n_lines + _RESTORE_CHUNK - 1) // _RESTORE_CHUNK
+    for task in prange(n_tasks):
         normal = np.zeros((n, n))
-        rhs = np.zeros(n)
-        amat = np.empty((n, n))
-        band = 1
-        for m in range(n_img):
-            amat[:, :] = 0.0
-            _fill_forward(lo[m, line], hi[m, line], amat)
-            for i in range(n):
-                first = -1
-                last = -1
-                for j in range(n):
-                    if amat[i, j] != 0.0:
-                        if first < 0:
-                            first = j
-                        last = j
-                if first < 0:
-                    continue
-                band = max(band, last - first)
-                y = images[m, line, i]
-                for j in range(first, last + 1):
-                    aij = amat[i, j]
-                    if aij == 0.0:
-                        continue
-                    rhs[j] += aij * y
-                    for k in range(first, j + 1):
-                        normal[j, k] += aij * amat[i, k]
-        for j in range(n):  # first-difference penalty, lower triangle
-            normal[j, j] += penalty * (2.0 if 0 < j < n - 1 else 1.0)
-            if j > 0:
-                normal[j, j - 1] -= penalty
-        _band_cholesky_solve(normal, rhs, band)
-        for j in range(n):
-            out[line, j] = rhs[j]
+        amat = np.zeros((n, n))
+        rhs = np.empty(n)
+        first = np.empty(n, np.int64)
+        last = np.empty(n, np.int64)
+        jac = np.empty(n)
+        bad = np.empty(n, np.bool_)
+        xnode = np.empty(n + 2)
+        wnode = np.empty(n + 2)
+        along_x = np.empty(n)
+        along_w = np.empty(n)
+        shift = np.empty(n)
+        values = np.empty(n)
+        for line in range(task * _RESTORE_CHUNK, min(n_lines, (task + 1) * _RESTORE_CHUNK)):
+            a = line // n_inner
+            b = line - a * n_inner
+            rhs[:] = 0.0
+            band = 2
+            for m in range(n_img):
+                for k in range(n):
+                    shift[k] = shifts[m, a, k, b]
+                    values[k] = images[m, a, k, b]
+                _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along_x, along_w)
+                band = max(band, _accumulate_normal(amat, first, last, jac, values, normal, rhs))
+            if _add_penalty(normal, penalty) > 0.0:
+                _band_cholesky_solve(normal, rhs, band)
+                for k in range(n):
+                    acc = 0.0
+                    for c in range(max(0, k - 4), min(n, k + 5)):
+                        acc += output_rows[k, c] * rhs[c]
+                    out[a, k, b] = acc
+            else:
+                for k in range(n):
+                    out[a, k, b] = 0.0
+            for i in range(n):  # clear the band for the next line
+                normal[i, max(0, i - band):i + 1] = 0.0
 
 
-def restore_lines(images: np.ndarray, lo: np.ndarray, hi: np.ndarray, penalty: float) -> np.ndarray:
-    """Least-squares restoration of lines seen through several forward models (numba).
+@njit(cache=True)
+def _forward_matrix_kernel(shift, floor, amat, jac, bad):  # pragma: no cover - compiled
+    n = shift.shape[0]
+    first = np.empty(n, np.int64)
+    last = np.empty(n, np.int64)
+    _forward_rows(shift, floor, amat, first, last, jac, bad, np.empty(n + 2), np.empty(n + 2), np.empty(n),
+                  np.empty(n))
+
+
+def forward_matrix(shift_line: np.ndarray, floor: float):
+    """Dense forward matrix of one line (numba), its row Jacobians and the rows left out.
 
     Parameters
     ----------
-    images : (M, L, N) float64
-        M distorted observations of L lines of N voxels.
-    lo, hi : (M, L, N) float64
-        Distorted positions (voxel units) of each undistorted voxel's two edges, per image.
-    penalty : float
-        Weight of the first-difference penalty ``sum (u[j+1] - u[j])^2`` (> 0).
+    shift_line : (N,) float64
+        Shift in voxels at the N undistorted voxel centres (N >= 2).
+    floor : float
+        Segments of ``w(x) = x + s(x)`` with slope at or below it are folded; rows they reach
+        are left out.
 
     Returns
     -------
-    (L, N) float64
-        ``argmin_u sum_m ||A_m u - y_m||^2 + penalty ||D u||^2`` per line, where ``A_m``
-        is the signal-conserving forward model of :func:`fieldfix.unwarp.distort`.
+    amat : (N, N) float64
+        ``amat[j, k]``: distorted sample ``j`` per unit cubic B-spline coefficient ``k`` of the
+        undistorted image, ``integral beta3(x - k) keys(j - w(x)) dx``.
+    jac : (N,) float64
+        Local Jacobian of each row (kernel-weighted mean slope of ``w`` over the row's support).
+    left_out : (N,) bool
     """
+    shift_line = np.ascontiguousarray(shift_line, np.float64)
+    n = shift_line.shape[0]
+    amat, jac, bad = np.zeros((n, n)), np.empty(n), np.empty(n, bool)
+    _forward_matrix_kernel(shift_line, float(floor), amat, jac, bad)
+    return amat, jac, bad
+
+
+def restore_lines(images: np.ndarray, shifts: np.ndarray, penalty: float, floor: float) -> np.ndarray:
+    """Joint least-squares restoration of lines seen with several shift maps (numba).
+
+    Parameters
+    ----------
+    images : (M, L, N) or (M, A, N, B) float64
+        M distorted observations of lines of N voxels: L lines, or the A x B lines of volumes
+        seen as ``(outer, n, inner)`` with the phase-encode axis in the middle (read in place).
+    shifts : same shape as `images`, float64
+        Shift in voxels of each observation at the undistorted voxel centres.
+    penalty : float
+        Dimensionless weight of the second-difference penalty on the spline coefficients,
+        relative to the mean diagonal of the data term's normal matrix (> 0).
+    floor : float
+        Jacobian at or below which a segment counts as folded; rows it reaches are left out.
+
+    Returns
+    -------
+    (L, N) or (A, N, B) float64
+        ``A_0 c`` with ``c = argmin sum_m ||W_m^(1/2) (A_m c - y_m)||^2 + penalty * s * ||D2 c||^2``
+        (``A_m`` from :func:`forward_matrix`, ``W_m`` the squared row Jacobians, ``s`` the mean
+        diagonal of the data term, ``A_0`` the forward matrix without shift): the image an
+        acquisition without field would have recorded.
+    """
+    images = np.ascontiguousarray(images, np.float64)
+    shifts = np.ascontiguousarray(shifts, np.float64)
+    if images.shape != shifts.shape or images.ndim not in (3, 4):
+        raise ValueError(f"images {images.shape} and shifts {shifts.shape} must be one (M, L, N) or (M, A, N, B) shape")
+    as_lines = images.ndim == 3
+    if as_lines:
+        images, shifts = images[..., None], shifts[..., None]
+    n = images.shape[2]
+    output_rows = forward_matrix(np.zeros(n), floor)[0]
     out = np.empty(images.shape[1:], np.float64)
-    _restore_kernel(np.ascontiguousarray(images, np.float64), np.ascontiguousarray(lo, np.float64),
-                    np.ascontiguousarray(hi, np.float64), float(penalty), out)
-    return out
+    _restore_kernel(images, shifts, float(penalty), float(floor), output_rows, out)
+    return out[..., 0] if as_lines else out
 
 
-def forward_matrix_reference(lo_line: np.ndarray, hi_line: np.ndarray) -> np.ndarray:
-    """Dense forward matrix of one line from :func:`fieldfix._unwarp_kernels.splat_lines_reference`."""
-    from ._unwarp_kernels import splat_lines_reference
-
-    n = lo_line.shape[0]
-    unit = np.eye(n)
-    return splat_lines_reference(unit, np.tile(lo_line, (n, 1)), np.tile(hi_line, (n, 1))).T
+# ---------------------------------------------------------------------------------------------
+# Plain-numpy references of the restoration
+# ---------------------------------------------------------------------------------------------
 
 
-def restore_lines_reference(images, lo, hi, penalty):
-    """Plain-numpy reference of :func:`restore_lines` (dense normal equations, numpy.linalg.solve)."""
+def keys_reference(t):
+    """Keys 1981 cubic convolution kernel (a = -1/2), vectorised."""
+    a = np.abs(np.asarray(t, np.float64))
+    inner = (1.5 * a - 2.5) * a * a + 1.0
+    outer = ((-0.5 * a + 2.5) * a - 4.0) * a + 2.0
+    return np.where(a < 1, inner, np.where(a < 2, outer, 0.0))
+
+
+def bspline3_reference(t):
+    """Centred cubic B-spline, vectorised."""
+    a = np.abs(np.asarray(t, np.float64))
+    return np.where(a < 1, 2 / 3 - a * a + 0.5 * a ** 3, np.where(a < 2, (2 - a) ** 3 / 6, 0.0))
+
+
+def line_map_reference(shift_line):
+    """Nodes ``(x, w)`` of the piecewise-linear map ``w = x + s(x)`` on [-1/2, n - 1/2]."""
+    s = np.asarray(shift_line, np.float64)
+    n = s.size
+    x = np.concatenate([[-0.5], np.arange(n, dtype=float), [n - 0.5]])
+    ends = [s[0] - 0.5 * (s[1] - s[0])], [s[-1] + 0.5 * (s[-1] - s[-2])]
+    return x, x + np.concatenate([ends[0], s, ends[1]])
+
+
+def _mirror_reference(k, n):
+    period = 2 * (n - 1)
+    k = np.abs(k) % period
+    return np.where(k >= n, period - k, k)
+
+
+def forward_matrix_reference(shift_line, floor):
+    """Plain-numpy reference of :func:`forward_matrix` (vectorised Gauss rule on the same pieces)."""
+    x_nodes, w_nodes = line_map_reference(shift_line)
+    n = x_nodes.size - 2
+    slope = np.diff(w_nodes) / np.diff(x_nodes)
+    bad = np.zeros(n, bool)
+    rows = np.arange(n)
+    for i in np.flatnonzero(slope <= floor):
+        lo, hi = sorted(w_nodes[i:i + 2])
+        bad |= (rows > lo - KEYS_RADIUS) & (rows < hi + KEYS_RADIUS)
+    pieces = []
+    for i in np.flatnonzero(slope > floor):
+        inner = np.arange(np.floor(w_nodes[i]) + 1, np.ceil(w_nodes[i + 1]))
+        cuts = np.concatenate([[x_nodes[i]], np.clip(x_nodes[i] + (inner - w_nodes[i]) / slope[i], x_nodes[i],
+                                                     x_nodes[i + 1]), [x_nodes[i + 1]]])
+        pieces += [(a, b, i) for a, b in zip(cuts[:-1], cuts[1:]) if b > a]
+    a, b, seg = (np.array(v) for v in zip(*pieces))
+    x = a[:, None] + (b - a)[:, None] * _GAUSS_X
+    h = ((b - a)[:, None] * _GAUSS_W).ravel()
+    x = x.ravel()
+    seg = np.repeat(seg, 4)
+    w = w_nodes[seg] + slope[seg] * (x - x_nodes[seg])
+    kern = keys_reference(rows[:, None] - w[None, :]) * ~bad[:, None]  # (rows, points)
+    k = np.arange(-2, n + 2)
+    spline = np.zeros((x.size, n))
+    np.add.at(spline, (slice(None), _mirror_reference(k, n)), bspline3_reference(x[:, None] - k[None, :]))
+    amat = (kern * h) @ spline
+    weight = np.abs(kern) * h
+    along_x = weight.sum(axis=1)
+    jac = np.where(along_x > 0, (weight * slope[seg]).sum(axis=1) / np.where(along_x > 0, along_x, 1.0), 0.0)
+    return amat, jac, bad
+
+
+def restore_lines_reference(images, shifts, penalty, floor):
+    """Reference of :func:`restore_lines`: the stacked weighted system solved by ``scipy.linalg.lstsq``.
+
+    No normal equations: the rows ``sqrt(w) A_m``, the penalty rows ``sqrt(penalty * s) D2``
+    and the ridge rows are stacked and solved by scipy's least-squares driver (SVD based).
+    """
+    from scipy import linalg
+
     n_img, n_lines, n = images.shape
-    diff = np.diff(np.eye(n), axis=0)
+    second = np.diff(np.eye(n), 2, axis=0)
+    output_rows = forward_matrix_reference(np.zeros(n), floor)[0]
     out = np.empty((n_lines, n))
     for line in range(n_lines):
-        mats = [forward_matrix_reference(lo[m, line], hi[m, line]) for m in range(n_img)]
-        normal = sum(a.T @ a for a in mats) + penalty * diff.T @ diff
-        rhs = sum(a.T @ images[m, line] for m, a in enumerate(mats))
-        out[line] = np.linalg.solve(normal, rhs)
+        blocks, targets, scale = [], [], 0.0
+        for m in range(n_img):
+            amat, jac, _ = forward_matrix_reference(shifts[m, line], floor)
+            blocks.append(jac[:, None] * amat)
+            targets.append(jac * images[m, line])
+            scale += float(((jac[:, None] * amat) ** 2).sum())
+        scale /= n
+        if scale <= 0:
+            out[line] = 0.0
+            continue
+        blocks += [np.sqrt(penalty * scale) * second, np.sqrt(RESTORE_RIDGE * scale) * np.eye(n)]
+        targets += [np.zeros(n - 2), np.zeros(n)]
+        coef = linalg.lstsq(np.vstack(blocks), np.concatenate(targets))[0]
+        out[line] = output_rows @ coef
     return out

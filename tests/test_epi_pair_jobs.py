@@ -29,13 +29,13 @@ def _affine():
     return affine
 
 
-def _truth(oversample=2):
+def _truth(oversample=2, bump_hz=45.0):
     fine = tuple(n * oversample for n in SHAPE)
     x, y, z = np.meshgrid(*[np.linspace(-1, 1, n) for n in fine], indexing="ij")
     head = (x / 0.8) ** 2 + (y / 0.85) ** 2 + (z / 0.9) ** 2 < 1
     texture = 1.0 + 0.35 * np.cos(6 * x) * np.cos(5 * y) + 0.25 * np.sin(7 * z + 2 * y)
     obj = np.where(head, 800.0 * texture, 0.0)
-    field = 45.0 * np.exp(-((x - 0.1) ** 2 + (y - 0.35) ** 2 + (z + 0.1) ** 2) / 0.3) - 10.0 * y
+    field = bump_hz * np.exp(-((x - 0.1) ** 2 + (y - 0.35) ** 2 + (z + 0.1) ** 2) / 0.3) - 10.0 * y
     return obj, field
 
 
@@ -92,10 +92,28 @@ def test_epi_pair_field_map_recovers_the_simulated_field_and_feeds_unwarp(pair, 
     assert np.sqrt(np.mean((unwarped - obj)[head] ** 2)) < 0.8 * np.sqrt(np.mean((raw - obj)[head] ** 2))
 
 
-@pytest.mark.xfail(strict=True, reason="the restoration's box forward model does not match band-limited (k-space) "
-                   "data: it comes out worse than either unwarped run; an interpolation-consistent model replaces it")
-def test_joint_restoration_of_opposite_runs(pair, capsys):
-    folder, paths, _, field, obj = pair
+@pytest.fixture(scope="module")
+def strong_pair(tmp_path_factory):
+    """The pair of the same head with a 400 Hz bump instead of 45 Hz: pull-back Jacobians 0.37 .. 1.61 for
+    'j' (1.63 .. 0.39 for 'j-'), so each polarity is clearly compressed somewhere. With the 45 Hz bump
+    (Jacobians 0.92 .. 1.06) there is nothing for a second polarity to recover."""
+    folder = tmp_path_factory.mktemp("epi_strong")
+    obj, field = _truth(bump_hz=400.0)
+    rng = np.random.default_rng(3)
+    paths = {}
+    for code, label in (("j", "pa"), ("j-", "ap")):
+        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ESP_S, echo_time_s=0.05, oversample=2,
+                             noise_sd=4.0, rng=rng, spin_echo=True)
+        paths[code] = _save(folder / f"sub-01_dir-{label}_epi.nii.gz", image,
+                            {"PhaseEncodingDirection": code, "TotalReadoutTime": READOUT_S})
+    return folder, paths, _coarse(field), _coarse(obj)
+
+
+def test_joint_restoration_of_opposite_runs(strong_pair, capsys):
+    folder, paths, field, obj = strong_pair
+    jacobian = 1 + np.gradient(field * ESP_S * SHAPE[1], axis=1)
+    head = obj > 0.2 * obj.max()
+    assert jacobian[head].min() < 0.4 and jacobian[head].max() > 1.6
     b0 = folder / "truth_b0_hz.nii.gz"
     nib.save(nib.Nifti1Image(field.astype(np.float32), _affine()), str(b0))
     out = folder / "joint"
@@ -105,9 +123,10 @@ def test_joint_restoration_of_opposite_runs(pair, capsys):
     result = json.loads(capsys.readouterr().out)
     combined = nib.load(result["combined"]).get_fdata()
     singles = [nib.load(out / f"{p.name[:-7]}_corrected.nii.gz").get_fdata() for p in paths.values()]
-    head = obj > 0.2 * obj.max()
     errors = [np.sqrt(np.mean((image - obj)[head] ** 2)) for image in (combined, *singles)]
-    assert errors[0] < max(errors[1:])  # better than the worse single polarity
+    # better than either single polarity, each unwarped by the job's default interpolation (linear; measured:
+    # 27.0 against 39.6 for j and 28.7 for j-; cubic single unwarps give 41.1 and 30.8)
+    assert errors[0] < 0.97 * min(errors[1:])
     summary = json.loads((out / "sub-01_dir-pa_epi_combination.json").read_text())
     assert summary["kind"] == "combined" and summary["pe_codes"] == ["j", "j-"]
 

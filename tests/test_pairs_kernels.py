@@ -7,7 +7,6 @@ from scipy import interpolate, ndimage
 from fieldfix import _pairs_kernels as kernels
 from fieldfix import _pairs_model as model
 from fieldfix import _pairs_rigid as rigid
-from fieldfix.unwarp import distort
 
 
 def _smooth_random(shape, seed, sigma=2.0):
@@ -66,32 +65,95 @@ def test_rigid_pull_matches_scipy_and_its_adjoint_is_the_transpose():
     assert left == pytest.approx(right, rel=1e-12)
 
 
-def _line_edges(shift):
-    first = shift[:, :1] - 0.5 * (shift[:, 1:2] - shift[:, :1])
-    last = shift[:, -1:] + 0.5 * (shift[:, -1:] - shift[:, -2:-1])
-    edges = np.arange(shift.shape[1] + 1) - 0.5 + np.concatenate(
-        [first, 0.5 * (shift[:, 1:] + shift[:, :-1]), last], axis=1)
-    return edges[:, :-1], edges[:, 1:]
+def _folding_line(n=24, amplitude=3.2):
+    """Shift of one line whose map w = x + s(x) folds where the slope of s is below -0.9."""
+    return amplitude * np.sin(np.arange(n) / 3.0)
 
 
-def test_restore_kernel_matches_dense_reference_and_inverts_the_forward_model():
+def test_forward_matrix_matches_scipy_quad_and_leaves_out_folded_rows():
+    # Outside reference: scipy.integrate.quad of the defining integral
+    # A[j, k] = integral over the field of view of beta3(x - k) * keys(j - x - s(x)) dx (mirrored
+    # coefficients), with s linear between voxel centres (numpy.interp).
+    from scipy import integrate
+
+    shift = _folding_line()
+    n = shift.size
+    amat, jac, left_out = kernels.forward_matrix(shift, 0.1)
+    ref_amat, ref_jac, ref_left_out = kernels.forward_matrix_reference(shift, 0.1)
+    assert np.allclose(amat, ref_amat, atol=1e-13) and np.allclose(jac, ref_jac, atol=1e-12)
+    assert np.array_equal(left_out, ref_left_out) and 0 < left_out.sum() < n
+    x_nodes, w_nodes = kernels.line_map_reference(shift)
+    slope = np.diff(w_nodes) / np.diff(x_nodes)
+    folded = [i for i in range(n + 1) if slope[i] <= 0.1]
+    # a row is left out exactly when the kernel (radius 2) reaches a folded segment's image
+    reached = [any(min(w_nodes[i:i + 2]) - 2 < j < max(w_nodes[i:i + 2]) + 2 for i in folded) for j in range(n)]
+    assert left_out.tolist() == reached and not amat[left_out].any()
+    copies = {k: [v for v in range(-3, n + 3) if kernels._mirror_reference(np.array(v), n) == k] for k in range(n)}
+    for j in np.flatnonzero(~left_out)[::3]:
+        for k in range(0, n, 2):
+            def integrand(x, j=j, k=k):
+                if any(x_nodes[i] <= x <= x_nodes[i + 1] for i in folded):
+                    return 0.0  # folded segments are not part of the model
+                w = np.interp(x, x_nodes, w_nodes)
+                return sum(kernels.bspline3_reference(x - v) for v in copies[k]) * kernels.keys_reference(j - w)
+            value = integrate.quad(integrand, -0.5, n - 0.5, points=list(range(n)), limit=500)[0]
+            assert amat[j, k] == pytest.approx(value, abs=1e-7)
+
+
+def test_forward_model_conserves_signal_and_its_row_jacobian_is_the_slope():
+    # Analytic: the Keys kernel is a partition of unity (sum_j K(j - t) = 1) and the cubic B-spline
+    # integrates to 1, so every interior coefficient's signal lands in full on the distorted samples;
+    # for a linear shift s = a + g x the map is affine and each row's Jacobian is 1 + g.
+    n = 40
+    for gain in (-0.4, 0.0, 0.5):
+        shift = 1.3 + gain * (np.arange(n) - n / 2)
+        amat, jac, left_out = kernels.forward_matrix(shift, 0.1)
+        assert not left_out.any()
+        def w(x, gain=gain):
+            return x + 1.3 + gain * (x - n / 2)
+
+        # coefficients whose mirrored copies miss the field of view and whose image (plus the kernel) stays on it
+        covered = [k for k in range(3, n - 3) if w(k - 2) - 2 >= 0 and w(k + 2) + 2 <= n - 1]
+        assert len(covered) > 10
+        assert np.allclose(amat[:, covered].sum(axis=0), 1.0, atol=1e-12)
+        inner = [j for j in range(n) if amat[j].any() and 4 < j < n - 5]
+        assert np.allclose(jac[inner], 1 + gain, atol=1e-12)
+
+
+def test_restore_kernel_matches_scipy_lstsq_and_layouts_agree():
+    # Outside reference: the stacked weighted system (data rows, penalty rows, ridge rows) solved by
+    # scipy.linalg.lstsq (SVD), against our banded Cholesky solve of the normal equations.
     rng = np.random.default_rng(3)
-    n, lines = 30, 4
-    truth = rng.random((lines, n))
-    images, los, his = [], [], []
-    for sign in (1, -1):
-        shift = sign * 2.5 * np.sin(np.arange(n) / 4.0)[None, :] * np.ones((lines, 1))
-        images.append(distort(truth[:, None, :], shift[:, None, :], 2)[:, 0, :])
-        lo, hi = _line_edges(shift)
-        los.append(lo)
-        his.append(hi)
-    args = np.array(images), np.array(los), np.array(his)
-    ours = kernels.restore_lines(*args, 1e-4)
-    assert np.allclose(ours, kernels.restore_lines_reference(*args, 1e-4), atol=1e-9)
-    assert np.abs(ours - truth).max() < 0.02
-    # The dense forward matrix reproduces fieldfix.unwarp.distort line by line.
-    amat = kernels.forward_matrix_reference(los[0][0], his[0][0])
-    assert np.allclose(amat @ truth[0], images[0][0], atol=1e-12)
+    n, lines = 24, 6
+    shift = np.stack([sign * (_folding_line(n)[None, :] + rng.normal(0.0, 0.3, (lines, 1))) for sign in (1, -1)])
+    images = rng.random((2, lines, n))
+    ours = kernels.restore_lines(images, shift, 3e-3, 0.1)
+    assert np.allclose(ours, kernels.restore_lines_reference(images, shift, 3e-3, 0.1), atol=1e-10)
+    # (M, A, N, B) volumes read in place give the same lines
+    as_volume = [np.ascontiguousarray(a.reshape(2, 2, 3, n).transpose(0, 1, 3, 2)) for a in (images, shift)]
+    volume = kernels.restore_lines(*as_volume, 3e-3, 0.1)
+    assert np.allclose(volume.transpose(0, 2, 1).reshape(lines, n), ours, atol=1e-13)
+
+
+def test_restoration_inverts_its_forward_model_is_linear_and_keeps_smooth_lines():
+    rng = np.random.default_rng(4)
+    n = 48
+    y = np.arange(n)
+    truth = np.exp(-((y - 22.0) / 7.0) ** 2) * (1 + 0.3 * np.cos(y / 2.0))
+    output_rows = kernels.forward_matrix(np.zeros(n), 0.1)[0]
+    coef = np.linalg.solve(output_rows, truth)
+    shifts = np.stack([sign * 3.0 * np.sin(y / 6.0)[None, :] for sign in (1, -1)])  # Jacobians 0.5 .. 1.5
+    images = np.stack([kernels.forward_matrix(s[0], 0.1)[0] @ coef for s in shifts])[:, None, :]
+    restored = kernels.restore_lines(images, shifts, 3e-3, 0.1)[0]
+    assert np.abs(restored - truth).max() < 2e-3
+    # scale-free: the result is linear in the images, whatever the penalty
+    noisy = images + rng.normal(0.0, 0.05, images.shape)
+    for penalty in (1e-4, 3e-3, 0.1):
+        once = kernels.restore_lines(noisy, shifts, penalty, 0.1)
+        assert np.allclose(kernels.restore_lines(250.0 * noisy, shifts, penalty, 0.1), 250.0 * once, rtol=1e-10)
+    # no field: a smooth line comes back unchanged
+    still = np.stack([truth, truth])[:, None, :]
+    assert np.abs(kernels.restore_lines(still, np.zeros_like(still), 3e-3, 0.1)[0] - truth).max() < 1e-4
 
 
 @pytest.mark.parametrize("derivative", [0, 1, 2])

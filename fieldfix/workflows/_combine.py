@@ -15,17 +15,17 @@ from ..geometry import parse_pe_code, same_grid
 from ..io import Provenance, StreamingWriter, image_stem, save_image
 from ..jsonfile import write_json
 from ..outputs import CombinedFiles, CombinedSummary, JobOptions
-from ..pairs import PhaseEncoding, restore_jointly
+from ..pairs import RESTORE_PENALTY, PhaseEncoding, restore_jointly
 from ._run_checks import finite_volume
 from ._stream import BackgroundWriter, sequential
 
 __all__ = ["check_combinable", "write_combined_run", "COMBINE_METHOD", "COMBINE_PENALTY"]
 
-#: First-difference penalty of the restoration (squared image units per voxel; stabilises only
-#: lines the data leave undetermined).
-COMBINE_PENALTY = 1e-3
-COMBINE_METHOD = ("least squares over both polarities of one undistorted image whose signal-conserving distortions "
-                  "match the runs (after Andersson, Skare and Ashburner 2003, NeuroImage)")
+#: Smoothness penalty of the restoration: dimensionless, relative to the data term (the library default).
+COMBINE_PENALTY = RESTORE_PENALTY
+COMBINE_METHOD = ("least squares over both polarities of one undistorted image (a cubic B-spline) whose band-limited "
+                  "distortions match the runs, each sample weighted by its squared Jacobian, folded samples left out "
+                  "(after Andersson, Skare and Ashburner 2003, NeuroImage)")
 
 
 def check_combinable(plans) -> None:
