@@ -1,0 +1,483 @@
+"""Head motion through an EPI run: per-volume rigid poses, and motion and distortion in one resampling.
+
+Model
+-----
+The run's reference volume and the field (Hz) aligned to it (e.g. by
+:func:`fieldfix.align.align_fieldmap` and :func:`fieldfix.align.align_field_to_run`) define the
+head at rest: its undistorted image ``o`` (the reference unwarped once) and its field ``f``. Volume
+``t`` shows the head moved by the pose ``P_t`` (reference world -> volume world, the conventions
+of :mod:`fieldfix.align`: ``y = R (x - c) + c + t`` with ``R = Rz Ry Rx`` about the run grid's
+centre ``c``), distorted by the *moved* field::
+
+    volume_t = D(kappa * f o P_t^-1) [o o P_t^-1]
+
+with ``D`` the signal-conserving forward model along the phase-encode axis and ``kappa`` the
+shift per hertz (:mod:`fieldfix.shift`). First order: the map follows the head. Neglected: the
+change of the field with the head's orientation to B0 (the susceptibility field of a pitched or
+rolled head is not the rotated field; about a hertz per degree near the sinuses at 3 T, from
+memory), field drift, the spin history and through-slice motion within a volume, and any
+change of the field caused by the motion of other body parts.
+
+Pose estimation (:func:`align_volume_pose`): the same contrast on both sides, so least squares
+between the reference at rest ``o`` and the volume pulled back through the model at a trial pose
+(the correction below, with the Jacobian of the reference field), over the voxels where the
+field is gentle (``|d shift / d y| < 0.3``), minimised over the six parameters with exact
+gradients (L-BFGS, scipy) on a pyramid of the run grid, starting from the previous volume's
+pose; the same convergence rule as :mod:`fieldfix.align` (steps below 0.01 mm and 0.01 degree,
+scaled by the block size on coarse levels). The reference volume goes through the same pull-back
+as the others (its own pose is the identity), so no forward model enters the comparison.
+
+Correction (:func:`align_resample_volume`), one interpolation per volume: the output voxel ``v``
+(reference position, undistorted) takes the cubic B-spline value of volume ``t`` at
+``Q_t v + kappa f(v) e_pe`` (``Q_t`` the pose in voxel coordinates, ``e_pe`` the phase-encode
+axis) times the Jacobian ``1 + kappa grad f(v) . (Q_t^-1 e_pe)``, floored at the fold threshold
+of :mod:`fieldfix.shift`: motion and distortion in a single resampling, so the data are not
+blurred twice.
+
+Framewise displacement (:func:`align_framewise_displacement`): Power, Barnes, Snyder, Schlaggar
+and Petersen 2012, NeuroImage 59:2142 (from memory): the sum of the absolute backward differences
+of the six parameters, rotations (radians) turned into millimetres on a sphere of radius 50 mm.
+
+Research software, not a medical device: inspect corrected images before they are used for any
+decision about a person.
+
+Examples
+--------
+>>> import numpy as np
+>>> fd = align_framewise_displacement(np.array([[0, 0, 0], [1, 0, 0.5]]), np.zeros((2, 3)))
+>>> fd.tolist()
+[0.0, 1.5]
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import _align_kernels as kernels
+from . import _pose
+from ._progress import progress_bar
+from .align import Readout, _affine, _anatomy, _volume
+from .errors import GeometryError, InputError
+from .geometry import parse_pe_code
+from .shift import DEFAULT_JACOBIAN_FLOOR
+from .unwarp import unwarp_volume
+
+__all__ = [
+    "MotionOptions",
+    "MotionModel",
+    "VolumePose",
+    "MotionResult",
+    "align_motion_model",
+    "align_volume_pose",
+    "align_resample_volume",
+    "align_run_volumes",
+    "align_motion",
+    "align_framewise_displacement",
+    "align_motion_tsv",
+    "FD_RADIUS_MM",
+]
+
+#: Radius of the sphere on which rotations become displacements (Power et al. 2012).
+FD_RADIUS_MM = 50.0
+#: The pose cost counts voxels whose reference shift changes by less than this per voxel along
+#: the phase-encode axis: where the field is steeper, signal piles up, folds and drops out, and
+#: the forward model no longer predicts the image well.
+TRUSTED_SHIFT_GRADIENT = 0.3
+#: A volume that moved more than this (mm or degrees) from the reference gets a warning.
+LARGE_MOTION = 10.0
+
+
+@dataclass(frozen=True)
+class MotionOptions:
+    """Options of the motion model.
+
+    Attributes
+    ----------
+    levels : tuple of int, pyramid block sizes for the pose estimation, coarse to fine
+    max_iterations : int, per level
+    step_mm, step_deg, relative_cost : convergence rule (see :class:`fieldfix._pose.StopRule`)
+    jacobian_floor : float, Jacobian floor of the intensity correction
+    parallel : bool or None, numba threads for the resampling (None: by grid size)
+    """
+
+    levels: tuple = (4, 2, 1)
+    max_iterations: int = 40
+    step_mm: float = 0.01
+    step_deg: float = 0.01
+    relative_cost: float = 1e-7
+    jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
+    parallel: bool | None = None
+
+    def rule(self, factor: int) -> _pose.StopRule:
+        return _pose.StopRule(self.step_mm * factor, self.step_deg * factor, self.relative_cost,
+                              self.max_iterations)
+
+
+@dataclass(frozen=True)
+class MotionModel:
+    """The head at rest (reference volume unwarped, and its field), built once per run.
+
+    Attributes
+    ----------
+    shape : tuple, run grid
+    affine : (4, 4), run voxel -> world mm
+    pe_axis : int
+    kappa : float, shift (voxels along the PE axis) per Hz
+    centre_mm : (3,), rotation centre (run grid centre)
+    shift_vox : (X, Y, Z), the reference shift map ``kappa * b0_hz``
+    shift_gradient : (3, X, Y, Z), its derivatives along the voxel axes
+    levels : tuple of :class:`PoseLevel`, the pyramid of the pose estimation
+    options : MotionOptions
+    """
+
+    shape: tuple
+    affine: np.ndarray
+    pe_axis: int
+    kappa: float
+    centre_mm: np.ndarray
+    shift_vox: np.ndarray
+    shift_gradient: np.ndarray
+    levels: tuple
+    options: MotionOptions
+
+
+@dataclass(frozen=True)
+class PoseLevel:
+    """One level of the pose pyramid: the reference at rest on a grid of `factor`-voxel blocks.
+
+    Attributes
+    ----------
+    factor : int
+    affine : (4, 4), the level grid (voxel centres at the blocks' centres)
+    still : the unwarped reference (block means)
+    shift_vox : the reference shift map in level voxels
+    jacobian : ``1 + d shift / d y`` on the level grid (fold floor applied)
+    weight : fraction of each block the cost counts (see ``TRUSTED_SHIFT_GRADIENT``)
+    """
+
+    factor: int
+    affine: np.ndarray
+    still: np.ndarray
+    shift_vox: np.ndarray
+    jacobian: np.ndarray
+    weight: np.ndarray
+
+    def problem(self, volume, pe_axis, centre_mm):
+        source = _pose.block_mean(volume, self.factor)
+        scale = 1.0 / max(float(np.sum(self.weight * self.still * self.still)), 1e-300)
+        return _PullProblem(self, source, int(pe_axis), np.asarray(centre_mm, float), scale)
+
+
+@dataclass(frozen=True)
+class _PullProblem:
+    """Least squares between the reference at rest and a volume pulled back through a pose.
+
+    ``C(p) = sum w (J * volume(Q_p v + shift(v) e_pe) - still)^2 / sum w still^2`` with the
+    Jacobian fixed at its value for the reference field; the gradient is exact for this cost
+    (trilinear sampling), through the rigid map.
+    """
+
+    level: PoseLevel
+    source: np.ndarray
+    pe_axis: int
+    centre_mm: np.ndarray
+    scale: float
+
+    def evaluate(self, params):
+        affine = self.level.affine
+        pose = _pose.pose_matrix(params[:3], params[3:], self.centre_mm)
+        vmap = (np.linalg.inv(affine) @ pose @ affine)[:3]
+        u, gu = kernels.sample_shifted(self.source, vmap, self.level.shift_vox, self.pe_axis)
+        jac, weight = self.level.jacobian, self.level.weight
+        residual = jac * u - self.level.still
+        cost = float(np.sum(weight * residual * residual)) * self.scale
+        a = (2.0 * self.scale) * weight * residual * jac
+        zeros = np.zeros_like(a)
+        sum_h, outer = kernels.pose_sums(a, zeros, gu, gu, 0.0, affine[:3], self.centre_mm, parallel=False)
+        to_world = np.linalg.inv(affine[:3, :3]).T
+        sum_h, outer = to_world @ sum_h, to_world @ outer
+        grad = np.empty(6)
+        grad[:3] = sum_h
+        for k, d_rot in enumerate(_pose.rotation_derivatives(params[3:])):
+            grad[3 + k] = float(np.sum(d_rot * outer))
+        return cost, grad
+
+
+@dataclass(frozen=True)
+class VolumePose:
+    """Pose of one volume against the reference (reference world -> volume world).
+
+    Attributes
+    ----------
+    translation_mm, rotation_deg : tuple of 3 floats (conventions of :mod:`fieldfix.align`)
+    matrix : (4, 4) array
+    cost_before, cost_after : float, normalised least squares at the start pose and at the result
+    iterations : int
+    converged : bool
+    """
+
+    translation_mm: tuple
+    rotation_deg: tuple
+    matrix: np.ndarray
+    cost_before: float
+    cost_after: float
+    iterations: int
+    converged: bool
+
+
+@dataclass(frozen=True)
+class MotionResult:
+    """Poses of a whole run.
+
+    Attributes
+    ----------
+    translation_mm, rotation_deg : (n_volumes, 3) arrays
+    framewise_displacement_mm : (n_volumes,) array (Power et al. 2012; 0 for the first volume)
+    cost_after : (n_volumes,) array
+    converged : (n_volumes,) bool array
+    warnings : tuple of str
+    """
+
+    translation_mm: np.ndarray
+    rotation_deg: np.ndarray
+    framewise_displacement_mm: np.ndarray
+    cost_after: np.ndarray
+    converged: np.ndarray
+    warnings: tuple = field(default_factory=tuple)
+
+
+def align_motion_model(
+    reference: np.ndarray,
+    run_affine: np.ndarray,
+    b0_hz: np.ndarray,
+    readout: Readout,
+    options: MotionOptions = MotionOptions(),
+) -> MotionModel:
+    """Build the motion model of a run from its reference volume and the field aligned to it.
+
+    Parameters
+    ----------
+    reference : (X, Y, Z) array, the reference volume (distorted EPI)
+    run_affine : (4, 4) array
+    b0_hz : (X, Y, Z) array, Hz, the field on the run grid where the head is in `reference`
+    readout : Readout
+    options : MotionOptions
+
+    Returns
+    -------
+    MotionModel
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> vol = np.zeros((12, 12, 8)); vol[3:9, 3:9, 2:6] = 1.0
+    >>> model = align_motion_model(vol, np.eye(4), np.zeros_like(vol), Readout("j", 5e-4))
+    >>> model.shape, model.pe_axis
+    ((12, 12, 8), 1)
+    """
+    reference = _volume(reference, "reference")
+    b0_hz = _volume(b0_hz, "b0_hz")
+    if b0_hz.shape != reference.shape:
+        raise GeometryError(f"b0_hz {b0_hz.shape} must be on the run grid {reference.shape}")
+    _anatomy(reference, "reference")
+    affine = _affine(run_affine, "run_affine")
+    axis, _ = parse_pe_code(readout.pe_code)
+    kappa = readout.shift_per_hz(reference.shape)
+    shift = kappa * b0_hz
+    still = unwarp_volume(reference, shift, axis, interp="cubic", jacobian=True,
+                          jacobian_floor=options.jacobian_floor).astype(np.float64)
+    centre = affine[:3, :3] @ ((np.array(reference.shape) - 1) / 2.0) + affine[:3, 3]
+    gradient = np.stack(np.gradient(shift))
+    trusted = (np.abs(gradient[axis]) < TRUSTED_SHIFT_GRADIENT).astype(float)
+    jacobian = np.maximum(1.0 + gradient[axis], options.jacobian_floor)
+    levels = []
+    for factor in options.levels:
+        _, level_affine = _pose.level_grid(reference.shape, affine, factor)
+        level_shift = _pose.block_mean(shift, factor) / factor
+        level_jacobian = _pose.block_mean(jacobian, factor)
+        levels.append(PoseLevel(int(factor), level_affine, _pose.block_mean(still, factor), level_shift,
+                                level_jacobian, _pose.block_mean(trusted, factor)))
+    return MotionModel(tuple(reference.shape), affine, axis, kappa, centre, shift, gradient, tuple(levels),
+                       options)
+
+
+def _pose_result(model: MotionModel, params, costs, iterations, converged) -> VolumePose:
+    return VolumePose(translation_mm=tuple(float(v) for v in params[:3]),
+                      rotation_deg=tuple(float(v) for v in np.rad2deg(params[3:])),
+                      matrix=_pose.pose_matrix(params[:3], params[3:], model.centre_mm), cost_before=costs[0],
+                      cost_after=costs[1], iterations=int(iterations), converged=bool(converged))
+
+
+def align_volume_pose(model: MotionModel, volume: np.ndarray, start: VolumePose | None = None) -> VolumePose:
+    """Estimate one volume's pose against the reference, distortion-aware (see the module docstring).
+
+    Parameters
+    ----------
+    model : MotionModel
+    volume : (X, Y, Z) array on the run grid
+    start : VolumePose, optional, initial pose (e.g. the previous volume's); identity if None
+
+    Returns
+    -------
+    VolumePose
+    """
+    volume = _volume(volume, "volume")
+    if volume.shape != model.shape:
+        raise GeometryError(f"volume shape {volume.shape} differs from the run grid {model.shape}")
+    params = np.zeros(6) if start is None else np.r_[start.translation_mm, np.deg2rad(start.rotation_deg)]
+    iterations, converged, first_cost, cost = 0, False, None, None
+    for level in model.levels:
+        problem = level.problem(volume, model.pe_axis, model.centre_mm)
+        if first_cost is None:
+            first_cost = problem.evaluate(params)[0]
+        solution = _pose.minimise(problem, params, model.options.rule(level.factor))
+        params, cost = solution.params, solution.cost
+        iterations += solution.iterations
+        converged = solution.converged
+    return _pose_result(model, params, (float(first_cost), float(cost)), iterations, converged)
+
+
+def align_resample_volume(model: MotionModel, volume: np.ndarray, pose: VolumePose,
+                          out: np.ndarray | None = None) -> np.ndarray:
+    """Correct one volume for motion and distortion in a single cubic B-spline interpolation.
+
+    Parameters
+    ----------
+    model : MotionModel
+    volume : (X, Y, Z) array, the volume as acquired
+    pose : VolumePose, its pose (e.g. from :func:`align_volume_pose`)
+    out : (X, Y, Z) float32 C-contiguous array, optional
+
+    Returns
+    -------
+    (X, Y, Z) float32 array: the volume in the reference position, undistorted, with the
+    Jacobian intensity correction; zero where the source lies beyond half a voxel outside.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> vol = np.zeros((12, 12, 8)); vol[3:9, 3:9, 2:6] = 1.0
+    >>> model = align_motion_model(vol, np.eye(4), np.zeros_like(vol), Readout("j", 5e-4))
+    >>> still = VolumePose((0.0, 0.0, 0.0), (0.0, 0.0, 0.0), np.eye(4), 0.0, 0.0, 0, True)
+    >>> bool(np.allclose(align_resample_volume(model, vol, still), vol, atol=1e-5))
+    True
+    """
+    volume = _volume(volume, "volume")
+    if volume.shape != model.shape:
+        raise GeometryError(f"volume shape {volume.shape} differs from the run grid {model.shape}")
+    parallel = model.options.parallel
+    voxel_map = np.linalg.inv(model.affine) @ np.asarray(pose.matrix, float) @ model.affine
+    column = np.linalg.inv(voxel_map)[:3, model.pe_axis]
+    g = model.shift_gradient
+    weight = 1.0 + column[0] * g[0] + column[1] * g[1] + column[2] * g[2]
+    np.maximum(weight, model.options.jacobian_floor, out=weight)
+    coef = kernels.prefilter_cubic(volume, parallel=parallel)
+    return kernels.resample_rigid_shift(coef, voxel_map[:3], model.shift_vox, weight, model.pe_axis, out=out,
+                                        parallel=parallel)
+
+
+def _volumes(run):
+    shape = getattr(run, "shape", None)
+    if shape is None or len(shape) != 4:
+        raise InputError(f"run must be a 4D array-like (volumes along the last axis), got shape {shape}")
+    return int(shape[3])
+
+
+def align_run_volumes(run, model: MotionModel, *, resample: bool = True, progress: bool = False):
+    """Go through a run volume by volume: estimate each pose, and correct the volume once.
+
+    Parameters
+    ----------
+    run : 4D array-like (numpy array, memory map or nibabel ``dataobj``), volumes on the last axis;
+        only one volume is read at a time, so memory does not grow with the run's length
+    model : MotionModel
+    resample : bool, also yield the corrected volume (else None)
+    progress : bool, show a progress bar
+
+    Yields
+    ------
+    (t, VolumePose, corrected) : int, VolumePose, (X, Y, Z) float32 array or None
+    """
+    n_volumes = _volumes(run)
+    pose = None
+    for t in progress_bar(range(n_volumes), total=n_volumes, desc="motion", enabled=progress, unit="vol"):
+        volume = np.asarray(run[..., t], dtype=np.float64)
+        pose = align_volume_pose(model, volume, start=pose)
+        yield t, pose, (align_resample_volume(model, volume, pose) if resample else None)
+
+
+def align_motion(run, model: MotionModel, *, progress: bool = False) -> MotionResult:
+    """Poses of every volume of a run (estimation only; see :func:`align_run_volumes` to correct).
+
+    Returns
+    -------
+    MotionResult, with a warning for volumes that did not converge or moved far.
+    """
+    rows, costs, converged = [], [], []
+    for _, pose, _ in align_run_volumes(run, model, resample=False, progress=progress):
+        rows.append(np.r_[pose.translation_mm, pose.rotation_deg])
+        costs.append(pose.cost_after)
+        converged.append(pose.converged)
+    table = np.array(rows).reshape(-1, 6)
+    warnings = []
+    if not all(converged):
+        bad = [str(t) for t, ok in enumerate(converged) if not ok]
+        warnings.append(f"the pose did not converge for volume(s) {', '.join(bad)}")
+    far = np.flatnonzero(np.abs(table).max(axis=1) > LARGE_MOTION) if table.size else []
+    if len(far):
+        warnings.append(f"volume(s) {', '.join(map(str, far))} moved more than {LARGE_MOTION:g} mm or degrees "
+                        f"from the reference; check them by eye")
+    return MotionResult(table[:, :3], table[:, 3:],
+                        align_framewise_displacement(table[:, :3], table[:, 3:]), np.array(costs),
+                        np.array(converged, bool), tuple(warnings))
+
+
+def align_framewise_displacement(translation_mm, rotation_deg, radius_mm: float = FD_RADIUS_MM) -> np.ndarray:
+    """Framewise displacement (Power et al. 2012), mm, one value per volume (0 for the first).
+
+    ``FD_t = sum_i |p_i(t) - p_i(t - 1)|`` over the three translations (mm) and the three
+    rotations turned into arc lengths on a sphere of `radius_mm` (radians x radius).
+
+    Examples
+    --------
+    >>> align_framewise_displacement([[0, 0, 0], [0, 0, 0]], [[0, 0, 0], [1, 0, 0]]).round(4).tolist()
+    [0.0, 0.8727]
+    """
+    translation = np.asarray(translation_mm, float).reshape(-1, 3)
+    rotation = np.asarray(rotation_deg, float).reshape(-1, 3)
+    if translation.shape != rotation.shape:
+        raise InputError(f"translation_mm {translation.shape} and rotation_deg {rotation.shape} differ in length")
+    params = np.concatenate([translation, np.deg2rad(rotation) * float(radius_mm)], axis=1)
+    fd = np.zeros(len(params))
+    if len(params) > 1:
+        fd[1:] = np.abs(np.diff(params, axis=0)).sum(axis=1)
+    return fd
+
+
+#: Column names of the motion table (units in the names).
+TSV_COLUMNS = ("volume", "shift_x_mm", "shift_y_mm", "shift_z_mm", "turn_x_deg", "turn_y_deg", "turn_z_deg",
+               "framewise_displacement_mm")
+
+
+def align_motion_tsv(result: MotionResult) -> str:
+    """Format a motion table as tab-separated text (no file is written).
+
+    One header line with the units in the column names (world mm and degrees, the conventions
+    of :mod:`fieldfix.align`), then one row per volume: index, three translations, three
+    rotations and the framewise displacement (Power et al. 2012).
+
+    Examples
+    --------
+    >>> r = MotionResult(np.zeros((2, 3)), np.array([[0, 0, 0], [0.5, 0, 0]]), np.array([0.0, 0.436]),
+    ...                  np.zeros(2), np.ones(2, bool))
+    >>> print(align_motion_tsv(r).splitlines()[2])
+    1	0.0000	0.0000	0.0000	0.5000	0.0000	0.0000	0.4360
+    """
+    lines = ["\t".join(TSV_COLUMNS)]
+    for t, (shift, turn, fd) in enumerate(zip(result.translation_mm, result.rotation_deg,
+                                              result.framewise_displacement_mm)):
+        values = [*shift, *turn, fd]
+        lines.append("\t".join([str(t)] + [f"{float(v):.4f}" for v in values]))
+    return "\n".join(lines) + "\n"
