@@ -5,6 +5,7 @@ Usage::
     python benchmarks/run.py                 # every benchmarks/bench_*.py, full size
     python benchmarks/run.py --quick         # smaller sizes, for a smoke run
     python benchmarks/run.py unwarp plan     # only bench_unwarp.py and bench_plan.py
+    python benchmarks/run.py align          # field-map alignment and motion (bench_align.py)
     python benchmarks/run.py --json results.json
 """
 

@@ -56,6 +56,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import _align_kernels as kernels
+from . import _motion_kernels
 from . import _pose
 from ._progress import progress_bar
 from .align import Readout, _affine, _anatomy, _volume
@@ -373,8 +374,8 @@ def align_resample_volume(model: MotionModel, volume: np.ndarray, pose: VolumePo
     g = model.shift_gradient
     weight = 1.0 + column[0] * g[0] + column[1] * g[1] + column[2] * g[2]
     np.maximum(weight, model.options.jacobian_floor, out=weight)
-    coef = kernels.prefilter_cubic(volume, parallel=parallel)
-    return kernels.resample_rigid_shift(coef, voxel_map[:3], model.shift_vox, weight, model.pe_axis, out=out,
+    coef = _motion_kernels.prefilter_cubic(volume, parallel=parallel)
+    return _motion_kernels.resample_rigid_shift(coef, voxel_map[:3], model.shift_vox, weight, model.pe_axis, out=out,
                                         parallel=parallel)
 
 
@@ -472,8 +473,8 @@ def align_motion_tsv(result: MotionResult) -> str:
     --------
     >>> r = MotionResult(np.zeros((2, 3)), np.array([[0, 0, 0], [0.5, 0, 0]]), np.array([0.0, 0.436]),
     ...                  np.zeros(2), np.ones(2, bool))
-    >>> print(align_motion_tsv(r).splitlines()[2])
-    1	0.0000	0.0000	0.0000	0.5000	0.0000	0.0000	0.4360
+    >>> align_motion_tsv(r).splitlines()[2].split()
+    ['1', '0.0000', '0.0000', '0.0000', '0.5000', '0.0000', '0.0000', '0.4360']
     """
     lines = ["\t".join(TSV_COLUMNS)]
     for t, (shift, turn, fd) in enumerate(zip(result.translation_mm, result.rotation_deg,

@@ -6,6 +6,7 @@ from scipy import ndimage
 
 import _align_data as data
 from fieldfix import _align_kernels as kernels
+from fieldfix import _motion_kernels
 from fieldfix import _pose
 from fieldfix.align import (
     AlignOptions,
@@ -94,17 +95,17 @@ def test_pose_sums_matches_reference():
 def test_prefilter_matches_scipy_spline_filter():
     # Outside reference: scipy.ndimage.spline_filter (order 3, mirror), and the FFT reference.
     vol = RNG.random((7, 12, 5))
-    ours = kernels.prefilter_cubic(vol)
+    ours = _motion_kernels.prefilter_cubic(vol)
     assert np.max(np.abs(ours - ndimage.spline_filter(vol, 3, mode="mirror"))) < 1e-10
-    assert np.max(np.abs(ours - kernels.prefilter_cubic_reference(vol))) < 1e-10
+    assert np.max(np.abs(ours - _motion_kernels.prefilter_cubic_reference(vol))) < 1e-10
 
 
 def test_resample_rigid_shift_matches_reference_and_map_coordinates():
     vol = RNG.random((9, 10, 11))
-    coef = kernels.prefilter_cubic(vol)
+    coef = _motion_kernels.prefilter_cubic(vol)
     shift, weight = RNG.normal(0, 0.6, vol.shape), RNG.uniform(0.5, 1.5, vol.shape)
-    ours = kernels.resample_rigid_shift(coef, _vmap(), shift, weight, 1)
-    ref = kernels.resample_rigid_shift_reference(coef, _vmap(), shift, weight, 1)
+    ours = _motion_kernels.resample_rigid_shift(coef, _vmap(), shift, weight, 1)
+    ref = _motion_kernels.resample_rigid_shift_reference(coef, _vmap(), shift, weight, 1)
     assert np.max(np.abs(ours - ref)) < 1e-5
     # Outside reference: scipy.ndimage.map_coordinates (order 3, mirror) at the same positions.
     ijk = np.indices(vol.shape, dtype=float).reshape(3, -1)
