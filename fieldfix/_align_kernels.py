@@ -1,13 +1,11 @@
-"""Numba kernels of field-map alignment and motion correction, each beside a plain-numpy reference.
+"""Numba kernels of field-map alignment, each beside a plain-numpy reference.
 
-Private module: the public entry points are in :mod:`fieldfix.align` and :mod:`fieldfix.motion`.
+Private module: the public entry point is :mod:`fieldfix.align`.
 
 * ``sample_pair``: trilinear samples of a magnitude and a field at the source positions of
   every voxel of a target grid (a 3x4 voxel-to-voxel map), with their derivatives along the
   three source voxel axes. Magnitude outside the source voxels' extent is zero; the field
   takes the nearest edge value.
-* ``sample_shifted``: trilinear samples (and derivatives) of one volume at a rigid voxel map
-  plus a fixed shift along the phase-encode axis, zero outside.
 * ``distort_lines``: the signal-conserving forward model along the last axis (the same rule
   as :func:`fieldfix.unwarp.distort`): each voxel's signal is spread over the interval between
   its two edges' shifted positions (edge shifts are the mean of the two neighbouring voxel
@@ -19,8 +17,8 @@ Private module: the public entry points are in :mod:`fieldfix.align` and :mod:`f
   respect to the six rigid parameters follows (``h`` is the cost gradient with respect to each
   voxel's source position, ``z`` its world position relative to the centre and translation).
 
-The cubic B-spline prefilter and the single-interpolation resampler of motion correction are in
-:mod:`fieldfix._motion_kernels`.
+The kernels of motion estimation and correction (cubic B-spline prefilter, the single-interpolation
+resampler, the pose cost's normal equations) are in :mod:`fieldfix._motion_kernels`.
 
 The ``*_reference`` functions compute the same in plain numpy; the tests compare them.
 """
@@ -32,7 +30,6 @@ from numba import njit, prange
 
 __all__ = [
     "sample_pair", "sample_pair_reference",
-    "sample_shifted", "sample_shifted_reference",
     "distort_lines", "distort_lines_reference",
     "distort_adjoint", "distort_adjoint_reference",
     "pose_sums", "pose_sums_reference",
@@ -193,57 +190,6 @@ def sample_pair_reference(mag, field, vmap, shape):
     inside = np.all((pos >= -0.5) & (pos <= np.array(mag.shape)[:, None] - 0.5), axis=0)
     mv, mg = mv * inside, mg * inside
     return (mv.reshape(shape), fv.reshape(shape), mg.T.reshape(shape + (3,)), fg.T.reshape(shape + (3,)))
-
-
-@njit(cache=True)
-def _sample_shifted(vol, vmap, shift, pe_axis, u, gu):  # pragma: no cover - compiled
-    nx, ny, nz = u.shape
-    sx, sy, sz = vol.shape
-    for i in range(nx):
-        for j in range(ny):
-            for k in range(nz):
-                x = vmap[0, 0] * i + vmap[0, 1] * j + vmap[0, 2] * k + vmap[0, 3]
-                y = vmap[1, 0] * i + vmap[1, 1] * j + vmap[1, 2] * k + vmap[1, 3]
-                z = vmap[2, 0] * i + vmap[2, 1] * j + vmap[2, 2] * k + vmap[2, 3]
-                if pe_axis == 0:
-                    x += shift[i, j, k]
-                elif pe_axis == 1:
-                    y += shift[i, j, k]
-                else:
-                    z += shift[i, j, k]
-                if -0.5 <= x <= sx - 0.5 and -0.5 <= y <= sy - 0.5 and -0.5 <= z <= sz - 0.5:
-                    v, dx, dy, dz = _trilinear(vol, x, y, z)
-                else:
-                    v, dx, dy, dz = 0.0, 0.0, 0.0, 0.0
-                u[i, j, k] = v
-                gu[i, j, k, 0] = dx
-                gu[i, j, k, 1] = dy
-                gu[i, j, k, 2] = dz
-
-
-def sample_shifted(vol, vmap, shift, pe_axis):
-    """Trilinear values and derivatives of `vol` at ``vmap @ (i, j, k, 1) + shift * e_pe`` (numba, one thread).
-
-    Zero (and zero derivatives) beyond half a voxel outside `vol`. Returns ``u`` (shift's shape)
-    and ``gu`` (shape + (3,)).
-    """
-    vol = _check_source(vol, "vol")
-    shift = np.ascontiguousarray(shift, np.float64)
-    u, gu = np.empty(shift.shape), np.empty(shift.shape + (3,))
-    _sample_shifted(vol, np.ascontiguousarray(vmap, np.float64), shift, int(pe_axis), u, gu)
-    return u, gu
-
-
-def sample_shifted_reference(vol, vmap, shift, pe_axis):
-    """Plain-numpy reference of :func:`sample_shifted`."""
-    vol = np.asarray(vol, float)
-    shape = np.shape(shift)
-    ijk = np.indices(shape, dtype=float).reshape(3, -1)
-    pos = np.asarray(vmap, float)[:, :3] @ ijk + np.asarray(vmap, float)[:, 3:4]
-    pos[pe_axis] += np.asarray(shift, float).ravel()
-    value, grad = _trilinear_reference(vol, pos)
-    inside = np.all((pos >= -0.5) & (pos <= np.array(vol.shape)[:, None] - 0.5), axis=0)
-    return (value * inside).reshape(shape), (grad * inside).T.reshape(shape + (3,))
 
 
 # ---------------------------------------------------------------------------------------------

@@ -1,6 +1,6 @@
-"""Numba kernels of motion correction, each beside a plain-numpy reference.
+"""Numba kernels of motion estimation and correction, each beside a plain-numpy reference.
 
-Private module: the public entry point is :func:`fieldfix.motion.align_resample_volume`.
+Private module: the public entry points are in :mod:`fieldfix.motion`.
 
 * ``prefilter_cubic``: the cubic B-spline prefilter along all three axes (mirror boundary;
   Unser, Aldroubi and Eden 1993, IEEE Trans. Signal Process. 41(2):821, recursive filter with
@@ -8,6 +8,19 @@ Private module: the public entry point is :func:`fieldfix.motion.align_resample_
 * ``resample_rigid_shift``: motion and distortion in one interpolation: every output voxel
   takes the cubic B-spline value at its source position (a rigid voxel map plus a shift along
   the phase-encode axis) times an intensity weight; zero beyond half a voxel outside.
+* ``block_mean``: means over ``f x f x f`` blocks (the pyramid of the pose estimation).
+* ``pull_values`` and ``normal_equations``: the pose cost of :mod:`fieldfix.motion` on a list
+  of voxels. Each voxel ``v`` has a reference position ``y = R (A v - c)`` (world mm, about the
+  rotation centre) and a source position ``p = B (y + c + t) + b + shift * e_pe`` in the
+  volume's voxels (``A`` the level grid's affine, ``B, b`` its inverse). The volume is read
+  there through the cubic B-spline whose coefficients are the samples themselves (no
+  prefilter: interpolation and a light smoothing of width ~0.58 voxel in one kernel, the same
+  for every volume). ``normal_equations`` returns, in one pass, the sums of the Gauss-Newton
+  normal equations for the residual ``r = jac * value - still``: the cost ``sum w r^2``, the
+  gradient ``sum w r J`` and ``sum w J J^T`` with the exact Jacobian
+  ``J = jac * [g, y x g]`` (``g`` the world gradient of the value; translations, then
+  rotations about world x, y, z applied on the left of ``R``). A voxel counts only while all
+  its 4 x 4 x 4 taps lie inside the grid (no mirrored or clamped samples).
 
 The ``*_reference`` functions compute the same in plain numpy; the tests compare them.
 """
@@ -19,39 +32,31 @@ from numba import njit, prange
 
 from ._align_kernels import _use_parallel
 
-__all__ = ["prefilter_cubic", "prefilter_cubic_reference", "resample_rigid_shift", "resample_rigid_shift_reference"]
+__all__ = ["prefilter_cubic", "prefilter_cubic_reference", "resample_rigid_shift", "resample_rigid_shift_reference",
+           "block_mean", "pull_values", "pull_values_reference", "normal_equations", "normal_equations_reference",
+           "SUMS"]
 
 _POLE = np.sqrt(3.0) - 2.0
+#: Fused multiply-adds allowed (no other fast-math licence: NaN and infinity keep their meaning).
+_FMA = {"contract"}
+#: Layout of the sums of :func:`normal_equations`: cost, 6 gradient terms, the 21 upper-triangle
+#: terms of the 6x6 matrix (row by row), the sum of the weights and of ``w * still^2`` counted.
+SUMS = 30
+#: Voxel lists at least this long use the parallel pose kernel when ``parallel`` is None. Shorter
+#: ones take about a millisecond per pass, less than the threads' start-up costs on a busy machine.
+PARALLEL_POSE_VOXELS = 1 << 16
 
 
 # ---------------------------------------------------------------------------------------------
-# Cubic B-spline prefilter and the single-interpolation resampler
+# Cubic B-spline prefilter
 # ---------------------------------------------------------------------------------------------
-
-@njit(cache=True, inline="always")
-def _filter_line(c, n):  # pragma: no cover - compiled
-    """In-place cubic B-spline prefilter of one line, mirror boundary, exact initial values."""
-    z = _POLE
-    z_i = z
-    z_n1 = z ** (n - 1)
-    first = c[0] + z_n1 * c[n - 1]
-    for k in range(1, n - 1):
-        first += z_i * (c[k] + z_n1 * c[n - 1 - k])
-        z_i *= z
-    c[0] = first / (1.0 - z_n1 * z_n1)
-    for k in range(1, n):
-        c[k] += z * c[k - 1]
-    c[n - 1] = (z / (z * z - 1.0)) * (c[n - 1] + z * c[n - 2])
-    for k in range(n - 2, -1, -1):
-        c[k] = z * (c[k + 1] - c[k])
-    for k in range(n):
-        c[k] *= 6.0
-
 
 @njit(cache=True)
 def _filter_rows(c):  # pragma: no cover - compiled
-    """Prefilter a 2D array along its first axis, all columns at once (contiguous rows)."""
+    """Prefilter a 2D array along its first axis, all columns at once, mirror boundary, exact start."""
     n, m = c.shape
+    if n < 2:
+        return
     z = _POLE
     z_n1 = z ** (n - 1)
     first = np.empty(m)
@@ -80,38 +85,33 @@ def _filter_rows(c):  # pragma: no cover - compiled
             c[k, q] *= 6.0
 
 
+@njit(cache=True, inline="always")
+def _filter_last(c, i):  # pragma: no cover - compiled
+    """Prefilter plane i along the last axis (transposed so that the recursion is vectorised)."""
+    t = np.ascontiguousarray(c[i].T)
+    _filter_rows(t)
+    c[i] = t.T
+
+
 @njit(parallel=True, cache=True)
 def _prefilter_parallel(c):  # pragma: no cover - compiled
     nx, ny, nz = c.shape
-    if nx > 1:
-        for j in prange(ny):
-            block = np.ascontiguousarray(c[:, j, :])
-            _filter_rows(block)
-            c[:, j, :] = block
-    if ny > 1:
-        for i in prange(nx):
-            _filter_rows(c[i])
-    if nz > 1:
-        for i in prange(nx):
-            for j in range(ny):
-                _filter_line(c[i, j], nz)
+    columns = c.reshape(nx, ny * nz)
+    chunks = 8
+    for part in prange(chunks):
+        _filter_rows(columns[:, part * ny * nz // chunks:(part + 1) * ny * nz // chunks])
+    for i in prange(nx):
+        _filter_rows(c[i])
+        _filter_last(c, i)
 
 
 @njit(cache=True)
 def _prefilter_serial(c):  # pragma: no cover - compiled
     nx, ny, nz = c.shape
-    if nx > 1:
-        for j in range(ny):
-            block = np.ascontiguousarray(c[:, j, :])
-            _filter_rows(block)
-            c[:, j, :] = block
-    if ny > 1:
-        for i in range(nx):
-            _filter_rows(c[i])
-    if nz > 1:
-        for i in range(nx):
-            for j in range(ny):
-                _filter_line(c[i, j], nz)
+    _filter_rows(c.reshape(nx, ny * nz))
+    for i in range(nx):
+        _filter_rows(c[i])
+        _filter_last(c, i)
 
 
 def prefilter_cubic(volume, parallel=None):
@@ -144,8 +144,18 @@ def prefilter_cubic_reference(volume):
     return c
 
 
+# ---------------------------------------------------------------------------------------------
+# The single-interpolation resampler
+# ---------------------------------------------------------------------------------------------
+
 @njit(cache=True, inline="always")
 def _mirror_index(m, n):  # pragma: no cover - compiled
+    if n >= 4 and -n < m < 2 * n - 2:  # one reflection (taps of a clamped position): no division
+        if m < 0:
+            return -m
+        if m >= n:
+            return 2 * n - 2 - m
+        return m
     if n == 1:
         return 0
     period = 2 * (n - 1)
@@ -158,40 +168,73 @@ def _mirror_index(m, n):  # pragma: no cover - compiled
 
 
 @njit(cache=True, inline="always")
-def _axis_taps(p, n, idx, w):  # pragma: no cover - compiled
-    """Clamp, cubic B-spline weights and tap indices; True when no tap needs mirroring."""
-    p = min(max(p, 0.0), n - 1.0)
-    base = int(np.floor(p))
-    f = p - base
+def _weights(f):  # pragma: no cover - compiled
+    """The four cubic B-spline weights at fraction f in [0, 1)."""
     f2 = f * f
     f3 = f2 * f
-    w[0] = (1.0 - f) * (1.0 - f) * (1.0 - f) * (1.0 / 6.0)
-    w[1] = (4.0 - 6.0 * f2 + 3.0 * f3) * (1.0 / 6.0)
-    w[2] = (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) * (1.0 / 6.0)
-    w[3] = f3 * (1.0 / 6.0)
-    if base >= 1 and base + 2 <= n - 1:
-        for t in range(4):
-            idx[t] = base - 1 + t
-    else:
-        for t in range(4):
-            idx[t] = _mirror_index(base - 1 + t, n)
+    g = 1.0 - f
+    return (g * g * g * (1.0 / 6.0), (4.0 - 6.0 * f2 + 3.0 * f3) * (1.0 / 6.0),
+            (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) * (1.0 / 6.0), f3 * (1.0 / 6.0))
 
 
 @njit(cache=True, inline="always")
-def _resample_row(flat, shape, vmap, shift, weight, pe_axis, out, i):  # pragma: no cover - compiled
+def _pick(a, w0, w1, w2, w3):  # pragma: no cover - compiled
+    return w0 if a == 0 else (w1 if a == 1 else (w2 if a == 2 else w3))
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _cubic_value(flat, sx, sy, sz, p0, p1, p2, ix, iy, iz):  # pragma: no cover - compiled
+    """Cubic B-spline value at a clamped position; interior taps read without mirroring."""
+    a0, a1, a2 = int(p0), int(p1), int(p2)
+    x0, x1, x2, x3 = _weights(p0 - a0)
+    y0, y1, y2, y3 = _weights(p1 - a1)
+    z0, z1, z2, z3 = _weights(p2 - a2)
+    acc = 0.0
+    if 1 <= a0 <= sx - 3 and 1 <= a1 <= sy - 3 and 1 <= a2 <= sz - 3:
+        # Unsigned indices: no negative-index wrap-around test on each of the 64 reads.
+        start = np.uint64(((a0 - 1) * sy + (a1 - 1)) * sz + (a2 - 1))
+        row, plane = np.uint64(sz), np.uint64(sy * sz)
+        c0, c1, c2, c3 = 0.0, 0.0, 0.0, 0.0
+        for a in range(4):
+            wa = _pick(a, x0, x1, x2, x3)
+            q = start + np.uint64(a) * plane
+            for b in range(4):
+                wab = wa * _pick(b, y0, y1, y2, y3)
+                c0 += wab * flat[q]
+                c1 += wab * flat[q + np.uint64(1)]
+                c2 += wab * flat[q + np.uint64(2)]
+                c3 += wab * flat[q + np.uint64(3)]
+                q += row
+        return z0 * c0 + z1 * c1 + z2 * c2 + z3 * c3
+    for t in range(4):
+        ix[t] = _mirror_index(a0 - 1 + t, sx)
+        iy[t] = _mirror_index(a1 - 1 + t, sy)
+        iz[t] = _mirror_index(a2 - 1 + t, sz)
+    for a in range(4):
+        plane = 0.0
+        for b in range(4):
+            q = (ix[a] * sy + iy[b]) * sz
+            plane += _pick(b, y0, y1, y2, y3) * (z0 * flat[q + iz[0]] + z1 * flat[q + iz[1]]
+                                                 + z2 * flat[q + iz[2]] + z3 * flat[q + iz[3]])
+        acc += _pick(a, x0, x1, x2, x3) * plane
+    return acc
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _resample_row(flat, shape, vmap, shift, gradient, column, floor, pe_axis, out, i):  # pragma: no cover
     ny, nz = out.shape[1], out.shape[2]
     sx, sy, sz = shape
     ix = np.empty(4, np.int64)
     iy = np.empty(4, np.int64)
     iz = np.empty(4, np.int64)
-    wx = np.empty(4)
-    wy = np.empty(4)
-    wz = np.empty(4)
     for j in range(ny):
+        b0 = vmap[0, 0] * i + vmap[0, 1] * j + vmap[0, 3]
+        b1 = vmap[1, 0] * i + vmap[1, 1] * j + vmap[1, 3]
+        b2 = vmap[2, 0] * i + vmap[2, 1] * j + vmap[2, 3]
         for k in range(nz):
-            p0 = vmap[0, 0] * i + vmap[0, 1] * j + vmap[0, 2] * k + vmap[0, 3]
-            p1 = vmap[1, 0] * i + vmap[1, 1] * j + vmap[1, 2] * k + vmap[1, 3]
-            p2 = vmap[2, 0] * i + vmap[2, 1] * j + vmap[2, 2] * k + vmap[2, 3]
+            p0 = b0 + vmap[0, 2] * k
+            p1 = b1 + vmap[1, 2] * k
+            p2 = b2 + vmap[2, 2] * k
             s = shift[i, j, k]
             if pe_axis == 0:
                 p0 += s
@@ -202,55 +245,88 @@ def _resample_row(flat, shape, vmap, shift, weight, pe_axis, out, i):  # pragma:
             if not (-0.5 <= p0 <= sx - 0.5 and -0.5 <= p1 <= sy - 0.5 and -0.5 <= p2 <= sz - 0.5):
                 out[i, j, k] = 0.0
                 continue
-            _axis_taps(p0, sx, ix, wx)
-            _axis_taps(p1, sy, iy, wy)
-            _axis_taps(p2, sz, iz, wz)
-            acc = 0.0
-            for a in range(4):
-                plane = 0.0
-                for b in range(4):
-                    o = (ix[a] * sy + iy[b]) * sz
-                    plane += wy[b] * (wz[0] * flat[o + iz[0]] + wz[1] * flat[o + iz[1]]
-                                      + wz[2] * flat[o + iz[2]] + wz[3] * flat[o + iz[3]])
-                acc += wx[a] * plane
-            out[i, j, k] = acc * weight[i, j, k]
+            p0 = min(max(p0, 0.0), sx - 1.0)
+            p1 = min(max(p1, 0.0), sy - 1.0)
+            p2 = min(max(p2, 0.0), sz - 1.0)
+            weight = 1.0 + column[0] * gradient[0, i, j, k] + column[1] * gradient[1, i, j, k] \
+                + column[2] * gradient[2, i, j, k]
+            out[i, j, k] = _cubic_value(flat, sx, sy, sz, p0, p1, p2, ix, iy, iz) * max(weight, floor)
 
 
-@njit(parallel=True, cache=True)
-def _resample_parallel(coef, vmap, shift, weight, pe_axis, out):  # pragma: no cover - compiled
+@njit(parallel=True, cache=True, fastmath=_FMA)
+def _resample_parallel(coef, vmap, shift, gradient, column, floor, pe_axis, out):  # pragma: no cover - compiled
     flat = coef.ravel()
     for i in prange(out.shape[0]):
-        _resample_row(flat, coef.shape, vmap, shift, weight, pe_axis, out, i)
+        _resample_row(flat, coef.shape, vmap, shift, gradient, column, floor, pe_axis, out, i)
 
 
-@njit(cache=True)
-def _resample_serial(coef, vmap, shift, weight, pe_axis, out):  # pragma: no cover - compiled
+@njit(cache=True, fastmath=_FMA)
+def _resample_serial(coef, vmap, shift, gradient, column, floor, pe_axis, out):  # pragma: no cover - compiled
     flat = coef.ravel()
     for i in range(out.shape[0]):
-        _resample_row(flat, coef.shape, vmap, shift, weight, pe_axis, out, i)
+        _resample_row(flat, coef.shape, vmap, shift, gradient, column, floor, pe_axis, out, i)
 
 
-def resample_rigid_shift(coef, vmap, shift, weight, pe_axis, out=None, parallel=None):
-    """Cubic B-spline values at ``vmap @ (i, j, k, 1) + shift * e_pe``, times `weight` (numba).
+def resample_rigid_shift(coef, vmap, shift, gradient, column, floor, pe_axis, out=None, parallel=None):
+    """Cubic B-spline values at ``vmap @ (i, j, k, 1) + shift * e_pe``, times an intensity weight (numba).
+
+    The weight of each voxel is ``max(1 + column . gradient, floor)`` (the Jacobian of the
+    combined map along the phase-encode axis, see :func:`fieldfix.motion.align_resample_volume`).
 
     Parameters
     ----------
     coef : (X, Y, Z) float64, B-spline coefficients (:func:`prefilter_cubic`)
     vmap : (3, 4) output voxel -> source voxel map
-    shift, weight : (X', Y', Z') arrays on the output grid
+    shift : (X', Y', Z') array on the output grid, voxels along `pe_axis`
+    gradient : (3, X', Y', Z') array, derivatives of `shift` along the output voxel axes
+    column : (3,) the weight's direction; floor : float, the weight's lower bound
     pe_axis : int, source voxel axis of the shift
     out : (X', Y', Z') float32 C-contiguous array, optional
     """
     shift = np.ascontiguousarray(shift, np.float64)
+    gradient = np.ascontiguousarray(gradient, np.float64)
+    if gradient.shape != (3,) + shift.shape:
+        raise ValueError(f"gradient {gradient.shape} must be (3,) + the shift's shape {shift.shape}")
     if out is None:
         out = np.empty(shift.shape, np.float32)
     kernel = _resample_parallel if _use_parallel(parallel, shift.size) else _resample_serial
-    kernel(np.ascontiguousarray(coef, np.float64), np.ascontiguousarray(vmap, np.float64), shift,
-                          np.ascontiguousarray(weight, np.float64), int(pe_axis), out)
+    kernel(np.ascontiguousarray(coef, np.float64), np.ascontiguousarray(vmap, np.float64), shift, gradient,
+           np.ascontiguousarray(column, np.float64), float(floor), int(pe_axis), out)
     return out
 
 
-def resample_rigid_shift_reference(coef, vmap, shift, weight, pe_axis):
+def _bspline_taps(p, n):
+    """Indices (4, N), weights (4, N) and derivative weights (4, N) of cubic B-spline taps (mirror)."""
+    base = np.floor(p).astype(int)
+    f = p - base
+    w = np.stack([(1 - f) ** 3 / 6, (4 - 6 * f**2 + 3 * f**3) / 6, (1 + 3 * f + 3 * f**2 - 3 * f**3) / 6, f**3 / 6])
+    dw = np.stack([-0.5 * (1 - f) ** 2, -2 * f + 1.5 * f**2, 0.5 + f - 1.5 * f**2, 0.5 * f**2])
+    idx = base[None] + np.arange(-1, 3)[:, None]
+    period = max(2 * (n - 1), 1)
+    idx = np.mod(idx, period)
+    idx = np.where(idx >= n, period - idx, idx) if n > 1 else np.zeros_like(idx)
+    return idx, w, dw
+
+
+def _bspline_reference(samples, pos, derivatives=False):
+    """Value (and gradient along the voxel axes) of the cubic B-spline with coefficients `samples`."""
+    taps = [_bspline_taps(pos[a], samples.shape[a]) for a in range(3)]
+    value = np.zeros(pos.shape[1])
+    grad = np.zeros((3, pos.shape[1]))
+    for a in range(4):
+        for b in range(4):
+            for c in range(4):
+                sample = samples[taps[0][0][a], taps[1][0][b], taps[2][0][c]]
+                wa, wb, wc = taps[0][1][a], taps[1][1][b], taps[2][1][c]
+                value += wa * wb * wc * sample
+                if derivatives:
+                    grad[0] += taps[0][2][a] * wb * wc * sample
+                    grad[1] += wa * taps[1][2][b] * wc * sample
+                    grad[2] += wa * wb * taps[2][2][c] * sample
+    return (value, grad) if derivatives else value
+
+
+def resample_rigid_shift_reference(coef, vmap, shift, gradient, column, floor, pe_axis):
     """Plain-numpy reference of :func:`resample_rigid_shift` (64 taps vectorised)."""
     coef = np.asarray(coef, float)
     shape = np.shape(shift)
@@ -258,23 +334,231 @@ def resample_rigid_shift_reference(coef, vmap, shift, weight, pe_axis):
     pos = np.asarray(vmap, float)[:, :3] @ ijk + np.asarray(vmap, float)[:, 3:4]
     pos[pe_axis] += np.asarray(shift, float).ravel()
     inside = np.all((pos >= -0.5) & (pos <= np.array(coef.shape)[:, None] - 0.5), axis=0)
-    taps = []
-    for a in range(3):
-        n = coef.shape[a]
-        p = np.clip(pos[a], 0.0, n - 1.0)
-        base = np.floor(p).astype(int)
-        f = p - base
-        w = np.stack([(1 - f) ** 3 / 6, (4 - 6 * f**2 + 3 * f**3) / 6, (1 + 3 * f + 3 * f**2 - 3 * f**3) / 6,
-                      f**3 / 6])
-        idx = base[None] + np.arange(-1, 3)[:, None]
-        period = max(2 * (n - 1), 1)
-        idx = np.mod(idx, period)
-        idx = np.where(idx >= n, period - idx, idx) if n > 1 else np.zeros_like(idx)
-        taps.append((idx, w))
-    total = np.zeros(pos.shape[1])
+    pos = np.clip(pos, 0.0, np.array(coef.shape, float)[:, None] - 1.0)
+    weight = np.maximum(1.0 + np.tensordot(np.asarray(column, float), np.asarray(gradient, float), axes=1), floor)
+    return (_bspline_reference(coef, pos) * inside).reshape(shape) * weight
+
+
+# ---------------------------------------------------------------------------------------------
+# Pyramid
+# ---------------------------------------------------------------------------------------------
+
+@njit(cache=True)
+def _block_mean(volume, factor, out):  # pragma: no cover - compiled
+    nx, ny, nz = volume.shape
+    scale = 1.0 / (factor * factor * factor)
+    out[:] = 0.0
+    for i in range(nx):
+        for j in range(ny):
+            row = out[i // factor, j // factor]
+            line = volume[i, j]
+            for block in range(out.shape[2]):
+                total = 0.0
+                for k in range(block * factor, min(block * factor + factor, nz)):
+                    total += line[k]
+                row[block] += total * scale
+
+
+def block_mean(volume, factor: int):
+    """Means over `factor`-voxel blocks, the volume padded with zeros to whole blocks (numba).
+
+    The same values as :func:`fieldfix._pose.block_mean` (its plain-numpy reference).
+    """
+    volume = np.ascontiguousarray(volume, np.float64)
+    factor = int(factor)
+    if factor == 1:
+        return volume
+    out = np.empty(tuple(-(-n // factor) for n in volume.shape))
+    _block_mean(volume, factor, out)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# The pose cost on a list of voxels
+# ---------------------------------------------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def _taps(p, w, dw):  # pragma: no cover - compiled
+    """Cubic B-spline weights and derivative weights at an interior position; returns the first tap."""
+    base = int(p)
+    f = p - base
+    f2 = f * f
+    g = 1.0 - f
+    w[0] = g * g * g * (1.0 / 6.0)
+    w[1] = (4.0 - 6.0 * f2 + 3.0 * f2 * f) * (1.0 / 6.0)
+    w[2] = (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f2 * f) * (1.0 / 6.0)
+    w[3] = f2 * f * (1.0 / 6.0)
+    dw[0] = -0.5 * g * g
+    dw[1] = -2.0 * f + 1.5 * f2
+    dw[2] = 0.5 + f - 1.5 * f2
+    dw[3] = 0.5 * f2
+    return base - 1
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _value_gradient(flat, shape, p0, p1, p2, w, dw):  # pragma: no cover - compiled
+    """B-spline value and gradient (voxel axes) at an interior position; `w`, `dw` are (3, 4) scratch."""
+    i0 = _taps(p0, w[0], dw[0])
+    j0 = _taps(p1, w[1], dw[1])
+    k0 = _taps(p2, w[2], dw[2])
+    row, plane = np.uint64(shape[2]), np.uint64(shape[1] * shape[2])
+    start = np.uint64((i0 * shape[1] + j0) * shape[2] + k0)
+    value, g0, g1, g2 = 0.0, 0.0, 0.0, 0.0
     for a in range(4):
+        pv, pdy, pdz = 0.0, 0.0, 0.0
+        q = start + np.uint64(a) * plane
         for b in range(4):
-            for c in range(4):
-                total += (taps[0][1][a] * taps[1][1][b] * taps[2][1][c]
-                          * coef[taps[0][0][a], taps[1][0][b], taps[2][0][c]])
-    return (total * inside).reshape(shape) * np.asarray(weight, float)
+            c0, c1 = flat[q], flat[q + np.uint64(1)]
+            c2, c3 = flat[q + np.uint64(2)], flat[q + np.uint64(3)]
+            s = w[2, 0] * c0 + w[2, 1] * c1 + w[2, 2] * c2 + w[2, 3] * c3
+            pv += w[1, b] * s
+            pdy += dw[1, b] * s
+            pdz += w[1, b] * (dw[2, 0] * c0 + dw[2, 1] * c1 + dw[2, 2] * c2 + dw[2, 3] * c3)
+            q += row
+        value += w[0, a] * pv
+        g0 += dw[0, a] * pv
+        g1 += w[0, a] * pdy
+        g2 += w[0, a] * pdz
+    return value, g0, g1, g2
+
+
+@njit(cache=True, inline="always")
+def _position(ijk, n, ymap, pmap, shift, pe_axis, y, p):  # pragma: no cover - compiled
+    """Reference position y (world, about the centre) and source position p (voxels) of voxel n."""
+    i, j, k = ijk[n, 0], ijk[n, 1], ijk[n, 2]
+    for a in range(3):
+        y[a] = ymap[a, 0] * i + ymap[a, 1] * j + ymap[a, 2] * k + ymap[a, 3]
+    for a in range(3):
+        p[a] = pmap[a, 0] * y[0] + pmap[a, 1] * y[1] + pmap[a, 2] * y[2] + pmap[a, 3]
+    p[pe_axis] += shift[n]
+
+
+@njit(cache=True, inline="always")
+def _interior(p, shape):  # pragma: no cover - compiled
+    return (1.0 <= p[0] < shape[0] - 2.0) and (1.0 <= p[1] < shape[1] - 2.0) and (1.0 <= p[2] < shape[2] - 2.0)
+
+
+@njit(cache=True)
+def _pull_values(samples, ijk, shift, ymap, pmap, pe_axis, out):  # pragma: no cover - compiled
+    y, p = np.empty(3), np.empty(3)
+    w, dw = np.empty((3, 4)), np.empty((3, 4))
+    for n in range(ijk.shape[0]):
+        _position(ijk, n, ymap, pmap, shift, pe_axis, y, p)
+        if _interior(p, samples.shape):
+            out[n] = _value_gradient(samples.ravel(), samples.shape, p[0], p[1], p[2], w, dw)[0]
+        else:
+            out[n] = np.nan
+
+
+def pull_values(samples, ijk, shift, ymap, pmap, pe_axis):
+    """B-spline values (coefficients = `samples`) at the source positions of voxels `ijk` (numba).
+
+    NaN where a voxel's taps leave the grid. See the module docstring for `ymap` and `pmap`.
+    """
+    out = np.empty(len(ijk))
+    _pull_values(np.ascontiguousarray(samples, np.float64), np.ascontiguousarray(ijk, np.int64),
+                 np.ascontiguousarray(shift, np.float64), np.ascontiguousarray(ymap, np.float64),
+                 np.ascontiguousarray(pmap, np.float64), int(pe_axis), out)
+    return out
+
+
+@njit(cache=True, inline="always")
+def _accumulate(acc, wn, r, row, still):  # pragma: no cover - compiled
+    acc[0] += wn * r * r
+    q = 7
+    for a in range(6):
+        acc[1 + a] += wn * r * row[a]
+        wa = wn * row[a]
+        for b in range(a, 6):
+            acc[q] += wa * row[b]
+            q += 1
+    acc[28] += wn
+    acc[29] += wn * still * still
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, lo, hi, acc):  # pragma: no cover
+    y, p, row = np.empty(3), np.empty(3), np.empty(6)
+    w, dw = np.empty((3, 4)), np.empty((3, 4))
+    flat = samples.ravel()
+    for n in range(lo, hi):
+        _position(ijk, n, ymap, pmap, shift, pe_axis, y, p)
+        if not _interior(p, samples.shape):
+            continue
+        value, g0, g1, g2 = _value_gradient(flat, samples.shape, p[0], p[1], p[2], w, dw)
+        jn = jac[n]
+        r = jn * value - still[n]
+        h0 = jn * (pmap[0, 0] * g0 + pmap[1, 0] * g1 + pmap[2, 0] * g2)
+        h1 = jn * (pmap[0, 1] * g0 + pmap[1, 1] * g1 + pmap[2, 1] * g2)
+        h2 = jn * (pmap[0, 2] * g0 + pmap[1, 2] * g1 + pmap[2, 2] * g2)
+        row[0], row[1], row[2] = h0, h1, h2
+        row[3] = y[1] * h2 - y[2] * h1
+        row[4] = y[2] * h0 - y[0] * h2
+        row[5] = y[0] * h1 - y[1] * h0
+        _accumulate(acc, weight[n], r, row, still[n])
+
+
+@njit(parallel=True, cache=True)
+def _normal_parallel(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, out):  # pragma: no cover
+    n, chunks = ijk.shape[0], out.shape[0]
+    for c in prange(chunks):
+        _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, n * c // chunks,
+                      n * (c + 1) // chunks, out[c])
+
+
+@njit(cache=True)
+def _normal_serial(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, out):  # pragma: no cover
+    _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, 0, ijk.shape[0], out[0])
+
+
+def normal_equations(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, parallel=None):
+    """Sums of the Gauss-Newton normal equations of the pose cost over voxels `ijk` (numba).
+
+    Returns a (:data:`SUMS`,) array: ``sum w r^2``, ``sum w r J`` (6), the upper triangle of
+    ``sum w J J^T`` (21, row by row), ``sum w`` and ``sum w still^2`` over the voxels counted.
+    """
+    arrays = [np.ascontiguousarray(a, np.float64) for a in (samples, shift, jac, weight, still, ymap, pmap)]
+    samples, shift, jac, weight, still, ymap, pmap = arrays
+    ijk = np.ascontiguousarray(ijk, np.int64)
+    use = bool(len(ijk) >= PARALLEL_POSE_VOXELS) if parallel is None else bool(parallel)
+    out = np.zeros((8 if use else 1, SUMS))
+    (_normal_parallel if use else _normal_serial)(samples, ijk, shift, jac, weight, still, ymap, pmap,
+                                                  int(pe_axis), out)
+    return out.sum(axis=0)
+
+
+def _positions_reference(ijk, shift, ymap, pmap, pe_axis):
+    ijk = np.asarray(ijk, float).T
+    y = np.asarray(ymap)[:, :3] @ ijk + np.asarray(ymap)[:, 3:4]
+    p = np.asarray(pmap)[:, :3] @ y + np.asarray(pmap)[:, 3:4]
+    p[pe_axis] += np.asarray(shift, float)
+    return y, p
+
+
+def _interior_reference(p, shape):
+    return np.all((p >= 1.0) & (p < np.array(shape, float)[:, None] - 2.0), axis=0)
+
+
+def pull_values_reference(samples, ijk, shift, ymap, pmap, pe_axis):
+    """Plain-numpy reference of :func:`pull_values`."""
+    samples = np.asarray(samples, float)
+    _, p = _positions_reference(ijk, shift, ymap, pmap, pe_axis)
+    inside = _interior_reference(p, samples.shape)
+    value = _bspline_reference(samples, np.clip(p, 1.0, np.array(samples.shape)[:, None] - 2.0))
+    return np.where(inside, value, np.nan)
+
+
+def normal_equations_reference(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis):
+    """Plain-numpy reference of :func:`normal_equations`."""
+    samples = np.asarray(samples, float)
+    y, p = _positions_reference(ijk, shift, ymap, pmap, pe_axis)
+    inside = _interior_reference(p, samples.shape)
+    value, grad = _bspline_reference(samples, np.clip(p, 1.0, np.array(samples.shape)[:, None] - 2.0), True)
+    jac, weight, still = (np.asarray(a, float) for a in (jac, weight, still))
+    w = weight * inside
+    r = jac * value - still
+    h = jac * (np.asarray(pmap)[:, :3].T @ grad)
+    rows = np.concatenate([h, np.cross(y.T, h.T).T])
+    matrix = (rows * w) @ rows.T
+    upper = matrix[np.triu_indices(6)]
+    return np.concatenate([[np.sum(w * r * r)], rows @ (w * r), upper, [w.sum(), np.sum(w * still * still)]])

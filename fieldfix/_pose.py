@@ -368,3 +368,76 @@ def _pattern_search(problem, params, cost, rule: StopRule, first_scale: float = 
                 return params, cost, rounds, True
             scale /= 2.0
     return params, cost, rounds, False
+
+
+# ---------------------------------------------------------------------------------------------
+# Gauss-Newton for least-squares pose costs
+# ---------------------------------------------------------------------------------------------
+
+def rotation_increment(omega_rad) -> np.ndarray:
+    """Rotation by the vector `omega_rad` (axis times angle, rad; Rodrigues' formula)."""
+    omega = np.asarray(omega_rad, float)
+    angle = float(np.linalg.norm(omega))
+    if angle < 1e-15:
+        return np.eye(3)
+    k = omega / angle
+    cross = np.array([[0.0, -k[2], k[1]], [k[2], 0.0, -k[0]], [-k[1], k[0], 0.0]])
+    return np.eye(3) + np.sin(angle) * cross + (1.0 - np.cos(angle)) * cross @ cross
+
+
+@dataclass(frozen=True)
+class RigidState:
+    """A pose during Gauss-Newton: ``y = R (x - c) + c + t`` (translation mm, rotation matrix)."""
+
+    translation_mm: np.ndarray
+    rotation: np.ndarray
+
+    def step(self, delta) -> "RigidState":
+        """Translation plus ``delta[:3]``; rotation by ``delta[3:]`` (rad, about world axes) after ``R``."""
+        return RigidState(self.translation_mm + delta[:3], rotation_increment(delta[3:]) @ self.rotation)
+
+
+@dataclass(frozen=True)
+class GaussNewtonResult:
+    state: RigidState
+    cost: float
+    cost_start: float
+    passes: int
+    converged: bool
+
+
+def gauss_newton(normal, start: RigidState, rule: StopRule, damping: float = 1e-4) -> GaussNewtonResult:
+    """Minimise a least-squares pose cost by Gauss-Newton with Levenberg-Marquardt damping.
+
+    `normal(state)` returns ``(cost, gradient (6,), matrix (6, 6))``: the cost, its gradient
+    and the Gauss-Newton matrix ``J^T J`` with respect to a step (translation mm, then small
+    rotations in rad about world x, y, z applied after the current rotation). A step solves
+    ``(M + lambda diag(M)) d = -g``; it is kept when the cost does not rise (then lambda / 10),
+    otherwise lambda * 10 and the step is solved again. Converged when a kept step moves no
+    translation by `rule.step_mm` and no rotation by `rule.step_deg` or more, or changes the
+    cost by less than `rule.relative_cost` of itself, or when even a step below those sizes
+    raises the cost (a minimum to that resolution). At most `rule.max_iterations` evaluations.
+    """
+    state, (cost, grad, matrix) = start, normal(start)
+    cost_start, passes, lam = cost, 1, damping
+    while passes < rule.max_iterations:
+        diagonal = np.maximum(np.diag(matrix), 1e-12 * max(float(np.max(np.diag(matrix))), 1e-300))
+        try:
+            delta = np.linalg.solve(matrix + lam * np.diag(diagonal), -grad)
+        except np.linalg.LinAlgError:
+            delta = -grad / diagonal
+        small = (np.abs(delta[:3]).max() < rule.step_mm and np.rad2deg(np.abs(delta[3:]).max()) < rule.step_deg)
+        trial = state.step(delta)
+        trial_cost, trial_grad, trial_matrix = normal(trial)
+        passes += 1
+        if trial_cost <= cost:
+            flat = cost - trial_cost <= rule.relative_cost * abs(cost)
+            state, cost, grad, matrix = trial, trial_cost, trial_grad, trial_matrix
+            lam = max(lam / 10.0, 1e-9)
+            if small or flat:
+                return GaussNewtonResult(state, cost, cost_start, passes, True)
+        elif small:
+            return GaussNewtonResult(state, cost, cost_start, passes, True)
+        else:
+            lam *= 10.0
+    return GaussNewtonResult(state, cost, cost_start, passes, False)

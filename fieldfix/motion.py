@@ -19,13 +19,20 @@ memory), field drift, the spin history and through-slice motion within a volume,
 change of the field caused by the motion of other body parts.
 
 Pose estimation (:func:`align_volume_pose`): the same contrast on both sides, so least squares
-between the reference at rest ``o`` and the volume pulled back through the model at a trial pose
-(the correction below, with the Jacobian of the reference field), over the voxels where the
-field is gentle (``|d shift / d y| < 0.3``), minimised over the six parameters with exact
-gradients (L-BFGS, scipy) on a pyramid of the run grid, starting from the previous volume's
-pose; the same convergence rule as :mod:`fieldfix.align` (steps below 0.01 mm and 0.01 degree,
-scaled by the block size on coarse levels). The reference volume goes through the same pull-back
-as the others (its own pose is the identity), so no forward model enters the comparison.
+between the reference at rest and the volume pulled back through the model at a trial pose (the
+correction below, with the Jacobian of the reference field):
+``C = sum w (J * volume(Q v + shift(v) e_pe) - still(v))^2 / sum w still^2``. ``still`` is the
+reference volume pulled back the same way at the identity, so the reference's own pose is exactly
+the identity. Both are read through the cubic B-spline whose coefficients are the samples (no
+prefilter: interpolation plus a light smoothing of about 0.58 voxel, which keeps the cost smooth in
+the pose and less sensitive to sharp, aliased edges). The cost counts the voxels where the field is gentle (``|d shift / d y| < 0.3``),
+leaves out the voxels next to the grid's faces (``margin_vox``: the field of view does not move
+with the head, and its cut edges would hold the estimate at no motion) and keeps at most
+``voxels_per_level / factor`` of them, the strongest edges of the reference at rest. It is
+minimised by Gauss-Newton with Levenberg-Marquardt damping (:func:`fieldfix._pose.gauss_newton`;
+one numba pass gives the residuals and the 6x6 normal equations with the exact Jacobian) on a
+4-2-1 pyramid of block means, starting from the previous volume's pose; a level stops when a step
+moves less than 0.01 mm and 0.01 degree (scaled by the block size on coarse levels).
 
 Correction (:func:`align_resample_volume`), one interpolation per volume: the output voxel ``v``
 (reference position, undistorted) takes the cubic B-spline value of volume ``t`` at
@@ -55,7 +62,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import _align_kernels as kernels
 from . import _motion_kernels
 from . import _pose
 from ._progress import progress_bar
@@ -86,6 +92,9 @@ FD_RADIUS_MM = 50.0
 #: the phase-encode axis: where the field is steeper, signal piles up, folds and drops out, and
 #: the forward model no longer predicts the image well.
 TRUSTED_SHIFT_GRADIENT = 0.3
+#: A pyramid level whose grid leaves fewer voxels than this for the cost (small grids, coarse
+#: levels) is left out.
+MIN_POSE_VOXELS = 64
 #: A volume that moved more than this (mm or degrees) from the reference gets a warning.
 LARGE_MOTION = 10.0
 
@@ -97,17 +106,25 @@ class MotionOptions:
     Attributes
     ----------
     levels : tuple of int, pyramid block sizes for the pose estimation, coarse to fine
-    max_iterations : int, per level
-    step_mm, step_deg, relative_cost : convergence rule (see :class:`fieldfix._pose.StopRule`)
+    max_iterations : int, cost evaluations per level (Gauss-Newton passes)
+    step_mm, step_deg, relative_cost : convergence rule (see :func:`fieldfix._pose.gauss_newton`),
+        on the finest level; scaled by the block size on coarse levels
+    voxels_per_level : int, most voxels the cost counts on one level (the strongest edges of
+        the reference at rest; all candidates when there are fewer)
+    margin_vox : int, voxels of the run grid next to its faces that the cost leaves out: the
+        field of view stays where it is while the head moves, so its cut edges and the
+        content entering or leaving it would pull the estimate towards no motion
     jacobian_floor : float, Jacobian floor of the intensity correction
     parallel : bool or None, numba threads for the resampling (None: by grid size)
     """
 
     levels: tuple = (4, 2, 1)
-    max_iterations: int = 40
+    max_iterations: int = 20
     step_mm: float = 0.01
     step_deg: float = 0.01
     relative_cost: float = 1e-7
+    voxels_per_level: int = 20000
+    margin_vox: int = 3
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
     parallel: bool | None = None
 
@@ -146,64 +163,71 @@ class MotionModel:
 
 @dataclass(frozen=True)
 class PoseLevel:
-    """One level of the pose pyramid: the reference at rest on a grid of `factor`-voxel blocks.
+    """One level of the pose pyramid: the voxels the cost counts on a grid of `factor`-voxel blocks.
 
     Attributes
     ----------
     factor : int
     affine : (4, 4), the level grid (voxel centres at the blocks' centres)
-    still : the unwarped reference (block means)
-    shift_vox : the reference shift map in level voxels
-    jacobian : ``1 + d shift / d y`` on the level grid (fold floor applied)
-    weight : fraction of each block the cost counts (see ``TRUSTED_SHIFT_GRADIENT``)
+    ijk : (N, 3) int, the voxels counted (level grid indices)
+    shift_vox : (N,), the reference shift at those voxels, in level voxels
+    jacobian : (N,), ``1 + d shift / d y`` (fold floor applied, block means)
+    weight : (N,), fraction of each block the cost trusts (see ``TRUSTED_SHIFT_GRADIENT``)
+    still : (N,), the reference at rest: the reference volume pulled back at the identity
     """
 
     factor: int
     affine: np.ndarray
-    still: np.ndarray
+    ijk: np.ndarray
     shift_vox: np.ndarray
     jacobian: np.ndarray
     weight: np.ndarray
+    still: np.ndarray
 
-    def problem(self, volume, pe_axis, centre_mm):
-        source = _pose.block_mean(volume, self.factor)
-        scale = 1.0 / max(float(np.sum(self.weight * self.still * self.still)), 1e-300)
-        return _PullProblem(self, source, int(pe_axis), np.asarray(centre_mm, float), scale)
+    def maps(self, state: _pose.RigidState, centre_mm) -> tuple[np.ndarray, np.ndarray]:
+        """(ymap, pmap) of :mod:`fieldfix._motion_kernels` at a pose."""
+        affine = self.affine
+        ymap = state.rotation @ np.concatenate([affine[:3, :3], (affine[:3, 3] - centre_mm)[:, None]], axis=1)
+        inverse = np.linalg.inv(affine)
+        offset = inverse[:3, :3] @ (centre_mm + state.translation_mm) + inverse[:3, 3]
+        return ymap, np.concatenate([inverse[:3, :3], offset[:, None]], axis=1)
+
+    def normal(self, samples, state: _pose.RigidState, pe_axis: int, centre_mm, parallel=None):
+        """Normalised cost ``sum w r^2 / sum w still^2``, its gradient and Gauss-Newton matrix."""
+        ymap, pmap = self.maps(state, centre_mm)
+        sums = _motion_kernels.normal_equations(samples, self.ijk, self.shift_vox, self.jacobian, self.weight,
+                                                self.still, ymap, pmap, pe_axis, parallel=parallel)
+        scale = 1.0 / max(float(sums[29]), 1e-300)
+        matrix = np.zeros((6, 6))
+        matrix[np.triu_indices(6)] = sums[7:28]
+        matrix = matrix + np.triu(matrix, 1).T
+        return float(sums[0]) * scale, sums[1:7] * scale, matrix * scale
 
 
-@dataclass(frozen=True)
-class _PullProblem:
-    """Least squares between the reference at rest and a volume pulled back through a pose.
-
-    ``C(p) = sum w (J * volume(Q_p v + shift(v) e_pe) - still)^2 / sum w still^2`` with the
-    Jacobian fixed at its value for the reference field; the gradient is exact for this cost
-    (trilinear sampling), through the rigid map.
-    """
-
-    level: PoseLevel
-    source: np.ndarray
-    pe_axis: int
-    centre_mm: np.ndarray
-    scale: float
-
-    def evaluate(self, params):
-        affine = self.level.affine
-        pose = _pose.pose_matrix(params[:3], params[3:], self.centre_mm)
-        vmap = (np.linalg.inv(affine) @ pose @ affine)[:3]
-        u, gu = kernels.sample_shifted(self.source, vmap, self.level.shift_vox, self.pe_axis)
-        jac, weight = self.level.jacobian, self.level.weight
-        residual = jac * u - self.level.still
-        cost = float(np.sum(weight * residual * residual)) * self.scale
-        a = (2.0 * self.scale) * weight * residual * jac
-        zeros = np.zeros_like(a)
-        sum_h, outer = kernels.pose_sums(a, zeros, gu, gu, 0.0, affine[:3], self.centre_mm, parallel=False)
-        to_world = np.linalg.inv(affine[:3, :3]).T
-        sum_h, outer = to_world @ sum_h, to_world @ outer
-        grad = np.empty(6)
-        grad[:3] = sum_h
-        for k, d_rot in enumerate(_pose.rotation_derivatives(params[3:])):
-            grad[3 + k] = float(np.sum(d_rot * outer))
-        return cost, grad
+def _level(reference, shift, jacobian, trusted, affine, factor, pe_axis, centre, options) -> PoseLevel:
+    """Pick the voxels of one level (trusted, off the faces, inside at rest, strongest edges)."""
+    _, level_affine = _pose.level_grid(reference.shape, affine, factor)
+    samples = _motion_kernels.block_mean(reference, factor)
+    level_shift = _motion_kernels.block_mean(shift, factor) / factor
+    weight = _motion_kernels.block_mean(trusted, factor)
+    margin = max(1, int(np.ceil(options.margin_vox / factor)))
+    keep = np.zeros(samples.shape, bool)
+    keep[margin:-margin, margin:-margin, margin:-margin] = True
+    keep &= weight > 0
+    ijk = np.argwhere(keep)
+    edges = np.sqrt(sum(g * g for g in np.gradient(samples)))[keep]
+    cap = max(int(options.voxels_per_level // factor), 6)
+    if len(ijk) > cap:
+        strongest = np.sort(np.argsort(edges, kind="stable")[-cap:])
+        ijk = ijk[strongest]
+    index = tuple(ijk.T)
+    level = PoseLevel(int(factor), level_affine, np.ascontiguousarray(ijk, np.int64), level_shift[index],
+                      _motion_kernels.block_mean(jacobian, factor)[index], weight[index], np.zeros(len(ijk)))
+    ymap, pmap = level.maps(_pose.RigidState(np.zeros(3), np.eye(3)), centre)
+    values = _motion_kernels.pull_values(samples, level.ijk, level.shift_vox, ymap, pmap, pe_axis)
+    inside = np.isfinite(values)
+    return PoseLevel(int(factor), level_affine, level.ijk[inside], level.shift_vox[inside], level.jacobian[inside],
+                     level.weight[inside], level.jacobian[inside] * values[inside])
 
 
 @dataclass(frozen=True)
@@ -214,8 +238,9 @@ class VolumePose:
     ----------
     translation_mm, rotation_deg : tuple of 3 floats (conventions of :mod:`fieldfix.align`)
     matrix : (4, 4) array
-    cost_before, cost_after : float, normalised least squares at the start pose and at the result
-    iterations : int
+    cost_before, cost_after : float, normalised least squares on the finest level at the start
+        pose and at the result
+    iterations : int, cost evaluations over all levels
     converged : bool
     """
 
@@ -287,28 +312,29 @@ def align_motion_model(
     axis, _ = parse_pe_code(readout.pe_code)
     kappa = readout.shift_per_hz(reference.shape)
     shift = kappa * b0_hz
-    still = unwarp_volume(reference, shift, axis, interp="cubic", jacobian=True,
-                          jacobian_floor=options.jacobian_floor).astype(np.float64)
     centre = affine[:3, :3] @ ((np.array(reference.shape) - 1) / 2.0) + affine[:3, 3]
     gradient = np.stack(np.gradient(shift))
     trusted = (np.abs(gradient[axis]) < TRUSTED_SHIFT_GRADIENT).astype(float)
     jacobian = np.maximum(1.0 + gradient[axis], options.jacobian_floor)
-    levels = []
-    for factor in options.levels:
-        _, level_affine = _pose.level_grid(reference.shape, affine, factor)
-        level_shift = _pose.block_mean(shift, factor) / factor
-        level_jacobian = _pose.block_mean(jacobian, factor)
-        levels.append(PoseLevel(int(factor), level_affine, _pose.block_mean(still, factor), level_shift,
-                                level_jacobian, _pose.block_mean(trusted, factor)))
-    return MotionModel(tuple(reference.shape), affine, axis, kappa, centre, shift, gradient, tuple(levels),
-                       options)
+    levels = [_level(reference, shift, jacobian, trusted, affine, factor, axis, centre, options)
+              for factor in options.levels]
+    levels = tuple(level for level in levels if len(level.ijk) >= MIN_POSE_VOXELS)  # small grids: fewer levels
+    if not levels:
+        raise InputError(f"reference {reference.shape}: fewer than {MIN_POSE_VOXELS} voxels away from the grid's "
+                         f"faces on every level; a pose needs more than {2 * options.margin_vox + 4} voxels along "
+                         f"every axis")
+    return MotionModel(tuple(reference.shape), affine, axis, kappa, centre, shift, gradient, levels, options)
 
 
-def _pose_result(model: MotionModel, params, costs, iterations, converged) -> VolumePose:
-    return VolumePose(translation_mm=tuple(float(v) for v in params[:3]),
-                      rotation_deg=tuple(float(v) for v in np.rad2deg(params[3:])),
-                      matrix=_pose.pose_matrix(params[:3], params[3:], model.centre_mm), cost_before=costs[0],
-                      cost_after=costs[1], iterations=int(iterations), converged=bool(converged))
+def _pose_result(model: MotionModel, state: _pose.RigidState, costs, iterations, converged) -> VolumePose:
+    matrix = np.eye(4)
+    matrix[:3, :3] = state.rotation
+    matrix[:3, 3] = model.centre_mm + state.translation_mm - state.rotation @ model.centre_mm
+    translation, angles = _pose.pose_parameters(matrix, model.centre_mm)
+    return VolumePose(translation_mm=tuple(float(v) for v in translation),
+                      rotation_deg=tuple(float(v) for v in np.rad2deg(angles)), matrix=matrix,
+                      cost_before=float(costs[0]), cost_after=float(costs[1]), iterations=int(iterations),
+                      converged=bool(converged))
 
 
 def align_volume_pose(model: MotionModel, volume: np.ndarray, start: VolumePose | None = None) -> VolumePose:
@@ -324,20 +350,39 @@ def align_volume_pose(model: MotionModel, volume: np.ndarray, start: VolumePose 
     -------
     VolumePose
     """
-    volume = _volume(volume, "volume")
-    if volume.shape != model.shape:
-        raise GeometryError(f"volume shape {volume.shape} differs from the run grid {model.shape}")
-    params = np.zeros(6) if start is None else np.r_[start.translation_mm, np.deg2rad(start.rotation_deg)]
-    iterations, converged, first_cost, cost = 0, False, None, None
+    return _estimate(model, _run_volume(model, volume), start)
+
+
+def _estimate(model: MotionModel, volume: np.ndarray, start: VolumePose | None) -> VolumePose:
+    state = _start_state(start)
+    passes, result, samples = 0, None, _pyramid(volume, [level.factor for level in model.levels])
     for level in model.levels:
-        problem = level.problem(volume, model.pe_axis, model.centre_mm)
-        if first_cost is None:
-            first_cost = problem.evaluate(params)[0]
-        solution = _pose.minimise(problem, params, model.options.rule(level.factor))
-        params, cost = solution.params, solution.cost
-        iterations += solution.iterations
-        converged = solution.converged
-    return _pose_result(model, params, (float(first_cost), float(cost)), iterations, converged)
+        result = _pose.gauss_newton(
+            lambda s, level=level: level.normal(samples[level.factor], s, model.pe_axis, model.centre_mm,
+                                                model.options.parallel),
+            state, model.options.rule(level.factor))
+        state, passes = result.state, passes + result.passes
+    finest = model.levels[-1]
+    first = result.cost_start if len(model.levels) == 1 else finest.normal(
+        samples[finest.factor], _start_state(start), model.pe_axis, model.centre_mm, model.options.parallel)[0]
+    return _pose_result(model, state, (first, result.cost), passes, result.converged)
+
+
+def _pyramid(volume, factors) -> dict:
+    """Block means of `volume` for each factor, each made from the coarsest finished level whose
+    block size divides it (zero padding makes the two ways equal)."""
+    done = {1: volume}
+    for factor in sorted(set(factors)):
+        finer = max(f for f in done if factor % f == 0)
+        done[factor] = _motion_kernels.block_mean(done[finer], factor // finer)
+    return done
+
+
+def _start_state(start: VolumePose | None) -> _pose.RigidState:
+    if start is None:
+        return _pose.RigidState(np.zeros(3), np.eye(3))
+    return _pose.RigidState(np.asarray(start.translation_mm, float),
+                            _pose.rotation_matrix(np.deg2rad(start.rotation_deg)))
 
 
 def align_resample_volume(model: MotionModel, volume: np.ndarray, pose: VolumePose,
@@ -365,18 +410,24 @@ def align_resample_volume(model: MotionModel, volume: np.ndarray, pose: VolumePo
     >>> bool(np.allclose(align_resample_volume(model, vol, still), vol, atol=1e-5))
     True
     """
+    return _resample(model, _run_volume(model, volume), pose, out)
+
+
+def _run_volume(model: MotionModel, volume) -> np.ndarray:
     volume = _volume(volume, "volume")
     if volume.shape != model.shape:
         raise GeometryError(f"volume shape {volume.shape} differs from the run grid {model.shape}")
+    return volume
+
+
+def _resample(model: MotionModel, volume: np.ndarray, pose: VolumePose, out=None) -> np.ndarray:
     parallel = model.options.parallel
     voxel_map = np.linalg.inv(model.affine) @ np.asarray(pose.matrix, float) @ model.affine
     column = np.linalg.inv(voxel_map)[:3, model.pe_axis]
-    g = model.shift_gradient
-    weight = 1.0 + column[0] * g[0] + column[1] * g[1] + column[2] * g[2]
-    np.maximum(weight, model.options.jacobian_floor, out=weight)
     coef = _motion_kernels.prefilter_cubic(volume, parallel=parallel)
-    return _motion_kernels.resample_rigid_shift(coef, voxel_map[:3], model.shift_vox, weight, model.pe_axis, out=out,
-                                        parallel=parallel)
+    return _motion_kernels.resample_rigid_shift(coef, voxel_map[:3], model.shift_vox, model.shift_gradient, column,
+                                                model.options.jacobian_floor, model.pe_axis, out=out,
+                                                parallel=parallel)
 
 
 def _volumes(run):
@@ -404,9 +455,9 @@ def align_run_volumes(run, model: MotionModel, *, resample: bool = True, progres
     n_volumes = _volumes(run)
     pose = None
     for t in progress_bar(range(n_volumes), total=n_volumes, desc="motion", enabled=progress, unit="vol"):
-        volume = np.asarray(run[..., t], dtype=np.float64)
-        pose = align_volume_pose(model, volume, start=pose)
-        yield t, pose, (align_resample_volume(model, volume, pose) if resample else None)
+        volume = _run_volume(model, run[..., t])
+        pose = _estimate(model, volume, pose)
+        yield t, pose, (_resample(model, volume, pose) if resample else None)
 
 
 def align_motion(run, model: MotionModel, *, progress: bool = False) -> MotionResult:

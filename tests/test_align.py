@@ -6,7 +6,6 @@ from scipy import ndimage
 
 import _align_data as data
 from fieldfix import _align_kernels as kernels
-from fieldfix import _motion_kernels
 from fieldfix import _pose
 from fieldfix.align import (
     AlignOptions,
@@ -49,15 +48,6 @@ def test_trilinear_values_match_scipy_map_coordinates():
     assert np.max(np.abs(value - ndimage.map_coordinates(vol, pos, order=1))) < 1e-12
 
 
-def test_sample_shifted_matches_reference():
-    vol = RNG.random((8, 9, 10))
-    shift = RNG.normal(0, 0.8, (8, 9, 10))
-    for axis in range(3):
-        ours = kernels.sample_shifted(vol, _vmap(), shift, axis)
-        ref = kernels.sample_shifted_reference(vol, _vmap(), shift, axis)
-        assert all(np.max(np.abs(a - b)) < 1e-10 for a, b in zip(ours, ref))
-
-
 def test_distort_lines_matches_reference_and_fieldfix_distort():
     values, shift = RNG.random((6, 14)), RNG.normal(0, 1.5, (6, 14))
     ours = kernels.distort_lines(values, shift)
@@ -90,30 +80,6 @@ def test_pose_sums_matches_reference():
     ours = kernels.pose_sums(a, b, gu, gf, 0.7, world, origin)
     ref = kernels.pose_sums_reference(a, b, gu, gf, 0.7, world, origin)
     assert np.allclose(ours[0], ref[0]) and np.allclose(ours[1], ref[1])
-
-
-def test_prefilter_matches_scipy_spline_filter():
-    # Outside reference: scipy.ndimage.spline_filter (order 3, mirror), and the FFT reference.
-    vol = RNG.random((7, 12, 5))
-    ours = _motion_kernels.prefilter_cubic(vol)
-    assert np.max(np.abs(ours - ndimage.spline_filter(vol, 3, mode="mirror"))) < 1e-10
-    assert np.max(np.abs(ours - _motion_kernels.prefilter_cubic_reference(vol))) < 1e-10
-
-
-def test_resample_rigid_shift_matches_reference_and_map_coordinates():
-    vol = RNG.random((9, 10, 11))
-    coef = _motion_kernels.prefilter_cubic(vol)
-    shift, weight = RNG.normal(0, 0.6, vol.shape), RNG.uniform(0.5, 1.5, vol.shape)
-    ours = _motion_kernels.resample_rigid_shift(coef, _vmap(), shift, weight, 1)
-    ref = _motion_kernels.resample_rigid_shift_reference(coef, _vmap(), shift, weight, 1)
-    assert np.max(np.abs(ours - ref)) < 1e-5
-    # Outside reference: scipy.ndimage.map_coordinates (order 3, mirror) at the same positions.
-    ijk = np.indices(vol.shape, dtype=float).reshape(3, -1)
-    pos = _vmap()[:, :3] @ ijk + _vmap()[:, 3:4]
-    pos[1] += shift.ravel()
-    inside = np.all((pos >= 0) & (pos <= np.array(vol.shape)[:, None] - 1), axis=0)
-    scipy_values = ndimage.map_coordinates(vol, pos, order=3, mode="mirror") * weight.ravel()
-    assert np.max(np.abs(ours.ravel()[inside] - scipy_values[inside])) < 1e-5
 
 
 # ---------------------------------------------------------------------------------------------
