@@ -32,7 +32,8 @@ from numba import njit, prange
 
 from ._align_kernels import _use_parallel
 
-__all__ = ["prefilter_cubic", "prefilter_cubic_reference", "resample_rigid_shift", "resample_rigid_shift_reference",
+__all__ = ["prefilter_cubic", "prefilter_cubic_reference", "pad_mirror", "resample_rigid_shift",
+           "resample_rigid_shift_reference",
            "block_mean", "pull_values", "pull_values_reference", "normal_equations", "normal_equations_reference",
            "SUMS"]
 
@@ -148,14 +149,13 @@ def prefilter_cubic_reference(volume):
 # The single-interpolation resampler
 # ---------------------------------------------------------------------------------------------
 
+#: Samples added on every side of the coefficients, so that every tap of a clamped position is a
+#: plain read (cubic taps reach one sample below and two above the position's floor).
+_PAD = 2
+
+
 @njit(cache=True, inline="always")
 def _mirror_index(m, n):  # pragma: no cover - compiled
-    if n >= 4 and -n < m < 2 * n - 2:  # one reflection (taps of a clamped position): no division
-        if m < 0:
-            return -m
-        if m >= n:
-            return 2 * n - 2 - m
-        return m
     if n == 1:
         return 0
     period = 2 * (n - 1)
@@ -167,104 +167,117 @@ def _mirror_index(m, n):  # pragma: no cover - compiled
     return m
 
 
-@njit(cache=True, inline="always")
-def _weights(f):  # pragma: no cover - compiled
-    """The four cubic B-spline weights at fraction f in [0, 1)."""
-    f2 = f * f
-    f3 = f2 * f
-    g = 1.0 - f
-    return (g * g * g * (1.0 / 6.0), (4.0 - 6.0 * f2 + 3.0 * f3) * (1.0 / 6.0),
-            (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) * (1.0 / 6.0), f3 * (1.0 / 6.0))
+@njit(cache=True)
+def _pad_small(coef, out):  # pragma: no cover - compiled
+    """Mirror padding for any axis length (several reflections on axes shorter than the pad)."""
+    nx, ny, nz = coef.shape
+    for i in range(nx + 2 * _PAD):
+        si = _mirror_index(i - _PAD, nx)
+        for j in range(ny + 2 * _PAD):
+            sj = _mirror_index(j - _PAD, ny)
+            for k in range(nz + 2 * _PAD):
+                out[i, j, k] = coef[si, sj, _mirror_index(k - _PAD, nz)]
 
 
-@njit(cache=True, inline="always")
-def _pick(a, w0, w1, w2, w3):  # pragma: no cover - compiled
-    return w0 if a == 0 else (w1 if a == 1 else (w2 if a == 2 else w3))
+def pad_mirror(coef) -> np.ndarray:
+    """`coef` with :data:`_PAD` samples of mirror extension (scipy's 'mirror') on every side."""
+    coef = np.ascontiguousarray(coef, np.float64)
+    out = np.empty(tuple(n + 2 * _PAD for n in coef.shape))
+    if min(coef.shape) <= _PAD + 1:
+        _pad_small(coef, out)
+        return out
+    out[_PAD:-_PAD, _PAD:-_PAD, _PAD:-_PAD] = coef
+    for axis in range(3):  # one reflection: padded p < PAD copies 2 PAD - p, the far side likewise
+        moved = np.moveaxis(out, axis, 0)
+        n = coef.shape[axis]
+        for p in range(_PAD):
+            moved[p] = moved[2 * _PAD - p]
+            moved[n + 2 * _PAD - 1 - p] = moved[n - 1 + p]
+    return out
 
 
 @njit(cache=True, inline="always", fastmath=_FMA)
-def _cubic_value(flat, sx, sy, sz, p0, p1, p2, ix, iy, iz):  # pragma: no cover - compiled
-    """Cubic B-spline value at a clamped position; interior taps read without mirroring."""
-    a0, a1, a2 = int(p0), int(p1), int(p2)
-    x0, x1, x2, x3 = _weights(p0 - a0)
-    y0, y1, y2, y3 = _weights(p1 - a1)
-    z0, z1, z2, z3 = _weights(p2 - a2)
-    acc = 0.0
-    if 1 <= a0 <= sx - 3 and 1 <= a1 <= sy - 3 and 1 <= a2 <= sz - 3:
-        # Unsigned indices: no negative-index wrap-around test on each of the 64 reads.
-        start = np.uint64(((a0 - 1) * sy + (a1 - 1)) * sz + (a2 - 1))
-        row, plane = np.uint64(sz), np.uint64(sy * sz)
+def _weights_into(t, w, first, k):  # pragma: no cover - compiled
+    u = 1.0 - t
+    t2 = t * t
+    w[first, k] = u * u * u * (1.0 / 6.0)
+    w[first + 1, k] = (4.0 - 6.0 * t2 + 3.0 * t2 * t) * (1.0 / 6.0)
+    w[first + 2, k] = (1.0 + 3.0 * t + 3.0 * t2 - 3.0 * t2 * t) * (1.0 / 6.0)
+    w[first + 3, k] = t2 * t * (1.0 / 6.0)
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _line_taps(shape, vmap, shift, gradient, column, floor, pe, i, j, w, start, scale):  # pragma: no cover
+    """First pass over one output line: clamped positions, tap weights, first taps, intensity weights.
+
+    Branch-free, so that the compiler vectorises it; zero weight beyond half a voxel outside.
+    """
+    sx, sy, sz = shape
+    b0 = vmap[0, 0] * i + vmap[0, 1] * j + vmap[0, 3]
+    b1 = vmap[1, 0] * i + vmap[1, 1] * j + vmap[1, 3]
+    b2 = vmap[2, 0] * i + vmap[2, 1] * j + vmap[2, 3]
+    row = sz + 2.0 * _PAD
+    plane = (sy + 2.0 * _PAD) * row
+    for k in range(shift.shape[0]):
+        s = shift[k]
+        p0 = b0 + vmap[0, 2] * k + pe[0] * s
+        p1 = b1 + vmap[1, 2] * k + pe[1] * s
+        p2 = b2 + vmap[2, 2] * k + pe[2] * s
+        inside = ((p0 >= -0.5) & (p0 <= sx - 0.5) & (p1 >= -0.5) & (p1 <= sy - 0.5)
+                  & (p2 >= -0.5) & (p2 <= sz - 0.5))
+        p0 = min(max(p0, 0.0), sx - 1.0)
+        p1 = min(max(p1, 0.0), sy - 1.0)
+        p2 = min(max(p2, 0.0), sz - 1.0)
+        f0, f1, f2 = np.floor(p0), np.floor(p1), np.floor(p2)
+        start[k] = (f0 + _PAD - 1.0) * plane + (f1 + _PAD - 1.0) * row + (f2 + _PAD - 1.0)
+        _weights_into(p0 - f0, w, 0, k)
+        _weights_into(p1 - f1, w, 4, k)
+        _weights_into(p2 - f2, w, 8, k)
+        jac = 1.0 + column[0] * gradient[0, k] + column[1] * gradient[1, k] + column[2] * gradient[2, k]
+        scale[k] = max(jac, floor) if inside else 0.0
+
+
+@njit(cache=True, inline="always", fastmath=_FMA)
+def _line_values(flat, row, plane, w, start, scale, out):  # pragma: no cover - compiled
+    """Second pass: the 64 taps of every voxel of the line (unsigned indices: no wrap-around tests)."""
+    for k in range(out.shape[0]):
+        first = np.uint64(start[k])
         c0, c1, c2, c3 = 0.0, 0.0, 0.0, 0.0
         for a in range(4):
-            wa = _pick(a, x0, x1, x2, x3)
-            q = start + np.uint64(a) * plane
+            q = first + np.uint64(a) * plane
             for b in range(4):
-                wab = wa * _pick(b, y0, y1, y2, y3)
+                wab = w[a, k] * w[4 + b, k]
                 c0 += wab * flat[q]
                 c1 += wab * flat[q + np.uint64(1)]
                 c2 += wab * flat[q + np.uint64(2)]
                 c3 += wab * flat[q + np.uint64(3)]
                 q += row
-        return z0 * c0 + z1 * c1 + z2 * c2 + z3 * c3
-    for t in range(4):
-        ix[t] = _mirror_index(a0 - 1 + t, sx)
-        iy[t] = _mirror_index(a1 - 1 + t, sy)
-        iz[t] = _mirror_index(a2 - 1 + t, sz)
-    for a in range(4):
-        plane = 0.0
-        for b in range(4):
-            q = (ix[a] * sy + iy[b]) * sz
-            plane += _pick(b, y0, y1, y2, y3) * (z0 * flat[q + iz[0]] + z1 * flat[q + iz[1]]
-                                                 + z2 * flat[q + iz[2]] + z3 * flat[q + iz[3]])
-        acc += _pick(a, x0, x1, x2, x3) * plane
-    return acc
+        out[k] = (w[8, k] * c0 + w[9, k] * c1 + w[10, k] * c2 + w[11, k] * c3) * scale[k]
 
 
-@njit(cache=True, inline="always", fastmath=_FMA)
-def _resample_row(flat, shape, vmap, shift, gradient, column, floor, pe_axis, out, i):  # pragma: no cover
-    ny, nz = out.shape[1], out.shape[2]
-    sx, sy, sz = shape
-    ix = np.empty(4, np.int64)
-    iy = np.empty(4, np.int64)
-    iz = np.empty(4, np.int64)
-    for j in range(ny):
-        b0 = vmap[0, 0] * i + vmap[0, 1] * j + vmap[0, 3]
-        b1 = vmap[1, 0] * i + vmap[1, 1] * j + vmap[1, 3]
-        b2 = vmap[2, 0] * i + vmap[2, 1] * j + vmap[2, 3]
-        for k in range(nz):
-            p0 = b0 + vmap[0, 2] * k
-            p1 = b1 + vmap[1, 2] * k
-            p2 = b2 + vmap[2, 2] * k
-            s = shift[i, j, k]
-            if pe_axis == 0:
-                p0 += s
-            elif pe_axis == 1:
-                p1 += s
-            else:
-                p2 += s
-            if not (-0.5 <= p0 <= sx - 0.5 and -0.5 <= p1 <= sy - 0.5 and -0.5 <= p2 <= sz - 0.5):
-                out[i, j, k] = 0.0
-                continue
-            p0 = min(max(p0, 0.0), sx - 1.0)
-            p1 = min(max(p1, 0.0), sy - 1.0)
-            p2 = min(max(p2, 0.0), sz - 1.0)
-            weight = 1.0 + column[0] * gradient[0, i, j, k] + column[1] * gradient[1, i, j, k] \
-                + column[2] * gradient[2, i, j, k]
-            out[i, j, k] = _cubic_value(flat, sx, sy, sz, p0, p1, p2, ix, iy, iz) * max(weight, floor)
+@njit(cache=True, inline="always")
+def _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, i):  # pragma: no cover
+    nz = out.shape[2]
+    w, start, scale = np.empty((12, nz)), np.empty(nz), np.empty(nz)
+    row = np.uint64(shape[2] + 2 * _PAD)
+    plane = np.uint64((shape[1] + 2 * _PAD) * (shape[2] + 2 * _PAD))
+    for j in range(out.shape[1]):
+        _line_taps(shape, vmap, shift[i, j], gradient[:, i, j], column, floor, pe, i, j, w, start, scale)
+        _line_values(flat, row, plane, w, start, scale, out[i, j])
 
 
-@njit(parallel=True, cache=True, fastmath=_FMA)
-def _resample_parallel(coef, vmap, shift, gradient, column, floor, pe_axis, out):  # pragma: no cover - compiled
-    flat = coef.ravel()
+@njit(parallel=True, cache=True)
+def _resample_parallel(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
+    flat = padded.ravel()
     for i in prange(out.shape[0]):
-        _resample_row(flat, coef.shape, vmap, shift, gradient, column, floor, pe_axis, out, i)
+        _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, i)
 
 
-@njit(cache=True, fastmath=_FMA)
-def _resample_serial(coef, vmap, shift, gradient, column, floor, pe_axis, out):  # pragma: no cover - compiled
-    flat = coef.ravel()
+@njit(cache=True)
+def _resample_serial(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
+    flat = padded.ravel()
     for i in range(out.shape[0]):
-        _resample_row(flat, coef.shape, vmap, shift, gradient, column, floor, pe_axis, out, i)
+        _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, i)
 
 
 def resample_rigid_shift(coef, vmap, shift, gradient, column, floor, pe_axis, out=None, parallel=None):
@@ -272,6 +285,8 @@ def resample_rigid_shift(coef, vmap, shift, gradient, column, floor, pe_axis, ou
 
     The weight of each voxel is ``max(1 + column . gradient, floor)`` (the Jacobian of the
     combined map along the phase-encode axis, see :func:`fieldfix.motion.align_resample_volume`).
+    Positions are clamped to the grid, whose mirror extension (scipy's 'mirror') gives the taps
+    beyond it; zero beyond half a voxel outside.
 
     Parameters
     ----------
@@ -289,9 +304,12 @@ def resample_rigid_shift(coef, vmap, shift, gradient, column, floor, pe_axis, ou
         raise ValueError(f"gradient {gradient.shape} must be (3,) + the shift's shape {shift.shape}")
     if out is None:
         out = np.empty(shift.shape, np.float32)
+    coef = np.asarray(coef, np.float64)
+    pe = np.zeros(3)
+    pe[int(pe_axis)] = 1.0
     kernel = _resample_parallel if _use_parallel(parallel, shift.size) else _resample_serial
-    kernel(np.ascontiguousarray(coef, np.float64), np.ascontiguousarray(vmap, np.float64), shift, gradient,
-           np.ascontiguousarray(column, np.float64), float(floor), int(pe_axis), out)
+    kernel(pad_mirror(coef), tuple(int(n) for n in coef.shape), np.ascontiguousarray(vmap, np.float64), shift,
+           gradient, np.ascontiguousarray(column, np.float64), float(floor), pe, out)
     return out
 
 

@@ -413,10 +413,10 @@ def gauss_newton(normal, start: RigidState, rule: StopRule, damping: float = 1e-
     and the Gauss-Newton matrix ``J^T J`` with respect to a step (translation mm, then small
     rotations in rad about world x, y, z applied after the current rotation). A step solves
     ``(M + lambda diag(M)) d = -g``; it is kept when the cost does not rise (then lambda / 10),
-    otherwise lambda * 10 and the step is solved again. Converged when a kept step moves no
-    translation by `rule.step_mm` and no rotation by `rule.step_deg` or more, or changes the
-    cost by less than `rule.relative_cost` of itself, or when even a step below those sizes
-    raises the cost (a minimum to that resolution). At most `rule.max_iterations` evaluations.
+    otherwise lambda * 10 and the step is solved again. Converged when the next step would move
+    no translation by `rule.step_mm` and no rotation by `rule.step_deg` or more (that step is
+    not taken: the result is the last pose evaluated), or when a kept step changed the cost by
+    less than `rule.relative_cost` of itself. At most `rule.max_iterations` evaluations.
     """
     state, (cost, grad, matrix) = start, normal(start)
     cost_start, passes, lam = cost, 1, damping
@@ -426,7 +426,8 @@ def gauss_newton(normal, start: RigidState, rule: StopRule, damping: float = 1e-
             delta = np.linalg.solve(matrix + lam * np.diag(diagonal), -grad)
         except np.linalg.LinAlgError:
             delta = -grad / diagonal
-        small = (np.abs(delta[:3]).max() < rule.step_mm and np.rad2deg(np.abs(delta[3:]).max()) < rule.step_deg)
+        if np.abs(delta[:3]).max() < rule.step_mm and np.rad2deg(np.abs(delta[3:]).max()) < rule.step_deg:
+            return GaussNewtonResult(state, cost, cost_start, passes, True)
         trial = state.step(delta)
         trial_cost, trial_grad, trial_matrix = normal(trial)
         passes += 1
@@ -434,10 +435,8 @@ def gauss_newton(normal, start: RigidState, rule: StopRule, damping: float = 1e-
             flat = cost - trial_cost <= rule.relative_cost * abs(cost)
             state, cost, grad, matrix = trial, trial_cost, trial_grad, trial_matrix
             lam = max(lam / 10.0, 1e-9)
-            if small or flat:
+            if flat:
                 return GaussNewtonResult(state, cost, cost_start, passes, True)
-        elif small:
-            return GaussNewtonResult(state, cost, cost_start, passes, True)
         else:
             lam *= 10.0
     return GaussNewtonResult(state, cost, cost_start, passes, False)

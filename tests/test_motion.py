@@ -75,6 +75,15 @@ def test_resample_rigid_shift_matches_reference_and_map_coordinates():
                                                                         - 0.5), axis=0)] == 0)
 
 
+@pytest.mark.parametrize("shape", [(7, 8, 9), (3, 5, 4), (2, 6, 1)])
+def test_mirror_padding_matches_numpy_reflect(shape):
+    # Outside reference: numpy.pad(mode="reflect") is scipy.ndimage's 'mirror' extension.
+    coef = RNG.random(shape)
+    assert np.array_equal(kernels.pad_mirror(coef), np.pad(coef, 2, mode="reflect") if min(shape) > 1
+                          else np.pad(np.pad(coef, [(2, 2), (2, 2), (0, 0)], mode="reflect"),
+                                      [(0, 0), (0, 0), (2, 2)], mode="edge"))
+
+
 def test_block_mean_matches_reference_and_cascades():
     vol = RNG.random((11, 8, 7))
     for factor in (1, 2, 3, 4):
