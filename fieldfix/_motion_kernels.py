@@ -18,8 +18,9 @@ Private module: the public entry points are in :mod:`fieldfix.motion`.
   for every volume). ``normal_equations`` returns, in one pass, the sums of the Gauss-Newton
   normal equations for the residual ``r = jac * value - still``: the cost ``sum w r^2``, the
   gradient ``sum w r J`` and ``sum w J J^T`` with the exact Jacobian
-  ``J = jac * [g, y x g]`` (``g`` the world gradient of the value; translations, then
-  rotations about world x, y, z applied on the left of ``R``). A voxel counts only while all
+  ``J = [jac g, jac y x g + value d jac / d omega]`` (``g`` the world gradient of the value,
+  ``jac`` the moved volume's Jacobian along the phase-encode axis; translations, then rotations
+  ``omega`` about world x, y, z applied on the left of ``R``). A voxel counts only while all
   its 4 x 4 x 4 taps lie inside the grid (no mirrored or clamped samples).
 
 The ``*_reference`` functions compute the same in plain numpy; the tests compare them.
@@ -495,7 +496,8 @@ def _accumulate(acc, wn, r, row, still):  # pragma: no cover - compiled
 
 
 @njit(cache=True, inline="always", fastmath=_FMA)
-def _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, lo, hi, acc):  # pragma: no cover
+def _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, lo, hi,
+                  acc):  # pragma: no cover - compiled
     y, p, row = np.empty(3), np.empty(3), np.empty(6)
     w, dw = np.empty((3, 4)), np.empty((3, 4))
     flat = samples.ravel()
@@ -504,44 +506,58 @@ def _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, 
         if not _interior(p, samples.shape):
             continue
         value, g0, g1, g2 = _value_gradient(flat, samples.shape, p[0], p[1], p[2], w, dw)
-        jn = jac[n]
+        s0, s1, s2 = gradient[n, 0], gradient[n, 1], gradient[n, 2]
+        linear = 1.0 + jmap[0, 0] * s0 + jmap[0, 1] * s1 + jmap[0, 2] * s2
+        jn = max(linear, floor)
+        live = value if linear > floor else 0.0
         r = jn * value - still[n]
         h0 = jn * (pmap[0, 0] * g0 + pmap[1, 0] * g1 + pmap[2, 0] * g2)
         h1 = jn * (pmap[0, 1] * g0 + pmap[1, 1] * g1 + pmap[2, 1] * g2)
         h2 = jn * (pmap[0, 2] * g0 + pmap[1, 2] * g1 + pmap[2, 2] * g2)
         row[0], row[1], row[2] = h0, h1, h2
-        row[3] = y[1] * h2 - y[2] * h1
-        row[4] = y[2] * h0 - y[0] * h2
-        row[5] = y[0] * h1 - y[1] * h0
+        row[3] = y[1] * h2 - y[2] * h1 + live * (jmap[1, 0] * s0 + jmap[1, 1] * s1 + jmap[1, 2] * s2)
+        row[4] = y[2] * h0 - y[0] * h2 + live * (jmap[2, 0] * s0 + jmap[2, 1] * s1 + jmap[2, 2] * s2)
+        row[5] = y[0] * h1 - y[1] * h0 + live * (jmap[3, 0] * s0 + jmap[3, 1] * s1 + jmap[3, 2] * s2)
         _accumulate(acc, weight[n], r, row, still[n])
 
 
 @njit(parallel=True, cache=True)
-def _normal_parallel(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, out):  # pragma: no cover
+def _normal_parallel(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
+                     out):  # pragma: no cover - compiled
     n, chunks = ijk.shape[0], out.shape[0]
     for c in prange(chunks):
-        _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, n * c // chunks,
-                      n * (c + 1) // chunks, out[c])
+        _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
+                      n * c // chunks, n * (c + 1) // chunks, out[c])
 
 
 @njit(cache=True)
-def _normal_serial(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, out):  # pragma: no cover
-    _normal_chunk(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, 0, ijk.shape[0], out[0])
+def _normal_serial(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
+                   out):  # pragma: no cover - compiled
+    _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, 0,
+                  ijk.shape[0], out[0])
 
 
-def normal_equations(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis, parallel=None):
+def normal_equations(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
+                     parallel=None):
     """Sums of the Gauss-Newton normal equations of the pose cost over voxels `ijk` (numba).
+
+    The intensity weight of voxel n is ``jac = max(1 + jmap[0] . gradient[n], floor)`` (the
+    Jacobian along the phase-encode axis of the moved volume, `gradient` the shift's derivatives
+    along the level's voxel axes, ``jmap[0]`` the pose's column ``Q^-1 e_pe``); ``jmap[1 + a]`` is
+    the derivative of that column with respect to the rotation about world axis a, so the
+    Jacobian of the residual includes the weight's change with the rotation.
 
     Returns a (:data:`SUMS`,) array: ``sum w r^2``, ``sum w r J`` (6), the upper triangle of
     ``sum w J J^T`` (21, row by row), ``sum w`` and ``sum w still^2`` over the voxels counted.
     """
-    arrays = [np.ascontiguousarray(a, np.float64) for a in (samples, shift, jac, weight, still, ymap, pmap)]
-    samples, shift, jac, weight, still, ymap, pmap = arrays
+    arrays = [np.ascontiguousarray(a, np.float64) for a in (samples, shift, gradient, weight, still, ymap, pmap,
+                                                            jmap)]
+    samples, shift, gradient, weight, still, ymap, pmap, jmap = arrays
     ijk = np.ascontiguousarray(ijk, np.int64)
     use = bool(len(ijk) >= PARALLEL_POSE_VOXELS) if parallel is None else bool(parallel)
     out = np.zeros((8 if use else 1, SUMS))
-    (_normal_parallel if use else _normal_serial)(samples, ijk, shift, jac, weight, still, ymap, pmap,
-                                                  int(pe_axis), out)
+    (_normal_parallel if use else _normal_serial)(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap,
+                                                  float(floor), int(pe_axis), out)
     return out.sum(axis=0)
 
 
@@ -566,17 +582,20 @@ def pull_values_reference(samples, ijk, shift, ymap, pmap, pe_axis):
     return np.where(inside, value, np.nan)
 
 
-def normal_equations_reference(samples, ijk, shift, jac, weight, still, ymap, pmap, pe_axis):
+def normal_equations_reference(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis):
     """Plain-numpy reference of :func:`normal_equations`."""
     samples = np.asarray(samples, float)
     y, p = _positions_reference(ijk, shift, ymap, pmap, pe_axis)
     inside = _interior_reference(p, samples.shape)
     value, grad = _bspline_reference(samples, np.clip(p, 1.0, np.array(samples.shape)[:, None] - 2.0), True)
-    jac, weight, still = (np.asarray(a, float) for a in (jac, weight, still))
+    gradient, weight, still, jmap = (np.asarray(a, float) for a in (gradient, weight, still, jmap))
+    linear = 1.0 + gradient @ jmap[0]
+    jac = np.maximum(linear, floor)
     w = weight * inside
     r = jac * value - still
     h = jac * (np.asarray(pmap)[:, :3].T @ grad)
-    rows = np.concatenate([h, np.cross(y.T, h.T).T])
+    turn = np.cross(y.T, h.T).T + (value * (linear > floor)) * (gradient @ jmap[1:].T).T
+    rows = np.concatenate([h, turn])
     matrix = (rows * w) @ rows.T
     upper = matrix[np.triu_indices(6)]
     return np.concatenate([[np.sum(w * r * r)], rows @ (w * r), upper, [w.sum(), np.sum(w * still * still)]])

@@ -20,19 +20,21 @@ change of the field caused by the motion of other body parts.
 
 Pose estimation (:func:`align_volume_pose`): the same contrast on both sides, so least squares
 between the reference at rest and the volume pulled back through the model at a trial pose (the
-correction below, with the Jacobian of the reference field):
+correction below, with its pose-dependent Jacobian ``J``):
 ``C = sum w (J * volume(Q v + shift(v) e_pe) - still(v))^2 / sum w still^2``. ``still`` is the
 reference volume pulled back the same way at the identity, so the reference's own pose is exactly
 the identity. Both are read through the cubic B-spline whose coefficients are the samples (no
-prefilter: interpolation plus a light smoothing of about 0.58 voxel, which keeps the cost smooth in
-the pose and less sensitive to sharp, aliased edges). The cost counts the voxels where the field is gentle (``|d shift / d y| < 0.3``),
-leaves out the voxels next to the grid's faces (``margin_vox``: the field of view does not move
-with the head, and its cut edges would hold the estimate at no motion) and keeps at most
-``voxels_per_level / factor`` of them, the strongest edges of the reference at rest. It is
-minimised by Gauss-Newton with Levenberg-Marquardt damping (:func:`fieldfix._pose.gauss_newton`;
-one numba pass gives the residuals and the 6x6 normal equations with the exact Jacobian) on a
-4-2-1 pyramid of block means, starting from the previous volume's pose; a level stops when a step
-moves less than 0.01 mm and 0.01 degree (scaled by the block size on coarse levels).
+prefilter: interpolation plus a light smoothing of about 0.58 voxel, which keeps the cost smooth
+in the pose and less sensitive to sharp, aliased edges). The cost counts the voxels where the
+field is gentle (``|d shift / d y| < 0.3``), leaves out the voxels next to the grid's faces
+(``margin_vox``: the field of view does not move with the head, and its cut edges would hold the
+estimate at no motion) and keeps at most ``voxels_per_level / factor`` of them, the strongest
+edges of the reference at rest. It is minimised by Gauss-Newton with Levenberg-Marquardt damping
+(:func:`fieldfix._pose.gauss_newton`; one numba pass gives the residuals and the 6x6 normal
+equations with the exact Jacobian, the intensity weight's change with the rotation included) on
+a 4-2-1 pyramid of block means, starting from the previous volume's pose; a level stops when the
+next step would move less than 0.01 mm and 0.01 degree (scaled by the block size on coarse
+levels).
 
 Correction (:func:`align_resample_volume`), one interpolation per volume: the output voxel ``v``
 (reference position, undistorted) takes the cubic B-spline value of volume ``t`` at
@@ -169,34 +171,48 @@ class PoseLevel:
     ----------
     factor : int
     affine : (4, 4), the level grid (voxel centres at the blocks' centres)
+    pe_axis : int
     ijk : (N, 3) int, the voxels counted (level grid indices)
     shift_vox : (N,), the reference shift at those voxels, in level voxels
-    jacobian : (N,), ``1 + d shift / d y`` (fold floor applied, block means)
+    shift_gradient : (N, 3), its derivatives along the level's voxel axes (block means)
     weight : (N,), fraction of each block the cost trusts (see ``TRUSTED_SHIFT_GRADIENT``)
     still : (N,), the reference at rest: the reference volume pulled back at the identity
+    jacobian_floor : float
     """
 
     factor: int
     affine: np.ndarray
+    pe_axis: int
     ijk: np.ndarray
     shift_vox: np.ndarray
-    jacobian: np.ndarray
+    shift_gradient: np.ndarray
     weight: np.ndarray
     still: np.ndarray
+    jacobian_floor: float
 
-    def maps(self, state: _pose.RigidState, centre_mm) -> tuple[np.ndarray, np.ndarray]:
-        """(ymap, pmap) of :mod:`fieldfix._motion_kernels` at a pose."""
+    def maps(self, state: _pose.RigidState, centre_mm) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(ymap, pmap, jmap) of :mod:`fieldfix._motion_kernels` at a pose.
+
+        ``jmap[0]`` is the column ``Q^-1 e_pe = B R^T a`` of the inverse voxel map (``a`` the
+        phase-encode voxel axis in world mm, ``B`` the inverse of the grid's 3x3 affine) and
+        ``jmap[1 + k] = -B R^T (e_k x a)`` its derivative for a rotation about world axis k
+        applied after ``R``.
+        """
         affine = self.affine
         ymap = state.rotation @ np.concatenate([affine[:3, :3], (affine[:3, 3] - centre_mm)[:, None]], axis=1)
         inverse = np.linalg.inv(affine)
         offset = inverse[:3, :3] @ (centre_mm + state.translation_mm) + inverse[:3, 3]
-        return ymap, np.concatenate([inverse[:3, :3], offset[:, None]], axis=1)
+        back = inverse[:3, :3] @ state.rotation.T
+        axis = affine[:3, self.pe_axis]
+        jmap = np.stack([back @ axis] + [-back @ np.cross(np.eye(3)[k], axis) for k in range(3)])
+        return ymap, np.concatenate([inverse[:3, :3], offset[:, None]], axis=1), jmap
 
-    def normal(self, samples, state: _pose.RigidState, pe_axis: int, centre_mm, parallel=None):
+    def normal(self, samples, state: _pose.RigidState, centre_mm, parallel=None):
         """Normalised cost ``sum w r^2 / sum w still^2``, its gradient and Gauss-Newton matrix."""
-        ymap, pmap = self.maps(state, centre_mm)
-        sums = _motion_kernels.normal_equations(samples, self.ijk, self.shift_vox, self.jacobian, self.weight,
-                                                self.still, ymap, pmap, pe_axis, parallel=parallel)
+        ymap, pmap, jmap = self.maps(state, centre_mm)
+        sums = _motion_kernels.normal_equations(samples, self.ijk, self.shift_vox, self.shift_gradient, self.weight,
+                                                self.still, ymap, pmap, jmap, self.jacobian_floor, self.pe_axis,
+                                                parallel=parallel)
         scale = 1.0 / max(float(sums[29]), 1e-300)
         matrix = np.zeros((6, 6))
         matrix[np.triu_indices(6)] = sums[7:28]
@@ -204,7 +220,7 @@ class PoseLevel:
         return float(sums[0]) * scale, sums[1:7] * scale, matrix * scale
 
 
-def _level(reference, shift, jacobian, trusted, affine, factor, pe_axis, centre, options) -> PoseLevel:
+def _level(reference, shift, gradient, trusted, affine, factor, pe_axis, centre, options) -> PoseLevel:
     """Pick the voxels of one level (trusted, off the faces, inside at rest, strongest edges)."""
     _, level_affine = _pose.level_grid(reference.shape, affine, factor)
     samples = _motion_kernels.block_mean(reference, factor)
@@ -218,16 +234,18 @@ def _level(reference, shift, jacobian, trusted, affine, factor, pe_axis, centre,
     edges = np.sqrt(sum(g * g for g in np.gradient(samples)))[keep]
     cap = max(int(options.voxels_per_level // factor), 6)
     if len(ijk) > cap:
-        strongest = np.sort(np.argsort(edges, kind="stable")[-cap:])
-        ijk = ijk[strongest]
+        ijk = ijk[np.sort(np.argsort(edges, kind="stable")[-cap:])]
     index = tuple(ijk.T)
-    level = PoseLevel(int(factor), level_affine, np.ascontiguousarray(ijk, np.int64), level_shift[index],
-                      _motion_kernels.block_mean(jacobian, factor)[index], weight[index], np.zeros(len(ijk)))
-    ymap, pmap = level.maps(_pose.RigidState(np.zeros(3), np.eye(3)), centre)
+    level_gradient = np.stack([_motion_kernels.block_mean(g, factor)[index] for g in gradient], axis=1)
+    level = PoseLevel(int(factor), level_affine, int(pe_axis), np.ascontiguousarray(ijk, np.int64),
+                      level_shift[index], level_gradient, weight[index], np.zeros(len(ijk)),
+                      float(options.jacobian_floor))
+    ymap, pmap, _ = level.maps(_pose.RigidState(np.zeros(3), np.eye(3)), centre)
     values = _motion_kernels.pull_values(samples, level.ijk, level.shift_vox, ymap, pmap, pe_axis)
     inside = np.isfinite(values)
-    return PoseLevel(int(factor), level_affine, level.ijk[inside], level.shift_vox[inside], level.jacobian[inside],
-                     level.weight[inside], level.jacobian[inside] * values[inside])
+    jacobian = np.maximum(1.0 + level_gradient[inside, pe_axis], options.jacobian_floor)  # at rest
+    return PoseLevel(level.factor, level_affine, level.pe_axis, level.ijk[inside], level.shift_vox[inside],
+                     level_gradient[inside], level.weight[inside], jacobian * values[inside], level.jacobian_floor)
 
 
 @dataclass(frozen=True)
@@ -315,8 +333,7 @@ def align_motion_model(
     centre = affine[:3, :3] @ ((np.array(reference.shape) - 1) / 2.0) + affine[:3, 3]
     gradient = np.stack(np.gradient(shift))
     trusted = (np.abs(gradient[axis]) < TRUSTED_SHIFT_GRADIENT).astype(float)
-    jacobian = np.maximum(1.0 + gradient[axis], options.jacobian_floor)
-    levels = [_level(reference, shift, jacobian, trusted, affine, factor, axis, centre, options)
+    levels = [_level(reference, shift, gradient, trusted, affine, factor, axis, centre, options)
               for factor in options.levels]
     levels = tuple(level for level in levels if len(level.ijk) >= MIN_POSE_VOXELS)  # small grids: fewer levels
     if not levels:
@@ -358,13 +375,12 @@ def _estimate(model: MotionModel, volume: np.ndarray, start: VolumePose | None) 
     passes, result, samples = 0, None, _pyramid(volume, [level.factor for level in model.levels])
     for level in model.levels:
         result = _pose.gauss_newton(
-            lambda s, level=level: level.normal(samples[level.factor], s, model.pe_axis, model.centre_mm,
-                                                model.options.parallel),
+            lambda s, level=level: level.normal(samples[level.factor], s, model.centre_mm, model.options.parallel),
             state, model.options.rule(level.factor))
         state, passes = result.state, passes + result.passes
     finest = model.levels[-1]
     first = result.cost_start if len(model.levels) == 1 else finest.normal(
-        samples[finest.factor], _start_state(start), model.pe_axis, model.centre_mm, model.options.parallel)[0]
+        samples[finest.factor], _start_state(start), model.centre_mm, model.options.parallel)[0]
     return _pose_result(model, state, (first, result.cost), passes, result.converged)
 
 

@@ -120,3 +120,18 @@ def fieldmap(shape, affine, supersample=2):
 
 def pose(translation_mm=(0.0, 0.0, 0.0), rotation_deg=(0.0, 0.0, 0.0), centre_mm=(0.0, 0.0, 0.0)):
     return pose_matrix(np.asarray(translation_mm, float), np.deg2rad(rotation_deg), centre_mm)
+
+
+def smooth_head(points_mm) -> np.ndarray:
+    """A smooth invented head (two nested soft ellipsoids and a folded texture) at world points (..., 3)."""
+    x, y, z = points_mm[..., 0], points_mm[..., 1], points_mm[..., 2]
+    r2 = (x / 70.0) ** 2 + (y / 88.0) ** 2 + (z / 80.0) ** 2
+    inner = 1.0 / (1.0 + np.exp((r2 - 0.8) * 40.0))
+    outer = 1.0 / (1.0 + np.exp((r2 - 1.0) * 40.0))
+    return 0.6 * outer + inner * (0.5 + 0.2 * np.cos(x / 8.0) * np.sin(y / 9.0) * np.cos(z / 7.0))
+
+
+def smooth_field(points_mm) -> np.ndarray:
+    """Its field (Hz): a frontal off-resonance bump and a gentle gradient along y."""
+    x, y, z = points_mm[..., 0], points_mm[..., 1], points_mm[..., 2]
+    return 120.0 * np.exp(-((x / 25.0) ** 2 + ((y - 55.0) / 20.0) ** 2 + ((z + 30.0) / 20.0) ** 2)) + 0.15 * y

@@ -22,9 +22,10 @@ from fieldfix.motion import (
     align_motion_tsv,
     align_resample_volume,
     align_run_volumes,
+    align_volume_pose,
 )
 from fieldfix.simulate.epi import simulate_epi_run
-from fieldfix.unwarp import unwarp_volume
+from fieldfix.unwarp import distort_with_field, unwarp_volume
 
 RNG = np.random.default_rng(23)
 
@@ -114,28 +115,37 @@ def test_pose_kernels_match_references_and_scipy():
     ok = np.isfinite(values)
     scipy_values = ndimage.map_coordinates(samples, pos[:, ok], order=3, prefilter=False, mode="mirror")
     assert np.max(np.abs(values[ok] - scipy_values)) < 1e-12
-    jac, weight, still = RNG.uniform(0.7, 1.3, len(ijk)), RNG.random(len(ijk)), RNG.random(len(ijk))
-    ref = kernels.normal_equations_reference(samples, ijk, shift, jac, weight, still, ymap, pmap, 1)
+    gradient, weight, still = RNG.normal(0, 0.4, (len(ijk), 3)), RNG.random(len(ijk)), RNG.random(len(ijk))
+    jmap = np.array([[0.05, 0.98, -0.04], [0.0, 0.02, 0.9], [0.3, 0.0, -0.01], [-0.9, 0.01, 0.0]])
+    ref = kernels.normal_equations_reference(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, 0.1, 1)
     for parallel in (False, True):
-        sums = kernels.normal_equations(samples, ijk, shift, jac, weight, still, ymap, pmap, 1, parallel=parallel)
+        sums = kernels.normal_equations(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, 0.1, 1,
+                                        parallel=parallel)
         assert np.max(np.abs(sums - ref)) < 1e-10 * max(1.0, np.abs(ref).max())
 
 
 def test_normal_equations_are_the_exact_gauss_newton_sums():
     # The Jacobian against central differences of the residuals r = jac * value - still, each
     # parameter stepped as fieldfix._pose.RigidState.step steps it (translation mm, then small
-    # rotations about world x, y, z applied after R).
-    samples, ijk, shift, ymap, pmap = _pose_case(200)
+    # rotations about world x, y, z applied after R). The intensity weight jac = max(1 + g . c, floor)
+    # is recomputed here from the column c of the inverse voxel map, as the resampler takes it.
+    samples, ijk, shift, _, _ = _pose_case(200)
     affine = np.diag([2.0, 2.5, 3.0, 1.0])
     affine[:3, 3] = [-12.0, -15.0, -19.5]
     centre = np.zeros(3)
-    level = PoseLevel(1, affine, ijk, shift, RNG.uniform(0.8, 1.2, len(ijk)), RNG.uniform(0.5, 1, len(ijk)),
-                      RNG.random(len(ijk)))
+    gradient = RNG.normal(0, 0.3, (len(ijk), 3))
+    gradient[:10, 1] = -0.95  # folded voxels: weight at the floor
+    level = PoseLevel(1, affine, 1, ijk, shift, gradient, RNG.uniform(0.5, 1, len(ijk)), RNG.random(len(ijk)), 0.1)
     state = _pose.RigidState(np.array([0.4, -0.3, 0.2]), _pose.rotation_matrix(np.deg2rad([2.0, -1.0, 1.5])))
 
     def residuals(s):
-        ymap, pmap = level.maps(s, centre)
-        return level.jacobian * kernels.pull_values(samples, level.ijk, level.shift_vox, ymap, pmap, 1) - level.still
+        ymap, pmap, _ = level.maps(s, centre)
+        matrix = np.eye(4)
+        matrix[:3, :3] = s.rotation
+        matrix[:3, 3] = centre + s.translation_mm - s.rotation @ centre
+        column = np.linalg.inv(np.linalg.inv(affine) @ matrix @ affine)[:3, 1]
+        jac = np.maximum(1.0 + gradient @ column, 0.1)
+        return jac * kernels.pull_values(samples, level.ijk, level.shift_vox, ymap, pmap, 1) - level.still
 
     base = residuals(state)
     keep = np.isfinite(base)
@@ -147,10 +157,16 @@ def test_normal_equations_are_the_exact_gauss_newton_sums():
     jacobian = np.stack(columns, axis=1)
     w = level.weight[keep]
     scale = 1.0 / np.sum(w * level.still[keep] ** 2)
-    cost, grad, matrix = level.normal(samples, state, 1, centre)
+    cost, grad, matrix = level.normal(samples, state, centre)
     assert cost == pytest.approx(np.sum(w * base[keep] ** 2) * scale, rel=1e-10)
     assert np.allclose(grad, jacobian.T @ (w * base[keep]) * scale, rtol=1e-5, atol=1e-9)
     assert np.allclose(matrix, (jacobian * w[:, None]).T @ jacobian * scale, rtol=1e-5, atol=1e-9)
+    # The weight's change with the rotation is part of it: leaving it out misses the differences.
+    ymap, pmap, jmap = level.maps(state, centre)
+    jmap[1:] = 0.0
+    frozen = kernels.normal_equations(samples, level.ijk, level.shift_vox, gradient, level.weight, level.still, ymap,
+                                      pmap, jmap, 0.1, 1)[1:7] * scale
+    assert not np.allclose(frozen[3:], grad[3:], rtol=1e-3, atol=1e-9)
 
 
 def test_gauss_newton_matches_the_closed_form_rigid_fit():
@@ -211,6 +227,26 @@ def test_known_motion_is_recovered(moving_run):
                        align_framewise_displacement(result.translation_mm, result.rotation_deg))
     poses = [pose for _, pose, _ in align_run_volumes(moving_run["run"], moving_run["model"], resample=False)]
     assert all(p.cost_after < 0.5 * p.cost_before for p in poses[1:])  # each started at the previous pose
+
+
+def test_large_motion_is_recovered_from_the_identity():
+    # The pyramid's reach, and the Jacobian of the moved field: a smooth head pitched 6 degrees and
+    # moved 8 mm (and a mixed move) from the reference, distorted by its own moved field with
+    # fieldfix.unwarp.distort_with_field (the forward model), estimated from the identity.
+    shape, voxel = (48, 56, 40), 3.5
+    affine = data.grid_affine(shape, voxel)
+    points = data.grid_points(shape, affine)
+
+    def epi(move):
+        moved = data.moved_back(points, move)
+        return distort_with_field(data.smooth_head(moved), data.smooth_field(moved), "j-", ESP)
+
+    model = align_motion_model(epi(np.eye(4)), affine, data.smooth_field(points), Readout("j-", ESP))
+    for t, r in [((0.0, 2.0, 8.0), (6.0, 0.0, 0.0)), ((3.0, -3.0, 3.0), (2.0, -3.0, 4.0))]:
+        pose = align_volume_pose(model, epi(align_rigid_matrix(t, r, model.centre_mm)))
+        assert pose.converged and pose.cost_after < 0.01 * pose.cost_before
+        assert np.max(np.abs(np.subtract(pose.translation_mm, t))) < 0.05
+        assert np.max(np.abs(np.subtract(pose.rotation_deg, r))) < 0.05
 
 
 @pytest.mark.slow
