@@ -267,14 +267,14 @@ def _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, 
         _line_values(flat, row, plane, w, start, scale, out[i, j])
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FMA)  # inlined callees compile with these flags
 def _resample_parallel(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
     flat = padded.ravel()
     for i in prange(out.shape[0]):
         _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, i)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=_FMA)
 def _resample_serial(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
     flat = padded.ravel()
     for i in range(out.shape[0]):
@@ -521,7 +521,7 @@ def _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap
         _accumulate(acc, weight[n], r, row, still[n])
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FMA)
 def _normal_parallel(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
                      out):  # pragma: no cover - compiled
     n, chunks = ijk.shape[0], out.shape[0]
@@ -530,7 +530,7 @@ def _normal_parallel(samples, ijk, shift, gradient, weight, still, ymap, pmap, j
                       n * c // chunks, n * (c + 1) // chunks, out[c])
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=_FMA)
 def _normal_serial(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
                    out):  # pragma: no cover - compiled
     _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, 0,
