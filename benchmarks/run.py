@@ -7,6 +7,7 @@ Usage::
     python benchmarks/run.py unwarp plan     # only bench_unwarp.py and bench_plan.py
     python benchmarks/run.py pairs           # field from reversed phase-encode pairs (bench_pairs.py)
     python benchmarks/run.py fieldmap        # the 7 T field map, fresh processes (bench_fieldmap.py)
+    python benchmarks/run.py unwarp_files    # the unwarp command on .nii.gz runs, fresh processes
     python benchmarks/run.py --json results.json
 """
 
