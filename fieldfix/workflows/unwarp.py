@@ -86,7 +86,8 @@ class UnwarpSettings:
     force : bool
         Correct even when shifts exceed a quarter of the field of view.
     parallel : bool
-        Run the kernel on all numba threads; False when several jobs share the cores.
+        Run the kernel on all numba threads (3D images; a streamed 4D run always corrects on one
+        thread beside its reader and writer threads); False when several jobs share the cores.
     combine_polarities : bool
         With exactly two runs of opposite polarity on one grid, also write one run restored
         jointly from both (``<tag><first stem>_combined.nii.gz``, see
@@ -272,7 +273,11 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     tables = build_tables(maps.shift_vox, maps.pe_axis, interp=s.interp, jacobian=s.jacobian,
                           jacobian_floor=s.jacobian_floor, layout="F")
     provenance = Provenance(job.command, _parameters(plan, s), inputs)
-    n_volumes = write_corrected_run(image, lambda v: apply_tables(tables, v, parallel=s.parallel),
+    # A streamed 4D run keeps a reader and a writer thread busy beside the kernel, and one volume
+    # takes the kernel about a tenth of the time of its decompression and compression: the
+    # kernel runs on this thread alone (numba's threads would only compete for the cores).
+    parallel = s.parallel and image.ndim == 3
+    n_volumes = write_corrected_run(image, lambda v: apply_tables(tables, v, parallel=parallel),
                                     job.path(plan.files.corrected), inputs=inputs, overwrite=job.overwrite,
                                     provenance=provenance, progress=job.progress, gzip_effort=s.gzip_effort)
     common = dict(template=image, inputs=inputs, overwrite=job.overwrite, provenance=provenance,
