@@ -161,3 +161,14 @@ def test_single_precision_iterations_agree_with_double():
     assert np.abs(single - f)[hole].max() < 1e-2 * np.abs(f).max()
     assert np.abs(single - double).max() < 1e-3 * np.abs(f).max()
     assert np.array_equal(single[~hole], f[~hole])
+
+
+def test_conjugate_gradient_vector_kernels_match_reference():
+    rng = np.random.default_rng(12)
+    x, r, p, ap = (rng.standard_normal(1000).astype(np.float32) for _ in range(4))
+    assert K.dot_nb(p, ap) == pytest.approx(K.dot_reference(p, ap), rel=1e-12)
+    want_x, want_r, want_rr = K.cg_step_reference(x, r, p, ap, 0.37)
+    rr = K.cg_step_nb(x, r, p, ap, np.float32(0.37))
+    np.testing.assert_allclose(x, want_x, rtol=1e-6)
+    np.testing.assert_allclose(r, want_r, rtol=1e-6, atol=1e-6)
+    assert rr == pytest.approx(want_rr, rel=1e-6)
