@@ -1,4 +1,4 @@
-"""EPI unwarping: kernel speed, end-to-end file throughput, and memory against run length.
+"""EPI unwarping kernels: speed against scipy and between interpolations, volumes held in memory.
 
 * ``unwarp_compute_vs_map_coordinates``: a 96x96x60 run of 300 float32 volumes held in
   memory (Fortran order, as nibabel returns it), unwarped with linear interpolation and
@@ -14,24 +14,16 @@
   (prefilter included) against ``scipy.ndimage.map_coordinates`` order 1 (goal >= 20x) and
   against our linear kernel (goal: cubic within 2.5x of linear, ratio >= 0.4). Best of
   many calls each; the three are timed in turns.
-* ``unwarp_end_to_end_vs_nibabel``: the same run as a ``.nii.gz`` file: our whole job
-  (read, unwarp, write the corrected ``.nii.gz`` and the shift outputs) against nibabel
-  loading the file and saving it again unchanged. Ratio reported as nibabel time / ours
-  (goal: ours at most 1.3x nibabel's, i.e. ratio >= 1/1.3 = 0.77).
-* ``unwarp_memory_100_vs_300``: peak memory of the whole job on a 100-volume and a
-  300-volume run of the same grid, each in a fresh process (RSS rise after a warm-up job,
-  and the tracemalloc peak); goal: nearly the same; ratio = peak(300) / peak(100).
+* The whole command on files (fresh processes, float32 and int16 runs, memory against run
+  length, accuracy on the k-space simulator) is in ``bench_unwarp_files.py``.
 
-``--quick`` uses 30 volumes (10 and 30 for the memory check).
+``--quick`` uses 30 volumes.
 """
 
 from __future__ import annotations
 
 import os
-import shutil
 import sys
-import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
@@ -57,23 +49,6 @@ def _object(shape):
     grids = np.meshgrid(*[np.linspace(-1, 1, n) for n in shape], indexing="ij")
     r2 = sum((g / s) ** 2 for g, s in zip(grids, (0.75, 0.85, 0.8)))
     return (1000.0 * (r2 < 1) * (1 + 0.2 * np.cos(6 * grids[0]) * np.sin(5 * grids[1]))).astype(np.float32)
-
-
-def _write_run(path: Path, n_volumes: int, rng) -> Path:
-    from fieldfix.io import StreamingWriter
-
-    base = _object(SHAPE)
-    affine = np.diag([2.5, 2.5, 2.5, 1.0])
-    with StreamingWriter(path, SHAPE + (n_volumes,), affine) as writer:
-        for _ in range(n_volumes):
-            writer.write(base + rng.normal(0, 20.0, SHAPE).astype(np.float32))
-    return path
-
-
-def _write_b0(path: Path) -> Path:
-    from fieldfix.io import save_image
-
-    return save_image(path, _field_hz(SHAPE), np.diag([2.5, 2.5, 2.5, 1.0]))
 
 
 def _compute_records(n_volumes: int, rng) -> list[dict]:
@@ -179,123 +154,12 @@ def _cubic_records(rng) -> list[dict]:
     ]
 
 
-def _end_to_end_record(work: Path, run_path: Path, b0_path: Path, n_volumes: int) -> dict:
-    import nibabel as nib
-
-    from fieldfix.workflows.unwarp import run_unwarp
-
-    counter = iter(range(1000))
-
-    def ours():
-        out = work / f"e2e{next(counter)}"
-        run_unwarp([run_path], b0_path, out, pe_code="j-", echo_spacing_s=ECHO_SPACING_S)
-        shutil.rmtree(out)
-
-    def baseline():
-        image = nib.load(str(run_path))
-        data = image.get_fdata(dtype=np.float32)
-        target = work / f"nib{next(counter)}.nii.gz"
-        nib.save(nib.Nifti1Image(data, image.affine, image.header), str(target))
-        target.unlink()
-
-    record = compare("unwarp_end_to_end_vs_nibabel", ours, baseline,
-                     baseline_name="nibabel load + save of the same .nii.gz",
-                     goal="ours <= 1.3x nibabel's time (ratio >= 0.77)", goal_ratio=1 / 1.3, repeat=1, warmup=0,
-                     extra={"grid": "x".join(map(str, SHAPE)), "volumes": n_volumes,
-                            "file_mib": run_path.stat().st_size / 2**20})
-    record["ours_over_nibabel"] = record["ours_s"] / record["baseline_s"]
-    return record
-
-
-_MEMORY_SCRIPT = r"""
-import json, os, sys, tempfile, tracemalloc
-import numpy as np
-from fieldfix.io import save_image
-from fieldfix.workflows.unwarp import run_unwarp
-
-run_path, b0_path, out_dir = sys.argv[1:4]
-# Warm-up on a tiny run: imports, numba kernels loaded from the cache, first-use allocations.
-tiny = tempfile.mkdtemp()
-small_run = save_image(os.path.join(tiny, "tiny_bold.nii.gz"), np.ones((4, 8, 2, 3)), np.eye(4))
-small_b0 = save_image(os.path.join(tiny, "tiny_b0.nii.gz"), np.zeros((4, 8, 2)), np.eye(4))
-run_unwarp([small_run], small_b0, os.path.join(tiny, "out"), pe_code="j-", echo_spacing_s=5e-4)
-def status_mib(key):
-    with open("/proc/self/status") as handle:
-        for line in handle:
-            if line.startswith(key + ":"):
-                return int(line.split()[1]) / 1024
-    raise KeyError(key)
-
-# getrusage's ru_maxrss is useless here: a forked child inherits the parent's high-water
-# mark. VmHWM belongs to this process image; writing 5 to clear_refs resets it (Linux).
-try:
-    with open("/proc/self/clear_refs", "w") as handle:
-        handle.write("5")
-except OSError:
-    pass
-before_mib = status_mib("VmRSS")
-tracemalloc.start()
-run_unwarp([run_path], b0_path, out_dir, pe_code="j-", echo_spacing_s=5e-4)
-traced_mib = tracemalloc.get_traced_memory()[1] / 2**20
-print(json.dumps({"rss_rise_mib": status_mib("VmHWM") - before_mib, "traced_peak_mib": traced_mib,
-                  "rss_before_mib": before_mib}))
-"""
-
-
-def _memory_record(work: Path, runs: dict, b0_path: Path) -> dict:
-    """Peak memory of the whole job, each run length in a fresh process.
-
-    A fresh process per run length, because the allocator keeps freed pages: a second
-    job in the same process would show no rise at all. Reported: the rise of the peak
-    resident set over the resident set after a warm-up job (RSS), and the peak of
-    numpy/Python allocations during the job (tracemalloc).
-    """
-    import json
-    import subprocess
-
-    rise, traced, seconds = {}, {}, {}
-    for n_volumes, path in sorted(runs.items()):
-        start = time.perf_counter()
-        done = subprocess.run([sys.executable, "-c", _MEMORY_SCRIPT, str(path), str(b0_path),
-                               str(work / f"mem{n_volumes}")], capture_output=True, text=True, check=True)
-        seconds[n_volumes] = time.perf_counter() - start
-        numbers = json.loads(done.stdout.strip().splitlines()[-1])
-        rise[n_volumes], traced[n_volumes] = numbers["rss_rise_mib"], numbers["traced_peak_mib"]
-    small, large = sorted(rise)
-    volume_mib = float(np.prod(SHAPE) * 4 / 2**20)
-    return {
-        "benchmark": f"unwarp_memory_{small}_vs_{large}",
-        f"rss_rise_mib_{small}": rise[small],
-        f"rss_rise_mib_{large}": rise[large],
-        f"traced_peak_mib_{small}": traced[small],
-        f"traced_peak_mib_{large}": traced[large],
-        "ratio": rise[large] / rise[small] if rise[small] > 0 else float("inf"),
-        "one_volume_mib": volume_mib,
-        f"peak_{large}_in_volumes": float(rise[large] / volume_mib),
-        "whole_run_mib": volume_mib * large,
-        f"seconds_{small}": seconds[small],
-        f"seconds_{large}": seconds[large],
-        "goal": "peak memory nearly independent of the number of volumes (ratio <= 1.2)",
-        "met": bool(rise[large] <= 1.2 * rise[small] + 8.0 and traced[large] <= 1.2 * traced[small] + 8.0),
-    }
-
-
 def run(quick: bool) -> list[dict]:
     rng = np.random.default_rng(2026)
     n_volumes = 30 if quick else 300
-    small = 10 if quick else 100
-    work = Path(tempfile.mkdtemp(prefix="fieldfix-bench-unwarp-"))
-    try:
-        records = _compute_records(n_volumes, rng)
-        records.extend(_cubic_records(rng))
-        b0_path = _write_b0(work / "b0_hz.nii.gz")
-        runs = {small: _write_run(work / f"run{small}_bold.nii.gz", small, rng),
-                n_volumes: _write_run(work / f"run{n_volumes}_bold.nii.gz", n_volumes, rng)}
-        records.append(_memory_record(work, runs, b0_path))
-        records.append(_end_to_end_record(work, runs[n_volumes], b0_path, n_volumes))
-        return records
-    finally:
-        shutil.rmtree(work, ignore_errors=True)
+    records = _compute_records(n_volumes, rng)
+    records.extend(_cubic_records(rng))
+    return records
 
 
 if __name__ == "__main__":

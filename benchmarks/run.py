@@ -8,6 +8,7 @@ Usage::
     python benchmarks/run.py pairs           # field from reversed phase-encode pairs (bench_pairs.py)
     python benchmarks/run.py fieldmap        # the 7 T field map, fresh processes (bench_fieldmap.py)
     python benchmarks/run.py align          # field-map alignment and motion (bench_align.py)
+    python benchmarks/run.py unwarp_files    # the unwarp command on .nii.gz runs, fresh processes
     python benchmarks/run.py --json results.json
 """
 

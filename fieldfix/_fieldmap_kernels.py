@@ -14,7 +14,7 @@ The ``*_reference`` function computes the same with plain numpy; the tests compa
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 __all__ = ["local_residuals_nb", "local_residuals_reference"]
 
@@ -58,16 +58,17 @@ def _median(values, n):  # pragma: no cover - compiled
     return 0.5 * (lower + upper)
 
 
-@njit(cache=True)
+@njit(parallel=True, cache=True)
 def local_residuals_nb(field, mask):  # pragma: no cover - compiled
     """Residual against the local median, and the local scale of the neighbours' residuals.
 
-    Returns ``(residual, local_sd)``, float64 arrays, 0 outside the mask.
+    Returns ``(residual, local_sd)``, float64 arrays, 0 outside the mask. Parallel over the
+    first axis (each pass writes only its own voxels).
     """
     n0, n1, n2 = field.shape
     residual = np.zeros(field.shape)
-    scratch = np.empty(27)
-    for i in range(n0):
+    for i in prange(n0):
+        scratch = np.empty(27)
         for j in range(n1):
             for k in range(n2):
                 if not mask[i, j, k]:
@@ -81,7 +82,7 @@ def local_residuals_nb(field, mask):  # pragma: no cover - compiled
                                 n += 1
                 residual[i, j, k] = field[i, j, k] - _median(scratch, n)
     local_sd = np.zeros(field.shape)
-    for i in range(n0):
+    for i in prange(n0):
         for j in range(n1):
             for k in range(n2):
                 if not mask[i, j, k]:

@@ -125,6 +125,27 @@ def prolong_add_nb(coarse, unknown_coarse, fine, weight):  # pragma: no cover - 
 # ------------------------------------------------------------------------------------------
 # plain-numpy twins
 # ------------------------------------------------------------------------------------------
+@njit(cache=True)
+def dot_nb(a, b):  # pragma: no cover - compiled
+    """``a . b`` over flat float32 arrays, accumulated in float64."""
+    acc = 0.0
+    for i in range(a.size):
+        acc += np.float64(a[i]) * np.float64(b[i])
+    return acc
+
+
+@njit(cache=True)
+def cg_step_nb(x, r, p, ap, alpha):  # pragma: no cover - compiled
+    """``x += alpha p`` and ``r -= alpha ap`` in one pass (flat float32); returns ``r . r`` (float64 sum)."""
+    rr = 0.0
+    for i in range(x.size):
+        x[i] += alpha * p[i]
+        ri = r[i] - alpha * ap[i]
+        r[i] = ri
+        rr += np.float64(ri) * np.float64(ri)
+    return rr
+
+
 def _pairs(ndim=3):
     for axis in range(ndim):
         lo = [slice(None)] * ndim
@@ -177,3 +198,15 @@ def prolong_add_reference(coarse, unknown_coarse, fine, weight=1.0):
     for axis in range(3):
         up = np.repeat(up, 2, axis=axis)
     return fine + up[: fine.shape[0], : fine.shape[1], : fine.shape[2]]
+
+
+def dot_reference(a, b):
+    """Plain-numpy twin of :func:`dot_nb`."""
+    return float(np.dot(np.asarray(a, np.float64).ravel(), np.asarray(b, np.float64).ravel()))
+
+
+def cg_step_reference(x, r, p, ap, alpha):
+    """Plain-numpy twin of :func:`cg_step_nb`: the updated ``(x, r)`` and ``r . r``."""
+    x = x + np.float32(alpha) * p
+    r = r - np.float32(alpha) * ap
+    return x, r, dot_reference(r, r)

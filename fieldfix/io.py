@@ -23,11 +23,11 @@ from __future__ import annotations
 
 import datetime as _dt
 import gzip
-import hashlib
 import io
 import math
 import os
 import struct
+import weakref
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -36,6 +36,8 @@ from typing import Any, Iterable, Sequence
 import nibabel as nib
 import numpy as np
 
+
+from ._gzip_io import ISAL_ERROR, GZIP_EFFORTS, HashingReader, HashingWriter, check_effort, gzip_reader, gzip_writer
 from .errors import InputError, OutputError
 from .jsonfile import read_json, to_jsonable, write_json
 from .outputs import CAUTION
@@ -68,6 +70,9 @@ __all__ = [
     "output_transaction",
     "output_folder",
     "NIFTI_INTENT_DISPVECT",
+    "GZIP_EFFORTS",
+    "HashingReader",
+    "reopen_image",
 ]
 
 #: NIfTI-1 intent code for a displacement vector field (nifti1.h: NIFTI_INTENT_DISPVECT).
@@ -77,11 +82,42 @@ _NIFTI_SUFFIXES = (".nii.gz", ".nii")
 # Everything nibabel raises for damaged or nonsensical files (a corrupt header can give
 # OverflowError from huge dimensions or an infinite offset, HeaderDataError from an unknown
 # data type code or an invalid scaling).
-_READ_ERRORS = (OSError, EOFError, ValueError, OverflowError, struct.error, zlib.error, gzip.BadGzipFile,
+_READ_ERRORS = (OSError, EOFError, ValueError, OverflowError, struct.error, zlib.error, ISAL_ERROR, gzip.BadGzipFile,
                 nib.filebasedimages.ImageFileError, nib.spatialimages.HeaderDataError,
                 nib.spatialimages.ImageDataError)
 #: Upper bound of the deflate compression ratio (RFC 1951 blocks cannot exceed about 1032:1).
 _MAX_DEFLATE_RATIO = 1032
+
+def _open_nifti(path: Path, *, hashing: bool = False):
+    """nibabel image of a NIfTI file, lazily, its data read through one open handle.
+
+    ``.nii.gz`` files are decompressed by ISA-L when installed; reading volume after volume
+    through the proxy continues one open stream instead of decompressing the file from its
+    start for every volume, which would make a streamed pass over a T-volume run cost O(T^2).
+    With `hashing`, the compressed (or plain) bytes pass through a :class:`HashingReader`,
+    returned second (else None).
+    """
+    compressed = path.name.endswith(".gz")
+    klass = next((k for k in (nib.Nifti1Image, nib.Nifti2Image) if k.path_maybe_image(str(path))[0]), None)
+    if klass is None or not (compressed or hashing):
+        # not NIfTI (nibabel names what it is, or why it cannot tell), or a plain .nii: nibabel
+        # keeps one handle open across reads and closes it with the proxy
+        return nib.load(str(path), keep_file_open=True), None
+    raw = HashingReader(path) if hashing else open(path, "rb")
+    try:
+        stream = gzip_reader(raw) if compressed else raw
+        holder = nib.fileholders.FileHolder(filename=str(path), fileobj=stream)
+        nifti = klass.from_file_map({"header": holder, "image": holder}, mmap=False)
+    except (EOFError, zlib.error, ISAL_ERROR) as err:  # the header was there, the stream behind it is cut short
+        raw.close()
+        raise InputError(f"cannot read the image, the file may be truncated or corrupt ({_one_line(err)})",
+                         path) from None
+    except BaseException:
+        raw.close()
+        raise
+    if stream is not raw:  # every proxy of the image holds the stream: close the file when the last goes
+        weakref.finalize(stream, raw.close)
+    return nifti, (raw if hashing else None)
 
 
 def _version() -> str:
@@ -245,10 +281,7 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
     if not os.access(path, os.R_OK):
         raise InputError("file is not readable (permission denied)", path)
     try:
-        # keep_file_open: reading volume after volume through the proxy continues one open
-        # (gzip) stream instead of decompressing the file from its start for every volume,
-        # which would make a streamed pass over a T-volume run cost O(T^2).
-        nifti = nib.load(str(path), keep_file_open=True)
+        nifti, _ = _open_nifti(path)
     except _READ_ERRORS as err:
         raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):
@@ -272,6 +305,23 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
             raise InputError(f"image is {len(shape)}D with shape {tuple(shape)}; a {wanted} image is needed", path)
     return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {}, file_shape=file_shape,
                  file_zooms=file_zooms)
+
+
+def reopen_image(image: Image, *, hashing: bool = False) -> tuple[Image, "HashingReader | None"]:
+    """The same image through a fresh open handle, positioned at the start of its data.
+
+    For a streamed pass over the volumes in order (each compressed byte is decompressed
+    once). With `hashing`, the file's bytes are hashed as they are read: the returned
+    :class:`HashingReader` gives the file's SHA-256 after the pass.
+    """
+    try:
+        nifti, reader = _open_nifti(image.path, hashing=hashing)
+    except _READ_ERRORS as err:
+        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", image.path) from None
+    if tuple(nifti.shape) != image.shape:
+        nifti = type(nifti)(nifti.dataobj.reshape(image.shape), nifti.affine, nifti.header)
+    return Image(path=image.path, nifti=nifti, sidecar=image.sidecar, file_shape=image.file_shape,
+                 file_zooms=image.file_zooms), reader
 
 
 def _one_line(err: BaseException) -> str:
@@ -298,7 +348,8 @@ class Provenance:
     """Where an output came from: fieldfix version, command, parameters, inputs and their hashes.
 
     Input hashes are computed once, on first use, and shared by every output written
-    with the same object.
+    with the same object; an input hashed while it was streamed (:meth:`record_hash`) is
+    not read again.
 
     Parameters
     ----------
@@ -314,10 +365,19 @@ class Provenance:
         self.parameters = dict(parameters or {})
         self.inputs = [Path(p) for p in inputs if p is not None]
         self._hashes: list[dict] | None = None
+        self._known: dict[str, str] = {}
+
+    def record_hash(self, path: str | os.PathLike, sha256: str) -> None:
+        """Use `sha256` for the input at `path` (hashed while it was read) instead of reading it again."""
+        self._known[str(Path(path).resolve())] = sha256
 
     def input_records(self) -> list[dict]:
         if self._hashes is None:
-            self._hashes = [{"path": str(p.resolve()), "sha256": sha256_file(p)} for p in self.inputs]
+            records = []
+            for p in self.inputs:
+                where = str(p.resolve())
+                records.append({"path": where, "sha256": self._known.get(where) or sha256_file(p)})
+            self._hashes = records
         return self._hashes
 
     def as_dict(self) -> dict:
@@ -373,13 +433,14 @@ def save_image(
     overwrite: bool = False,
     provenance: Provenance | None = None,
     sidecar_extra: dict | None = None,
+    gzip_effort: str = "fast",
 ) -> Path:
     """Write an image atomically, with an optional provenance sidecar.
 
     Parameters
     ----------
     path : str or PathLike
-        ``.nii.gz`` or ``.nii``.
+        ``.nii.gz`` (gzip, see `gzip_effort`) or ``.nii`` (uncompressed).
     data : array
         Written with `dtype` (no scaling); booleans become uint8.
     affine : (4, 4) array
@@ -394,6 +455,8 @@ def save_image(
         Replace an existing output (never an input).
     provenance : Provenance, optional
         Written, with `sidecar_extra`, as ``<stem>.json`` beside the image.
+    gzip_effort : {'fast', 'small'}
+        Compression of a ``.nii.gz`` (:data:`GZIP_EFFORTS`); ignored for ``.nii``.
 
     Returns
     -------
@@ -402,6 +465,7 @@ def save_image(
     path = Path(path)
     if not path.name.endswith(_NIFTI_SUFFIXES):
         raise OutputError("image outputs must end in .nii or .nii.gz", path)
+    check_effort(gzip_effort)
     inputs = list(inputs)
     if provenance is not None:
         output_paths_guard([sidecar_path(path)], inputs, overwrite)
@@ -412,13 +476,23 @@ def save_image(
     klass, header = _header_for(array.shape, affine, template, array.dtype, intent)
     image = klass(array, np.asarray(affine, float), header=header)
     with atomic_output(path, inputs, overwrite) as temporary:
-        nib.save(image, str(temporary))
+        _write_nifti(image, temporary, gzip_effort)
     if provenance is not None:
         record = provenance.as_dict()
         if sidecar_extra:
             record.update(to_jsonable(sidecar_extra))
         write_json(sidecar_path(path), record, inputs=inputs, overwrite=True)
     return path
+
+
+def _write_nifti(image, path: Path, gzip_effort: str) -> None:
+    """Write a nibabel image to `path` (``.nii.gz``: through :func:`gzip_writer`)."""
+    if not path.name.endswith(".gz"):
+        nib.save(image, str(path))
+        return
+    with open(path, "wb") as raw, gzip_writer(raw, gzip_effort) as stream:
+        holder = nib.fileholders.FileHolder(filename=str(path), fileobj=stream)
+        image.to_file_map({"header": holder, "image": holder})
 
 
 class StreamingWriter:
@@ -432,13 +506,13 @@ class StreamingWriter:
     Parameters
     ----------
     path : str or PathLike
-        ``.nii.gz`` (gzip level 1, nibabel's default) or ``.nii``.
+        ``.nii.gz`` (gzip, see `gzip_effort`) or ``.nii``.
     shape : tuple of 4 ints
     affine : (4, 4) array
     template : Image or nibabel image, optional
         As in :func:`save_image` (carries the repetition time).
     dtype : numpy dtype
-    inputs, overwrite, provenance, sidecar_extra
+    inputs, overwrite, provenance, sidecar_extra, gzip_effort
         As in :func:`save_image`.
 
     Examples
@@ -453,10 +527,12 @@ class StreamingWriter:
     """
 
     def __init__(self, path, shape, affine, *, template=None, dtype=np.float32, inputs=(), overwrite=False,
-                 provenance: Provenance | None = None, sidecar_extra: dict | None = None):
+                 provenance: Provenance | None = None, sidecar_extra: dict | None = None, gzip_effort: str = "fast"):
         self.path = Path(path)
         if not self.path.name.endswith(_NIFTI_SUFFIXES):
             raise OutputError("image outputs must end in .nii or .nii.gz", self.path)
+        check_effort(gzip_effort)
+        self.gzip_effort = gzip_effort
         if len(shape) != 4:
             raise ValueError("StreamingWriter writes 4D images")
         self.shape = tuple(int(n) for n in shape)
@@ -481,9 +557,8 @@ class StreamingWriter:
         header.set_data_offset(offset)
         self._temporary = new_temporary(self.path)
         try:
-            self._raw = _HashingFile(open(self._temporary, "wb"))
-            self._stream = gzip.GzipFile(fileobj=self._raw, mode="wb", compresslevel=1, mtime=0) \
-                if self.path.name.endswith(".gz") else self._raw
+            self._raw = HashingWriter(open(self._temporary, "wb"))
+            self._stream = gzip_writer(self._raw, self.gzip_effort) if self.path.name.endswith(".gz") else self._raw
             buffer = io.BytesIO()
             header.write_to(buffer)  # nibabel writes the header and the empty extension flag
             block = buffer.getvalue()
@@ -503,7 +578,10 @@ class StreamingWriter:
             raise ValueError(f"volume shape {volume.shape} does not match {self.shape[:3]}")
         if self.written >= self.shape[3]:
             raise ValueError("all volumes were written already")
-        self._stream.write(np.asarray(volume, dtype=self.dtype).tobytes(order="F"))
+        block = np.asarray(volume, dtype=self.dtype)
+        if not block.flags.f_contiguous:
+            block = np.asfortranarray(block)
+        self._stream.write(memoryview(block.T.reshape(-1)).cast("B"))  # Fortran order, as NIfTI stores it
         self.written += 1
 
     def _close_streams(self):
@@ -537,30 +615,3 @@ class StreamingWriter:
         if isinstance(exc, OSError):
             raise write_failed(exc, self.path) from None
         return False
-
-
-class _HashingFile:
-    """A binary file opened for writing that keeps the SHA-256 of what went through it."""
-
-    def __init__(self, raw):
-        self._raw = raw
-        self._digest = hashlib.sha256()
-        self.name = raw.name
-        self.mode = "wb"
-
-    def write(self, data) -> int:
-        self._digest.update(data)
-        return self._raw.write(data)
-
-    def flush(self) -> None:
-        self._raw.flush()
-
-    def close(self) -> None:
-        self._raw.close()
-
-    @property
-    def closed(self) -> bool:
-        return self._raw.closed
-
-    def hexdigest(self) -> str:
-        return self._digest.hexdigest()

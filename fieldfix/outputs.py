@@ -219,11 +219,14 @@ class UnwarpFiles(_Files):
     IMAGES = ("corrected", "shift_vox", "jacobian", "fold_mask", "displacement_mm")
 
     @classmethod
-    def named(cls, run_stem: str, tag: str = "") -> "UnwarpFiles":
+    def named(cls, run_stem: str, tag: str = "", suffix: str = ".nii.gz") -> "UnwarpFiles":
+        """The outputs of one run; `suffix` ``'.nii.gz'`` (gzip) or ``'.nii'`` (uncompressed)."""
+        if suffix not in (".nii.gz", ".nii"):
+            raise ValueError(f"suffix must be '.nii.gz' or '.nii', got {suffix!r}")
         stem = f"{tag}{run_stem}"
-        return cls(corrected=f"{stem}_corrected.nii.gz", shift_vox=f"{stem}_shift_vox.nii.gz",
-                   jacobian=f"{stem}_jacobian.nii.gz", fold_mask=f"{stem}_fold_mask.nii.gz",
-                   displacement_mm=f"{stem}_displacement_mm.nii.gz", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
+        return cls(corrected=f"{stem}_corrected{suffix}", shift_vox=f"{stem}_shift_vox{suffix}",
+                   jacobian=f"{stem}_jacobian{suffix}", fold_mask=f"{stem}_fold_mask{suffix}",
+                   displacement_mm=f"{stem}_displacement_mm{suffix}", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
 
 
 @dataclass(frozen=True)

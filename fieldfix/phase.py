@@ -22,8 +22,8 @@ its full cycle).  Exactly one plausible convention is accepted; otherwise
 Mask rule
 ---------
 :func:`magnitude_mask` thresholds the magnitude at Otsu's threshold (Otsu 1979, IEEE
-Trans. Systems, Man and Cybernetics; computed by ``skimage.filters.threshold_otsu``) of
-the values clipped at their 99.5th percentile, scaled by ``threshold_scale``
+Trans. Systems, Man and Cybernetics; :func:`otsu_threshold`, 256 bins, checked against
+scikit-image) of the values clipped at their 99.5th percentile, scaled by ``threshold_scale``
 (default 1.0); then removes connected pieces (26-connectivity) smaller than
 ``min_piece_fraction`` of the largest piece, fills enclosed holes, and optionally erodes.
 
@@ -61,6 +61,7 @@ __all__ = [
     "complex_from_real_imag",
     "phase_difference",
     "magnitude_mask",
+    "otsu_threshold",
 ]
 
 
@@ -316,6 +317,36 @@ def phase_difference(z1, z2):
     return np.angle(product), np.abs(product)
 
 
+def otsu_threshold(values, n_bins: int = 256) -> float:
+    """Otsu's threshold: the bin centre that maximises the between-class variance.
+
+    Otsu 1979 (IEEE Trans. Syst. Man Cybern. 9(1)): over a histogram of `n_bins` equal
+    bins spanning the values, choose the split maximising ``w1 w2 (m1 - m2)**2`` (class
+    weights and means); the threshold is the centre of the last bin of the lower class.
+    Written out here because scikit-image's version costs a third of a second of imports
+    on its first call; the tests compare the two.
+
+    Example
+    -------
+    >>> otsu_threshold(np.r_[np.zeros(50), np.ones(50)]) < 1.0
+    True
+    """
+    v = np.asarray(values, dtype=np.float64).ravel()
+    lo, hi = float(v.min()), float(v.max())
+    if lo == hi:
+        return lo
+    counts, edges = np.histogram(v, bins=n_bins, range=(lo, hi))
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    counts = counts.astype(np.float64)
+    w1 = np.cumsum(counts)
+    w2 = np.cumsum(counts[::-1])[::-1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m1 = np.cumsum(counts * centres) / w1
+        m2 = (np.cumsum((counts * centres)[::-1]) / w2[::-1])[::-1]
+    between = w1[:-1] * w2[1:] * (m1[:-1] - m2[1:]) ** 2
+    return float(centres[int(np.nanargmax(between))])
+
+
 def magnitude_mask(magnitude, *, threshold_scale: float = 1.0, min_piece_fraction: float = 0.05,
                    fill_holes: bool = True, erode_voxels: int = 0):
     """Object mask from a magnitude image by the rule in the module docstring.
@@ -344,8 +375,6 @@ def magnitude_mask(magnitude, *, threshold_scale: float = 1.0, min_piece_fractio
     >>> int(magnitude_mask(mag).sum()) == int(((x - 10) ** 2 + (y - 10) ** 2 + (z - 10) ** 2 < 36).sum())
     True
     """
-    from skimage.filters import threshold_otsu
-
     mag = np.abs(np.asarray(magnitude, dtype=np.float64))
     finite = np.isfinite(mag)
     if not finite.any():
@@ -355,7 +384,7 @@ def magnitude_mask(magnitude, *, threshold_scale: float = 1.0, min_piece_fractio
     clipped = np.minimum(vals, ceiling)
     if np.ptp(clipped) == 0:
         raise InputError("magnitude image is constant; cannot derive a mask from it (give a mask)")
-    threshold = threshold_otsu(clipped) * threshold_scale
+    threshold = otsu_threshold(clipped) * threshold_scale
     mask = finite & (mag > threshold)
     labels, n = ndi.label(mask, structure=np.ones((3,) * mask.ndim))
     if n > 1:

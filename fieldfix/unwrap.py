@@ -178,7 +178,8 @@ def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=Non
     smooth estimate shifted by the same global multiple; ``outside`` gives the values
     returned outside the mask (the input re-wrapped).
     """
-    multiple = np.where(mask, multiple, 0).astype(np.int64)
+    multiple = multiple.astype(np.int64)
+    multiple[~mask] = 0
     if n_regions is None or n_regions > 1:
         labels, n_regions = ndi.label(mask)  # 6-connectivity in 3D
         _place_regions(wrapped, multiple, mask, labels, n_regions)
@@ -188,11 +189,13 @@ def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=Non
         if g:
             multiple[mask] -= g
     if smooth is None:
-        out = wrapped + TWO_PI * multiple
+        out = multiple * TWO_PI  # in place from here on: full-size float64 temporaries are the memory peak
+        out += wrapped
     else:
         out = np.where(mask, smooth + TWO_PI * (multiple - np.rint((smooth - wrapped) / TWO_PI)), wrapped)
     if outside is not None and not mask.all():
-        out = np.where(mask, out, wrap_phase(outside))
+        rest = ~mask
+        out[rest] = wrap_phase(np.asarray(outside)[rest])
     n_changed = int(np.count_nonzero(multiple))
     if squeeze:
         out, mask, multiple = out[..., 0], mask[..., 0], multiple[..., 0]

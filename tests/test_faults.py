@@ -5,7 +5,7 @@
   once the streaming writer's temporary file has started to grow (a progress signal seen
   on disk, not a sleep).
 * A full disk (ENOSPC) during the streamed 4D write or during a later image write,
-  simulated in process by patching the gzip stream or nibabel's save, with the command run
+  simulated in process by patching the file under the gzip stream or the image save, with the command run
   through ``fieldfix_cli.main.main([...])``: exit status 2, one line naming the output and
   the problem, no partial output.
 * A real full disk on a tiny tmpfs (only where mounting is permitted; skipped otherwise).
@@ -17,7 +17,6 @@
 from __future__ import annotations
 
 import errno
-import gzip
 import os
 import signal
 import subprocess
@@ -125,16 +124,18 @@ def _enospc(*_args, **_kwargs):
 def test_full_disk_during_the_streamed_4d_write(tmp_path, monkeypatch, capsys):
     run, b0 = _small_inputs(tmp_path)
     out = tmp_path / "out"
-    real_write = gzip.GzipFile.write
+    from fieldfix._gzip_io import HashingWriter
+
+    real_write = HashingWriter.write
     calls = {"n": 0}
 
-    def failing_write(self, data):
+    def failing_write(self, data):  # the bytes that reach the disk (after compression)
         calls["n"] += 1
-        if calls["n"] == 4:  # header, then volumes 0-1 go through; volume 2 hits a full disk
+        if calls["n"] == 4:  # the first blocks go through; a later one hits a full disk
             _enospc()
         return real_write(self, data)
 
-    monkeypatch.setattr(gzip.GzipFile, "write", failing_write)
+    monkeypatch.setattr(HashingWriter, "write", failing_write)
     status = _main(["unwarp", run, "--b0", b0, "--out", out])
     err = capsys.readouterr().err
     assert calls["n"] >= 4  # the fault was really hit
@@ -149,18 +150,18 @@ def test_full_disk_on_a_later_output_leaves_no_partial_set(tmp_path, monkeypatch
     out = tmp_path / "out"
     import fieldfix.io
 
-    real_save = nib.save
+    real_save = fieldfix.io._write_nifti
     calls = {"n": 0}
 
-    def failing_save(image, filename):
+    def failing_save(image, filename, *effort):
         calls["n"] += 1
-        if calls["n"] == 2:  # the corrected run is streamed; this is the second image saved by nibabel
+        if calls["n"] == 2:  # the corrected run is streamed; this is the second image saved
             with open(filename, "wb") as handle:
                 handle.write(b"partial")
             _enospc()
-        return real_save(image, filename)
+        return real_save(image, filename, *effort)
 
-    monkeypatch.setattr(fieldfix.io.nib, "save", failing_save)
+    monkeypatch.setattr(fieldfix.io, "_write_nifti", failing_save)
     status = _main(["unwarp", run, "--b0", b0, "--out", out])
     err = capsys.readouterr().err
     assert calls["n"] == 2
@@ -173,7 +174,7 @@ def test_full_disk_in_the_field_map_job(tmp_path, monkeypatch, capsys):
     import fieldfix.io
 
     pd, mag = make_phasediff(tmp_path), make_magnitude(tmp_path)
-    monkeypatch.setattr(fieldfix.io.nib, "save", _enospc)
+    monkeypatch.setattr(fieldfix.io, "_write_nifti", _enospc)
     status = _main(["fieldmap", "--phase-diff", pd, "--magnitude", mag, "--out", tmp_path / "out"])
     err = capsys.readouterr().err
     assert status == 2, err
@@ -251,16 +252,16 @@ def test_failed_overwrite_rerun_restores_the_earlier_outputs(tmp_path, monkeypat
     out = tmp_path / "out"
     assert _main(["unwarp", run, "--b0", b0, "--out", out]) == 0
     first = {name: (out / name).read_bytes() for name in _listing(out)}
-    real_save = nib.save
+    real_save = fieldfix.io._write_nifti
     calls = {"n": 0}
 
-    def failing_save(image, filename):
+    def failing_save(image, filename, *effort):
         calls["n"] += 1
         if calls["n"] == 3:
             _enospc()
-        return real_save(image, filename)
+        return real_save(image, filename, *effort)
 
-    monkeypatch.setattr(fieldfix.io.nib, "save", failing_save)
+    monkeypatch.setattr(fieldfix.io, "_write_nifti", failing_save)
     capsys.readouterr()
     status = _main(["unwarp", run, "--b0", b0, "--out", out, "--overwrite", "--readout-time", "20ms",
                     "--timing-wins", "arguments"])

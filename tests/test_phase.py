@@ -132,3 +132,15 @@ def test_hole_filling_matches_scipy_binary_fill_holes():
     raw = magnitude_mask(mag, min_piece_fraction=0.0, fill_holes=False)
     assert np.array_equal(ours, ndi.binary_fill_holes(raw))
     assert ours.sum() > raw.sum()
+
+
+def test_otsu_threshold_matches_scikit_image():
+    # Outside reference: skimage.filters.threshold_otsu (Otsu 1979, 256 bins).
+    from skimage.filters import threshold_otsu
+
+    from fieldfix.phase import otsu_threshold
+
+    rng = np.random.default_rng(3)
+    for values in (np.r_[rng.normal(10, 2, 5000), rng.normal(60, 8, 3000)], rng.gamma(2.0, 3.0, 10000),
+                   np.r_[np.zeros(100), np.full(50, 7.0)]):
+        assert otsu_threshold(values) == pytest.approx(threshold_otsu(values), rel=1e-12)

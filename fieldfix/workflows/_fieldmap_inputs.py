@@ -183,8 +183,13 @@ def _read_phase_echoes(s) -> FieldMapData:
     mags = [read_magnitude(i) for i in mag_imgs] or [np.ones(reference.shape)]
     if len(mags) == 1:
         mags = mags * len(phases)
-    echoes = [complex_from_polar(m, p) for m, p in zip(mags, phases)]
+    echoes = [_complex64(complex_from_polar(m, p)) for m, p in zip(mags, phases)]
     return FieldMapData(reference, mag_imgs, tes, source, echoes=echoes, phase_units=report)
+
+
+def _complex64(z: np.ndarray) -> np.ndarray:
+    """Echoes are kept as complex64: half the memory, and a phase error of about 1e-7 rad."""
+    return np.asarray(z).astype(np.complex64, copy=False)
 
 
 def _read_real_imag(s) -> FieldMapData:
@@ -198,7 +203,7 @@ def _read_real_imag(s) -> FieldMapData:
     check_grid(re_imgs + im_imgs + mag_imgs, reference)
     tes, source = resolve_echo_times(s.echo_times_s, [_sidecar_time(i, "EchoTime") for i in re_imgs], s.real,
                                      len(re_imgs), s.echo_times_win)
-    echoes = [complex_from_real_imag(r.get_fdata(np.float64), i.get_fdata(np.float64))
+    echoes = [_complex64(complex_from_real_imag(r.get_fdata(np.float64), i.get_fdata(np.float64)))
               for r, i in zip(re_imgs, im_imgs)]
     if not all(np.all(np.isfinite(z)) for z in echoes):
         raise InputError("real/imaginary images contain NaN or infinite values", s.real[0])

@@ -8,7 +8,8 @@ the affines, turned into a shift map with the run's readout timing and phase-enc
 whatever the number of volumes.
 
 Outputs per run (:class:`fieldfix.outputs.UnwarpFiles`, ``<t>`` = the job's tag,
-``<stem>`` = run file name without suffix): ``<t><stem>_corrected.nii.gz`` (same grid, TR
+``<stem>`` = run file name without suffix; images end in ``.nii.gz`` or, for a ``.nii`` run
+or ``compress='none'``, ``.nii``): ``<t><stem>_corrected.nii.gz`` (same grid, TR
 and dimensions as the run, float32), ``<t><stem>_shift_vox.nii.gz``,
 ``<t><stem>_jacobian.nii.gz``, ``<t><stem>_fold_mask.nii.gz``,
 ``<t><stem>_displacement_mm.nii.gz`` (NIfTI-1 intent 1006, displacement vector: for each
@@ -31,7 +32,7 @@ import numpy as np
 
 from ..errors import GeometryError, InputError, MetadataError
 from ..geometry import parse_pe_code, pe_world_direction, resample_to_grid, voxel_sizes_mm
-from ..io import NIFTI_INTENT_DISPVECT, Image, Provenance, image_stem, load_image, output_paths_guard, save_image
+from ..io import GZIP_EFFORTS, NIFTI_INTENT_DISPVECT, Image, Provenance, image_stem, load_image, output_paths_guard, save_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..outputs import CAUTION, CombinedFiles, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
@@ -52,7 +53,10 @@ from ._b0 import read_field_hz
 from ._combine import check_combinable, write_combined_run
 from ._stream import write_corrected_run
 
-__all__ = ["run_unwarp", "UnwarpSettings", "MAX_SHIFT_FOV_FRACTION", "CAUTION"]
+__all__ = ["run_unwarp", "UnwarpSettings", "COMPRESSIONS", "MAX_SHIFT_FOV_FRACTION", "CAUTION"]
+
+#: Choices of the outputs' compression: as the run, gzip, none.
+COMPRESSIONS = ("auto", "gzip", "none")
 
 #: A run whose voxels are covered by the B0 map's field of view to less than this percentage
 #: is corrected with a warning and flagged (``partial_coverage``) in its summary.
@@ -73,8 +77,9 @@ class UnwarpSettings:
     timing_win : {None, 'arguments', 'sidecar'}
         Which source wins when the arguments contradict a sidecar (timing and phase-encode
         code); None makes a contradiction an error.
-    interp : {'linear', 'cubic', 'sinc'}
-        Interpolation along the phase-encode axis.
+    interp : {'cubic', 'linear', 'sinc'}
+        Interpolation along the phase-encode axis (default cubic B-spline: exact on samples,
+        smoother and closer to the true image than linear; see :mod:`fieldfix.unwarp`).
     jacobian : bool
         Apply the Jacobian intensity correction.
     jacobian_floor : float
@@ -87,7 +92,8 @@ class UnwarpSettings:
         Correct even when the shifts over the run's signal exceed half the field of view along
         the phase-encode axis (the guard against unit and timing mistakes).
     parallel : bool
-        Run the kernel on all numba threads; False when several jobs share the cores.
+        Run the kernel on all numba threads (3D images; a streamed 4D run always corrects on one
+        thread beside its reader and writer threads); False when several jobs share the cores.
     b0_units : str, optional
         Units of the B0 map (Hz, rad/s, ppm, T); default: its sidecar's ``Units``, else Hz. A
         phase image is refused.
@@ -97,13 +103,19 @@ class UnwarpSettings:
         With exactly two runs of opposite polarity on one grid, also write one run restored
         jointly from both (``<tag><first stem>_combined.nii.gz``, see
         :mod:`fieldfix.workflows._combine`); each run is still unwarped on its own too.
+    compress : {'auto', 'gzip', 'none'}
+        Image outputs of a run as ``.nii.gz`` (gzip) or ``.nii``; ``'auto'`` keeps the run's
+        own (a ``.nii`` run gives ``.nii`` outputs).
+    gzip_effort : {'fast', 'small'}
+        Compression of ``.nii.gz`` outputs (:data:`fieldfix.io.GZIP_EFFORTS`): ``'fast'``
+        (ISA-L level 1) or ``'small'`` (level 3, slower, int16 files a few percent smaller).
     """
 
     pe_code: str | None = None
     readout_time_s: float | None = None
     echo_spacing_s: float | None = None
     timing_win: str | None = None
-    interp: str = "linear"
+    interp: str = "cubic"
     jacobian: bool = True
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
     b0_mask: object = None
@@ -112,6 +124,8 @@ class UnwarpSettings:
     combine_polarities: bool = False
     b0_units: str | None = None
     field_strength_t: float | None = None
+    compress: str = "auto"
+    gzip_effort: str = "fast"
 
     def check(self) -> None:
         for name in ("readout_time_s", "echo_spacing_s"):
@@ -120,6 +134,18 @@ class UnwarpSettings:
         if self.interp not in INTERPOLATIONS:
             raise InputError(f"unknown interpolation {self.interp!r}; choose one of {', '.join(INTERPOLATIONS)}",
                              parameter="interp")
+        if self.compress not in COMPRESSIONS:
+            raise InputError(f"unknown compression {self.compress!r}; choose one of {', '.join(COMPRESSIONS)}",
+                             parameter="compress")
+        if self.gzip_effort not in GZIP_EFFORTS:
+            raise InputError(f"unknown gzip effort {self.gzip_effort!r}; choose one of {', '.join(GZIP_EFFORTS)}",
+                             parameter="gzip_effort")
+
+    def output_suffix(self, run_path) -> str:
+        """``'.nii.gz'`` or ``'.nii'`` for the image outputs of the run at `run_path`."""
+        if self.compress == "auto":
+            return ".nii.gz" if str(run_path).endswith(".gz") else ".nii"
+        return ".nii.gz" if self.compress == "gzip" else ".nii"
 
 
 @dataclass
@@ -192,7 +218,7 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
         mask_values = _read_mask(mask_path, field_hz.shape)
         runs = [load_image(p, ndim=(3, 4)) for p in run_paths]
         inputs = [*run_paths, b0_path] + ([mask_path] if mask_path is not None else [])
-        files = [UnwarpFiles.named(image_stem(p), job.tag) for p in run_paths]
+        files = [UnwarpFiles.named(image_stem(p), job.tag, s.output_suffix(p)) for p in run_paths]
         guarded = [p for f in files for p in f.guarded(job.out_dir)]
         if s.combine_polarities:
             guarded += CombinedFiles.named(image_stem(run_paths[0]), job.tag).guarded(job.out_dir)
@@ -266,10 +292,15 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     tables = build_tables(maps.shift_vox, maps.pe_axis, interp=s.interp, jacobian=s.jacobian,
                           jacobian_floor=s.jacobian_floor, layout="F")
     provenance = Provenance(job.command, _parameters(plan, s), inputs)
-    n_volumes = write_corrected_run(image, lambda v: apply_tables(tables, v, parallel=s.parallel),
+    # A streamed 4D run keeps a reader and a writer thread busy beside the kernel, and one volume
+    # takes the kernel about a tenth of the time of its decompression and compression: the
+    # kernel runs on this thread alone (numba's threads would only compete for the cores).
+    parallel = s.parallel and image.ndim == 3
+    n_volumes = write_corrected_run(image, lambda v: apply_tables(tables, v, parallel=parallel),
                                     job.path(plan.files.corrected), inputs=inputs, overwrite=job.overwrite,
-                                    provenance=provenance, progress=job.progress)
-    common = dict(template=image, inputs=inputs, overwrite=job.overwrite, provenance=provenance)
+                                    provenance=provenance, progress=job.progress, gzip_effort=s.gzip_effort)
+    common = dict(template=image, inputs=inputs, overwrite=job.overwrite, provenance=provenance,
+                  gzip_effort=s.gzip_effort)
     save_image(job.path(plan.files.shift_vox), maps.shift_vox, affine, **common)
     save_image(job.path(plan.files.jacobian), maps.jacobian, affine, **common)
     save_image(job.path(plan.files.fold_mask), maps.fold, affine, dtype=np.uint8, **common)
