@@ -17,6 +17,8 @@ VmHWM from /proc/self/status. The two sides run in turns (``ROUNDS`` times; medi
   (cubic) and 0.25x (linear), peak RSS under 400 MiB. ``ratio`` = nibabel time / ours.
 * ``unwarp_file_memory_<small>_vs_<large>``: peak RSS of the cubic command on a 100- and a
   300-volume float32 run (10 and 30 with ``--quick``); goal: flat (ratio <= 1.1) and < 400 MiB.
+* ``unwarp_file_motion_vs_plain``: ``--motion`` (each volume's pose and one interpolation for motion
+  and distortion) against the same command without it; goal: within 2.5x, peak RSS < 400 MiB.
 * ``unwarp_simulated_nrmse_cubic_vs_linear``: accuracy rather than speed. A head-like object
   and field (``fieldfix.simulate.gradient_echo``) acquired line by line in k-space with the
   project's EPI simulator (``fieldfix.simulate.simulate_epi``, gradient echo) in both
@@ -107,10 +109,10 @@ def _fresh(script: str, args: list[str], work: Path) -> dict:
     return {"seconds": seconds, **json.loads(report.read_text())}
 
 
-def _ours(run: Path, b0: Path, work: Path, interp: str) -> dict:
+def _ours(run: Path, b0: Path, work: Path, interp: str, *extra: str) -> dict:
     out = work / "out"
     result = _fresh(_OURS, ["unwarp", str(run), "--b0", str(b0), "--out", str(out), "--no-report", "--quiet",
-                            "--interp", interp], work)
+                            "--interp", interp, *extra], work)
     shutil.rmtree(out)
     return result
 
@@ -158,6 +160,23 @@ def _memory_record(work: Path, small_run: Path, large_run: Path, b0: Path) -> di
             "whole_run_mib": float(np.prod(SHAPE) * 4 * n_large / 2**20),
             "goal": "peak RSS flat in the number of volumes (ratio <= 1.1) and < 400 MiB",
             "met": bool(large <= 1.1 * small and large < 400.0)}
+
+
+def _motion_record(work: Path, run: Path, b0: Path) -> dict:
+    """``unwarp --motion`` (per-volume poses, one interpolation) against the plain cubic unwarp."""
+    times, peaks = {"plain": [], "motion": []}, {"plain": [], "motion": []}
+    for _ in range(ROUNDS):
+        for side in times:
+            result = _ours(run, b0, work, "cubic", *(["--motion"] if side == "motion" else []))
+            times[side].append(result["seconds"])
+            peaks[side].append(result["peak_rss_mib"])
+    plain, motion = statistics.median(times["plain"]), statistics.median(times["motion"])
+    return {"benchmark": "unwarp_file_motion_vs_plain", "ours_s": motion, "baseline": "the same command without "
+            "--motion (fresh process)", "baseline_s": plain, "ratio": plain / motion,
+            "ours_over_baseline": motion / plain, "ours_peak_mib": max(peaks["motion"]),
+            "baseline_peak_mib": max(peaks["plain"]), "volumes": int(run.name.split("_")[0][3:]),
+            "goal": "per-volume motion + unwarp within 2.5x the time of unwarp alone, peak RSS < 400 MiB",
+            "met": bool(motion <= 2.5 * plain and max(peaks["motion"]) < 400.0)}
 
 
 def _nrmse_record(quick: bool) -> dict:
@@ -225,6 +244,7 @@ def run(quick: bool) -> list[dict]:
             _ours(small_run, b0, work, interp)
         records = _file_records(work, runs, b0)
         records.append(_memory_record(work, small_run, runs["float32"], b0))
+        records.append(_motion_record(work, runs["float32"], b0))
         records.append(_nrmse_record(quick))
         return records
     finally:

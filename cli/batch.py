@@ -41,7 +41,13 @@ def _processing_options(parser: argparse.ArgumentParser) -> None:
     opts.add_argument("--smooth", metavar="FWHM", help="field-map smoothing width with unit (default 4mm)")
     opts.add_argument("--unwrap", choices=("quality", "laplacian"), default=None, help="spatial unwrapping")
     opts.add_argument("--interp", choices=("linear", "cubic", "sinc"), default=None,
-                      help="interpolation of the unwarping (default linear)")
+                      help="interpolation of the unwarping (default cubic)")
+    opts.add_argument("--no-align", action="store_true", default=None,
+                      help="place each field map through the scanner coordinates alone (default: its magnitude is "
+                           "aligned to each run, distortion in the loop)")
+    opts.add_argument("--motion", action="store_true", default=None,
+                      help="follow head motion through each run (per-volume poses, one interpolation, a motion "
+                           "table per run)")
     opts.add_argument("--dropout-te", metavar="TIME", help="echo time of the dropout prediction (default: each "
                                                            "run's EchoTime)")
     opts.add_argument("--dropout-thickness", metavar="LENGTH", help="slice thickness of the dropout prediction "
@@ -101,7 +107,8 @@ def _options(args, options_type):
              "masks": args.masks, "smooth_mm": _quantity(args.smooth, parse_length_mm, "--smooth"),
              "dropout_te_s": _quantity(args.dropout_te, parse_time_s, "--dropout-te"),
              "dropout_thickness_mm": _quantity(args.dropout_thickness, parse_length_mm, "--dropout-thickness"),
-             "dropout_tilt_deg": _quantity(args.dropout_tilt, parse_angle_deg, "--dropout-tilt")}
+             "dropout_tilt_deg": _quantity(args.dropout_tilt, parse_angle_deg, "--dropout-tilt"),
+             "align_fieldmap": False if args.no_align else None, "motion": True if args.motion else None}
     return options_type(**{k: v for k, v in given.items() if v is not None})
 
 

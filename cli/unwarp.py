@@ -33,6 +33,17 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-jacobian", action="store_true", help="skip the Jacobian intensity correction")
     parser.add_argument("--b0-mask", metavar="MASK", default=None,
                         help="mask of the B0 map, for the statistics (default: b0_mask beside the B0 map if present)")
+    parser.add_argument("--b0-magnitude", metavar="MAG", default=None,
+                        help="the field map's magnitude, for aligning the map to each run (default: b0_magnitude "
+                             "beside the B0 map, as fieldfix fieldmap writes it)")
+    parser.add_argument("--no-align", action="store_true",
+                        help="place the field map through the scanner coordinates alone (by default its magnitude "
+                             "is aligned to each run's first volume, distortion in the loop, so a head that moved "
+                             "between the scans gets the field where it is)")
+    parser.add_argument("--motion", action="store_true",
+                        help="also follow head motion through each run: per-volume rigid poses, the field moving "
+                             "with the head, motion and distortion undone in one interpolation; writes "
+                             "<stem>_motion.tsv (six columns and framewise displacement)")
     parser.add_argument("--combine-polarities", action="store_true",
                         help="with two runs of opposite phase-encode polarity (blip up / blip down), also write one "
                              "run restored jointly from both (<first stem>_combined.nii.gz), which recovers "
@@ -76,7 +87,8 @@ def run(args) -> dict:
         readout_time_s=parse_checked(args.readout_time, "readout_time_s") if args.readout_time is not None else None,
         echo_spacing_s=parse_checked(args.echo_spacing, "echo_spacing_s") if args.echo_spacing is not None else None,
         timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
-        force=args.force, combine_polarities=args.combine_polarities, compress=args.compress,
+        force=args.force, combine_polarities=args.combine_polarities, align_fieldmap=not args.no_align,
+        b0_magnitude=args.b0_magnitude, motion=args.motion, compress=args.compress,
         gzip_effort=args.gzip_effort)
     job = job_options(args)
     summaries = run_unwarp(args.runs, args.b0, job, settings)

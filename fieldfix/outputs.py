@@ -51,6 +51,8 @@ __all__ = [
     "PhaseUnitsRecord",
     "PairRecord",
     "TimingRecord",
+    "AlignmentRecord",
+    "MotionRecord",
     "FieldMapSummary",
     "UnwarpSummary",
     "MapStatistics",
@@ -214,19 +216,22 @@ class UnwarpFiles(_Files):
     fold_mask: str
     displacement_mm: str
     summary: str
+    motion: str | None = None
 
     SUMMARY_SUFFIX = "_unwarp.json"
     IMAGES = ("corrected", "shift_vox", "jacobian", "fold_mask", "displacement_mm")
 
     @classmethod
-    def named(cls, run_stem: str, tag: str = "", suffix: str = ".nii.gz") -> "UnwarpFiles":
-        """The outputs of one run; `suffix` ``'.nii.gz'`` (gzip) or ``'.nii'`` (uncompressed)."""
+    def named(cls, run_stem: str, tag: str = "", suffix: str = ".nii.gz", *, motion: bool = False) -> "UnwarpFiles":
+        """The outputs of one run; `suffix` ``'.nii.gz'`` (gzip) or ``'.nii'`` (uncompressed); with
+        `motion`, the per-volume motion table ``<stem>_motion.tsv`` too."""
         if suffix not in (".nii.gz", ".nii"):
             raise ValueError(f"suffix must be '.nii.gz' or '.nii', got {suffix!r}")
         stem = f"{tag}{run_stem}"
         return cls(corrected=f"{stem}_corrected{suffix}", shift_vox=f"{stem}_shift_vox{suffix}",
                    jacobian=f"{stem}_jacobian{suffix}", fold_mask=f"{stem}_fold_mask{suffix}",
-                   displacement_mm=f"{stem}_displacement_mm{suffix}", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
+                   displacement_mm=f"{stem}_displacement_mm{suffix}", summary=f"{stem}{cls.SUMMARY_SUFFIX}",
+                   motion=f"{stem}_motion.tsv" if motion else None)
 
 
 @dataclass(frozen=True)
@@ -362,6 +367,48 @@ class TimingRecord(Record):
 
 
 @dataclass(frozen=True)
+class AlignmentRecord(Record):
+    """The rigid transform that put the field map where the head was in the run.
+
+    Conventions of :mod:`fieldfix.align`: world mm (RAS+) and degrees about world x, y, z through
+    ``centre_mm`` (the run grid's centre), ``R = Rz Ry Rx``; ``matrix`` maps field-map world to run
+    world. ``measure_*``: normalised mutual information of the forward-distorted field-map
+    magnitude and the run (1 independent, 2 identical) at the affine placement and after.
+    """
+
+    translation_mm: list[float]
+    rotation_deg: list[float]
+    centre_mm: list[float]
+    matrix: list[list[float]]
+    measure_before: float
+    measure_after: float
+    iterations: int
+    converged: bool
+    coverage: float
+    warnings: list[str]
+    method: str
+
+
+@dataclass(frozen=True)
+class MotionRecord(Record):
+    """Head motion through a run (per-volume rigid poses against the first volume).
+
+    Framewise displacement after Power et al. 2012 (NeuroImage), rotations as arcs on a 50 mm
+    sphere; the table is ``outputs.motion``. First order: the field moves with the head; its
+    change with the head's orientation to B0 is neglected.
+    """
+
+    volumes: int
+    mean_framewise_displacement_mm: float
+    max_framewise_displacement_mm: float
+    max_translation_mm: float
+    max_rotation_deg: float
+    converged_volumes: int
+    warnings: list[str]
+    method: str
+
+
+@dataclass(frozen=True)
 class UnwarpSummary(Record):
     """What the unwarping job reports for one run (``<tag><stem>_unwarp.json``).
 
@@ -403,6 +450,9 @@ class UnwarpSummary(Record):
     folded_voxel_rule: str
     outputs: UnwarpFiles
     b0_units: str = "Hz"
+    field_placement: str = "affines only"
+    alignment: AlignmentRecord | None = None
+    motion: MotionRecord | None = None
     caution: str = CAUTION
 
 
@@ -477,6 +527,7 @@ class DropoutSummary(Record):
     pe_direction_world: str | None = None
     percent_echo_lost: float | None = None
     b0_units: str = "Hz"
+    epi_placement: str | None = None
     caution: str = CAUTION
 
 

@@ -136,6 +136,10 @@ def test_the_corrected_series_sidecar_is_complete(derivatives):
     correction = sidecar["FieldfixCorrection"]
     summary = UnwarpSummary.read(corrected.with_name("sub-01_ses-2_task-rest_desc-boldunwarp_summary.json"))
     assert correction["MaxAbsShiftVoxels"] == summary.max_abs_shift_vox and correction["JacobianModulation"]
+    # how the field map was placed on the run, with the transform when it was aligned
+    assert correction["FieldMapPlacement"] == summary.field_placement
+    if summary.alignment is not None:
+        assert correction["FieldMapToRunTransform"]["Matrix"] == summary.alignment.matrix
     assert "B0FieldSource" not in sidecar and "IntendedFor" not in sidecar  # needs no further correction
     # the summary names its outputs relative to its own folder, by their derivative names
     assert (corrected.parent / summary.outputs.corrected).is_file()

@@ -32,6 +32,7 @@ from test_bad_input import (
 
 
 def _refused(capsys, argv, *names):
+    capsys.readouterr()  # what earlier calls of the test printed
     status = main([str(a) for a in argv])
     err = capsys.readouterr().err.strip().splitlines()
     assert status == 2 and len(err) == 1, err

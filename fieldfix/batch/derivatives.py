@@ -170,7 +170,22 @@ def _correction_record(summary, derived_sources) -> dict:
             "EffectiveEchoSpacing": summary.timing.echo_spacing_s, "TimingSource": summary.timing.source,
             "Interpolation": summary.interp, "JacobianModulation": summary.jacobian,
             "MaxAbsShiftVoxels": summary.max_abs_shift_vox, "FoldedVoxels": summary.folded_voxels_total,
+            "FieldMapPlacement": summary.field_placement,
+            "FieldMapToRunTransform": _transform(summary.alignment),
+            "HeadMotion": summary.motion.to_json() if summary.motion is not None else None,
             "Warnings": list(summary.warnings)}
+
+
+def _transform(alignment) -> dict | None:
+    """The field-map-to-run rigid transform as the sidecar states it (units and convention in the keys)."""
+    if alignment is None:
+        return None
+    return {"Matrix": alignment.matrix, "TranslationMillimetres": alignment.translation_mm,
+            "RotationDegrees": alignment.rotation_deg, "RotationCentreMillimetres": alignment.centre_mm,
+            "Convention": "field-map world (NIfTI RAS+ mm) -> run world; rotations about world x, y, z through the "
+                          "centre, R = Rz Ry Rx, right-handed",
+            "MatchBefore": alignment.measure_before, "MatchAfter": alignment.measure_after,
+            "MatchMeasure": "normalised mutual information (1 independent, 2 identical)"}
 
 
 def write_dataset_description(deriv: Path, bids_root: Path) -> Path:

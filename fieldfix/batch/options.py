@@ -11,7 +11,9 @@ units as in the command line::
     phase_units = "rad"          # rad, deg, counts4096, counts8192; default: detected
     smooth = "4mm"               # field-map smoothing (FWHM)
     unwrap = "quality"           # or "laplacian"
-    interp = "linear"            # or "cubic", "sinc"
+    interp = "cubic"             # or "linear", "sinc"
+    align = true                 # align each field map to its runs (false: scanner coordinates only)
+    motion = false               # follow head motion through each run (per-volume poses, motion tables)
     dropout_te = "30ms"          # default: each run's EchoTime
     dropout_thickness = "3mm"    # default: SliceThickness, else the voxel size across slices
     dropout_tilt = "0deg"
@@ -52,7 +54,7 @@ _CONFIG_KEYS = {
     "phase_units": ("phase_units", None), "smooth": ("smooth_mm", "length"), "unwrap": ("unwrap_method", None),
     "interp": ("interp", None), "dropout_te": ("dropout_te_s", "time"),
     "dropout_thickness": ("dropout_thickness_mm", "length"), "dropout_tilt": ("dropout_tilt_deg", "angle"),
-    "masks": ("masks", None),
+    "masks": ("masks", None), "align": ("align_fieldmap", "bool"), "motion": ("motion", "bool"),
 }
 
 
@@ -75,16 +77,23 @@ class BatchOptions:
     dropout_tilt_deg : float
     masks : {"fieldmap", "none"}
         Use the field map's mask for the shift statistics and the dropout maps, or none.
+    align_fieldmap : bool
+        Align each field map's magnitude to each run before correcting it (see
+        :class:`fieldfix.workflows.unwarp.UnwarpSettings`).
+    motion : bool
+        Follow head motion through each run (per-volume poses, one interpolation, motion tables).
     """
 
     phase_units: str | None = None
     smooth_mm: float = 4.0
     unwrap_method: str = "quality"
-    interp: str = "linear"
+    interp: str = "cubic"
     dropout_te_s: float | None = None
     dropout_thickness_mm: float | None = None
     dropout_tilt_deg: float = 0.0
     masks: str = "fieldmap"
+    align_fieldmap: bool = True
+    motion: bool = False
 
     def check(self) -> None:
         """Refuse impossible values before anything is planned."""
@@ -109,7 +118,8 @@ class BatchOptions:
         return {"phase_units": self.phase_units, "smooth_mm": self.smooth_mm, "unwrap_method": self.unwrap_method}
 
     def unwarp_params(self) -> dict:
-        return {"interp": self.interp, "masks": self.masks}
+        return {"interp": self.interp, "masks": self.masks, "align_fieldmap": self.align_fieldmap,
+                "motion": self.motion}
 
     def dropout_params(self) -> dict:
         return {"te_s_option": self.dropout_te_s, "thickness_mm_option": self.dropout_thickness_mm,
@@ -152,6 +162,11 @@ def read_batch_config(path: str | os.PathLike) -> tuple[BatchOptions, ConfigReco
         if key not in _CONFIG_KEYS:
             raise InputError(f"unknown key {key!r} in the batch config; known keys: {', '.join(_CONFIG_KEYS)}", path)
         name, dimension = _CONFIG_KEYS[key]
+        if dimension == "bool":
+            if not isinstance(value, bool):
+                raise InputError(f"{key}: must be true or false, got {value!r}", path)
+            changes[name] = value
+            continue
         try:
             changes[name] = parse_quantity(value, dimension) if dimension else (None if value is None else str(value))
         except FieldfixError as err:

@@ -129,8 +129,11 @@ def run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
     b0, mask = _b0_and_mask(task, upstream, deriv)
     timing = ({"readout_time_s": p["readout_time_s"]} if p.get("readout_time_s") is not None
               else {"echo_spacing_s": p["echo_spacing_s"]})
+    magnitude = _fieldmap_of(upstream).outputs.get("magnitude")
     summaries = run_unwarp([task.inputs["run"]], b0, _job(staging, command), pe_code=p["pe_code"],
-                           timing_win="arguments", b0_mask=mask, interp=p.get("interp", "linear"), **timing)
+                           timing_win="arguments", b0_mask=mask, interp=p.get("interp", "cubic"),
+                           align_fieldmap=p.get("align_fieldmap", True), motion=p.get("motion", False),
+                           b0_magnitude=deriv / magnitude if magnitude else None, **timing)
     return summaries[0]
 
 

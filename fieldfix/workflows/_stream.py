@@ -66,6 +66,20 @@ class BackgroundWriter:
         if self._error is not None:
             raise self._error
 
+    def abort(self) -> None:
+        """Stop after a failure or an interruption: drop what waits, end the thread, never block long."""
+        self._error = self._error or RuntimeError("aborted")
+        while True:
+            try:
+                self._queue.get_nowait()
+            except queue.Empty:
+                break
+        try:
+            self._queue.put(None, timeout=1.0)
+        except queue.Full:
+            pass
+        self._thread.join(timeout=10.0)
+
 
 class BackgroundReader:
     """Read the volumes of an image in order in a second thread, at most `depth` ahead.
@@ -119,7 +133,7 @@ class BackgroundReader:
                 self._queue.get_nowait()
             except queue.Empty:
                 break
-        self._thread.join()
+        self._thread.join(timeout=10.0)
 
 
 def sequential(image: Image) -> Image:
@@ -169,9 +183,12 @@ def _stream_4d(image, source, correct, path, hashing, *, inputs, overwrite, prov
                                    unit="vol")
             for t, volume in volumes:
                 background.put(correct(finite_volume(image, volume, t)))
-        finally:
+        except BaseException:  # an error or an interruption: stop both threads without waiting on them
             reader.close()
-            background.close()
+            background.abort()
+            raise
+        reader.close()
+        background.close()
         _record_hash(provenance, image, hashing)  # before the writer's exit writes the sidecar
 
 

@@ -33,6 +33,8 @@ from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..shift import resolve_timing
 from ._b0 import read_field_hz
+from ..align import Readout
+from ._placement import alignment, find_b0_magnitude, read_magnitude_on_map
 from ._run_checks import find_b0_mask
 from ..units import PLAUSIBLE, check_plausible
 from ..outputs import (
@@ -91,6 +93,11 @@ class DropoutSettings:
         Units of the B0 map (Hz, rad/s, ppm, T); default: its sidecar's ``Units``, else Hz.
     field_strength_t : float, optional
         For a map in ppm; default: the sidecar's ``MagneticFieldStrength``.
+    align_fieldmap : bool
+        With ``like`` on another grid, place the maps written on the EPI grid where the head is
+        in that image: the field map's magnitude (``b0_magnitude``, default: beside the map) is
+        aligned to it as for unwarping (:mod:`fieldfix.workflows._placement`).
+    b0_magnitude : path, optional
 
     The plausible ranges of the quantities are those of :data:`fieldfix.units.PLAUSIBLE`.
     """
@@ -110,6 +117,8 @@ class DropoutSettings:
     threshold: float = 0.5
     b0_units: str | None = None
     field_strength_t: float | None = None
+    align_fieldmap: bool = True
+    b0_magnitude: object = None
 
     def check(self) -> None:
         check_plausible("te_s", self.te_s)
@@ -260,14 +269,28 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
         if not np.isfinite(b0[mask]).all():
             raise InputError("the B0 map has non-finite values inside the mask", b0_path)
         b0 = np.where(np.isfinite(b0), b0, 0.0)
-        summary = dataclasses.replace(_predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs),
-                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask))
+        matrix, placement = _epi_placement(s, b0_path, b0_img, b0, like, geometry) if on_epi else (np.eye(4), None)
+        summary = dataclasses.replace(_predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs,
+                                                         matrix),
+                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask), epi_placement=placement)
         write_json(job.path(files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
 
+def _epi_placement(s: DropoutSettings, b0_path: Path, b0_img: Image, b0, like: Image, geometry: _Geometry):
+    """(field-map world -> EPI world matrix, how) for the maps written on the EPI grid."""
+    magnitude_path = find_b0_magnitude(b0_path, s.b0_magnitude) if s.align_fieldmap else None
+    if s.align_fieldmap and magnitude_path is not None and geometry.pe_code is None:
+        return np.eye(4), "affines only: the EPI image's phase encoding is unknown, so its distortion cannot be modelled"
+    readout = Readout(geometry.pe_code, geometry.echo_spacing_s, None) if geometry.pe_code is not None else None
+    reference = like.volume(0) if magnitude_path is not None else None
+    matrix, how, _, _ = alignment(like, reference, readout, b0_img, np.nan_to_num(b0),
+                                  read_magnitude_on_map(magnitude_path, b0_img), magnitude_path, s.align_fieldmap)
+    return matrix, how
+
+
 def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: DropoutFiles, s: DropoutSettings,
-                       job: JobOptions, inputs) -> DropoutSummary:
+                       job: JobOptions, inputs, matrix) -> DropoutSummary:
     profile = slice_profile(s.profile, tbw=s.tbw)
     maps = dropout_maps(b0, b0_img.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm, profile=profile,
                         zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m), pe_sign=geometry.pe_sign,
@@ -286,7 +309,8 @@ def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: Dropo
         save_image(job.path(getattr(files, kind)), values, b0_img.affine, template=b0_img, **common,
                    sidecar_extra={"Description": _DESCRIPTIONS[kind]})
         if files.retention_on_epi is not None:  # the same maps on the EPI grid, for overlays
-            resampled, _ = resample_to_grid(values, b0_img.affine, like.shape[:3], like.affine, order=1, outside=0.0)
+            resampled, _ = resample_to_grid(values, matrix @ b0_img.affine, like.shape[:3], like.affine, order=1,
+                                            outside=0.0)
             note = f"{_DESCRIPTIONS[kind]}, resampled (linear) onto the grid of {like.path.name}"
             save_image(job.path(getattr(files, f"{kind}_on_epi")), resampled, like.affine, template=like, **common,
                        sidecar_extra={"Description": note})

@@ -50,6 +50,9 @@ from ._run_checks import (
     signal_mask,
 )
 from ._b0 import read_field_hz
+from ..align import Readout
+from ._motion_step import MotionFollower
+from ._placement import Placement, find_b0_magnitude, mask_on_run, place_field, read_magnitude_on_map
 from ._combine import check_combinable, write_combined_run
 from ._stream import write_corrected_run
 
@@ -99,6 +102,17 @@ class UnwarpSettings:
         phase image is refused.
     field_strength_t : float, optional
         For a map in ppm; default: the sidecar's ``MagneticFieldStrength``.
+    align_fieldmap : bool
+        Put the field map where the head is in each run: align its magnitude rigidly to the
+        run's first volume, distortion in the loop (:mod:`fieldfix.workflows._placement`), and
+        resample the field through that transform (default). Off: the scanner coordinates alone.
+    b0_magnitude : path, optional
+        The field map's magnitude for the alignment; default: ``<tag>b0_magnitude.nii.gz``
+        beside a ``<tag>b0_hz.nii.gz``.
+    motion : bool
+        Also follow head motion through the run: each volume's rigid pose against the first
+        (distortion-aware), the field moved with the head, and motion and distortion undone in
+        one cubic interpolation (:mod:`fieldfix.motion`); writes ``<stem>_motion.tsv``.
     combine_polarities : bool
         With exactly two runs of opposite polarity on one grid, also write one run restored
         jointly from both (``<tag><first stem>_combined.nii.gz``, see
@@ -122,6 +136,9 @@ class UnwarpSettings:
     force: bool = False
     parallel: bool = True
     combine_polarities: bool = False
+    align_fieldmap: bool = True
+    b0_magnitude: object = None
+    motion: bool = False
     b0_units: str | None = None
     field_strength_t: float | None = None
     compress: str = "auto"
@@ -161,6 +178,8 @@ class _RunPlan:
     files: UnwarpFiles
     field_hz: np.ndarray
     shift_check: ShiftCheck
+    placement: Placement
+    reference: np.ndarray
 
 
 def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettings | None = None,
@@ -216,15 +235,19 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
         field_hz, b0_units = read_field_hz(b0, s.b0_units, s.field_strength_t)
         mask_path = find_b0_mask(b0_path, s.b0_mask)
         mask_values = _read_mask(mask_path, field_hz.shape)
+        magnitude_path = find_b0_magnitude(b0_path, s.b0_magnitude) if s.align_fieldmap else None
+        magnitude = read_magnitude_on_map(magnitude_path, b0)
         runs = [load_image(p, ndim=(3, 4)) for p in run_paths]
-        inputs = [*run_paths, b0_path] + ([mask_path] if mask_path is not None else [])
-        files = [UnwarpFiles.named(image_stem(p), job.tag, s.output_suffix(p)) for p in run_paths]
+        inputs = [*run_paths, b0_path] + [p for p in (mask_path, magnitude_path) if p is not None]
+        files = [UnwarpFiles.named(image_stem(p), job.tag, s.output_suffix(p), motion=s.motion and img.ndim == 4)
+                 for p, img in zip(run_paths, runs)]
         guarded = [p for f in files for p in f.guarded(job.out_dir)]
         if s.combine_polarities:
             guarded += CombinedFiles.named(image_stem(run_paths[0]), job.tag).guarded(job.out_dir)
         output_paths_guard(guarded, inputs, job.overwrite)
         # Metadata, shift maps and their size check for every run before any output is written.
-        plans = [_plan_run(image, f, s, b0, field_hz, mask_values) for image, f in zip(runs, files)]
+        plans = [_plan_run(image, f, s, b0, field_hz, mask_values, (magnitude, magnitude_path))
+                 for image, f in zip(runs, files)]
         if s.combine_polarities:
             check_combinable(plans)
         summaries = [_unwarp_one(plan, b0, mask_path, job, s, inputs, b0_units) for plan in plans]
@@ -243,7 +266,8 @@ def _read_mask(mask_path, shape) -> np.ndarray | None:
     return (np.nan_to_num(values) > 0.5).astype(float)
 
 
-def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, field_hz, mask_values) -> _RunPlan:
+def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, field_hz, mask_values,
+              magnitude) -> _RunPlan:
     code, code_source = resolve_pe_code(s.pe_code, image, s.timing_win)
     axis, _ = parse_pe_code(code)
     n_lines = image.shape[axis]
@@ -253,27 +277,15 @@ def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, fi
                                 sidecar=image.sidecar, timing_win=s.timing_win)
     except MetadataError as err:
         raise MetadataError(err.message, image.path) from None
-    maps, mask, field = _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, s.jacobian_floor)
-    signal = signal_mask(finite_volume(image, image.volume(0), 0), mask)
-    checked = check_shift_size(maps, signal, image.path, b0.path, s.force)
-    return _RunPlan(image, code, code_source, timing, maps, mask, files, field, checked)
-
-
-def _maps_on_run_grid(image, code, timing, b0, field_hz, mask_values, jacobian_floor):
-    """B0 map resampled onto the run's grid through the affines, turned into shift maps."""
-    grid = image.shape[:3]
-    affine = image.affine
-    field, covered = resample_to_grid(field_hz, b0.affine, grid, affine, order=1)
-    if not covered.any():
-        raise GeometryError(f"the B0 map {b0.path.name} does not overlap this run's field of view", image.path)
-    if mask_values is not None:
-        mask_on_grid, _ = resample_to_grid(mask_values, b0.affine, grid, affine, order=0, outside=0.0)
-        mask = (mask_on_grid > 0.5) & covered
-    else:
-        mask = covered
-    maps = shift_maps(field, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines, inside=covered,
-                      jacobian_floor=jacobian_floor)
-    return maps, mask, field
+    reference = finite_volume(image, image.volume(0), 0)
+    readout = Readout(code, timing.echo_spacing_s, timing.n_pe_lines)
+    placement = place_field(image, reference, readout, b0, field_hz, *magnitude, s.align_fieldmap)
+    mask = mask_on_run(mask_values, b0, image, placement)
+    maps = shift_maps(placement.field_hz, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines,
+                      inside=placement.covered, jacobian_floor=s.jacobian_floor)
+    checked = check_shift_size(maps, signal_mask(reference, mask), image.path, b0.path, s.force)
+    return _RunPlan(image, code, code_source, timing, maps, mask, files, placement.field_hz, checked, placement,
+                    reference)
 
 
 def _parameters(plan: _RunPlan, s: UnwarpSettings) -> dict:
@@ -296,9 +308,12 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     # takes the kernel about a tenth of the time of its decompression and compression: the
     # kernel runs on this thread alone (numba's threads would only compete for the cores).
     parallel = s.parallel and image.ndim == 3
-    n_volumes = write_corrected_run(image, lambda v: apply_tables(tables, v, parallel=parallel),
-                                    job.path(plan.files.corrected), inputs=inputs, overwrite=job.overwrite,
-                                    provenance=provenance, progress=job.progress, gzip_effort=s.gzip_effort)
+    follower = MotionFollower(plan, s.jacobian_floor) if plan.files.motion is not None else None
+    correct = follower.correct if follower is not None else (lambda v: apply_tables(tables, v, parallel=parallel))
+    n_volumes = write_corrected_run(image, correct, job.path(plan.files.corrected), inputs=inputs,
+                                    overwrite=job.overwrite, provenance=provenance, progress=job.progress,
+                                    gzip_effort=s.gzip_effort)
+    motion = follower.write_table(job.path(plan.files.motion), inputs, job.overwrite) if follower else None
     common = dict(template=image, inputs=inputs, overwrite=job.overwrite, provenance=provenance,
                   gzip_effort=s.gzip_effort)
     save_image(job.path(plan.files.shift_vox), maps.shift_vox, affine, **common)
@@ -307,7 +322,9 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     displacement = displacement_field_mm(maps.shift_vox, maps.pe_axis, affine)
     save_image(job.path(plan.files.displacement_mm), displacement[:, :, :, None, :], affine,
                intent=NIFTI_INTENT_DISPVECT, **common)
-    summary = dataclasses.replace(_summary(plan, b0, mask_path, s, n_volumes), b0_units=b0_units)
+    summary = dataclasses.replace(_summary(plan, b0, mask_path, s, n_volumes), b0_units=b0_units,
+                                  field_placement=plan.placement.how, alignment=plan.placement.alignment,
+                                  motion=motion)
     write_json(job.path(plan.files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
@@ -316,7 +333,7 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
     maps, affine = plan.maps, plan.image.affine
     stats = shift_summary(maps.shift_vox, maps.jacobian, maps.pe_axis, affine, plan.mask, s.jacobian_floor)
     coverage_percent = float(100.0 * maps.inside.mean())
-    warnings = [plan.shift_check.warning] if plan.shift_check.warning else []
+    warnings = ([plan.shift_check.warning] if plan.shift_check.warning else []) + plan.placement.warnings
     if coverage_percent < PARTIAL_COVERAGE_PERCENT:
         warnings.append(f"partial coverage: the B0 map covers {coverage_percent:.1f}% of this run's voxels; "
                         "outside it the field is continued from the map's nearest edge, so the correction "
