@@ -44,6 +44,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="also follow head motion through each run: per-volume rigid poses, the field moving "
                              "with the head, motion and distortion undone in one interpolation; writes "
                              "<stem>_motion.tsv (six columns and framewise displacement)")
+    parser.add_argument("--displacement-frame", choices=("ras", "lps"), default="ras",
+                        help="world frame of the displacement field's vectors: ras (NIfTI, default) or lps (the "
+                             "physical space most registration toolkits expect; x and y negated)")
     parser.add_argument("--combine-polarities", action="store_true",
                         help="with two runs of opposite phase-encode polarity (blip up / blip down), also write one "
                              "run restored jointly from both (<first stem>_combined.nii.gz), which recovers "
@@ -88,7 +91,7 @@ def run(args) -> dict:
         echo_spacing_s=parse_checked(args.echo_spacing, "echo_spacing_s") if args.echo_spacing is not None else None,
         timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
         force=args.force, combine_polarities=args.combine_polarities, align_fieldmap=not args.no_align,
-        b0_magnitude=args.b0_magnitude, motion=args.motion, compress=args.compress,
+        b0_magnitude=args.b0_magnitude, motion=args.motion, displacement_frame=args.displacement_frame, compress=args.compress,
         gzip_effort=args.gzip_effort)
     job = job_options(args)
     summaries = run_unwarp(args.runs, args.b0, job, settings)

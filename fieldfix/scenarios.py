@@ -58,6 +58,7 @@ import hashlib
 import json
 import os
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -416,132 +417,135 @@ def _roi_mask(p, scale, x, y, z, brain):
     return inside & brain
 
 
+@dataclass
+class _Subject:
+    """What the generation of one subject (and session) shares: where it writes and its head."""
+
+    p: dict
+    root: Path
+    rel_dir: Path
+    truth_dir: Path
+    stem: str
+    scale: float
+    b0_model: np.ndarray
+    hm: object
+    rng: np.random.Generator
+    overwrite: bool
+
+    def save(self, rel, data, affine, dtype=np.float32, sidecar=None, template=None) -> str:
+        save_image(self.root / rel, data, affine, dtype=dtype, overwrite=self.overwrite, template=template)
+        if sidecar is not None:
+            write_json(self.root / (str(rel)[: -len(".nii.gz")] + ".json"), sidecar, overwrite=self.overwrite)
+        return str(rel)
+
+    def b0_at(self, x, y, z) -> np.ndarray:
+        return _sample(self.b0_model, self.hm.affine, x, y, z)
+
+
 def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.SeedSequence,
                   scale: float, overwrite: bool) -> dict:
     rng = np.random.default_rng(seq)
     pitch = p["pitch_deg"] + (rng.normal(0, p["pitch_jitter_deg"]) if p["pitch_jitter_deg"] > 0 else 0.0)
     pitch = float(np.round(pitch, 3))
     b0_model, hm = _model_field(p, scale, pitch)
-    stem = _bids_stem(sub, ses)
     rel_dir = _bids_dir(sub, ses)
-    truth_dir = TRUTH_DIR / rel_dir
-    field_t = p["field_t"]
-    entry = {"subject": sub, "session": ses or "", "pitch_deg": pitch, "head_scale": scale,
-             "runs": [], "fieldmap": {}, "truth": {}}
+    ctx = _Subject(p, root, rel_dir, TRUTH_DIR / rel_dir, _bids_stem(sub, ses), scale, b0_model, hm, rng, overwrite)
+    # EPI runs first, so that the field map can name them in IntendedFor
+    runs = [_simulated_run(ctx, run) for run in p["runs"]]
+    intended = [str(Path(rec["bold"]).relative_to(Path(f"sub-{sub}"))) for rec in runs]
+    fieldmap, truth = _simulated_fieldmap(ctx, intended)
+    return {"subject": sub, "session": ses or "", "pitch_deg": pitch, "head_scale": scale, "runs": runs,
+            "fieldmap": fieldmap, "truth": truth}
 
-    def save(rel, data, affine, dtype=np.float32, sidecar=None, template=None):
-        save_image(root / rel, data, affine, dtype=dtype, overwrite=overwrite, template=template)
-        if sidecar is not None:
-            write_json(root / (str(rel)[: -len(".nii.gz")] + ".json"), sidecar, overwrite=overwrite)
-        return str(rel)
 
-    # --- EPI runs (first, so the field map can name them in IntendedFor) ---
-    intended = []
-    for run in p["runs"]:
-        aff = _grid_affine(run["voxel_mm"], run["shape"], run["center_mm"])
-        # Two sub-samples along the phase-encode axis (field variation within a voxel) and along
-        # the slice (through-slice dephasing); the readout needs none in this signal model.
-        pe_axis, _ = parse_pe_code(run["pe_code"])
-        slice_axis = 2 if pe_axis != 2 else 1
-        factors = tuple({pe_axis: 2, slice_axis: SLICE_SUBSAMPLES}.get(a, 1) for a in range(3))
-        fine_axes = fine_coordinates(run["shape"], factors)
-        fx, fy, fz = _world(aff, fine_axes)
-        obj_fine = tissue_image(fx, fy, fz, scale)
-        b0_fine = _sample(b0_model, hm.affine, fx, fy, fz)
-        b0_fine[obj_fine <= 0] = 0.0  # no signal there; keeps the air's extreme values out
-        n_pe = run["shape"][pe_axis]
-        options = dict(pe_code=run["pe_code"], echo_spacing_s=run["echo_spacing_s"],
-                       echo_time_s=run["echo_time_s"], oversample=factors, acceleration=run["acceleration"],
-                       partial_fourier=run["partial_fourier"], t2star_s=run["t2star_s"])
-        mean_vox = float(np.mean(run["voxel_mm"]))
-        data, motion = simulate_epi_run(
-            obj_fine, b0_fine, run["volumes"], noise_sd=run["noise"],
-            translation_sd_vox=run["motion_translation_mm"] / mean_vox,
-            rotation_sd_deg=run["motion_rotation_deg"], rng=rng, **options)
-        reference, _ = simulate_epi_run(obj_fine, np.zeros_like(b0_fine), 1, **options)
-        scale_signal = 1000.0  # scanner-like numbers
-        bold_rel = rel_dir / "func" / f"{stem}_task-{run['task']}_bold.nii.gz"
-        sidecar = epi_sidecar(run["pe_code"], n_pe, run["echo_spacing_s"], run["echo_time_s"],
-                              run["acceleration"])
-        sidecar.update({"TaskName": run["task"], "RepetitionTime": run["repetition_time_s"],
-                        "MagneticFieldStrength": field_t,
-                        "SliceThickness": float(run["voxel_mm"][2]),
-                        "PartialFourier": run["partial_fourier"]})
-        save(bold_rel, data * scale_signal, aff, sidecar=sidecar,
-             template=_tr_template(aff, run["repetition_time_s"]))
-        intended.append(str(bold_rel.relative_to(Path(f"sub-{sub}"))))
-        # truth on the run grid
-        cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run["shape"]])
-        b0_run = _sample(b0_model, hm.affine, cx, cy, cz)
-        labels_run = sus.head_labels_at(cx, cy, cz, scale)
-        brain_run = labels_run == sus.HEAD_LABELS["brain"]
-        tstem = f"{stem}_task-{run['task']}"
-        rec = {
-            "task": run["task"],
-            "bold": str(bold_rel),
-            "pe_code": run["pe_code"],
-            "total_readout_time_s": sidecar["TotalReadoutTime"],
-            "effective_echo_spacing_s": sidecar["EffectiveEchoSpacing"],
-            "echo_time_s": run["echo_time_s"],
-            "slice_thickness_mm": float(run["voxel_mm"][2]),
-            "motion": motion.round(6).tolist(),
-            "truth_b0_hz": save(truth_dir / "func" / f"{tstem}_desc-truth_fieldmap.nii.gz", b0_run, aff,
+def _simulated_run(ctx: _Subject, run: dict) -> dict:
+    """One EPI run acquired in k-space (with motion and noise), its sidecar and its truth on the run grid."""
+    aff = _grid_affine(run["voxel_mm"], run["shape"], run["center_mm"])
+    # Two sub-samples along the phase-encode axis (field variation within a voxel) and along
+    # the slice (through-slice dephasing); the readout needs none in this signal model.
+    pe_axis, _ = parse_pe_code(run["pe_code"])
+    slice_axis = 2 if pe_axis != 2 else 1
+    factors = tuple({pe_axis: 2, slice_axis: SLICE_SUBSAMPLES}.get(a, 1) for a in range(3))
+    fx, fy, fz = _world(aff, fine_coordinates(run["shape"], factors))
+    obj_fine = tissue_image(fx, fy, fz, ctx.scale)
+    b0_fine = ctx.b0_at(fx, fy, fz)
+    b0_fine[obj_fine <= 0] = 0.0  # no signal there; keeps the air's extreme values out
+    options = dict(pe_code=run["pe_code"], echo_spacing_s=run["echo_spacing_s"], echo_time_s=run["echo_time_s"],
+                   oversample=factors, acceleration=run["acceleration"], partial_fourier=run["partial_fourier"],
+                   t2star_s=run["t2star_s"])
+    mean_vox = float(np.mean(run["voxel_mm"]))
+    data, motion = simulate_epi_run(obj_fine, b0_fine, run["volumes"], noise_sd=run["noise"],
+                                    translation_sd_vox=run["motion_translation_mm"] / mean_vox,
+                                    rotation_sd_deg=run["motion_rotation_deg"], rng=ctx.rng, **options)
+    reference, _ = simulate_epi_run(obj_fine, np.zeros_like(b0_fine), 1, **options)
+    scale_signal = 1000.0  # scanner-like numbers
+    bold_rel = ctx.rel_dir / "func" / f"{ctx.stem}_task-{run['task']}_bold.nii.gz"
+    sidecar = epi_sidecar(run["pe_code"], run["shape"][pe_axis], run["echo_spacing_s"], run["echo_time_s"],
+                          run["acceleration"])
+    sidecar.update({"TaskName": run["task"], "RepetitionTime": run["repetition_time_s"],
+                    "MagneticFieldStrength": ctx.p["field_t"], "SliceThickness": float(run["voxel_mm"][2]),
+                    "PartialFourier": run["partial_fourier"]})
+    ctx.save(bold_rel, data * scale_signal, aff, sidecar=sidecar, template=_tr_template(aff, run["repetition_time_s"]))
+    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run["shape"]])
+    brain_run = sus.head_labels_at(cx, cy, cz, ctx.scale) == sus.HEAD_LABELS["brain"]
+    folder, tstem = ctx.truth_dir / "func", f"{ctx.stem}_task-{run['task']}"
+    rec = {
+        "task": run["task"], "bold": str(bold_rel), "pe_code": run["pe_code"],
+        "total_readout_time_s": sidecar["TotalReadoutTime"], "effective_echo_spacing_s": sidecar["EffectiveEchoSpacing"],
+        "echo_time_s": run["echo_time_s"], "slice_thickness_mm": float(run["voxel_mm"][2]),
+        "motion": motion.round(6).tolist(),
+        "truth_b0_hz": ctx.save(folder / f"{tstem}_desc-truth_fieldmap.nii.gz", ctx.b0_at(cx, cy, cz), aff,
                                 sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),
-            "brain_mask": save(truth_dir / "func" / f"{tstem}_desc-brain_mask.nii.gz", brain_run, aff,
-                               dtype=np.uint8),
-            "undistorted": save(truth_dir / "func" / f"{tstem}_desc-undistorted_bold.nii.gz",
-                                reference[..., 0] * scale_signal, aff),
-        }
-        roi = _roi_mask(p, scale, cx, cy, cz, brain_run)
-        if roi is not None:
-            rec["roi_mask"] = save(truth_dir / "func" / f"{tstem}_desc-{p['roi']['name']}_mask.nii.gz",
-                                   roi, aff, dtype=np.uint8)
-        entry["runs"].append(rec)
+        "brain_mask": ctx.save(folder / f"{tstem}_desc-brain_mask.nii.gz", brain_run, aff, dtype=np.uint8),
+        "undistorted": ctx.save(folder / f"{tstem}_desc-undistorted_bold.nii.gz", reference[..., 0] * scale_signal,
+                                aff),
+    }
+    roi = _roi_mask(ctx.p, ctx.scale, cx, cy, cz, brain_run)
+    if roi is not None:
+        rec["roi_mask"] = ctx.save(folder / f"{tstem}_desc-{ctx.p['roi']['name']}_mask.nii.gz", roi, aff,
+                                   dtype=np.uint8)
+    return rec
 
-    # --- field map ---
-    fm = p["fieldmap"]
+
+def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[dict, dict]:
+    """The dual-echo gradient-echo field map of the subject, and its truth on the field-map grid."""
+    fm, field_t = ctx.p["fieldmap"], ctx.p["field_t"]
     aff = _grid_affine(fm["voxel_mm"], fm["shape"], fm["center_mm"])
     cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in fm["shape"]])
-    b0_fm = _sample(b0_model, hm.affine, cx, cy, cz).astype(np.float64)
-    magnitude = tissue_image(cx, cy, cz, scale)
-    gre = simulate_gradient_echo(b0_fm, fm["echo_times_s"], magnitude=magnitude, t2star_s=fm["t2star_s"],
-                                 snr=fm["snr"], rng=rng)
+    b0_fm = ctx.b0_at(cx, cy, cz).astype(np.float64)
+    gre = simulate_gradient_echo(b0_fm, fm["echo_times_s"], magnitude=tissue_image(cx, cy, cz, ctx.scale),
+                                 t2star_s=fm["t2star_s"], snr=fm["snr"], rng=ctx.rng)
     te1, te2 = fm["echo_times_s"]
-    fdir = rel_dir / "fmap"
+    fdir, stem = ctx.rel_dir / "fmap", ctx.stem
     common = {"MagneticFieldStrength": field_t, "IntendedFor": intended}
-    files = {}
     mags = gre.magnitudes()
-    files["magnitude1"] = save(fdir / f"{stem}_magnitude1.nii.gz", mags[0] * 1000.0, aff,
-                               sidecar={"EchoTime": te1, "MagneticFieldStrength": field_t})
-    files["magnitude2"] = save(fdir / f"{stem}_magnitude2.nii.gz", mags[1] * 1000.0, aff,
-                               sidecar={"EchoTime": te2, "MagneticFieldStrength": field_t})
+    files = {f"magnitude{n}": ctx.save(fdir / f"{stem}_magnitude{n}.nii.gz", mags[n - 1] * 1000.0, aff,
+                                       sidecar={"EchoTime": te, "MagneticFieldStrength": field_t})
+             for n, te in ((1, te1), (2, te2))}
     if fm["kind"] == "phasediff":
         dphi = np.angle(gre.echoes[1] * np.conj(gre.echoes[0]))
-        files["phasediff"] = save(fdir / f"{stem}_phasediff.nii.gz", dphi, aff,
-                                  sidecar={"EchoTime1": te1, "EchoTime2": te2, "Units": "rad", **common})
+        files["phasediff"] = ctx.save(fdir / f"{stem}_phasediff.nii.gz", dphi, aff,
+                                      sidecar={"EchoTime1": te1, "EchoTime2": te2, "Units": "rad", **common})
     else:
         phases = gre.phases_rad()
-        files["phase1"] = save(fdir / f"{stem}_phase1.nii.gz", phases[0], aff,
-                               sidecar={"EchoTime": te1, "Units": "rad", **common})
-        files["phase2"] = save(fdir / f"{stem}_phase2.nii.gz", phases[1], aff,
-                               sidecar={"EchoTime": te2, "Units": "rad", **common})
-    entry["fieldmap"] = {"kind": fm["kind"], "echo_times_s": [te1, te2], "files": files}
-    brain_fm = sus.head_labels_at(cx, cy, cz, scale) == sus.HEAD_LABELS["brain"]
-    entry["truth"] = {
-        "b0_hz": save(truth_dir / "fmap" / f"{stem}_desc-truth_fieldmap.nii.gz", b0_fm, aff,
-                      sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
-        "brain_mask": save(truth_dir / "fmap" / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff,
-                           dtype=np.uint8),
+        for n, te in ((1, te1), (2, te2)):
+            files[f"phase{n}"] = ctx.save(fdir / f"{stem}_phase{n}.nii.gz", phases[n - 1], aff,
+                                          sidecar={"EchoTime": te, "Units": "rad", **common})
+    brain_fm = sus.head_labels_at(cx, cy, cz, ctx.scale) == sus.HEAD_LABELS["brain"]
+    folder = ctx.truth_dir / "fmap"
+    truth = {
+        "b0_hz": ctx.save(folder / f"{stem}_desc-truth_fieldmap.nii.gz", b0_fm, aff,
+                          sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
+        "brain_mask": ctx.save(folder / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff, dtype=np.uint8),
     }
-    roi = _roi_mask(p, scale, cx, cy, cz, brain_fm)
+    roi = _roi_mask(ctx.p, ctx.scale, cx, cy, cz, brain_fm)
     if roi is not None:
-        entry["truth"]["roi_mask"] = save(truth_dir / "fmap" / f"{stem}_desc-{p['roi']['name']}_mask.nii.gz",
-                                          roi, aff, dtype=np.uint8)
+        truth["roi_mask"] = ctx.save(folder / f"{stem}_desc-{ctx.p['roi']['name']}_mask.nii.gz", roi, aff,
+                                     dtype=np.uint8)
     brain_b0 = b0_fm[brain_fm]
-    entry["truth"]["brain_b0_hz_percentiles"] = {
-        "p1": float(np.percentile(brain_b0, 1)), "p50": float(np.percentile(brain_b0, 50)),
-        "p99": float(np.percentile(brain_b0, 99))}
-    return entry
+    truth["brain_b0_hz_percentiles"] = {q: float(np.percentile(brain_b0, v)) for q, v in
+                                        (("p1", 1), ("p50", 50), ("p99", 99))}
+    return {"kind": fm["kind"], "echo_times_s": [te1, te2], "files": files}, truth
 
 
 def _tr_template(affine, tr_s: float):

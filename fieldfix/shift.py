@@ -329,14 +329,20 @@ def intensity_weight(jacobian: np.ndarray, jacobian_floor: float = DEFAULT_JACOB
     return np.maximum(np.asarray(jacobian, dtype=float), jacobian_floor)
 
 
-def displacement_field_mm(shift_vox: np.ndarray, pe_axis: int, affine: np.ndarray) -> np.ndarray:
+#: World frames a displacement field can be written in: NIfTI's RAS+ (x right, y anterior, z
+#: superior) or LPS+ (x left, y posterior, z superior), the frame most registration toolkits use
+#: for their physical space (common practice, no source).
+DISPLACEMENT_FRAMES = ("ras", "lps")
+
+
+def displacement_field_mm(shift_vox: np.ndarray, pe_axis: int, affine: np.ndarray, frame: str = "ras") -> np.ndarray:
     """World-space displacement vectors (mm) of the pull-back mapping.
 
     For each voxel of the corrected grid, the vector from its world position to the
     world position of the distorted-image point it is pulled from:
     ``shift_vox * affine[:3, pe_axis]`` (the affine column is one voxel step along the PE
     axis, in world mm, so oblique grids are handled). World axes are those of the NIfTI
-    affine (RAS+).
+    affine (RAS+), or with ``frame="lps"`` the first two components negated (LPS+).
 
     Returns
     -------
@@ -349,7 +355,11 @@ def displacement_field_mm(shift_vox: np.ndarray, pe_axis: int, affine: np.ndarra
     >>> d[0, 0, 0].tolist()
     [0.0, -4.5, 0.0]
     """
+    if frame not in DISPLACEMENT_FRAMES:
+        raise InputError(f"unknown displacement frame {frame!r}; choose ras or lps", parameter="displacement_frame")
     column = np.asarray(affine, dtype=float)[:3, pe_axis]
+    if frame == "lps":
+        column = column * np.array([-1.0, -1.0, 1.0])
     return np.asarray(shift_vox, dtype=float)[..., None] * column
 
 

@@ -657,3 +657,18 @@ def test_outputs_keep_the_run_compression_unless_chosen(tmp_path, run_name, comp
 def test_unknown_compression_is_refused(tmp_path):
     with pytest.raises(InputError, match="compress"):
         run_unwarp([tmp_path / "r.nii"], tmp_path / "b.nii.gz", tmp_path / "out", compress="zip")
+
+
+def test_displacement_field_in_the_lps_frame_and_its_stated_convention(scene):
+    folder, run, b0_path, data, affine = scene
+    (ras,) = run_unwarp([run], b0_path, folder / "ras")
+    (lps,) = run_unwarp([run], b0_path, folder / "lps", displacement_frame="lps")
+    a = nib.load(folder / "ras" / ras.outputs.displacement_mm).get_fdata()
+    b = nib.load(folder / "lps" / lps.outputs.displacement_mm).get_fdata()
+    # LPS+ is RAS+ with x and y reversed (NIfTI's world axes; common practice, no source)
+    np.testing.assert_allclose(b[..., 0, :], a[..., 0, :] * np.array([-1.0, -1.0, 1.0]))
+    assert "LPS+" in lps.displacement_convention and "RAS+" in ras.displacement_convention
+    side = json.loads((folder / "lps" / lps.outputs.displacement_mm.replace(".nii.gz", ".json")).read_text())
+    assert side["DisplacementConvention"] == lps.displacement_convention and side["Units"] == "mm"
+    with pytest.raises(InputError, match="frame"):
+        run_unwarp([run], b0_path, folder / "bad", displacement_frame="xyz")

@@ -36,7 +36,7 @@ from ..io import GZIP_EFFORTS, NIFTI_INTENT_DISPVECT, Image, Provenance, image_s
 from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..outputs import CAUTION, CombinedFiles, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
-from ..shift import DEFAULT_JACOBIAN_FLOOR, Timing, displacement_field_mm, resolve_timing, shift_summary
+from ..shift import DEFAULT_JACOBIAN_FLOOR, DISPLACEMENT_FRAMES, Timing, displacement_field_mm, resolve_timing, shift_summary
 from ..units import check_plausible
 from ..unwarp import INTERPOLATIONS, ShiftMaps, apply_tables, build_tables, shift_maps
 from ._run_checks import (
@@ -60,6 +60,13 @@ __all__ = ["run_unwarp", "UnwarpSettings", "COMPRESSIONS", "MAX_SHIFT_FOV_FRACTI
 
 #: Choices of the outputs' compression: as the run, gzip, none.
 COMPRESSIONS = ("auto", "gzip", "none")
+
+_DISPLACEMENT_WORDS = {
+    "ras": "world mm (NIfTI RAS+: x right, y anterior, z superior), from each corrected voxel to where its signal "
+           "lies in the distorted run",
+    "lps": "world mm (LPS+: x left, y posterior, z superior, i.e. the NIfTI x and y components negated), from each "
+           "corrected voxel to where its signal lies in the distorted run",
+}
 
 #: A run whose voxels are covered by the B0 map's field of view to less than this percentage
 #: is corrected with a warning and flagged (``partial_coverage``) in its summary.
@@ -113,6 +120,9 @@ class UnwarpSettings:
         Also follow head motion through the run: each volume's rigid pose against the first
         (distortion-aware), the field moved with the head, and motion and distortion undone in
         one cubic interpolation (:mod:`fieldfix.motion`); writes ``<stem>_motion.tsv``.
+    displacement_frame : {'ras', 'lps'}
+        World frame of the displacement field's vectors: NIfTI RAS+ (default) or LPS+, the frame of
+        most registration toolkits' physical space; its sidecar and the summary state it.
     combine_polarities : bool
         With exactly two runs of opposite polarity on one grid, also write one run restored
         jointly from both (``<tag><first stem>_combined.nii.gz``, see
@@ -139,12 +149,16 @@ class UnwarpSettings:
     align_fieldmap: bool = True
     b0_magnitude: object = None
     motion: bool = False
+    displacement_frame: str = "ras"
     b0_units: str | None = None
     field_strength_t: float | None = None
     compress: str = "auto"
     gzip_effort: str = "fast"
 
     def check(self) -> None:
+        if self.displacement_frame not in DISPLACEMENT_FRAMES:
+            raise InputError(f"unknown frame {self.displacement_frame!r}; choose ras or lps",
+                             parameter="displacement_frame")
         for name in ("readout_time_s", "echo_spacing_s"):
             if getattr(self, name) is not None:
                 check_plausible(name, getattr(self, name))
@@ -319,9 +333,10 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     save_image(job.path(plan.files.shift_vox), maps.shift_vox, affine, **common)
     save_image(job.path(plan.files.jacobian), maps.jacobian, affine, **common)
     save_image(job.path(plan.files.fold_mask), maps.fold, affine, dtype=np.uint8, **common)
-    displacement = displacement_field_mm(maps.shift_vox, maps.pe_axis, affine)
+    displacement = displacement_field_mm(maps.shift_vox, maps.pe_axis, affine, s.displacement_frame)
     save_image(job.path(plan.files.displacement_mm), displacement[:, :, :, None, :], affine,
-               intent=NIFTI_INTENT_DISPVECT, **common)
+               intent=NIFTI_INTENT_DISPVECT, **common,
+               sidecar_extra={"Units": "mm", "DisplacementConvention": _DISPLACEMENT_WORDS[s.displacement_frame]})
     summary = dataclasses.replace(_summary(plan, b0, mask_path, s, n_volumes), b0_units=b0_units,
                                   field_placement=plan.placement.how, alignment=plan.placement.alignment,
                                   motion=motion)
@@ -350,8 +365,7 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
         signal_max_abs_shift_vox=plan.shift_check.max_abs_shift_vox,
         signal_p99_abs_shift_vox=plan.shift_check.robust_abs_shift_vox, large_shifts=plan.shift_check.large,
         voxel_size_mm=[float(v) for v in voxel_sizes_mm(affine)],
-        displacement_convention="world mm (NIfTI RAS+), from each corrected voxel to where its signal lies in the "
-                                "distorted run",
+        displacement_convention=_DISPLACEMENT_WORDS[s.displacement_frame],
         folded_voxel_rule=f"voxels with Jacobian <= {floor:g} are flagged in the fold mask and weighted by {floor:g} "
                           "instead of the Jacobian; their intensity is not reliable",
         outputs=plan.files)
