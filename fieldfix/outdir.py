@@ -70,6 +70,8 @@ __all__ = [
     "remove_leftovers",
     "sha256_file",
     "check_name_prefix",
+    "host_label",
+    "process_alive",
 ]
 
 #: Hidden folder, inside each output folder, that holds the ledger and the key.
@@ -110,8 +112,11 @@ def check_name_prefix(prefix: str, parameter: str = "prefix") -> str:
     return text
 
 
-def _host() -> str:
+def host_label() -> str:
+    """This host's name as fieldfix writes it in temporary names (letters, digits, ``_`` and ``.``)."""
     return re.sub(r"[^A-Za-z0-9_.]", "_", socket.gethostname())[:40] or "host"
+
+
 
 
 class OutputFolder:
@@ -519,7 +524,7 @@ def output_transaction():
 
 
 def _temporary_name(path: Path, suffix: str) -> str:
-    return f".{path.name}.{_host()}-{os.getpid()}.{secrets.token_hex(4)}.{suffix}"
+    return f".{path.name}.{host_label()}-{os.getpid()}.{secrets.token_hex(4)}.{suffix}"
 
 
 def put_in_place(temporary: Path, path: Path, sha256: str | None = None) -> None:
@@ -664,12 +669,12 @@ def remove_leftovers(root: str | os.PathLike) -> list[str]:
     """
     folder = OutputFolder(root)
     removed = []
-    host = _host()
+    host = host_label()
     for directory, subfolders, files in os.walk(folder.root):
         subfolders[:] = [s for s in subfolders if s != STATE_DIR and not s.startswith(".fieldfix-work")]
         for name in files:
             match = _TEMP_PATTERN.match(name)
-            if match is None or match["host"] != host or _alive(int(match["pid"])):
+            if match is None or match["host"] != host or process_alive(int(match["pid"])):
                 continue
             full = Path(directory) / name
             if full.is_symlink() or not full.is_file():
@@ -680,7 +685,8 @@ def remove_leftovers(root: str | os.PathLike) -> list[str]:
     return removed
 
 
-def _alive(pid: int) -> bool:
+def process_alive(pid: int) -> bool:
+    """Whether a process with this id runs on this host (one we may not signal counts as running)."""
     if pid == os.getpid():
         return True
     try:

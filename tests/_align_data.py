@@ -135,3 +135,24 @@ def smooth_field(points_mm) -> np.ndarray:
     """Its field (Hz): a frontal off-resonance bump and a gentle gradient along y."""
     x, y, z = points_mm[..., 0], points_mm[..., 1], points_mm[..., 2]
     return 120.0 * np.exp(-((x / 25.0) ** 2 + ((y - 55.0) / 20.0) ** 2 + ((z + 30.0) / 20.0) ** 2)) + 0.15 * y
+
+
+#: The acceptance case: run and field-map grids, and the head's move between them (pitched 3 deg,
+#: 4 mm anterior, 3 mm superior).
+MOVED_RUN = ((64, 64, 40), 3.5, (0.0, -5.0, 10.0))
+MOVED_FIELDMAP = ((56, 60, 44), 3.8, (2.0, 0.0, 5.0))
+MOVE_MM, MOVE_DEG = (0.0, 4.0, 3.0), (3.0, 0.0, 0.0)
+
+
+def moved_head_scan(echo_spacing_s: float = 5e-4) -> dict:
+    """The acceptance case: EPI of the moved head (and without distortion), the field map where it was."""
+    run_affine = grid_affine(*MOVED_RUN)
+    fm_affine = grid_affine(*MOVED_FIELDMAP)
+    shape = MOVED_RUN[0]
+    centre = run_affine[:3, :3] @ ((np.array(shape) - 1) / 2) + run_affine[:3, 3]
+    move = pose(MOVE_MM, MOVE_DEG, centre)
+    run = acquire_epi(shape, run_affine, move, echo_spacing_s=echo_spacing_s, noise_sd=0.005)
+    still = acquire_epi(shape, run_affine, move, echo_spacing_s=1e-7)  # no distortion
+    magnitude, b0_hz = fieldmap(MOVED_FIELDMAP[0], fm_affine)
+    return dict(run=run, still=still, magnitude=magnitude, b0_hz=b0_hz, fm_affine=fm_affine, run_affine=run_affine,
+                pose=move)

@@ -29,7 +29,8 @@ from test_batch import fake_workflows  # noqa: E402,F401  (fixture)
 
 from fieldfix import batch  # noqa: E402
 from fieldfix.batch.fieldmaps import check_declared_phase_units  # noqa: E402
-from fieldfix.batch.lock import LOCK_NAME, host_label  # noqa: E402
+from fieldfix.batch.lock import LOCK_NAME  # noqa: E402
+from fieldfix.outdir import host_label  # noqa: E402
 from fieldfix.errors import UnitError  # noqa: E402
 from fieldfix_cli.main import main  # noqa: E402
 

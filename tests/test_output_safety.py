@@ -125,14 +125,14 @@ def test_leftovers_of_dead_processes_are_removed_and_nothing_else(tmp_path):
     import subprocess
     import sys
 
-    from fieldfix.outdir import _host
+    from fieldfix.outdir import host_label
 
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
                           text=True).stdout.strip()
     (tmp_path / "sub").mkdir()
-    leftover = tmp_path / "sub" / f".run.nii.gz.{_host()}-{dead}.abcd1234.part.nii.gz"
+    leftover = tmp_path / "sub" / f".run.nii.gz.{host_label()}-{dead}.abcd1234.part.nii.gz"
     leftover.write_bytes(b"half")
-    alive = tmp_path / f".run.nii.gz.{_host()}-{os.getpid()}.abcd1234.part.nii.gz"
+    alive = tmp_path / f".run.nii.gz.{host_label()}-{os.getpid()}.abcd1234.part.nii.gz"
     alive.write_bytes(b"being written")
     users = tmp_path / ".run.nii.gz.part"
     users.write_bytes(b"a user's hidden file")

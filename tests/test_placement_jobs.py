@@ -23,30 +23,31 @@ from fieldfix.shift import shift_vox_from_field
 from fieldfix.unwarp import unwarp_volume
 from fieldfix_cli.main import main
 
-RUN_SHAPE, RUN_VOXEL, RUN_CENTRE = (64, 64, 40), 3.5, (0.0, -5.0, 10.0)
-FM_SHAPE, FM_VOXEL, FM_CENTRE = (56, 60, 44), 3.8, (2.0, 0.0, 5.0)
-ESP = 5e-4
-MOVE_MM, MOVE_DEG = (0.0, 4.0, 3.0), (3.0, 0.0, 0.0)
+RUN_SHAPE, ESP = data.MOVED_RUN[0], 5e-4
+MOVE_MM, MOVE_DEG = data.MOVE_MM, data.MOVE_DEG
 
 
 @pytest.fixture(scope="module")
 def scan(tmp_path_factory):
     folder = tmp_path_factory.mktemp("moved")
-    run_affine = data.grid_affine(RUN_SHAPE, RUN_VOXEL, RUN_CENTRE)
-    fm_affine = data.grid_affine(FM_SHAPE, FM_VOXEL, FM_CENTRE)
-    centre = run_affine[:3, :3] @ ((np.array(RUN_SHAPE) - 1) / 2) + run_affine[:3, 3]
-    pose = data.pose(MOVE_MM, MOVE_DEG, centre)
-    run = data.acquire_epi(RUN_SHAPE, run_affine, pose, echo_spacing_s=ESP, noise_sd=0.005)
-    still = data.acquire_epi(RUN_SHAPE, run_affine, pose, echo_spacing_s=1e-7)  # no distortion
-    magnitude, b0_hz = data.fieldmap(FM_SHAPE, fm_affine)
+    scan = data.moved_head_scan(ESP)
+    run, run_affine, fm_affine = scan["run"], scan["run_affine"], scan["fm_affine"]
+    magnitude, b0_hz = scan["magnitude"], scan["b0_hz"]
     nib.save(nib.Nifti1Image(np.stack([run.epi, run.epi], -1).astype(np.float32), run_affine),
              folder / "sub-01_task-rest_bold.nii.gz")
     (folder / "sub-01_task-rest_bold.json").write_text(json.dumps(
         {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": ESP, "RepetitionTime": 2.0}))
     nib.save(nib.Nifti1Image(b0_hz.astype(np.float32), fm_affine), folder / "map_hz.nii.gz")
     nib.save(nib.Nifti1Image(magnitude.astype(np.float32), fm_affine), folder / "map_magnitude.nii.gz")
-    return dict(folder=folder, run=run, still=still, b0_hz=b0_hz, fm_affine=fm_affine, run_affine=run_affine,
-                pose=pose)
+    return dict(scan, folder=folder)
+
+
+def _fieldmap_folder(folder):
+    """The field-map folder as `fieldfix fieldmap` leaves it (a ready map in Hz with its magnitude), made once."""
+    if not (folder / "fmap" / "b0_hz.nii.gz").exists():
+        assert main(["fieldmap", "--b0", str(folder / "map_hz.nii.gz"), "--b0-units", "hz", "--magnitude",
+                     str(folder / "map_magnitude.nii.gz"), "--smooth", "0mm", "--out", str(folder / "fmap"),
+                     "--quiet"]) == 0
 
 
 def _ratio(scan, corrected):
@@ -66,9 +67,7 @@ def _placed(scan, matrix):
 @pytest.mark.slow
 def test_plain_unwarp_puts_the_field_where_the_head_is(scan):
     folder = scan["folder"]
-    assert main(["fieldmap", "--b0", str(folder / "map_hz.nii.gz"), "--b0-units", "hz", "--magnitude",
-                 str(folder / "map_magnitude.nii.gz"), "--smooth", "0mm", "--out", str(folder / "fmap"),
-                 "--quiet"]) == 0
+    _fieldmap_folder(folder)
     assert main(["unwarp", str(folder / "sub-01_task-rest_bold.nii.gz"), "--b0", str(folder / "fmap" / "b0_hz.nii.gz"),
                  "--out", str(folder / "out"), "--no-report", "--quiet"]) == 0
     corrected = nib.load(folder / "out" / "sub-01_task-rest_bold_corrected.nii.gz").get_fdata()[..., 0]
@@ -90,10 +89,7 @@ def test_plain_unwarp_puts_the_field_where_the_head_is(scan):
 @pytest.mark.slow
 def test_alignment_off_uses_the_scanner_coordinates_and_says_so(scan):
     folder = scan["folder"]
-    if not (folder / "fmap" / "b0_hz.nii.gz").exists():
-        assert main(["fieldmap", "--b0", str(folder / "map_hz.nii.gz"), "--b0-units", "hz", "--magnitude",
-                     str(folder / "map_magnitude.nii.gz"), "--smooth", "0mm", "--out", str(folder / "fmap"),
-                     "--quiet"]) == 0
+    _fieldmap_folder(folder)
     assert main(["unwarp", str(folder / "sub-01_task-rest_bold.nii.gz"), "--b0", str(folder / "fmap" / "b0_hz.nii.gz"),
                  "--no-align", "--out", str(folder / "plain"), "--no-report", "--quiet"]) == 0
     summary = json.loads((folder / "plain" / "sub-01_task-rest_bold_unwarp.json").read_text())
@@ -114,10 +110,7 @@ def test_motion_through_the_run_is_followed_and_tabled(tmp_path, scan):
     run.with_name("sub-01_task-moving_bold.json").write_text(json.dumps(
         {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": ESP, "RepetitionTime": 2.0}))
     folder = scan["folder"]
-    if not (folder / "fmap" / "b0_hz.nii.gz").exists():
-        assert main(["fieldmap", "--b0", str(folder / "map_hz.nii.gz"), "--b0-units", "hz", "--magnitude",
-                     str(folder / "map_magnitude.nii.gz"), "--smooth", "0mm", "--out", str(folder / "fmap"),
-                     "--quiet"]) == 0
+    _fieldmap_folder(folder)
     assert main(["unwarp", str(run), "--b0", str(folder / "fmap" / "b0_hz.nii.gz"), "--motion", "--out",
                  str(tmp_path / "out"), "--no-report", "--quiet"]) == 0
     table = (tmp_path / "out" / "sub-01_task-moving_bold_motion.tsv").read_text().splitlines()
@@ -143,10 +136,7 @@ def test_motion_through_the_run_is_followed_and_tabled(tmp_path, scan):
 def test_dropout_maps_on_the_run_grid_follow_the_head(scan):
     """dropout --like: the maps resampled onto the EPI grid are placed on the run's anatomy."""
     folder = scan["folder"]
-    if not (folder / "fmap" / "b0_hz.nii.gz").exists():
-        assert main(["fieldmap", "--b0", str(folder / "map_hz.nii.gz"), "--b0-units", "hz", "--magnitude",
-                     str(folder / "map_magnitude.nii.gz"), "--smooth", "0mm", "--out", str(folder / "fmap"),
-                     "--quiet"]) == 0
+    _fieldmap_folder(folder)
     assert main(["dropout", "--b0", str(folder / "fmap" / "b0_hz.nii.gz"), "--te", "30ms", "--thickness", "3.5mm",
                  "--like", str(folder / "sub-01_task-rest_bold.nii.gz"), "--out", str(folder / "drop"),
                  "--quiet"]) == 0

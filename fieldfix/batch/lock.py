@@ -25,33 +25,15 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import FieldfixError, OutputError
-from ..outdir import OutputFolder, remove_leftovers, remove_output
+from ..outdir import OutputFolder, host_label, process_alive, remove_leftovers, remove_output
 from ..records import Record
 
-__all__ = ["LOCK_NAME", "LockHolder", "BatchLock", "host_label", "process_alive", "clear_folder",
+__all__ = ["LOCK_NAME", "LockHolder", "BatchLock", "clear_folder",
            "clean_leftovers"]
 
 LOCK_NAME = ".fieldfix-batch.lock"
 #: Staging folder names: ``<task id, letters digits _ ->.<host>-<pid>.<random hex>`` (``-in``: the report's).
 _STAGING = re.compile(r"^[A-Za-z0-9_-]+\.(?P<host>[A-Za-z0-9_.]+)-(?P<pid>\d+)\.[0-9a-f]+(?:-in)?$")
-
-
-def host_label() -> str:
-    """This host's name as fieldfix writes it in temporary names (letters, digits, ``_`` and ``.``)."""
-    return re.sub(r"[^A-Za-z0-9_.]", "_", socket.gethostname())[:40] or "host"
-
-
-def process_alive(pid: int) -> bool:
-    """Whether a process with this id runs on this host (one we may not signal counts as running)."""
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 @dataclass(frozen=True)

@@ -34,7 +34,8 @@ from ..outdir import active_folder, adopt_output, output_folder, remove_output
 from ..outdir import written_by_fieldfix
 from ..records import Record
 from .derivatives import derivative_names, image_sidecar
-from .lock import clear_folder, host_label
+from ..outdir import host_label
+from .lock import clear_folder
 from .plan import TASK_FORMAT, Task, TaskResult, task_hash
 from .runners import RUNNERS
 

@@ -21,6 +21,7 @@ from ..errors import FieldfixError, GeometryError
 from ..geometry import resample_to_grid, same_grid
 from ..io import Image, load_image
 from ..outputs import AlignmentRecord
+from ._run_checks import find_beside_b0
 
 __all__ = ["Placement", "place_field", "alignment", "read_magnitude_on_map", "find_b0_magnitude", "ALIGN_METHOD"]
 
@@ -43,15 +44,7 @@ class Placement:
 
 def find_b0_magnitude(b0_path: Path, given) -> Path | None:
     """The given magnitude, else ``<tag>b0_magnitude.nii.gz`` beside a ``<tag>b0_hz.nii.gz``, else None."""
-    if given is not None:
-        return Path(given)
-    name = b0_path.name
-    for suffix in ("b0_hz.nii.gz", "b0_hz.nii"):
-        if name.endswith(suffix):
-            candidate = b0_path.with_name(name[: -len(suffix)] + "b0_magnitude" + suffix[len("b0_hz"):])
-            if candidate.is_file():
-                return candidate
-    return None
+    return find_beside_b0(b0_path, given, "b0_magnitude")
 
 
 def read_magnitude_on_map(path: Path | None, b0: Image) -> np.ndarray | None:

@@ -17,7 +17,7 @@ from ..geometry import parse_pe_code
 from ..io import Image, sidecar_path
 
 __all__ = ["resolve_pe_code", "check_recon_matrix", "finite_volume", "check_shift_size", "signal_mask",
-           "ShiftCheck", "b0_values", "find_b0_mask", "MAX_SHIFT_FOV_FRACTION", "LARGE_SHIFT_FOV_FRACTION"]
+           "ShiftCheck", "find_b0_mask", "find_beside_b0", "MAX_SHIFT_FOV_FRACTION", "LARGE_SHIFT_FOV_FRACTION"]
 
 #: The guard against unit and timing mistakes: a run is refused (unless forced) when the 99th
 #: percentile of |shift| over the voxels where it has signal exceeds this fraction of the field of
@@ -58,26 +58,23 @@ def resolve_pe_code(pe_code: str | None, image: Image, timing_win: str | None) -
                         "(timing_win)", image.path)
 
 
-def b0_values(b0: Image) -> np.ndarray:
-    """The B0 map's values, refused when not finite everywhere."""
-    values = b0.get_fdata(np.float64)
-    if not np.all(np.isfinite(values)):
-        raise InputError("the B0 map contains NaN or infinite values; it must be defined (extended) everywhere",
-                         b0.path)
-    return values
+def find_beside_b0(b0_path: Path, given, role: str) -> Path | None:
+    """The given file, else ``<tag><role>.nii[.gz]`` beside a ``<tag>b0_hz.nii[.gz]`` (as the field-map
+    job names its outputs), else None."""
+    if given is not None:
+        return Path(given)
+    name = b0_path.name
+    for suffix in ("b0_hz.nii.gz", "b0_hz.nii"):
+        if name.endswith(suffix):
+            candidate = b0_path.with_name(name[: -len(suffix)] + role + suffix[len("b0_hz"):])
+            if candidate.is_file():
+                return candidate
+    return None
 
 
 def find_b0_mask(b0_path: Path, b0_mask_path) -> Path | None:
     """The given mask, else ``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz``, else None."""
-    if b0_mask_path is not None:
-        return Path(b0_mask_path)
-    name = b0_path.name
-    for suffix in ("b0_hz.nii.gz", "b0_hz.nii"):
-        if name.endswith(suffix):
-            candidate = b0_path.with_name(name[: -len(suffix)] + "b0_mask" + suffix[len("b0_hz"):])
-            if candidate.is_file():
-                return candidate
-    return None
+    return find_beside_b0(b0_path, b0_mask_path, "b0_mask")
 
 
 def check_recon_matrix(image: Image, n_lines: int) -> None:
