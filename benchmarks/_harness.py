@@ -112,3 +112,16 @@ def compare(name: str, ours: Callable, baseline: Callable, *, baseline_name: str
         record.update(extra)
     record["_results"] = (our_result, base_result)
     return record
+
+
+def main(run: Callable, doc: str | None, quick_help: str) -> None:
+    """Command line of one benchmark module: ``--quick`` (`quick_help`), each record printed.
+
+    Records' private entries (keys starting with ``_``, e.g. raw results) are left out.
+    """
+    import argparse
+
+    parser = argparse.ArgumentParser(description=doc, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--quick", action="store_true", help=quick_help)
+    for record in run(parser.parse_args().quick):
+        print({key: value for key, value in record.items() if not key.startswith("_")})

@@ -36,6 +36,8 @@ from pathlib import Path
 
 import numpy as np
 
+from _harness import main
+
 TES_S = (3.0e-3, 4.0e-3)
 TWO_PI = 2.0 * np.pi
 
@@ -185,9 +187,4 @@ def run(quick: bool) -> list[dict]:
 
 
 if __name__ == "__main__":
-    import argparse
-
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--quick", action="store_true", help="96x96x60 instead of 192x192x120")
-    for rec in run(parser.parse_args().quick):
-        print(rec)
+    main(run, __doc__, "96x96x60 instead of 192x192x120")

@@ -31,7 +31,7 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-from _harness import compare, timed  # noqa: E402
+from _harness import compare, timed, main  # noqa: E402
 
 SHAPE = (96, 96, 60)
 PE_AXIS = 1
@@ -163,10 +163,4 @@ def run(quick: bool) -> list[dict]:
 
 
 if __name__ == "__main__":
-    import argparse
-
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--quick", action="store_true", help="fewer volumes")
-    for rec in run(parser.parse_args().quick):
-        rec.pop("_results", None)
-        print(rec)
+    main(run, __doc__, "fewer volumes")

@@ -41,6 +41,8 @@ from pathlib import Path
 
 import numpy as np
 
+from _harness import main
+
 SHAPE = (104, 104, 72)
 ECHO_SPACING_S = 0.0005
 ROUNDS = 1
@@ -252,9 +254,4 @@ def run(quick: bool) -> list[dict]:
 
 
 if __name__ == "__main__":
-    import argparse
-
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--quick", action="store_true", help="30 volumes")
-    for rec in run(parser.parse_args().quick):
-        print(rec)
+    main(run, __doc__, "30 volumes")

@@ -12,7 +12,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import importlib
-import json
 import logging
 import signal
 import sys

@@ -8,6 +8,27 @@ import sys
 HELP = "unwarp EPI runs along the phase-encode axis with a B0 map (Hz), with Jacobian intensity correction"
 
 
+#: On/off options of unwarp beyond the basic ones, with their help.
+SWITCHES = (
+    ("--no-align",
+      "place the field map through the scanner coordinates alone (by default its magnitude is aligned "
+      "to each run's first volume, distortion in the loop, so a head that moved between the scans gets "
+      "the field where it is)"),
+    ("--motion",
+      "also follow head motion through each run: per-volume rigid poses, the field moving with the "
+      "head, motion and distortion undone in one interpolation; writes <stem>_motion.tsv (six columns "
+      "and framewise displacement)"),
+    ("--combine-polarities",
+      "with two runs of opposite phase-encode polarity (blip up / blip down), also write one run "
+      "restored jointly from both (<first stem>_combined.nii.gz), which recovers compressed regions a "
+      "single polarity cannot"),
+    ("--force",
+      "correct even when shifts over the run's signal exceed half the field of view along the phase-"
+      "encode axis, which almost always means a unit or timing mistake (large but plausible shifts are "
+      "corrected with a warning)"),
+)
+
+
 def configure(parser: argparse.ArgumentParser) -> None:
     from .main import plausible
 
@@ -36,25 +57,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--b0-magnitude", metavar="MAG", default=None,
                         help="the field map's magnitude, for aligning the map to each run (default: b0_magnitude "
                              "beside the B0 map, as fieldfix fieldmap writes it)")
-    parser.add_argument("--no-align", action="store_true",
-                        help="place the field map through the scanner coordinates alone (by default its magnitude "
-                             "is aligned to each run's first volume, distortion in the loop, so a head that moved "
-                             "between the scans gets the field where it is)")
-    parser.add_argument("--motion", action="store_true",
-                        help="also follow head motion through each run: per-volume rigid poses, the field moving "
-                             "with the head, motion and distortion undone in one interpolation; writes "
-                             "<stem>_motion.tsv (six columns and framewise displacement)")
+    for flag, text in SWITCHES:
+        parser.add_argument(flag, action="store_true", help=text)
     parser.add_argument("--displacement-frame", choices=("ras", "lps"), default="ras",
                         help="world frame of the displacement field's vectors: ras (NIfTI, default) or lps (the "
                              "physical space most registration toolkits expect; x and y negated)")
-    parser.add_argument("--combine-polarities", action="store_true",
-                        help="with two runs of opposite phase-encode polarity (blip up / blip down), also write one "
-                             "run restored jointly from both (<first stem>_combined.nii.gz), which recovers "
-                             "compressed regions a single polarity cannot")
-    parser.add_argument("--force", action="store_true",
-                        help="correct even when shifts over the run's signal exceed half the field of view along "
-                             "the phase-encode axis, which almost always means a unit or timing mistake (large but "
-                             "plausible shifts are corrected with a warning)")
     from .main import add_tag_option
 
     add_tag_option(parser)

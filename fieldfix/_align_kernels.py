@@ -130,7 +130,7 @@ def _sample_pair_serial(mag, field, vmap, u, f, gu, gf):  # pragma: no cover - c
 PARALLEL_VOXELS = 1 << 18
 
 
-def _use_parallel(parallel, size) -> bool:
+def use_parallel(parallel, size) -> bool:
     return bool(size >= PARALLEL_VOXELS) if parallel is None else bool(parallel)
 
 
@@ -152,7 +152,7 @@ def sample_pair(mag, field, vmap, shape, parallel=None):
     shape = tuple(int(n) for n in shape)
     u, f = np.empty(shape), np.empty(shape)
     gu, gf = np.empty(shape + (3,)), np.empty(shape + (3,))
-    kernel = _sample_pair_parallel if _use_parallel(parallel, u.size) else _sample_pair_serial
+    kernel = _sample_pair_parallel if use_parallel(parallel, u.size) else _sample_pair_serial
     kernel(mag, field, np.ascontiguousarray(vmap, np.float64), u, f, gu, gf)
     return u, f, gu, gf
 
@@ -252,7 +252,7 @@ def distort_lines(values, shift, parallel=None):
     if values.shape != shift.shape or values.ndim != 2 or values.shape[1] < 2:
         raise ValueError(f"values {values.shape} and shift {shift.shape} must be (lines, n >= 2)")
     out = np.empty(values.shape)
-    kernel = _distort_lines_parallel if _use_parallel(parallel, values.size) else _distort_lines_serial
+    kernel = _distort_lines_parallel if use_parallel(parallel, values.size) else _distort_lines_serial
     kernel(values, shift, out)
     return out
 
@@ -357,7 +357,7 @@ def distort_adjoint(values, shift, g, parallel=None):
     if not values.shape == shift.shape == g.shape or values.ndim != 2 or values.shape[1] < 2:
         raise ValueError("values, shift and g must be (lines, n >= 2) arrays of one shape")
     a, b = np.empty(values.shape), np.empty(values.shape)
-    kernel = _distort_adjoint_parallel if _use_parallel(parallel, values.size) else _distort_adjoint_serial
+    kernel = _distort_adjoint_parallel if use_parallel(parallel, values.size) else _distort_adjoint_serial
     kernel(values, shift, g, a, b)
     return a, b
 
@@ -439,7 +439,7 @@ def pose_sums(a, b, gu, gf, kappa, world, origin, parallel=None):
     """
     a = np.ascontiguousarray(a, np.float64)
     partial = np.empty((a.shape[0], 12))
-    kernel = _pose_sums_parallel if _use_parallel(parallel, a.size) else _pose_sums_serial
+    kernel = _pose_sums_parallel if use_parallel(parallel, a.size) else _pose_sums_serial
     kernel(a, np.ascontiguousarray(b, np.float64), np.ascontiguousarray(gu, np.float64),
                np.ascontiguousarray(gf, np.float64), float(kappa), np.ascontiguousarray(world, np.float64),
                np.ascontiguousarray(origin, np.float64), partial)

@@ -14,7 +14,7 @@ import io
 import os
 import zlib
 
-from .errors import InputError
+from .errors import check_choice
 
 try:  # ISA-L's deflate: the same gzip format, several times faster than zlib both ways
     from isal import igzip as _IGZIP
@@ -34,9 +34,7 @@ GZIP_EFFORTS = {"fast": (1, 1), "small": (3, 9)}
 
 
 def check_effort(gzip_effort: str) -> None:
-    if gzip_effort not in GZIP_EFFORTS:
-        raise InputError(f"unknown gzip effort {gzip_effort!r}; choose one of {', '.join(GZIP_EFFORTS)}",
-                         parameter="gzip_effort")
+    check_choice("gzip_effort", gzip_effort, GZIP_EFFORTS)
 
 
 def gzip_writer(raw, gzip_effort: str):

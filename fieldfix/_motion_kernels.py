@@ -31,7 +31,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from ._align_kernels import _use_parallel
+from ._align_kernels import use_parallel
+from ._unwarp_kernels import mirror_index
 
 __all__ = ["prefilter_cubic", "prefilter_cubic_reference", "pad_mirror", "resample_rigid_shift",
            "resample_rigid_shift_reference",
@@ -121,7 +122,7 @@ def prefilter_cubic(volume, parallel=None):
     c = np.array(volume, dtype=np.float64, order="C", copy=True)
     if c.ndim != 3:
         raise ValueError(f"prefilter_cubic needs a 3D volume, got {c.ndim} dimensions")
-    (_prefilter_parallel if _use_parallel(parallel, c.size) else _prefilter_serial)(c)
+    (_prefilter_parallel if use_parallel(parallel, c.size) else _prefilter_serial)(c)
     return c
 
 
@@ -155,29 +156,16 @@ def prefilter_cubic_reference(volume):
 _PAD = 2
 
 
-@njit(cache=True, inline="always")
-def _mirror_index(m, n):  # pragma: no cover - compiled
-    if n == 1:
-        return 0
-    period = 2 * (n - 1)
-    m = m % period
-    if m < 0:
-        m += period
-    if m >= n:
-        m = period - m
-    return m
-
-
 @njit(cache=True)
 def _pad_small(coef, out):  # pragma: no cover - compiled
     """Mirror padding for any axis length (several reflections on axes shorter than the pad)."""
     nx, ny, nz = coef.shape
     for i in range(nx + 2 * _PAD):
-        si = _mirror_index(i - _PAD, nx)
+        si = mirror_index(i - _PAD, nx)
         for j in range(ny + 2 * _PAD):
-            sj = _mirror_index(j - _PAD, ny)
+            sj = mirror_index(j - _PAD, ny)
             for k in range(nz + 2 * _PAD):
-                out[i, j, k] = coef[si, sj, _mirror_index(k - _PAD, nz)]
+                out[i, j, k] = coef[si, sj, mirror_index(k - _PAD, nz)]
 
 
 def pad_mirror(coef) -> np.ndarray:
@@ -308,7 +296,7 @@ def resample_rigid_shift(coef, vmap, shift, gradient, column, floor, pe_axis, ou
     coef = np.asarray(coef, np.float64)
     pe = np.zeros(3)
     pe[int(pe_axis)] = 1.0
-    kernel = _resample_parallel if _use_parallel(parallel, shift.size) else _resample_serial
+    kernel = _resample_parallel if use_parallel(parallel, shift.size) else _resample_serial
     kernel(pad_mirror(coef), tuple(int(n) for n in coef.shape), np.ascontiguousarray(vmap, np.float64), shift,
            gradient, np.ascontiguousarray(column, np.float64), float(floor), pe, out)
     return out

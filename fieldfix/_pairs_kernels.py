@@ -33,6 +33,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._unwarp_kernels import mirror_index as _mirror
+
 __all__ = [
     "warp_lines", "warp_lines_reference",
     "accumulate_gradient", "accumulate_gradient_reference",
@@ -40,18 +42,6 @@ __all__ = [
     "restore_lines", "restore_lines_reference", "forward_matrix", "forward_matrix_reference",
     "keys_reference", "bspline3_reference", "line_map_reference", "KEYS_RADIUS",
 ]
-
-
-
-@njit(cache=True, inline="always")
-def _mirror(index, n):  # pragma: no cover - compiled
-    if n == 1:
-        return 0
-    period = 2 * (n - 1)
-    index = abs(index) % period
-    if index >= n:
-        index = period - index
-    return index
 
 
 @njit(cache=True, parallel=True)

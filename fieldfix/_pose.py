@@ -28,6 +28,7 @@ import numpy as np
 from scipy import ndimage, optimize
 
 from . import _align_kernels as kernels
+from .errors import GeometryError, InputError
 
 #: Rotations are optimised as arc lengths on this radius (mm), so one unit of every parameter
 #: moves the head by about a millimetre (the radius of Power et al. 2012's framewise displacement).
@@ -440,3 +441,31 @@ def gauss_newton(normal, start: RigidState, rule: StopRule, damping: float = 1e-
         else:
             lam *= 10.0
     return GaussNewtonResult(state, cost, cost_start, passes, False)
+
+
+def checked_volume(array, name: str) -> np.ndarray:
+    """`array` as a float64 3D volume, refused (naming `name`) unless finite and at least 2 voxels wide."""
+    values = np.asarray(array, dtype=np.float64)
+    if values.ndim != 3:
+        raise InputError(f"{name} must be a 3D volume, got {values.ndim} dimensions")
+    if min(values.shape) < 2:
+        raise InputError(f"{name} needs at least 2 voxels along every axis, got shape {values.shape}")
+    if not np.isfinite(values).all():
+        raise InputError(f"{name} contains NaN or infinite values")
+    return values
+
+
+def checked_affine(affine, name: str) -> np.ndarray:
+    """`affine` as a float64 4x4 matrix, refused (naming `name`) unless finite and invertible."""
+    affine = np.asarray(affine, dtype=np.float64)
+    if affine.shape != (4, 4) or not np.isfinite(affine).all() or abs(np.linalg.det(affine[:3, :3])) < 1e-9:
+        raise GeometryError(f"{name} must be a finite, invertible 4x4 voxel-to-world matrix")
+    return affine
+
+
+def require_anatomy(values: np.ndarray, name: str) -> None:
+    """Refuse an all-zero or constant volume: there is nothing to register."""
+    if not np.any(values != 0):
+        raise InputError(f"{name} is all zeros: there is no anatomy to align")
+    if float(values.max() - values.min()) <= 1e-12 * max(abs(float(values.max())), 1.0):
+        raise InputError(f"{name} is constant: there are no edges to align")

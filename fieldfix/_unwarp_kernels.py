@@ -174,7 +174,7 @@ _U4 = np.uint64(4)
 
 
 @njit(cache=True, inline="always")
-def _mirror_index(virtual, n):  # pragma: no cover - compiled
+def mirror_index(virtual, n):  # pragma: no cover - compiled
     """Coefficient index that mirror reflection gives for `virtual` (0 <= result < n)."""
     if n == 1:
         return 0
@@ -239,7 +239,7 @@ def _prefilter_rows(buf, n, width):  # pragma: no cover - compiled
                 buf[row + u] = z * (buf[nxt + u] - buf[row + u])
     for row, virtual in ((0, -1), (n + 1, n), (n + 2, n + 1)):
         dst = np.uint64(row) * w
-        src = np.uint64(_mirror_index(virtual, n) + 1) * w
+        src = np.uint64(mirror_index(virtual, n) + 1) * w
         for t in range(width):
             u = np.uint64(t)
             buf[dst + u] = buf[src + u]

@@ -213,31 +213,6 @@ def normalised_mutual_information(a: np.ndarray, b: np.ndarray, bins: int = 32) 
 # Checks
 # ---------------------------------------------------------------------------------------------
 
-def _volume(array, name: str) -> np.ndarray:
-    values = np.asarray(array, dtype=np.float64)
-    if values.ndim != 3:
-        raise InputError(f"{name} must be a 3D volume, got {values.ndim} dimensions")
-    if min(values.shape) < 2:
-        raise InputError(f"{name} needs at least 2 voxels along every axis, got shape {values.shape}")
-    if not np.isfinite(values).all():
-        raise InputError(f"{name} contains NaN or infinite values")
-    return values
-
-
-def _affine(affine, name: str) -> np.ndarray:
-    affine = np.asarray(affine, dtype=np.float64)
-    if affine.shape != (4, 4) or not np.isfinite(affine).all() or abs(np.linalg.det(affine[:3, :3])) < 1e-9:
-        raise GeometryError(f"{name} must be a finite, invertible 4x4 voxel-to-world matrix")
-    return affine
-
-
-def _anatomy(values: np.ndarray, name: str) -> None:
-    if not np.any(values != 0):
-        raise InputError(f"{name} is all zeros: there is no anatomy to align")
-    if float(values.max() - values.min()) <= 1e-12 * max(abs(float(values.max())), 1.0):
-        raise InputError(f"{name} is constant: there are no edges to align")
-
-
 # ---------------------------------------------------------------------------------------------
 # Levels and the alignment
 # ---------------------------------------------------------------------------------------------
@@ -254,15 +229,15 @@ class _Inputs:
 
 
 def _inputs(magnitude, b0_hz, fieldmap_affine, reference, run_affine, readout: Readout) -> _Inputs:
-    magnitude = _volume(magnitude, "magnitude")
-    b0_hz = _volume(b0_hz, "b0_hz")
-    reference = _volume(reference, "reference")
+    magnitude = _pose.checked_volume(magnitude, "magnitude")
+    b0_hz = _pose.checked_volume(b0_hz, "b0_hz")
+    reference = _pose.checked_volume(reference, "reference")
     if magnitude.shape != b0_hz.shape:
         raise GeometryError(f"magnitude {magnitude.shape} and b0_hz {b0_hz.shape} must share the field-map grid")
-    _anatomy(magnitude, "magnitude")
-    _anatomy(reference, "reference")
-    fieldmap_affine = _affine(fieldmap_affine, "fieldmap_affine")
-    run_affine = _affine(run_affine, "run_affine")
+    _pose.require_anatomy(magnitude, "magnitude")
+    _pose.require_anatomy(reference, "reference")
+    fieldmap_affine = _pose.checked_affine(fieldmap_affine, "fieldmap_affine")
+    run_affine = _pose.checked_affine(run_affine, "run_affine")
     axis, _ = parse_pe_code(readout.pe_code)
     kappa = readout.shift_per_hz(reference.shape)
     order = _pose.working_order(axis)
@@ -421,7 +396,7 @@ def align_field_to_run(
     >>> float(moved[4, 4, 4])
     3.0
     """
-    b0_hz = _volume(b0_hz, "b0_hz")
-    matrix = _affine(matrix, "matrix")
-    source_affine = matrix @ _affine(fieldmap_affine, "fieldmap_affine")
-    return resample_to_grid(b0_hz, source_affine, tuple(run_shape), _affine(run_affine, "run_affine"), order=order)
+    b0_hz = _pose.checked_volume(b0_hz, "b0_hz")
+    matrix = _pose.checked_affine(matrix, "matrix")
+    source_affine = matrix @ _pose.checked_affine(fieldmap_affine, "fieldmap_affine")
+    return resample_to_grid(b0_hz, source_affine, tuple(run_shape), _pose.checked_affine(run_affine, "run_affine"), order=order)

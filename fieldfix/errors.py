@@ -16,6 +16,7 @@ from __future__ import annotations
 import os
 
 __all__ = [
+    "check_choice",
     "FieldfixError",
     "InputError",
     "UnitError",
@@ -69,3 +70,20 @@ class GeometryError(InputError):
 
 class OutputError(FieldfixError):
     """An output cannot be written (it would replace an input, exists, or the write failed)."""
+
+
+def check_choice(parameter: str, value, choices, what: str | None = None) -> None:
+    """Refuse `value` unless it is one of `choices`, naming `parameter` and the choices.
+
+    Examples
+    --------
+    >>> check_choice("interp", "cubic", ("linear", "cubic"))
+    >>> check_choice("interp", "sinc", ("linear", "cubic"))
+    Traceback (most recent call last):
+    fieldfix.errors.InputError: interp: unknown interpolation 'sinc'; choose one of linear, cubic
+    """
+    if value not in choices:
+        what = what or parameter.replace("_", " ")
+        names = {"interp": "interpolation"}
+        raise InputError(f"unknown {names.get(what, what)} {value!r}; choose one of {', '.join(map(str, choices))}",
+                         parameter=parameter)

@@ -140,11 +140,16 @@ _FIELD_UNITS = {"hz": "hz", "rad/s": "rad/s", "rads": "rad/s", "rad_per_s": "rad
                 "t": "t", "tesla": "t"}
 
 
-def _field_unit(units: str) -> str:
+def _hz_per_unit(units: str, field_strength_t: float | None, what: str) -> float:
+    """Hz per one of `units` (ppm needs the field strength)."""
     key = _FIELD_UNITS.get(str(units).strip().lower())
     if key is None:
         raise UnitError(f"unknown field-map unit {units!r}; use Hz, rad/s, ppm or T")
-    return key
+    if key == "ppm":
+        if field_strength_t is None or not field_strength_t > 0:
+            raise UnitError(f"{what} needs the field strength (for example 3T)")
+        return 1e-6 * GAMMA_HZ_PER_T * float(field_strength_t)
+    return {"hz": 1.0, "rad/s": 1.0 / TWO_PI, "t": GAMMA_HZ_PER_T}[key]
 
 
 def field_to_hz(values, units: str, *, field_strength_t: float | None = None):
@@ -157,17 +162,8 @@ def field_to_hz(values, units: str, *, field_strength_t: float | None = None):
     >>> round(float(field_to_hz(2 * np.pi * 50.0, "rad/s")), 9)
     50.0
     """
-    unit = _field_unit(units)
-    v = np.asarray(values, dtype=np.float64)
-    if unit == "hz":
-        return v.copy()
-    if unit == "rad/s":
-        return v / TWO_PI
-    if unit == "t":
-        return v * GAMMA_HZ_PER_T
-    if field_strength_t is None or not field_strength_t > 0:
-        raise UnitError("a field map in ppm needs the field strength (for example 3T)")
-    return v * 1e-6 * GAMMA_HZ_PER_T * float(field_strength_t)
+    factor = _hz_per_unit(units, field_strength_t, "a field map in ppm")
+    return np.asarray(values, dtype=np.float64) * factor
 
 
 def hz_to_units(b0_hz, units: str, *, field_strength_t: float | None = None):
@@ -178,17 +174,8 @@ def hz_to_units(b0_hz, units: str, *, field_strength_t: float | None = None):
     >>> round(float(hz_to_units(127.74, "ppm", field_strength_t=3.0)), 3)  # about 1 ppm at 3 T
     1.0
     """
-    unit = _field_unit(units)
-    v = np.asarray(b0_hz, dtype=np.float64)
-    if unit == "hz":
-        return v.copy()
-    if unit == "rad/s":
-        return v * TWO_PI
-    if unit == "t":
-        return v / GAMMA_HZ_PER_T
-    if field_strength_t is None or not field_strength_t > 0:
-        raise UnitError("ppm output needs the field strength (for example 3T)")
-    return v / (GAMMA_HZ_PER_T * float(field_strength_t)) * 1e6
+    factor = _hz_per_unit(units, field_strength_t, "ppm output")
+    return np.asarray(b0_hz, dtype=np.float64) / factor
 
 
 # ------------------------------------------------------------------------------------------

@@ -124,13 +124,16 @@ def read_json(path: str | os.PathLike, *, what: str = "JSON object") -> dict:
 
 def to_jsonable(value: Any) -> Any:
     """Plain JSON values: numpy scalars and arrays as numbers and lists, paths as text,
-    tuples as lists, non-finite floats as None.
+    tuples as lists, non-finite floats as None, typed records (anything with a ``to_json``
+    method) as their JSON.
 
     Examples
     --------
     >>> to_jsonable({"a": np.float32(2.5), "b": float("nan"), "c": np.arange(2)})
     {'a': 2.5, 'b': None, 'c': [0, 1]}
     """
+    if callable(getattr(value, "to_json", None)) and not isinstance(value, type):
+        return value.to_json()
     if isinstance(value, dict):
         return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):

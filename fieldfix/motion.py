@@ -67,11 +67,10 @@ import numpy as np
 from . import _motion_kernels
 from . import _pose
 from ._progress import progress_bar
-from .align import Readout, _affine, _anatomy, _volume
+from .align import Readout
 from .errors import GeometryError, InputError
 from .geometry import parse_pe_code
 from .shift import DEFAULT_JACOBIAN_FLOOR
-from .unwarp import unwarp_volume
 
 __all__ = [
     "MotionOptions",
@@ -321,12 +320,12 @@ def align_motion_model(
     >>> model.shape, model.pe_axis
     ((12, 12, 8), 1)
     """
-    reference = _volume(reference, "reference")
-    b0_hz = _volume(b0_hz, "b0_hz")
+    reference = _pose.checked_volume(reference, "reference")
+    b0_hz = _pose.checked_volume(b0_hz, "b0_hz")
     if b0_hz.shape != reference.shape:
         raise GeometryError(f"b0_hz {b0_hz.shape} must be on the run grid {reference.shape}")
-    _anatomy(reference, "reference")
-    affine = _affine(run_affine, "run_affine")
+    _pose.require_anatomy(reference, "reference")
+    affine = _pose.checked_affine(run_affine, "run_affine")
     axis, _ = parse_pe_code(readout.pe_code)
     kappa = readout.shift_per_hz(reference.shape)
     shift = kappa * b0_hz
@@ -430,7 +429,7 @@ def align_resample_volume(model: MotionModel, volume: np.ndarray, pose: VolumePo
 
 
 def _run_volume(model: MotionModel, volume) -> np.ndarray:
-    volume = _volume(volume, "volume")
+    volume = _pose.checked_volume(volume, "volume")
     if volume.shape != model.shape:
         raise GeometryError(f"volume shape {volume.shape} differs from the run grid {model.shape}")
     return volume

@@ -48,12 +48,11 @@ Examples
 --------
 >>> import numpy as np
 >>> from fieldfix.unwarp import distort_with_field
->>> y = np.arange(48.0)
->>> obj = np.exp(-((y - 24) / 6) ** 2)[None, :, None] * np.ones((12, 48, 12))
->>> up = distort_with_field(obj, np.full(obj.shape, 40.0), "j", 5e-4)
->>> down = distort_with_field(obj, np.full(obj.shape, 40.0), "j-", 5e-4)
->>> enc = [PhaseEncoding("j", 5e-4), PhaseEncoding("j-", 5e-4)]
->>> result = field_from_pairs([up, down], enc, (2.5, 2.5, 2.5))
+>>> profile = np.exp(-((np.arange(48.0) - 24) / 6) ** 2)  # a blob along the PE axis (y)
+>>> obj, field = profile[None, :, None] * np.ones((12, 48, 12)), np.full((12, 48, 12), 40.0)
+>>> enc = [PhaseEncoding("j", 5e-4), PhaseEncoding("j-", 5e-4)]  # blip up, blip down
+>>> images = [distort_with_field(obj, field, e.pe_code, e.echo_spacing_s) for e in enc]
+>>> result = field_from_pairs(images, enc, (2.5, 2.5, 2.5))
 >>> bool(abs(np.median(result.b0_hz[result.mask]) - 40.0) < 2.0)
 True
 """
@@ -72,7 +71,7 @@ from . import _pairs_model as model
 from . import _pairs_rigid as rigid
 from .errors import GeometryError, InputError, MetadataError
 from .geometry import parse_pe_code, voxel_sizes_mm
-from .shift import DEFAULT_JACOBIAN_FLOOR, shift_vox_from_field
+from .shift import DEFAULT_JACOBIAN_FLOOR
 from .unwarp import unwarp_array
 
 __all__ = ["PhaseEncoding", "PairLevel", "PairOptions", "PairFieldResult", "DEFAULT_LEVELS",

@@ -30,7 +30,6 @@ fieldfix.records.SummaryError: unexpected key 'y_mm' in Point
 from __future__ import annotations
 
 import dataclasses
-import math
 import os
 import types
 import typing
@@ -38,6 +37,7 @@ from pathlib import Path
 from typing import Any, ClassVar
 
 from .errors import InputError
+from .jsonfile import to_jsonable
 
 __all__ = ["Record", "SummaryError"]
 
@@ -106,22 +106,6 @@ def _convert(value, tp, where: str):
     raise TypeError(f"unsupported field type {_type_name(tp)} at {where}")
 
 
-def _plain(value):
-    if isinstance(value, Record):
-        return value.to_json()
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, os.PathLike):
-        return os.fspath(value)
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if hasattr(value, "item") and callable(value.item) and not isinstance(value, (str, bytes)):
-        return value.item()  # numpy scalar
-    return value
-
-
 @dataclasses.dataclass(frozen=True)
 class Record:
     """Base of typed records; subclasses are frozen dataclasses.
@@ -135,7 +119,7 @@ class Record:
 
     def to_json(self) -> dict:
         """The record as plain JSON values (nested records included)."""
-        data = {f.name: _plain(getattr(self, f.name)) for f in dataclasses.fields(self)}
+        data = {f.name: to_jsonable(getattr(self, f.name)) for f in dataclasses.fields(self)}
         if self.KIND is not None:
             data = {"kind": self.KIND, "format": self.FORMAT, **data}
         return data

@@ -45,7 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import _unwarp_kernels as kernels
-from .errors import GeometryError, InputError
+from .errors import GeometryError, InputError, check_choice
 from .geometry import parse_pe_code, resample_to_grid
 from .shift import (
     DEFAULT_JACOBIAN_FLOOR,
@@ -249,7 +249,8 @@ def _taps(position: np.ndarray, n: int, interp: str) -> tuple[np.ndarray, np.nda
         weights = np.sinc(x) * np.sinc(x / a)
         weights /= weights.sum(axis=-1, keepdims=True)
         return _mirror(taps, n), weights
-    raise InputError(f"unknown interpolation {interp!r}; choose one of {', '.join(INTERPOLATIONS)}")
+    check_choice("interp", interp, INTERPOLATIONS)
+    raise AssertionError(f"interpolation {interp!r} has no kernel")
 
 
 def interpolate_along_axis(volume: np.ndarray, positions: np.ndarray, axis: int, interp: str = "linear") -> np.ndarray:
@@ -377,8 +378,7 @@ def build_tables(
     shift_vox = np.asarray(shift_vox, float)
     if shift_vox.ndim != 3:
         raise GeometryError(f"the shift map must be 3D, got {shift_vox.ndim} dimensions")
-    if interp not in INTERPOLATIONS:
-        raise InputError(f"unknown interpolation {interp!r}; choose one of {', '.join(INTERPOLATIONS)}")
+    check_choice("interp", interp, INTERPOLATIONS)
     own = np.indices(shift_vox.shape, sparse=True)[pe_axis]
     position = own + shift_vox
     scale = intensity_weight(jacobian_from_shift(shift_vox, pe_axis), jacobian_floor) if jacobian else None

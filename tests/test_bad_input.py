@@ -1,21 +1,23 @@
 """Bad input through the real console script: one clear line, exit status 2, nothing written.
 
-Every refusal case runs ``fieldfix <command> ... --out DIR`` in a subprocess and checks
+Every refusal case runs ``fieldfix <command> ... --out DIR`` (in this process through
+``fieldfix_cli.main.main`` with captured streams and every warning shown; a handful of cases,
+``CONSOLE_CASES``, also through the installed console script) and checks
 
 * exit status 2 and exactly one line on stderr, which names the problem (a regular
   expression per case) and the offending file (or option);
 * nothing written: DIR is absent or empty afterwards;
 * inputs untouched: every input file is byte-identical to before.
 
-The subprocesses of all refusal cases run concurrently (a module fixture) so the matrix
-stays fast on two cores; each case is still its own test. Cases that a subcommand does not
+Each case is its own test. Cases that a subcommand does not
 refuse properly yet are marked ``xfail(strict=True)`` with the reason and the place to fix.
 """
 
 from __future__ import annotations
 
-import concurrent.futures
+import contextlib
 import dataclasses
+import io
 import json
 import os
 import re
@@ -24,6 +26,7 @@ import subprocess
 import sys
 from pathlib import Path
 from typing import Callable
+import warnings
 
 import nibabel as nib
 import numpy as np
@@ -124,11 +127,26 @@ class Outcome:
     stderr: str
 
 
-def run_cli(argv, timeout=120) -> Outcome:
+def run_console(argv, timeout=120) -> Outcome:
+    """Run the installed ``fieldfix`` console script in a subprocess (warnings shown)."""
     assert SCRIPT, "the fieldfix console script is not installed"
     env = dict(os.environ, PYTHONWARNINGS="default")
     result = subprocess.run([SCRIPT, *map(str, argv)], capture_output=True, text=True, timeout=timeout, env=env)
     return Outcome(result.returncode, result.stdout, result.stderr)
+
+
+def run_cli(argv) -> Outcome:
+    """Run ``fieldfix argv`` in this process: exit status and captured streams, every warning shown."""
+    from fieldfix_cli.main import main
+
+    out, err = io.StringIO(), io.StringIO()
+    with warnings.catch_warnings(), contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        warnings.simplefilter("always")
+        try:
+            code = main([str(a) for a in argv])
+        except SystemExit as stop:  # argparse's usage errors
+            code = stop.code if isinstance(stop.code, int) else 2
+    return Outcome(code, out.getvalue(), err.getvalue())
 
 
 def snapshot(paths) -> dict:
@@ -170,26 +188,28 @@ def _fieldmap(pd, mag, out, *extra) -> list:
     return ["fieldmap", "--phase-diff", pd, "--magnitude", mag, "--out", out, *extra]
 
 
-def unwarp_case(pattern, names="run", run_kw=None, b0_kw=None, extra=(), before: Callable | None = None):
+def _files_case(pattern, names, make_paths: Callable, argv_of: Callable, before: Callable | None):
+    """A case on input files: `make_paths(folder)` -> {key: path}, `before` mutates them,
+    `argv_of(paths, out)` the command line; `names` are keys (or literal text) to be named."""
     def build(folder: Path) -> Case:
-        paths = {"run": make_run(folder, **(run_kw or {})), "b0": make_b0(folder, **(b0_kw or {}))}
+        paths = make_paths(folder)
         if before is not None:
             before(folder, paths)
         named = [paths.get(n, n) for n in ([names] if isinstance(names, str) else names)]
-        return Case(_unwarp(paths["run"], paths["b0"], folder / "out", *extra), pattern, named,
-                    [*paths.values(), *folder.glob("*.json")])
+        return Case(argv_of(paths, folder / "out"), pattern, named, [*paths.values(), *folder.glob("*.json")])
     return build
+
+
+def unwarp_case(pattern, names="run", run_kw=None, b0_kw=None, extra=(), before: Callable | None = None):
+    return _files_case(pattern, names,
+                       lambda f: {"run": make_run(f, **(run_kw or {})), "b0": make_b0(f, **(b0_kw or {}))},
+                       lambda paths, out: _unwarp(paths["run"], paths["b0"], out, *extra), before)
 
 
 def fieldmap_case(pattern, names="pd", pd_kw=None, mag_kw=None, extra=(), before: Callable | None = None):
-    def build(folder: Path) -> Case:
-        paths = {"pd": make_phasediff(folder, **(pd_kw or {})), "mag": make_magnitude(folder, **(mag_kw or {}))}
-        if before is not None:
-            before(folder, paths)
-        named = [paths.get(n, n) for n in ([names] if isinstance(names, str) else names)]
-        return Case(_fieldmap(paths["pd"], paths["mag"], folder / "out", *extra), pattern, named,
-                    [*paths.values(), *folder.glob("*.json")])
-    return build
+    return _files_case(pattern, names,
+                       lambda f: {"pd": make_phasediff(f, **(pd_kw or {})), "mag": make_magnitude(f, **(mag_kw or {}))},
+                       lambda paths, out: _fieldmap(paths["pd"], paths["mag"], out, *extra), before)
 
 
 def report_case(pattern, names, make_folder: Callable):
@@ -214,15 +234,10 @@ def _truncated_b0_folder(target: Path):
 
 def dropout_case(pattern, names="b0", b0_kw=None, extra=(), before: Callable | None = None,
                  te="30ms", thickness="3mm"):
-    def build(folder: Path) -> Case:
-        paths = {"b0": make_b0(folder, **(b0_kw or {}))}
-        if before is not None:
-            before(folder, paths)
-        named = [paths.get(n, n) for n in ([names] if isinstance(names, str) else names)]
-        argv = ["dropout", "--b0", paths["b0"], "--te", te, "--thickness", thickness, "--out", folder / "out",
+    def argv_of(paths, out):
+        return ["dropout", "--b0", paths["b0"], "--te", te, "--thickness", thickness, "--out", out,
                 *[str(paths.get(a, a)) if isinstance(a, str) else a for a in extra]]
-        return Case(argv, pattern, named, [*paths.values(), *folder.glob("*.json")])
-    return build
+    return _files_case(pattern, names, lambda f: {"b0": make_b0(f, **(b0_kw or {}))}, argv_of, before)
 
 
 def plan_case(pattern, names="roi", b0_kw=None, roi=None, roi_affine=None, extra=(), te="25ms,30ms",
@@ -435,30 +450,30 @@ REFUSALS = [
 ]
 
 
-def _build(case_param, folder: Path) -> Case:
-    case = case_param(folder)
+def _build(builder, folder: Path) -> Case:
+    case = builder(folder)
     extra_paths = {p.name: p for p in folder.iterdir()}
     case.argv = [str(a).format(mask=extra_paths.get("mask.nii.gz", "")) for a in case.argv]
     return case
 
 
-@pytest.fixture(scope="module")
-def refusal_results(tmp_path_factory):
-    """Build every case and run all the subprocesses concurrently; results by case id."""
-    jobs = {}
-    for param in REFUSALS:
-        folder = tmp_path_factory.mktemp(param.id)
-        case = _build(param.values[0], folder)
-        jobs[param.id] = (case, snapshot(case.inputs), folder / "out")
-    with concurrent.futures.ThreadPoolExecutor(max_workers=2) as pool:
-        futures = {key: pool.submit(run_cli, case.argv) for key, (case, _, _) in jobs.items()}
-        return {key: (jobs[key], future.result()) for key, future in futures.items()}
+#: Cases also run through the installed console script (one per command and kind of defect).
+CONSOLE_CASES = ("unwarp-b0-nan", "fieldmap-echo-times-missing", "unwarp-run-truncated", "dropout-te-no-unit",
+                 "plan-roi-empty", "batch-not-bids", "unwarp-pe-code-unknown-cli")
 
 
 @pytest.mark.parametrize("case_param", REFUSALS)
-def test_refused_with_one_line_exit_2_and_nothing_written(request, refusal_results, case_param):
-    (case, before, out_dir), outcome = refusal_results[request.node.callspec.id]
-    assert_refused(outcome, case.pattern, case.names, out_dir, before)
+def test_refused_with_one_line_exit_2_and_nothing_written(tmp_path, case_param):
+    case = _build(case_param, tmp_path)
+    before = snapshot(case.inputs)
+    assert_refused(run_cli(case.argv), case.pattern, case.names, tmp_path / "out", before)
+
+
+@pytest.mark.parametrize("case_param", [p for p in REFUSALS if p.id in CONSOLE_CASES])
+def test_refused_by_the_console_script(tmp_path, case_param):
+    case = _build(case_param, tmp_path)
+    before = snapshot(case.inputs)
+    assert_refused(run_console(case.argv), case.pattern, case.names, tmp_path / "out", before)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -369,6 +369,15 @@ def _write_nifti(path, data, affine, sidecar=None):
     return path
 
 
+def _like_epi(tmp_path, voxel_mm, origin_mm, shape):
+    """A pilot EPI (j-, echo spacing 0.5 ms) on an axis-aligned grid; returns (path, affine)."""
+    epi_affine = np.diag([voxel_mm, voxel_mm, voxel_mm, 1.0])
+    epi_affine[:3, 3] = origin_mm
+    like = _write_nifti(tmp_path / "epi.nii.gz", np.ones(shape), epi_affine,
+                        {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
+    return like, epi_affine
+
+
 def _linear_b0_files(tmp_path, g_world=(0.0, 2.0, 6.0)):
     affine = _oblique_affine(voxel=(3.0, 3.0, 3.0), angles_deg=(0.0, 0.0, 0.0), origin=(-30.0, -30.0, -20.0))
     shape = (20, 20, 14)
@@ -382,10 +391,7 @@ def test_run_dropout_writes_maps_matching_formula(tmp_path):
     from fieldfix.workflows.dropout import run_dropout
 
     affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
-    epi_affine = np.diag([3.0, 3.0, 3.0, 1.0])
-    epi_affine[:3, 3] = (-30.0, -30.0, -20.0)
-    like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((20, 20, 14, 2)), epi_affine,
-                        {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
+    like, _ = _like_epi(tmp_path, 3.0, (-30.0, -30.0, -20.0), (20, 20, 14, 2))
     out = tmp_path / "out"
     summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like, tag="s1_")
     ret = nib.load(out / "s1_retention.nii.gz").get_fdata()
@@ -410,10 +416,7 @@ def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):
     from fieldfix.workflows.dropout import run_dropout
 
     affine, shape, b0, b0_path = _linear_b0_files(tmp_path)
-    epi_affine = np.diag([4.0, 4.0, 4.0, 1.0])
-    epi_affine[:3, 3] = (-24.0, -24.0, -14.0)
-    like = _write_nifti(tmp_path / "epi.nii.gz", np.ones((12, 12, 8, 3)), epi_affine,
-                        {"PhaseEncodingDirection": "j-", "EffectiveEchoSpacing": 0.0005})
+    like, epi_affine = _like_epi(tmp_path, 4.0, (-24.0, -24.0, -14.0), (12, 12, 8, 3))
     out = tmp_path / "out"
     summary = run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like)
     ret_epi = nib.load(out / summary.outputs.retention_on_epi)

@@ -20,7 +20,6 @@ import json
 import os
 import re
 import secrets
-import socket
 from dataclasses import dataclass
 from pathlib import Path
 

@@ -35,7 +35,7 @@ import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..errors import FieldfixError, InputError
+from ..errors import FieldfixError, InputError, check_choice
 from ..jsonfile import read_json
 from ..outdir import sha256_file
 from ..outputs import ConfigRecord
@@ -99,14 +99,9 @@ class BatchOptions:
         """Refuse impossible values before anything is planned."""
         if self.phase_units is not None:
             lookup_phase_units(self.phase_units)
-        if self.unwrap_method not in METHODS:
-            raise InputError(f"unknown unwrap method {self.unwrap_method!r}; choose {' or '.join(METHODS)}",
-                             parameter="unwrap_method")
-        if self.interp not in INTERPOLATIONS:
-            raise InputError(f"unknown interpolation {self.interp!r}; choose one of {', '.join(INTERPOLATIONS)}",
-                             parameter="interp")
-        if self.masks not in MASK_CHOICES:
-            raise InputError(f"masks must be one of {', '.join(MASK_CHOICES)}, got {self.masks!r}", parameter="masks")
+        check_choice("unwrap_method", self.unwrap_method, METHODS)
+        check_choice("interp", self.interp, INTERPOLATIONS)
+        check_choice("masks", self.masks, MASK_CHOICES, "mask choice")
         if not self.smooth_mm >= 0:
             raise InputError(f"smoothing width must be zero or positive, got {self.smooth_mm}", parameter="smooth_mm")
         for name in ("dropout_te_s", "dropout_thickness_mm"):

@@ -28,10 +28,9 @@ Research software, not a medical device.
 
 Examples
 --------
->>> import numpy as np
->>> i, j, k = np.meshgrid(*(np.arange(8.0),) * 3, indexing="ij")
->>> round(edge_agreement(i + j, 2 * (i + j), np.eye(4)), 6)
-1.0
+>>> folder, files = report_files("derivatives/fieldfix", "qa/sub-01.html")  # where a page would go
+>>> str(folder), files.html, files.png, files.json
+('qa', 'sub-01.html', 'sub-01_summary.png', 'sub-01.json')
 """
 
 from ..outputs import CAUTION

@@ -281,17 +281,16 @@ def simulate_epi_run(
     b0_hz_fine: np.ndarray,
     n_volumes: int,
     *,
-    pe_code: str,
-    echo_spacing_s: float,
-    echo_time_s: float,
-    oversample=2,
     translation_sd_vox: float = 0.0,
     rotation_sd_deg: float = 0.0,
     noise_sd: float = 0.0,
     rng: np.random.Generator | None = None,
-    **options,
+    **epi_options,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Simulate a 4D EPI run with small rigid motion and noise.
+
+    `epi_options` are the keywords of :func:`simulate_epi` (``pe_code``, ``echo_spacing_s``
+    and ``echo_time_s`` are required; ``oversample`` defaults to 2 as there).
 
     Each volume draws an independent small rigid displacement of the head (translation
     with standard deviation `translation_sd_vox` output voxels per axis, rotation with
@@ -309,7 +308,7 @@ def simulate_epi_run(
     moving = translation_sd_vox > 0 or rotation_sd_deg > 0
     if (moving or noise_sd > 0) and rng is None:
         raise InputError("motion and noise need a numpy Generator (rng) so the simulation is reproducible")
-    factors = np.array(_factors(oversample, 3), float)
+    factors = np.array(_factors(epi_options.get("oversample", 2), 3), float)
     obj = np.asarray(object_fine, float)
     field = np.asarray(b0_hz_fine, float)
     shape = tuple(int(f // o) for f, o in zip(obj.shape, factors))
@@ -323,7 +322,5 @@ def simulate_epi_run(
             moved_field = _move(field, motion[t, 3:], motion[t, :3] * factors)
         else:
             moved_obj, moved_field = obj, field
-        data[..., t] = simulate_epi(moved_obj, moved_field, pe_code=pe_code, echo_spacing_s=echo_spacing_s,
-                                    echo_time_s=echo_time_s, oversample=oversample, noise_sd=noise_sd,
-                                    rng=rng, **options)
+        data[..., t] = simulate_epi(moved_obj, moved_field, noise_sd=noise_sd, rng=rng, **epi_options)
     return data, motion

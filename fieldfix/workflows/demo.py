@@ -19,7 +19,6 @@ Example
 
 from __future__ import annotations
 
-import os
 import time
 from pathlib import Path
 

@@ -42,7 +42,7 @@ from typing import Sequence
 import numpy as np
 
 from .._progress import progress_bar
-from ..errors import FieldfixError, InputError, MetadataError
+from ..errors import FieldfixError, InputError, MetadataError, check_choice
 from ..fieldmap import FieldMapResult, b0_from_echoes, b0_from_map, b0_from_phase_difference, hz_to_units
 from ..geometry import voxel_sizes_mm
 from ..io import Provenance, output_paths_guard, save_image, sidecar_path
@@ -142,9 +142,7 @@ class FieldMapSettings:
 
     def check(self) -> None:
         """Refuse settings that cannot work, before anything is read."""
-        if self.unwrap_method not in METHODS:
-            raise InputError(f"unknown unwrap method {self.unwrap_method!r}; choose {' or '.join(METHODS)}",
-                             parameter="unwrap_method")
+        check_choice("unwrap_method", self.unwrap_method, METHODS)
         check_plausible("smooth_mm", self.smooth_mm)
         if self.field_strength_t is not None:
             check_plausible("field_strength_t", self.field_strength_t)

@@ -30,8 +30,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import GeometryError, InputError, MetadataError
-from ..geometry import parse_pe_code, pe_world_direction, resample_to_grid, voxel_sizes_mm
+from ..errors import GeometryError, InputError, MetadataError, check_choice
+from ..geometry import parse_pe_code, pe_world_direction, voxel_sizes_mm
 from ..io import GZIP_EFFORTS, NIFTI_INTENT_DISPVECT, Image, Provenance, image_stem, load_image, output_paths_guard, save_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
@@ -156,21 +156,13 @@ class UnwarpSettings:
     gzip_effort: str = "fast"
 
     def check(self) -> None:
-        if self.displacement_frame not in DISPLACEMENT_FRAMES:
-            raise InputError(f"unknown frame {self.displacement_frame!r}; choose ras or lps",
-                             parameter="displacement_frame")
+        check_choice("displacement_frame", self.displacement_frame, DISPLACEMENT_FRAMES, "frame")
         for name in ("readout_time_s", "echo_spacing_s"):
             if getattr(self, name) is not None:
                 check_plausible(name, getattr(self, name))
-        if self.interp not in INTERPOLATIONS:
-            raise InputError(f"unknown interpolation {self.interp!r}; choose one of {', '.join(INTERPOLATIONS)}",
-                             parameter="interp")
-        if self.compress not in COMPRESSIONS:
-            raise InputError(f"unknown compression {self.compress!r}; choose one of {', '.join(COMPRESSIONS)}",
-                             parameter="compress")
-        if self.gzip_effort not in GZIP_EFFORTS:
-            raise InputError(f"unknown gzip effort {self.gzip_effort!r}; choose one of {', '.join(GZIP_EFFORTS)}",
-                             parameter="gzip_effort")
+        check_choice("interp", self.interp, INTERPOLATIONS)
+        check_choice("compress", self.compress, COMPRESSIONS, "compression")
+        check_choice("gzip_effort", self.gzip_effort, GZIP_EFFORTS)
 
     def output_suffix(self, run_path) -> str:
         """``'.nii.gz'`` or ``'.nii'`` for the image outputs of the run at `run_path`."""
