@@ -395,6 +395,7 @@ def three_runs(dataset, tmp_path_factory):
     return base, summaries
 
 
+@pytest.mark.slow
 def test_dask_rerun_through_scheduler_file_reuses_everything(three_runs):
     _, summaries = three_runs
     again = summaries["dask_again"]
@@ -474,6 +475,7 @@ def _cli(*args, **kwargs):
                           timeout=120, **kwargs)
 
 
+@pytest.mark.slow
 def test_cli_interrupted_batch_resumes_without_redoing(dataset, tmp_path):
     import signal
     import subprocess
@@ -512,6 +514,7 @@ def test_cli_interrupted_batch_resumes_without_redoing(dataset, tmp_path):
         assert "done" in statuses.values()
 
 
+@pytest.mark.slow
 def test_cli_exit_status_and_options(dataset, tmp_path):
     bad = _cli(tmp_path / "nowhere", "--out", tmp_path / "o")
     assert bad.returncode == 2 and "BIDS root is not a folder" in bad.stderr

@@ -70,6 +70,7 @@ def test_unknown_scenario(tmp_path):
         run_demo(tmp_path / "out", scenario="no-such-study")
 
 
+@pytest.mark.slow
 def test_console_script(tiny_folder, tmp_path):
     out = tmp_path / "cli-out"
     res = subprocess.run([FIELDFIX, "demo", "--scenario", str(tiny_folder), "--out", str(out)],

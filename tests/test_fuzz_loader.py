@@ -248,6 +248,7 @@ CHILD = textwrap.dedent("""
 """)
 
 
+@pytest.mark.slow
 def test_seeded_mutation_loop_in_a_child_process(tmp_path):
     """Many seeded mutations (NIfTI-1 3D and NIfTI-2 4D) in a child process with a timeout."""
     for suffix in (".nii", ".nii.gz"):
@@ -280,6 +281,7 @@ def _cli_commands_reading_one_image(path: Path, out: Path) -> list[list[str]]:
 
 
 @pytest.mark.parametrize("case", range(4))
+@pytest.mark.slow
 def test_corrupt_files_through_the_cli(tmp_path, valid_bytes, case):
     suffix = ".nii.gz" if case % 2 else ".nii"
     path = tmp_path / f"broken{suffix}"

@@ -397,6 +397,7 @@ def test_workflow_recovers_simulated_run(tmp_path):
     assert all(nrmse(corrected[..., t]) < 0.03 for t in range(4))
 
 
+@pytest.mark.slow
 def test_cli_end_to_end(scene):
     folder, run, b0_path, data, affine = scene
     out = folder / "cli_out"

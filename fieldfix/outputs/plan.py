@@ -1,0 +1,65 @@
+"""Output names and the typed summary of the protocol planner."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from ..records import Record
+
+from .base import CAUTION, JobFiles
+
+
+@dataclass(frozen=True)
+class PlanFiles(JobFiles):
+    """Outputs of the planning job."""
+
+    csv: str
+    json: str
+    figure: str
+
+    SUMMARY_SUFFIX = "plan.json"
+
+    @classmethod
+    def named(cls, tag: str = "") -> "PlanFiles":
+        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png")
+
+
+@dataclass(frozen=True)
+class PlanChoice(Record):
+    """The recommended protocol of a plan, with its predicted signal."""
+
+    protocol: str
+    thickness_mm: float
+    te_s: float
+    tilt_deg: float
+    pe_polarity: str | None
+    pe_direction: str | None
+    zshim_mtms_per_m: float
+    roi_median: float
+    roi_pct_below: float
+    brain_median: float | None
+    brain_pct_below: float | None
+    n_slices: int
+    tr_s: float
+    rank: int
+
+
+@dataclass(frozen=True)
+class PlanSummary(Record):
+    """What the planning job reports (``<tag>plan.json`` holds it with the full table)."""
+
+    KIND = "plan"
+
+    b0: str
+    roi: str
+    brain_mask: str
+    roi_voxels: int
+    protocols: int
+    metric: str
+    recommended: PlanChoice
+    reason: str
+    outputs: PlanFiles
+    parameters: dict[str, object] = field(default_factory=dict)
+    provenance: dict[str, object] = field(default_factory=dict)
+    rows: list[dict[str, object]] = field(default_factory=list)
+    caution: str = CAUTION
