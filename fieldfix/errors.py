@@ -22,6 +22,7 @@ __all__ = [
     "MetadataError",
     "GeometryError",
     "OutputError",
+    "MemoryLimitError",
 ]
 
 
@@ -69,3 +70,7 @@ class GeometryError(InputError):
 
 class OutputError(FieldfixError):
     """An output cannot be written (it would replace an input, exists, or the write failed)."""
+
+
+class MemoryLimitError(FieldfixError):
+    """There is not enough memory for the work (an image too large for this machine, or memory ran out)."""

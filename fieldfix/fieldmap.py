@@ -158,7 +158,9 @@ def field_to_hz(values, units: str, *, field_strength_t: float | None = None):
     50.0
     """
     unit = _field_unit(units)
-    v = np.asarray(values, dtype=np.float64)
+    v = np.asarray(values)
+    if v.dtype != np.float32:  # single precision stays single (a field map read as float32), else float64
+        v = v.astype(np.float64)
     if unit == "hz":
         return v.copy()
     if unit == "rad/s":
