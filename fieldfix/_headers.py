@@ -15,6 +15,7 @@ Each refusal is an :class:`fieldfix.errors.InputError` naming the file.
 from __future__ import annotations
 
 import io
+import re
 from pathlib import Path
 
 import nibabel as nib
@@ -23,7 +24,7 @@ import numpy as np
 from ._gzip_io import gzip_reader
 from .errors import InputError
 
-__all__ = ["check_data_type", "check_voxel_sizes", "check_affine"]
+__all__ = ["check_data_type", "check_voxel_sizes", "check_affine", "unsupported_code"]
 
 _AXES = ("first (i)", "second (j)", "third (k)")
 #: Smallest |det| of the affine's 3x3 part relative to the product of its column lengths.
@@ -46,6 +47,16 @@ def check_data_type(path: Path, header) -> None:
                          path)
     if dtype.kind not in "iuf":
         raise InputError(f"the image's data type {label} ({dtype}) is not supported; use integers or floats", path)
+
+
+def unsupported_code(err: BaseException) -> str | None:
+    """The one-line refusal when nibabel cannot open a file for its data type code, else None."""
+    match = re.search(r"data code (\d+) not supported", str(err))
+    if match is None:
+        return None
+    code = int(match.group(1))
+    label = nib.nifti1.data_type_codes.label.get(code, f"code {code}")
+    return f"the image's data type {label} is not supported; use integers or floats (float32 or float64)"
 
 
 def raw_header(path: Path, klass):

@@ -38,7 +38,7 @@ import numpy as np
 
 
 from ._gzip_io import ISAL_ERROR, GZIP_EFFORTS, HashingReader, HashingWriter, check_effort, gzip_reader, gzip_writer
-from ._headers import check_affine, check_data_type, check_voxel_sizes
+from ._headers import check_affine, check_data_type, check_voxel_sizes, unsupported_code
 from ._memory import check_image_memory
 from .errors import InputError, MemoryLimitError, OutputError
 from .jsonfile import read_json, to_jsonable, write_json
@@ -256,8 +256,11 @@ class Image:
 
         def read():
             shape = self.shape
-            values = np.empty(shape, dtype=dtype, order="F")
             proxy = self.nifti.dataobj
+            if not shape:  # a header with no axes: one value
+                with np.errstate(over="ignore", invalid="ignore"):
+                    return np.asarray(proxy, dtype=dtype)
+            values = np.empty(shape, dtype=dtype, order="F")
             step = max(1, _SLAB_VOXELS // max(1, math.prod(shape[:-1])))
             with np.errstate(over="ignore", invalid="ignore"):
                 for start in range(0, shape[-1], step):
@@ -307,7 +310,7 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
     try:
         nifti, _ = _open_nifti(path)
     except _READ_ERRORS as err:
-        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
+        raise InputError(unsupported_code(err) or f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):
         raise InputError(f"expected a NIfTI-1 or NIfTI-2 image, found {type(nifti).__name__}", path)
     try:
