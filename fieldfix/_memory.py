@@ -14,7 +14,13 @@ The available memory is the smallest of
 * the room left under the memory limit of its control group (cgroup v2 ``memory.max``),
 
 or the value of the environment variable :data:`MEMORY_ENV` (for example ``6G``, ``800M`` or
-a number of bytes) when it is set. Where none is known, nothing is refused.
+a number of bytes) when it is set. Where none is known, nothing is refused on this ground.
+
+A compressed image read whole is also refused when its data would inflate more than
+:data:`MAX_INFLATION` times its file size to more than :data:`INFLATION_FLOOR_BYTES` of float32:
+real scans compress a few times, not a thousand (common practice, no source), so such a file is
+almost surely a decompression bomb, and on a large machine the budget above would let it
+through. Setting :data:`MEMORY_ENV` lifts this rule (the user then answers for the memory).
 
 Examples
 --------
@@ -34,12 +40,17 @@ from pathlib import Path
 
 from .errors import InputError, MemoryLimitError
 
-__all__ = ["MEMORY_ENV", "WORKING_COPIES", "MemoryBudget", "memory_budget", "check_image_memory", "format_bytes"]
+__all__ = ["MEMORY_ENV", "WORKING_COPIES", "MAX_INFLATION", "INFLATION_FLOOR_BYTES", "MemoryBudget", "memory_budget",
+           "check_image_memory", "check_inflation", "format_bytes"]
 
 #: Environment variable giving the memory fieldfix may count on (bytes, or with K, M, G, T: powers of 1024).
 MEMORY_ENV = "FIELDFIX_MEMORY_LIMIT"
 #: Single-precision copies of an image a job is assumed to hold at once.
 WORKING_COPIES = 8
+#: Largest ratio of declared data bytes to file bytes accepted for a large image read whole.
+MAX_INFLATION = 100
+#: Working size (float32 bytes) below which the inflation rule does not apply.
+INFLATION_FLOOR_BYTES = 256 * 2 ** 20
 _UNITS = {"": 1, "K": 2 ** 10, "M": 2 ** 20, "G": 2 ** 30, "T": 2 ** 40}
 
 
@@ -136,3 +147,20 @@ def check_image_memory(path, shape, what: str = "image") -> None:
         f"{format_bytes(working)} as float32, and a job needs about {WORKING_COPIES} such copies "
         f"({format_bytes(working * WORKING_COPIES)}) but {format_bytes(budget.available_bytes)} is available "
         f"({budget.source}); it was not read (set {MEMORY_ENV} if more memory is really free)", path)
+
+
+def check_inflation(path, shape, stored_bytes: int, file_bytes: int) -> None:
+    """Refuse a large image whose declared data inflate over :data:`MAX_INFLATION` times its file size.
+
+    Raises
+    ------
+    MemoryLimitError
+        Naming the file, the declared size and the file size (not when :data:`MEMORY_ENV` is set).
+    """
+    working = math.prod(int(n) for n in shape) * 4
+    if os.environ.get(MEMORY_ENV) or working <= INFLATION_FLOOR_BYTES or stored_bytes <= MAX_INFLATION * file_bytes:
+        return
+    raise MemoryLimitError(
+        f"the file's {format_bytes(file_bytes)} would inflate to {format_bytes(stored_bytes)} of data "
+        f"({stored_bytes / max(file_bytes, 1):.0f} times; real images compress a few times), which looks like a "
+        f"decompression bomb; it was not read (set {MEMORY_ENV} to read it anyway)", path)

@@ -39,7 +39,7 @@ import numpy as np
 
 from ._gzip_io import ISAL_ERROR, GZIP_EFFORTS, HashingReader, HashingWriter, check_effort, gzip_reader, gzip_writer
 from ._headers import check_affine, check_data_type, check_voxel_sizes, unsupported_code
-from ._memory import check_image_memory
+from ._memory import check_image_memory, check_inflation
 from .errors import InputError, MemoryLimitError, OutputError
 from .jsonfile import read_json, to_jsonable, write_json
 from .outputs import CAUTION
@@ -250,9 +250,12 @@ class Image:
         Raises
         ------
         MemoryLimitError
-            Before reading, when the image does not fit the memory budget (:mod:`fieldfix._memory`).
+            Before reading, when the image does not fit the memory budget, or when a large image
+            would inflate far beyond its file size (a decompression bomb; see :mod:`fieldfix._memory`).
         """
         check_image_memory(self.path, self.shape)
+        stored = math.prod(self.shape) * self.header.get_data_dtype().itemsize
+        check_inflation(self.path, self.shape, stored, self.path.stat().st_size)
 
         def read():
             shape = self.shape

@@ -402,3 +402,18 @@ def test_a_small_file_declaring_1_5_gb_is_refused_fast_under_a_1_gib_limit(tmp_p
     lines = [line for line in result.stderr.splitlines() if line.strip()]
     assert result.returncode == 2 and len(lines) == 1, result.stderr
     assert "memory" in lines[0] and "truncated or corrupt" not in lines[0] and "Traceback" not in result.stderr
+
+
+def test_a_decompression_bomb_is_refused_even_where_memory_would_allow_it(tmp_path, capsys, monkeypatch):
+    """On a machine with room for the inflated data, a 1000-fold inflating field map is still not read."""
+    import fieldfix._memory as memory
+
+    monkeypatch.delenv(MEMORY_ENV, raising=False)
+    monkeypatch.setattr(memory, "memory_budget", lambda: memory.MemoryBudget(2 ** 40, "a large machine"))
+    big = _inflating_field_map(tmp_path / "b0_hz.nii.gz")
+    start = time.monotonic()
+    status, err, caught = _run_cli(capsys, ["dropout", "--b0", big, "--te", "30ms", "--thickness", "3mm",
+                                            "--out", tmp_path / "out", "--quiet"])
+    assert time.monotonic() - start < 10
+    _assert_refused(status, err, caught, r"would inflate to 1\.4 GiB of data \(10\d\d times.*decompression bomb",
+                    big, tmp_path / "out", {})
