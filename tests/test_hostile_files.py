@@ -417,3 +417,10 @@ def test_a_decompression_bomb_is_refused_even_where_memory_would_allow_it(tmp_pa
     assert time.monotonic() - start < 10
     _assert_refused(status, err, caught, r"would inflate to 1\.4 GiB of data \(10\d\d times.*decompression bomb",
                     big, tmp_path / "out", {})
+
+
+def test_a_batch_task_out_of_memory_is_reported_as_such():
+    from fieldfix.batch.tasks import _reason
+
+    assert _reason(MemoryError()) == "out of memory: the task needed more memory than the worker could give"
+    assert _reason(ValueError("x")) == "ValueError: x"
