@@ -424,3 +424,20 @@ def test_a_batch_task_out_of_memory_is_reported_as_such():
 
     assert _reason(MemoryError()) == "out of memory: the task needed more memory than the worker could give"
     assert _reason(ValueError("x")) == "ValueError: x"
+
+
+@pytest.mark.parametrize("target, mutate, pattern", [
+    ("pd", _complex(np.complex64, 32, 64), r"complex data \(complex64\)"),
+    ("mag", _pixdim(1, 0.0), r"pixdim\[1\]\) is 0;"),
+    ("mag", _singular_sform, r"singular"),
+], ids=["phase-complex", "magnitude-pixdim-zero", "magnitude-affine-singular"])
+def test_hostile_field_map_inputs_are_refused_by_fieldmap(tmp_path, capsys, target, mutate, pattern):
+    delta_te_s = 0.00246
+    phase = np.angle(np.exp(2j * np.pi * _field_hz() * delta_te_s)).astype(np.float32)
+    paths = {"pd": _save(tmp_path / "sub-01_phasediff.nii.gz", phase, {"EchoTime1": 0.00492, "EchoTime2": 0.00738}),
+             "mag": _save(tmp_path / "sub-01_magnitude1.nii.gz", _head().astype(np.float32))}
+    mutate(paths[target])
+    before = _snapshot(tmp_path)
+    status, err, caught = _run_cli(capsys, ["fieldmap", "--phase-diff", paths["pd"], "--magnitude", paths["mag"],
+                                            "--out", tmp_path / "out", "--quiet"])
+    _assert_refused(status, err, caught, pattern, paths[target], tmp_path / "out", before)
