@@ -16,6 +16,7 @@ import gzip
 import io
 import json
 import os
+import re
 import struct
 import subprocess
 import sys
@@ -174,7 +175,7 @@ def _assert_refused(status, err, caught, pattern, named: Path, out: Path, before
     assert len(err) == 1, err
     assert err[0].startswith("fieldfix ") and ": error: " in err[0]
     assert str(named) in err[0], err[0]
-    assert __import__("re").search(pattern, err[0]), err[0]
+    assert re.search(pattern, err[0]), err[0]
     assert not [str(w.message) for w in caught], [f"{w.category.__name__}: {w.message}" for w in caught]
     assert not out.exists() or not any(out.iterdir()), sorted(p.name for p in out.iterdir())
     for path, content in before.items():
