@@ -199,6 +199,12 @@ def main(argv=None) -> int:
             traceback.print_exc()
         print(f"fieldfix {args.command}: error: {error_text(err, args._module)}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except MemoryError:
+        if args.debug:
+            traceback.print_exc()
+        print(f"fieldfix {args.command}: error: out of memory: the job needed more memory than this machine or "
+              "process could give; unfinished outputs were removed (inputs are not damaged)", file=sys.stderr)
+        return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print(f"fieldfix {args.command}: interrupted; unfinished outputs were removed", file=sys.stderr)
         return EXIT_INTERRUPTED

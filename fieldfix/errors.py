@@ -23,6 +23,7 @@ __all__ = [
     "MetadataError",
     "GeometryError",
     "OutputError",
+    "MemoryLimitError",
 ]
 
 
@@ -87,3 +88,7 @@ def check_choice(parameter: str, value, choices, what: str | None = None) -> Non
         names = {"interp": "interpolation"}
         raise InputError(f"unknown {names.get(what, what)} {value!r}; choose one of {', '.join(map(str, choices))}",
                          parameter=parameter)
+
+
+class MemoryLimitError(FieldfixError):
+    """There is not enough memory for the work (an image too large for this machine, or memory ran out)."""

@@ -163,7 +163,10 @@ def field_to_hz(values, units: str, *, field_strength_t: float | None = None):
     50.0
     """
     factor = _hz_per_unit(units, field_strength_t, "a field map in ppm")
-    return np.asarray(values, dtype=np.float64) * factor
+    v = np.asarray(values)
+    if v.dtype != np.float32:  # single precision stays single (a field map read as float32), else float64
+        v = v.astype(np.float64)
+    return v * factor
 
 
 def hz_to_units(b0_hz, units: str, *, field_strength_t: float | None = None):

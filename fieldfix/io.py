@@ -38,7 +38,9 @@ import numpy as np
 
 
 from ._gzip_io import ISAL_ERROR, GZIP_EFFORTS, HashingReader, HashingWriter, check_effort, gzip_reader, gzip_writer
-from .errors import InputError, OutputError
+from ._headers import check_affine, check_data_type, check_voxel_sizes, unsupported_code
+from ._memory import check_image_memory, check_inflation
+from .errors import InputError, MemoryLimitError, OutputError
 from .jsonfile import read_json, to_jsonable, write_json
 from .outputs import CAUTION
 from .outdir import (
@@ -87,6 +89,13 @@ _READ_ERRORS = (OSError, EOFError, ValueError, OverflowError, struct.error, zlib
                 nib.spatialimages.ImageDataError)
 #: Upper bound of the deflate compression ratio (RFC 1951 blocks cannot exceed about 1032:1).
 _MAX_DEFLATE_RATIO = 1032
+#: Voxels read at once by :meth:`Image.get_fdata` (slabs along the last axis), about 64 MiB as float64.
+_SLAB_VOXELS = 8 * 2 ** 20
+
+
+def _out_of_memory(err: BaseException) -> bool:
+    """A MemoryError, or a decompressor's report of one (zlib: Z_MEM_ERROR, "insufficient memory")."""
+    return isinstance(err, MemoryError) or "memory" in str(err).lower()
 
 def _open_nifti(path: Path, *, hashing: bool = False):
     """nibabel image of a NIfTI file, lazily, its data read through one open handle.
@@ -222,23 +231,44 @@ class Image:
     def _read(self, getter):
         try:
             return getter()
-        except MemoryError:
-            raise
-        except _READ_ERRORS as err:
-            raise InputError(f"cannot read image data, the file may be truncated or corrupt ({err})",
+        except (MemoryError, *_READ_ERRORS) as err:
+            if _out_of_memory(err):
+                raise MemoryLimitError(f"ran out of memory reading the image (shape {self.shape}, "
+                                       f"{self.header.get_data_dtype()}); the file itself may be intact",
+                                       self.path) from None
+            raise InputError(f"cannot read image data, the file may be truncated or corrupt ({_one_line(err)})",
                              self.path) from None
 
     def get_fdata(self, dtype=np.float32) -> np.ndarray:
-        """All voxels as floating point, with the header's scaling applied.
+        """All voxels as floating point, with the header's scaling applied, read in bounded slabs.
 
-        Values beyond the range of `dtype` become infinite (callers check for finite data).
+        The result is allocated once in `dtype` (Fortran order, as NIfTI stores it) and filled
+        slab by slab along the last axis, so reading a float32 result never holds the whole
+        image in double precision. Values beyond the range of `dtype` become infinite (callers
+        check for finite data).
+
+        Raises
+        ------
+        MemoryLimitError
+            Before reading, when the image does not fit the memory budget, or when a large image
+            would inflate far beyond its file size (a decompression bomb; see :mod:`fieldfix._memory`).
         """
+        check_image_memory(self.path, self.shape)
+        stored = math.prod(self.shape) * self.header.get_data_dtype().itemsize
+        check_inflation(self.path, self.shape, stored, self.path.stat().st_size)
+
         def read():
-            values = np.asarray(self.nifti.dataobj, dtype=np.float64)
-            if dtype == np.float64:
-                return values
+            shape = self.shape
+            proxy = self.nifti.dataobj
+            if not shape:  # a header with no axes: one value
+                with np.errstate(over="ignore", invalid="ignore"):
+                    return np.asarray(proxy, dtype=dtype)
+            values = np.empty(shape, dtype=dtype, order="F")
+            step = max(1, _SLAB_VOXELS // max(1, math.prod(shape[:-1])))
             with np.errstate(over="ignore", invalid="ignore"):
-                return values.astype(dtype, copy=False)
+                for start in range(0, shape[-1], step):
+                    values[..., start:start + step] = proxy[..., start:start + step]
+            return values
 
         return self._read(read)
 
@@ -283,10 +313,11 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
     try:
         nifti, _ = _open_nifti(path)
     except _READ_ERRORS as err:
-        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
+        raise InputError(unsupported_code(err) or f"not a readable NIfTI image ({_one_line(err)})", path) from None
     if not isinstance(nifti, (nib.Nifti1Image, nib.Nifti2Image)):
         raise InputError(f"expected a NIfTI-1 or NIfTI-2 image, found {type(nifti).__name__}", path)
     try:
+        check_data_type(path, nifti.header)
         _check_data_size(path, nifti)
         file_shape = tuple(int(n) for n in nifti.shape)
         file_zooms = tuple(float(z) for z in nifti.header.get_zooms())
@@ -303,6 +334,12 @@ def load_image(path: str | os.PathLike, *, ndim: Iterable[int] | None = None, si
         if len(shape) not in allowed:
             wanted = " or ".join(f"{n}D" for n in allowed)
             raise InputError(f"image is {len(shape)}D with shape {tuple(shape)}; a {wanted} image is needed", path)
+    try:
+        check_voxel_sizes(path, nifti)
+    except _READ_ERRORS as err:
+        raise InputError(f"not a readable NIfTI image ({_one_line(err)})", path) from None
+    check_affine(path, nifti)
+    check_image_memory(path, tuple(shape)[:3], "image (one volume)" if len(shape) > 3 else "image")
     return Image(path=path, nifti=nifti, sidecar=read_sidecar(path) if sidecar else {}, file_shape=file_shape,
                  file_zooms=file_zooms)
 

@@ -155,6 +155,8 @@ class YoungObjectsOnly:
 
 
 def _reason(exc: BaseException) -> str:
+    if isinstance(exc, MemoryError):
+        return "out of memory: the task needed more memory than the worker could give"
     return str(exc) if isinstance(exc, FieldfixError) else f"{type(exc).__name__}: {exc}"
 
 

@@ -40,8 +40,9 @@ def resolve_pe_code(pe_code: str | None, image: Image, timing_win: str | None) -
         try:
             parse_pe_code(side)
         except InputError:
-            raise MetadataError(f"PhaseEncodingDirection {side!r} in the sidecar is not a BIDS code",
-                                sidecar_path(image.path)) from None
+            kind = "a number" if isinstance(side, (int, float)) and not isinstance(side, bool) else "not a BIDS code"
+            raise MetadataError(f"PhaseEncodingDirection {side!r} in the sidecar is {kind}; BIDS writes it as "
+                                "one of i j k i- j- k-", sidecar_path(image.path)) from None
     if pe_code is None and side is None:
         raise MetadataError("no phase-encode direction: give one (pe_code, e.g. j-) or add PhaseEncodingDirection "
                             "to the run's JSON sidecar", image.path)
