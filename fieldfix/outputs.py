@@ -543,12 +543,15 @@ class PlanChoice(Record):
     pe_direction: str | None
     zshim_mtms_per_m: float
     roi_median: float
-    roi_pct_below: float
+    roi_percent_below: float
     brain_median: float | None
-    brain_pct_below: float | None
+    brain_percent_below: float | None
     n_slices: int
     tr_s: float
     rank: int
+    merit: float | None = None
+    tsnr: float | None = None
+    slice_time_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -566,6 +569,10 @@ class PlanSummary(Record):
     recommended: PlanChoice
     reason: str
     outputs: PlanFiles
+    ranking: str = "retention"
+    field_source: str = "measured"
+    warnings: list[str] = field(default_factory=list)
+    columns: dict[str, str] = field(default_factory=dict)
     parameters: dict[str, object] = field(default_factory=dict)
     provenance: dict[str, object] = field(default_factory=dict)
     rows: list[dict[str, object]] = field(default_factory=list)

@@ -232,9 +232,9 @@ PLAN_COLUMNS = (("rank", "Rank", "#", "{:d}", 1.0), ("protocol", "Protocol", "",
                 ("tilt_deg", "Tilt", "\u00b0", "{:g}", 1.0), ("pe_polarity", "PE polarity", "", None, 1.0),
                 ("zshim_mtms_per_m", "Z-shim", _ZSHIM_UNIT, "{:g}", 1.0),
                 ("roi_median", "ROI median", "fraction, 0\u20131", "{:.3f}", 1.0),
-                ("roi_pct_below", "ROI under threshold", "% of ROI", "{:.1f}", 1.0),
+                ("roi_percent_below", "ROI under threshold", "% of ROI", "{:.1f}", 1.0),
                 ("brain_median", "Brain median", "fraction, 0\u20131", "{:.3f}", 1.0),
-                ("brain_pct_below", "Brain under threshold", "% of brain", "{:.1f}", 1.0),
+                ("brain_percent_below", "Brain under threshold", "% of brain", "{:.1f}", 1.0),
                 ("n_slices", "Slices", "slices", "{:d}", 1.0), ("tr_s", "Shortest TR", "s", "{:.2f}", 1.0))
 
 
