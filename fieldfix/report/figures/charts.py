@@ -170,15 +170,18 @@ def tradeoff_figure(rows: Sequence[dict], *, recommended: dict | None = None, ti
               else f"ROI median {_metric_words(rec)} (0\u20131)")
     thicknesses = sorted({r["thickness_mm"] for r in rows})
     colour = {d: LINE_COLOURS[i % len(LINE_COLOURS)] for i, d in enumerate(thicknesses)}
-    fig = new_figure(15.0, 4.6)
-    axes = [fig.add_axes((0.045 + i * 0.245, 0.14, 0.19, 0.62)) for i in range(4)]
+    n_panels = 4 if all("n_slices" in r for r in rows) else 3
+    fig = new_figure(15.0 if n_panels == 4 else 12.0, 4.6)
+    width = 0.94 / n_panels
+    axes = [fig.add_axes((0.05 + i * width, 0.14, width * 0.78, 0.62)) for i in range(n_panels)]
     _against(axes[0], rows, rec, "tilt_deg", ("te_s", "pe_sign", "zshim_mtms_per_m"), "slice tilt (\u00b0)", colour,
              thicknesses, ylabel, ykey)
     _against(axes[1], rows, rec, "te_ms", ("tilt_deg", "pe_sign", "zshim_mtms_per_m"), "echo time (ms)", colour,
              thicknesses, ylabel, ykey)
     _scatter(axes[2], rows, rec, lambda r: r["tr_s"], ykey, colour, thicknesses, "TR (s)", ylabel)
-    _scatter(axes[3], rows, rec, _covered_mm, ykey, colour, thicknesses, "slab covered: slices \u00d7 thickness (mm)",
-             ylabel)
+    if n_panels == 4:
+        _scatter(axes[3], rows, rec, _covered_mm, ykey, colour, thicknesses,
+                 "slab covered: slices \u00d7 thickness (mm)", ylabel)
     for axis, text in zip(axes, ("(a) against slice tilt", "(b) against echo time", "(c) against time",
                                       "(d) against coverage")):
         axis.set_title(text, loc="left", fontsize=9.5)
