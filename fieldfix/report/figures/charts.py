@@ -166,7 +166,7 @@ def tradeoff_figure(rows: Sequence[dict], *, recommended: dict | None = None, ti
         raise InputError("no protocols to plot")
     rec = recommended or rows[0]
     ykey = "merit" if ranking == "efficiency" else "roi_median"
-    ylabel = ("BOLD contrast-to-noise per unit time (relative, best = 1)" if ykey == "merit"
+    ylabel = ("BOLD CNR per unit time (relative, best = 1)" if ykey == "merit"
               else f"ROI median {_metric_words(rec)} (0\u20131)")
     thicknesses = sorted({r["thickness_mm"] for r in rows})
     colour = {d: LINE_COLOURS[i % len(LINE_COLOURS)] for i, d in enumerate(thicknesses)}
