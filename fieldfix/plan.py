@@ -44,7 +44,7 @@ from .dropout import (
     zshim_cyc_per_mm,
 )
 from .errors import GeometryError, InputError
-from .plan_merit import DEFAULT_MAX_TR_S, DEFAULT_OVERHEAD_S, Physiology, bold_merit, readout_s, slice_time_s, volume_tr_s
+from .plan_merit import DEFAULT_MAX_TR_S, DEFAULT_OVERHEAD_S, Physiology, bold_merit, readout_s, slice_time_s
 
 __all__ = [
     "Protocol",
@@ -392,15 +392,16 @@ def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mas
                                 for t in tilts]
     stats = _kernel_stats(b0_hz, affine, roi, brain, spec, protocols, frames, tilts, engine)
     extents = mask_extent_mm(brain if spec.coverage == "brain" else roi, affine, np.array([f.normal for f in frames]))
-    rows = [_row(p, st, extents[tilts.index(p.tilt_deg)], spec) for p, st in zip(protocols, stats)]
+    slice_s = {te: float(spec.slice_times_s(te)) for te in spec.te_s}
+    rows = [_row(p, st, float(extents[tilts.index(p.tilt_deg)]), slice_s[p.te_s], spec)
+            for p, st in zip(protocols, stats)]
     _add_merit(rows, spec)
     return rank(rows, spec.ranking)
 
 
-def _row(p: Protocol, st, extent_mm: float, spec: SweepSpec) -> dict:
+def _row(p: Protocol, st, extent_mm: float, slice_s: float, spec: SweepSpec) -> dict:
     n_slices = slices_to_cover(extent_mm, p.thickness_mm, spec.slice_gap_mm)
-    slice_s = float(spec.slice_times_s(p.te_s))
-    tr = float(f"{float(volume_tr_s(n_slices, slice_s, spec.multiband)):.12g}")
+    tr = float(f"{math.ceil(n_slices / spec.multiband) * slice_s:.12g}")  # plan_merit.volume_tr_s, per row
     if spec.fixed_tr_s is not None:
         tr = max(tr, spec.fixed_tr_s)
     return {
