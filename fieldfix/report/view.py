@@ -205,7 +205,10 @@ _PLAN_FIXED = {
     "threshold": ("Loss threshold", "{:g}", "fraction of signal", 1.0),
     "slice_gap_mm": ("Slice gap", "{:g}", "mm", 1.0), "time_per_slice_s": ("Time per slice", "{:g}", "ms", 1000.0),
     "multiband": ("Multiband factor", "{:d}", "slices at once", 1.0), "max_tr_s": ("TR limit", "{:g}", "s", 1.0),
-    "tolerance": ("Tolerance on the ROI median", "{:g}", "fraction", 1.0), "coverage": ("Slices cover", None, "", 1.0),
+    "tolerance": ("Tolerance on the ranked figure", "{:g}", "fraction", 1.0), "coverage": ("Slices cover", None, "", 1.0),
+    "fixed_tr_s": ("TR of every protocol", "{:g}", "s", 1.0), "rank_by": ("Ranking", None, "", 1.0),
+    "t2star_s": ("T2* of the tissue", "{:g}", "ms", 1000.0), "field_strength_t": ("Field strength", "{:g}", "T", 1.0),
+    "lambda_physio": ("Physiological noise", "{:g}", "fraction of the signal", 1.0),
 }
 
 
