@@ -63,6 +63,12 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--field-strength", metavar="FIELD", default="3T", help="main field (default 3T)")
     parser.add_argument("--physio-noise", type=float, default=0.011,
                         help="physiological noise as a fraction of the signal (default 0.011; 0 for thermal only)")
+    parser.add_argument("--model-labels", metavar="LABELS", default=None,
+                        help="without --b0: a label image whose field is modelled instead of the built-in head")
+    parser.add_argument("--model-table", metavar="TABLE", default=None,
+                        help="susceptibility of each label in ppm, e.g. 0=0.36,1=-9.05,4=-9.04 (with --model-labels)")
+    parser.add_argument("--model-brain", metavar="VALUES", default=None,
+                        help="labels of --model-labels that are brain (the shim region and brain mask), e.g. 4")
     parser.add_argument("--pitch", metavar="ANGLE", default="0deg",
                         help="head pitch of the modelled field (without --b0; default 0deg)")
     parser.add_argument("--coverage", choices=("brain", "roi"), default="brain",
@@ -121,6 +127,32 @@ def _spec(args):
     return dataclasses.replace(spec, **typed), field_t
 
 
+def _whole_numbers(text: str, flag: str) -> list[int]:
+    from fieldfix.errors import InputError
+
+    try:
+        return [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise InputError(f"{flag}: cannot read {text!r} as whole numbers, e.g. 11,12") from None
+
+
+def _label_model(args) -> dict:
+    """The label-image fields of the modelled field (empty without --model-labels)."""
+    from fieldfix.errors import InputError
+
+    if args.model_labels is None:
+        return {}
+    if args.b0 is not None or not args.model_table or not args.model_brain:
+        raise InputError("--model-labels needs --model-table and --model-brain, and no --b0")
+    try:
+        table = tuple((int(k), float(v)) for k, v in (item.split("=") for item in args.model_table.split(",")))
+    except ValueError:
+        raise InputError(f"--model-table: cannot read {args.model_table!r}; write label=ppm pairs, e.g. "
+                         "0=0.36,4=-9.04") from None
+    return {"labels_path": args.model_labels, "table_ppm": table,
+            "brain_labels": tuple(_whole_numbers(args.model_brain, "--model-brain"))}
+
+
 def run(args) -> dict:
     from fieldfix.errors import InputError
     from fieldfix.plan_field import ModelledField
@@ -133,14 +165,10 @@ def run(args) -> dict:
         raise InputError("--pe-lines must be at least 2 and --multiband at least 1")
     if not args.like and not (args.te and args.thickness):
         raise InputError("--te and --thickness are needed (or --like a pilot EPI to take them from)")
-    labels = None
-    if args.roi_label:
-        try:
-            labels = [int(v) for v in args.roi_label.split(",") if v.strip()]
-        except ValueError:
-            raise InputError(f"--roi-label: cannot read {args.roi_label!r} as whole numbers, e.g. 11,12") from None
+    labels = _whole_numbers(args.roi_label, "--roi-label") if args.roi_label else None
     spec, field_t = _spec(args)
-    model = ModelledField(field_strength_t=field_t, pitch_deg=parse_checked(args.pitch, "tilt_deg", "pitch_deg"))
+    model = ModelledField(field_strength_t=field_t, pitch_deg=parse_checked(args.pitch, "tilt_deg", "pitch_deg"),
+                          **_label_model(args))
     job = job_options(args)
     summary = run_plan(args.b0, job, roi_path=args.roi, brain_mask_path=args.brain_mask, spec=spec,
                        roi_labels=labels, model=model)

@@ -35,13 +35,18 @@ __all__ = ["ModelledField", "FieldModel", "modelled_field", "field_from_label_im
 
 @dataclass(frozen=True)
 class ModelledField:
-    """How to model the field: field strength (T), head pitch (degrees), grid and shim order."""
+    """How to model the field: field strength (T), head pitch (degrees), grid and shim order of the
+    built-in head, or a user's label image (`labels_path`, read by the planning job) with its
+    label -> susceptibility (ppm) table and the labels that are brain (the shim's region)."""
 
     field_strength_t: float = 3.0
     pitch_deg: float = 0.0
     voxel_mm: float = 4.0
     shape: tuple = (44, 54, 54)
     shim_order: int = 2
+    labels_path: str | None = None
+    table_ppm: tuple = ()
+    brain_labels: tuple = ()
 
 
 @dataclass(frozen=True)

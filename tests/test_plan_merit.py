@@ -182,6 +182,42 @@ def test_plan_without_field_map_uses_the_modelled_field(tmp_path, capsys):
     assert saved["b0"].startswith("modelled") and saved["parameters"]["t2star_s"] == 0.027
 
 
+def test_modelled_field_from_a_label_image(tmp_path, capsys):
+    from fieldfix.plan_field import ModelledField, modelled_field
+    from fieldfix.susceptibility import HEAD_LABEL_SUSCEPTIBILITY_PPM, HEAD_LABELS, head_model
+
+    how = ModelledField(voxel_mm=6.0, shape=(30, 36, 36))
+    hm = head_model(how.shape, how.voxel_mm)
+    nib.save(nib.Nifti1Image(hm.labels.astype(np.float32), hm.affine), str(tmp_path / "labels.nii.gz"))
+    roi = np.zeros(hm.labels.shape, np.float32)
+    i, j, k = np.argwhere(hm.brain_mask).mean(axis=0).astype(int)
+    roi[i - 2:i + 2, j - 2:j + 2, k - 2:k + 2] = 1.0
+    nib.save(nib.Nifti1Image(roi, hm.affine), str(tmp_path / "roi.nii.gz"))
+    table = ",".join(f"{k}={v}" for k, v in HEAD_LABEL_SUSCEPTIBILITY_PPM.items())
+    base = ["plan", "--roi", str(tmp_path / "roi.nii.gz"), "--te", "30ms,45ms", "--thickness", "3mm",
+            "--echo-spacing", "0.5ms", "--model-labels", str(tmp_path / "labels.nii.gz"), "--model-brain",
+            str(HEAD_LABELS["brain"]), "--quiet", "--json"]
+    assert cli_main(base + ["--model-table", table, "--out", str(tmp_path / "a")]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["field_source"] == "modelled"
+    # the label image route and the built-in head give the same plan (crisp labels vs partial volume)
+    from fieldfix.workflows.plan import run_plan
+    built_in = run_plan(None, tmp_path / "b", roi_path=tmp_path / "roi.nii.gz", te_s=[0.03, 0.045],
+                        thickness_mm=[3.0], echo_spacing_s=5e-4, model=how)
+    assert built_in.recommended.te_s == summary["recommended"]["te_s"] == 0.045  # near the 3 T T2*, calm centre
+    from fieldfix.plan_field import field_from_label_image
+
+    crisp = field_from_label_image(hm.labels, hm.affine, HEAD_LABEL_SUSCEPTIBILITY_PPM, [HEAD_LABELS["brain"]], how)
+    smooth = modelled_field(how)
+    inside = hm.brain_mask
+    assert np.corrcoef(crisp.b0_hz[inside], smooth.b0_hz[inside])[0, 1] > 0.9
+    # a label without a susceptibility: one line, exit 2, nothing written
+    assert cli_main(base + ["--model-table", "0=0.36,4=-9.04", "--out", str(tmp_path / "c")]) == 2
+    err = [line for line in capsys.readouterr().err.splitlines() if line.strip()]
+    assert len(err) == 1 and "no susceptibility" in err[0] and "labels.nii.gz" in err[0]
+    assert not (tmp_path / "c").exists() or not any((tmp_path / "c").iterdir())
+
+
 def test_pilot_image_sets_geometry_and_timing(tmp_path):
     from fieldfix.workflows._plan_pilot import spec_from_pilot
 

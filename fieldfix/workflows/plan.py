@@ -25,7 +25,7 @@ from ..jsonfile import to_jsonable, write_json
 from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
 from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
-from ..plan_field import FieldModel, ModelledField, modelled_field
+from ..plan_field import FieldModel, ModelledField, field_from_label_image, modelled_field
 from .dropout import load_mask_on_grid
 
 __all__ = ["run_plan", "load_label_roi", "CAUTION"]
@@ -77,7 +77,8 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
         with the parameters, provenance and the full table.
     """
     job, spec = job_and_settings(job, SweepSpec, spec, changes)
-    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path) if p is not None]
+    labels_path = model.labels_path if model is not None and b0_path is None else None
+    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path, labels_path) if p is not None]
     files = PlanFiles.named(job.tag)
     names = {k: job.path(v) for k, v in files.to_json().items()}
     spec.check_tr_limits()
@@ -97,6 +98,16 @@ def _brain_words(brain_mask_path, b0_path) -> str:
 
 def _field(b0_path, model: ModelledField | None) -> FieldModel:
     """The measured field of a file, or the modelled field of the built-in head."""
+    if b0_path is None and model is not None and model.labels_path is not None:
+        image = load_image(model.labels_path, ndim=(3,))
+        data = image.get_fdata(np.float32)
+        if not np.isfinite(data).all() or not np.allclose(data, np.rint(data)):
+            raise InputError("the label image must hold whole numbers", model.labels_path)
+        try:
+            return field_from_label_image(np.rint(data), image.affine, dict(model.table_ppm), model.brain_labels,
+                                          model)
+        except InputError as err:
+            raise InputError(err.message, model.labels_path) from None
     if b0_path is None:
         return modelled_field(model or ModelledField())
     b0_img = load_image(b0_path, ndim=(3,))
