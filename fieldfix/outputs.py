@@ -273,17 +273,21 @@ class DropoutFiles(_Files):
 
 @dataclass(frozen=True)
 class PlanFiles(_Files):
-    """Outputs of the planning job."""
+    """Outputs of the planning job (``modelled_b0_hz``: the modelled field, when no map was given,
+    for ``dropout --b0`` before the study)."""
 
     csv: str
     json: str
     figure: str
+    modelled_b0_hz: str | None = None
 
     SUMMARY_SUFFIX = "plan.json"
+    IMAGES = ("modelled_b0_hz",)
 
     @classmethod
-    def named(cls, tag: str = "") -> "PlanFiles":
-        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png")
+    def named(cls, tag: str = "", modelled: bool = False) -> "PlanFiles":
+        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png",
+                   modelled_b0_hz=f"{tag}plan_modelled_b0_hz.nii.gz" if modelled else None)
 
 
 # ----------------------------------------------------------------------------------- summaries

@@ -180,6 +180,11 @@ def test_plan_without_field_map_uses_the_modelled_field(tmp_path, capsys):
     assert summary["field_source"] == "modelled" and summary["reason"].startswith("Modelled")
     saved = json.loads((out / "plan.json").read_text())
     assert saved["b0"].startswith("modelled") and saved["parameters"]["t2star_s"] == 0.027
+    # the modelled field is written for dropout --b0 before the study
+    field = nib.load(str(out / "plan_modelled_b0_hz.nii.gz"))
+    assert field.shape == model.labels.shape and np.isfinite(np.asarray(field.dataobj)).all()
+    assert cli_main(["dropout", "--b0", str(out / "plan_modelled_b0_hz.nii.gz"), "--te", "30ms", "--thickness",
+                     "3mm", "--out", str(tmp_path / "drop"), "--quiet"]) == 0
 
 
 def test_modelled_field_from_a_label_image(tmp_path, capsys):

@@ -20,7 +20,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..geometry import resample_to_grid, same_grid
-from ..io import Provenance, load_image
+from ..io import Provenance, load_image, save_image
 from ..jsonfile import to_jsonable, write_json
 from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
@@ -79,8 +79,8 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
     job, spec = job_and_settings(job, SweepSpec, spec, changes)
     labels_path = model.labels_path if model is not None and b0_path is None else None
     inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path, labels_path) if p is not None]
-    files = PlanFiles.named(job.tag)
-    names = {k: job.path(v) for k, v in files.to_json().items()}
+    files = PlanFiles.named(job.tag, modelled=b0_path is None)
+    names = {k: job.path(v) for k, v in files.to_json().items() if v is not None}
     spec.check_tr_limits()
     with output_folder(job.out_dir):
         output_paths_guard(names.values(), inputs, job.overwrite)
@@ -174,6 +174,10 @@ def _plan_in_folder(field: FieldModel, roi, brain, job, files, names, inputs, sp
     modelled = field.source.startswith("modelled")
     with atomic_output(names["csv"], inputs, job.overwrite) as temporary:
         temporary.write_text(_csv_text(rows), encoding="utf-8")
+    if modelled:
+        save_image(names["modelled_b0_hz"], field.b0_hz, field.affine, inputs=inputs, overwrite=job.overwrite,
+                   provenance=Provenance(job.command, parameters, inputs),
+                   sidecar_extra={"Description": field.source, "Units": "Hz"})
     with atomic_output(names["figure"], inputs, job.overwrite) as temporary:
         plot_tradeoffs(rows, temporary, recommended=choice, ranking=spec.ranking, modelled=modelled)
     summary = PlanSummary(
