@@ -133,7 +133,10 @@ def _scatter(ax, rows, rec, xkey, ykey, colour, thicknesses, xlabel, ylabel):
                            color=colour[d], alpha=0.75, linewidths=0)
     x, y = xkey(rec), rec[ykey]
     ax.plot([x], [y], "o", ms=13, mfc="none", mec="#111111", mew=1.4)
-    dx, dy = _label_offset(ax, x, y, [xkey(r) for r in rows], [r[ykey] for r in rows])
+    xs = np.array([xkey(r) for r in rows], float)
+    dx, dy = _label_offset(ax, x, y, xs, [r[ykey] for r in rows])
+    if x > xs.min() + 0.7 * (np.ptp(xs) or 1.0):  # keep the label inside the panel
+        dx = -abs(dx)
     ax.annotate("recommended", (x, y), xytext=(dx, dy), textcoords="offset points",
                 fontsize=8, ha="left" if dx > 0 else "right", va="bottom" if dy > 0 else "top",
                 arrowprops={"arrowstyle": "-", "color": "#111111", "lw": 0.8},
