@@ -251,3 +251,22 @@ def test_tr_warning_when_no_protocol_fits(tmp_path):
 def test_physiology_refuses_implausible_t2star():
     with pytest.raises(InputError, match="t2star_s"):
         pm.Physiology(t2star_s=0.001)
+
+
+def test_cli_like_takes_echo_time_thickness_and_timing_from_the_pilot(tmp_path, capsys):
+    paths = _files(tmp_path)
+    affine = nib.load(str(paths["b0"])).affine
+    pilot = tmp_path / "pilot_bold.nii.gz"
+    nib.save(nib.Nifti1Image(np.zeros((28, 30, 30, 2), np.float32), affine), str(pilot))
+    (tmp_path / "pilot_bold.json").write_text(json.dumps({"PhaseEncodingDirection": "j", "EchoTime": 0.03,
+                                                          "EffectiveEchoSpacing": 0.0005}))
+    out = tmp_path / "like"
+    assert cli_main(["plan", "--b0", str(paths["b0"]), "--roi", str(paths["roi"]), "--like", str(pilot), "--out",
+                     str(out), "--json", "--quiet"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["ranking"] == "efficiency" and summary["metric"] == "bold_sensitivity"
+    assert summary["recommended"]["te_s"] == 0.03 and summary["recommended"]["thickness_mm"] == 3.0
+    saved = json.loads((out / "plan.json").read_text())
+    assert saved["parameters"]["pe_lines"] == 30 and saved["parameters"]["orientation"] == "axial"
+    # slice time from the protocol: 6 ms + TE + 15 lines x 0.5 ms
+    assert saved["recommended"]["slice_time_s"] == pytest.approx(0.006 + 0.03 + 15 * 0.0005)
