@@ -6,7 +6,8 @@ whole-brain-sized B0 map at 2.5 mm (72x86x72, brain-like ellipsoid mask of about
 108 000 voxels, invented field: smooth background plus the dipole fields of three air
 spheres standing in for the frontal sinus and the ear canals). Ours: ``plan.sweep``
 with the numba kernel; baseline: the same call with ``engine='numpy'`` (vectorised numpy,
-``np.median`` per protocol). Both include the gradient and projections; each side is timed
+``np.median`` per protocol). Both include the gradient and projections and everything after the
+kernel (protocol timing, the BOLD figure of merit with its tSNR model, ranking); each side is timed
 as the best of three calls after one warm-up call. Goals: ratio >= 10
 and our absolute time < 30 s on 2 cores; peak memory is printed.
 

@@ -25,7 +25,8 @@ Field map placement and head motion
 Dropout and planning
     :func:`frame_from_affine`, :func:`frame_from_orientation`, :func:`dropout_maps`,
     :func:`through_plane_retention`, :func:`bold_sensitivity`, :func:`sweep`,
-    :func:`recommend`
+    :func:`recommend`, :class:`SweepSpec`, :class:`Physiology`, :func:`bold_merit`,
+    :func:`modelled_field`, :class:`ModelledField`
 Physics models
     :func:`field_from_susceptibility`, :func:`head_model`, :func:`shim_field`
 Files and jobs
@@ -63,7 +64,9 @@ _EXPORTS = {
     "pairs": ["field_from_pairs", "restore_jointly", "PhaseEncoding", "PairOptions"],
     "dropout": ["frame_from_affine", "frame_from_orientation", "dropout_maps", "through_plane_retention",
                 "bold_sensitivity"],
-    "plan": ["sweep", "recommend"],
+    "plan": ["sweep", "recommend", "SweepSpec"],
+    "plan_merit": ["Physiology", "bold_merit"],
+    "plan_field": ["modelled_field", "ModelledField"],
     "susceptibility": ["field_from_susceptibility", "head_model"],
     "shim": ["shim_field"],
     "io": ["load_image", "save_image"],

@@ -33,6 +33,8 @@ def conjugate_gradient(apply_a: Callable[[np.ndarray], np.ndarray], b: np.ndarra
     r = b - apply_a(x)
     bnorm = float(np.linalg.norm(b)) or 1.0
     p = precond(r)
+    if np.shares_memory(p, r):  # an identity preconditioner hands back r itself; p is updated in place
+        p = p.copy()
     rz = float(np.vdot(r, p))
     iterations = 0
     # updates in place: besides x, r and p, one operator result and one preconditioned

@@ -27,6 +27,7 @@ Examples
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass
@@ -43,9 +44,11 @@ from .dropout import (
     zshim_cyc_per_mm,
 )
 from .errors import GeometryError, InputError
+from .plan_merit import DEFAULT_MAX_TR_S, DEFAULT_OVERHEAD_S, Physiology, bold_merit, readout_s, slice_time_s
 
 __all__ = [
     "Protocol",
+    "SweepSpec",
     "protocol_grid",
     "mask_extent_mm",
     "slices_to_cover",
@@ -61,8 +64,21 @@ _WORLD_WORDS = {"x": ("left", "right"), "y": ("posterior", "anterior"), "z": ("i
 
 #: Columns of the ranked table, in order.
 CSV_COLUMNS = ("rank", "thickness_mm", "te_ms", "tilt_deg", "pe_polarity", "pe_direction", "zshim_mtms_per_m",
-               "metric", "roi_median", "roi_pct_below", "brain_median", "brain_pct_below", "n_slices", "tr_s",
-               "fits_tr")
+               "metric", "roi_median", "roi_percent_below", "brain_median", "brain_percent_below", "merit", "tsnr",
+               "n_slices", "slice_time_s", "tr_s", "fits_tr")
+
+#: The columns in words, with units (the figure's table and the README).
+COLUMN_WORDS = {
+    "rank": "rank (1 = recommended order)", "thickness_mm": "slice thickness (mm)", "te_ms": "echo time (ms)",
+    "tilt_deg": "slice tilt (degrees)", "pe_polarity": "phase-encode polarity (+/-)",
+    "pe_direction": "phase-encode direction (world words)", "zshim_mtms_per_m": "z-shim moment (mT*ms/m)",
+    "metric": "signal metric used", "roi_median": "ROI median of the metric (0-1)",
+    "roi_percent_below": "ROI voxels under the threshold (%)", "brain_median": "brain median of the metric (0-1)",
+    "brain_percent_below": "brain voxels under the threshold (%)",
+    "merit": "BOLD contrast-to-noise per unit time (relative, best = 1)", "tsnr": "modelled temporal SNR (relative)",
+    "n_slices": "slices to cover (count)", "slice_time_s": "time per slice (s)", "tr_s": "TR (s)",
+    "fits_tr": "TR within the limit (true/false)",
+}
 
 
 @dataclass(frozen=True)
@@ -174,72 +190,118 @@ def _pe_direction(axis: str, sign: int) -> str:
     low, high = _WORLD_WORDS[axis]
     return f"{low} to {high}" if sign > 0 else f"{high} to {low}"
 
+@dataclass(frozen=True)
+class SweepSpec:
+    """Everything a sweep needs besides the images: the swept values, geometry, timing and model.
 
-def sweep(
-    b0_hz: np.ndarray,
-    affine: np.ndarray,
-    roi_mask: np.ndarray,
-    brain_mask: np.ndarray | None = None,
-    *,
-    thickness_mm,
-    te_s,
-    tilt_deg,
-    pe_signs=(1, -1),
-    zshim_mtms_per_m=(0.0,),
-    orientation: str = "axial",
-    pe_world_axis: str = "y",
-    inplane_mm: float = 3.0,
-    pe_lines: int = 64,
-    echo_spacing_s: float | None = None,
-    partial_fourier: float = 1.0,
-    profile: str = "rect",
-    tbw: float = 4.0,
-    threshold: float = 0.5,
-    slice_gap_mm: float = 0.0,
-    time_per_slice_s: float = 0.06,
-    multiband: int = 1,
-    max_tr_s: float | None = None,
-    coverage: str = "brain",
-    engine: str = "numba",
-) -> list[dict]:
-    """Evaluate a sweep of protocols over a B0 map.
+    A new protocol knob is a field here and an option in ``cli/plan.py``. Times in s, lengths in mm.
 
-    Parameters
+    Attributes
     ----------
-    b0_hz : (X, Y, Z) array
-        B0 map in Hz, smooth and extended a little past the brain.
-    affine : (4, 4) array
-    roi_mask, brain_mask : (X, Y, Z) bool arrays
-        Region of interest and whole-brain mask on the B0 grid (the ROI is added to the
-        brain mask). Without a brain mask, voxels with a finite, non-zero field are used.
-    thickness_mm, te_s, tilt_deg : sequences of float
-        Values to sweep (mm, s, degrees; tilt convention of :func:`fieldfix.dropout.tilt_rotation`).
-    pe_signs : sequence of {+1, -1}
-        Phase-encode polarities (used only with `echo_spacing_s`).
-    zshim_mtms_per_m : sequence of float
-        Z-shim moments along the slice normal (mT*ms/m).
+    thickness_mm, te_s, tilt_deg, pe_signs, zshim_mtms_per_m : tuples
+        Values to sweep (tilt convention of :func:`fieldfix.dropout.tilt_rotation`; polarities are
+        swept only with `echo_spacing_s`).
     orientation, pe_world_axis, inplane_mm, pe_lines
-        Slice geometry of the candidate protocols (see :func:`fieldfix.dropout.frame_from_orientation`).
+        Slice geometry (see :func:`fieldfix.dropout.frame_from_orientation`).
     echo_spacing_s : float, optional
-        Effective echo spacing. When given, the metric is the BOLD sensitivity, else the
-        through-plane retention at the nominal TE (and the polarity is not swept).
-    partial_fourier : float
-    profile, tbw : slice profile ('rect', 'gaussian', 'rf') and RF time-bandwidth product.
-    threshold : float
-        Voxels with a metric below it count as lost.
-    slice_gap_mm, time_per_slice_s, multiband
-        Scan-time arithmetic.
+        Effective echo spacing. Gives the BOLD sensitivity metric, the readout and slice times.
+    partial_fourier, profile, tbw, threshold
+        Partial Fourier fraction, slice profile, RF time-bandwidth product, level counted as lost.
+    slice_gap_mm, multiband, coverage
+        Slices cover the ``coverage`` mask ('brain' or 'roi') with this gap, ``multiband`` at once.
+    time_per_slice_s : float, optional
+        A fixed time per slice; default: from the protocol (:func:`fieldfix.plan_merit.slice_time_s`,
+        with an assumed 0.5 ms echo spacing when none is given).
+    overhead_s : float
+        Excitation, rewinder and spoiler time of one slice.
     max_tr_s : float, optional
-        Marks protocols whose TR exceeds it (``fits_tr`` False).
-    coverage : {'brain', 'roi'}
-        Which mask the slices must cover.
-    engine : {'numba', 'numpy'}
-        Numba kernel or the plain-numpy reference.
+        Longest acceptable TR (default 3 s; None for no limit).
+    fixed_tr_s : float, optional
+        Run every protocol at this TR (dead time after the slices) instead of its shortest TR.
+    rank_by : {'efficiency', 'retention'}, optional
+        'efficiency' (BOLD contrast-to-noise per unit time, :func:`fieldfix.plan_merit.bold_merit`)
+        or 'retention' (ROI median of the signal metric); default efficiency with an echo spacing.
+    physiology : Physiology
+        T2*, field strength and noise model of the figure of merit.
+    tolerance : float
+        Figures this close to the best count as equal when recommending.
 
-    Returns
+    Example
     -------
-    list of dict, one per protocol, ranked (see :func:`rank`).
+    >>> SweepSpec(te_s=(0.03, 0.045), echo_spacing_s=5e-4).ranking
+    'efficiency'
     """
+
+    thickness_mm: tuple = (3.0,)
+    te_s: tuple = (0.03,)
+    tilt_deg: tuple = (0.0,)
+    pe_signs: tuple = (1, -1)
+    zshim_mtms_per_m: tuple = (0.0,)
+    orientation: str = "axial"
+    pe_world_axis: str = "y"
+    inplane_mm: float = 3.0
+    pe_lines: int = 64
+    echo_spacing_s: float | None = None
+    partial_fourier: float = 1.0
+    profile: str = "rect"
+    tbw: float = 4.0
+    threshold: float = 0.5
+    slice_gap_mm: float = 0.0
+    time_per_slice_s: float | None = None
+    overhead_s: float = DEFAULT_OVERHEAD_S
+    multiband: int = 1
+    max_tr_s: float | None = DEFAULT_MAX_TR_S
+    fixed_tr_s: float | None = None
+    coverage: str = "brain"
+    rank_by: str | None = None
+    physiology: Physiology = Physiology()
+    tolerance: float = 0.01
+
+    def __post_init__(self):
+        for name in ("thickness_mm", "te_s", "tilt_deg", "pe_signs", "zshim_mtms_per_m"):
+            object.__setattr__(self, name, tuple(np.atleast_1d(getattr(self, name)).tolist()))
+        if self.coverage not in ("brain", "roi"):
+            raise InputError(f"coverage must be 'brain' or 'roi', got {self.coverage!r}")
+        if self.rank_by not in (None, "efficiency", "retention"):
+            raise InputError(f"rank_by must be 'efficiency' or 'retention', got {self.rank_by!r}")
+        if not 0.0 < self.threshold:
+            raise InputError("the threshold must be positive")
+        if self.pe_lines < 2 or self.multiband < 1:
+            raise InputError("pe_lines must be at least 2 and multiband at least 1")
+
+    @property
+    def ranking(self) -> str:
+        """The ranking in force ('efficiency' or 'retention')."""
+        return self.rank_by or ("efficiency" if self.echo_spacing_s is not None else "retention")
+
+    @property
+    def timing_echo_spacing_s(self) -> float:
+        """Echo spacing used for timing: the given one, else 0.5 ms (common practice, no source)."""
+        return self.echo_spacing_s if self.echo_spacing_s is not None else 5e-4
+
+    def slice_times_s(self, te_s) -> np.ndarray:
+        """Time of one slice for each echo time (s)."""
+        if self.time_per_slice_s is not None:
+            return np.full(np.shape(te_s), float(self.time_per_slice_s))
+        return slice_time_s(te_s, self.pe_lines, self.timing_echo_spacing_s, self.overhead_s)
+
+    def check_tr_limits(self) -> None:
+        """Refuse a TR limit shorter than one slice of the shortest protocol."""
+        one = float(np.min(self.slice_times_s(np.array(self.te_s))))
+        for name in ("max_tr_s", "fixed_tr_s"):
+            value = getattr(self, name)
+            if value is not None and value < one - 1e-12:
+                raise InputError(f"{name} of {value * 1e3:g} ms is shorter than one slice ({one * 1e3:.1f} ms)")
+
+    def as_dict(self) -> dict:
+        """The parameters as JSON-ready values (the physiology flattened)."""
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "physiology"}
+        out.update({k: list(v) for k, v in out.items() if isinstance(v, tuple)})
+        out.update(dataclasses.asdict(self.physiology), rank_by=self.ranking)
+        return out
+
+
+def _masks(b0_hz, roi_mask, brain_mask):
     b0_hz = np.asarray(b0_hz, float)
     roi = np.asarray(roi_mask, bool)
     if roi.shape != b0_hz.shape:
@@ -255,21 +317,11 @@ def sweep(
     brain = brain | roi
     if not np.isfinite(b0_hz[brain]).all():
         raise InputError("the B0 map has non-finite values inside the masks")
-    if coverage not in ("brain", "roi"):
-        raise InputError(f"coverage must be 'brain' or 'roi', got {coverage!r}")
-    if engine not in ("numba", "numpy"):
-        raise InputError(f"engine must be 'numba' or 'numpy', got {engine!r}")
-    if not 0.0 < threshold:
-        raise InputError("the threshold must be positive")
-    use_pe = echo_spacing_s is not None
-    protocols = protocol_grid(thickness_mm, te_s, tilt_deg, pe_signs if use_pe else (0,), zshim_mtms_per_m)
-    if use_pe and 0 in {p.pe_sign for p in protocols}:
-        raise InputError("with an echo spacing, phase-encode polarities must be +1 or -1")
-    prof = slice_profile(profile, tbw=tbw)
+    return b0_hz, roi, brain
 
-    tilts = list(dict.fromkeys(p.tilt_deg for p in protocols))
-    frames: list[SliceFrame] = [frame_from_orientation(orientation, t, pe_world_axis=pe_world_axis,
-                                                       inplane_mm=inplane_mm, pe_lines=pe_lines) for t in tilts]
+
+def _kernel_stats(b0_hz, affine, roi, brain, spec: SweepSpec, protocols, frames, tilts, engine):
+    """ROI and brain median and percentage under the threshold per protocol (kernel or reference)."""
     # Brain voxels with the ROI first: the kernel wants the ROI as a leading block (no copy then).
     idx = np.flatnonzero(brain.ravel())
     in_roi = roi.ravel()[idx]
@@ -277,77 +329,131 @@ def sweep(
     finite = b0_hz if np.isfinite(b0_hz).all() else np.where(np.isfinite(b0_hz), b0_hz, 0.0)
     grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)
     dirs = np.array([[f.normal, f.pe_step_mm, f.ro_step_mm] for f in frames])
-    roi_in_brain = roi.ravel()[idx]
-
-    tilt_index = np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64)
-    signs = np.array([p.pe_sign for p in protocols], np.int64)
-    tes = np.array([p.te_s for p in protocols])
-    thick = np.array([p.thickness_mm for p in protocols])
-    zs = np.array([zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols])
-    mode = 1 if use_pe else 0
-    t_pe = pe_lines * echo_spacing_s if use_pe else 0.0
-    if use_pe:
-        start, end = acquisition_window_s(1.0, echo_spacing_s, pe_lines, partial_fourier)
+    args = (grad, dirs, roi.ravel()[idx], np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64),
+            np.array([p.pe_sign for p in protocols], np.int64), np.array([p.te_s for p in protocols]),
+            np.array([p.thickness_mm for p in protocols]),
+            np.array([zshim_cyc_per_mm(p.zshim_mtms_per_m) for p in protocols]))
+    esp = spec.echo_spacing_s
+    before = after = t_pe = 0.0
+    if esp is not None:
+        t_pe = spec.pe_lines * esp
+        start, end = acquisition_window_s(1.0, esp, spec.pe_lines, spec.partial_fourier)
         before, after = 1.0 - start, end - 1.0
-    else:
-        before = after = 0.0
+    prof = slice_profile(spec.profile, tbw=spec.tbw)
+    timing = (1 if esp is not None else 0, t_pe, before, after)
     if engine == "numba":
-        stats = kernels.sweep_stats(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode, t_pe,
-                                    before, after, prof.table, prof.step, prof.tail == "sinc", threshold,
-                                    analytic=prof.kind if prof.kind in kernels.CLOSED_FORMS else None)
-    else:
-        stats = kernels.sweep_stats_reference(grad, dirs, roi_in_brain, tilt_index, signs, tes, thick, zs, mode,
-                                              t_pe, before, after, prof.retention, threshold)
-
-    cover = brain if coverage == "brain" else roi
-    extents = mask_extent_mm(cover, affine, np.array([f.normal for f in frames]))
-    metric = "bold_sensitivity" if use_pe else "retention"
-    rows = []
-    for p, ti, st in zip(protocols, tilt_index, stats):
-        n_slices = slices_to_cover(extents[ti], p.thickness_mm, slice_gap_mm)
-        tr = shortest_tr_s(n_slices, time_per_slice_s, multiband)
-        rows.append({
-            "protocol": p.label(),
-            "thickness_mm": p.thickness_mm,
-            "te_s": p.te_s,
-            "te_ms": float(f"{p.te_s * 1e3:.9g}"),
-            "tilt_deg": p.tilt_deg,
-            "pe_sign": p.pe_sign,
-            "pe_polarity": {1: "+", -1: "-", 0: "none"}[p.pe_sign],
-            "pe_direction": _pe_direction(pe_world_axis, p.pe_sign),
-            "zshim_mtms_per_m": p.zshim_mtms_per_m,
-            "metric": metric,
-            "roi_median": float(st[0]),
-            "roi_pct_below": float(st[1]),
-            "brain_median": float(st[2]),
-            "brain_pct_below": float(st[3]),
-            "coverage_mm": extents[ti],
-            "n_slices": n_slices,
-            "tr_s": tr,
-            "fits_tr": bool(max_tr_s is None or tr <= max_tr_s + 1e-12),
-        })
-    return rank(rows)
+        return kernels.sweep_stats(*args, *timing, prof.table, prof.step, prof.tail == "sinc", spec.threshold,
+                                   analytic=prof.kind if prof.kind in kernels.CLOSED_FORMS else None)
+    return kernels.sweep_stats_reference(*args, *timing, prof.retention, spec.threshold)
 
 
-def _rank_key(row: dict):
-    return (-row["roi_median"], row["roi_pct_below"], -row["brain_median"], row["brain_pct_below"], row["tr_s"],
-            row["thickness_mm"], row["te_s"], abs(row["tilt_deg"]))
+def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mask: np.ndarray | None = None,
+          spec: SweepSpec | None = None, *, engine: str = "numba", **changes) -> list[dict]:
+    """Evaluate a sweep of protocols over a B0 map and rank them.
+
+    Parameters
+    ----------
+    b0_hz : (X, Y, Z) array
+        B0 map in Hz, smooth and extended a little past the brain (measured or modelled).
+    affine : (4, 4) array
+    roi_mask, brain_mask : (X, Y, Z) bool arrays
+        Region of interest and whole-brain mask on the B0 grid (the ROI is added to the
+        brain mask). Without a brain mask, voxels with a finite, non-zero field are used.
+    spec : SweepSpec, optional
+        The protocols and models; ``**changes`` replaces its fields (e.g. ``te_s=[0.03]``).
+    engine : {'numba', 'numpy'}
+        Numba kernel or the plain-numpy reference.
+
+    Returns
+    -------
+    list of dict, one per protocol, ranked (see :func:`rank`); keys in :data:`CSV_COLUMNS` and
+    ``protocol``, ``te_s``, ``pe_sign``, ``coverage_mm``, ``slice_time_s``.
+
+    Example
+    -------
+    >>> m = np.zeros((8, 8, 8), bool); m[2:6, 2:6, 2:6] = True
+    >>> rows = sweep(np.zeros((8, 8, 8)), np.eye(4) * 3, m, m, te_s=[0.03, 0.045], echo_spacing_s=5e-4)
+    >>> rows[0]["te_ms"], rows[0]["merit"]
+    (45.0, 1.0)
+    """
+    spec = dataclasses.replace(spec or SweepSpec(), **changes)
+    if engine not in ("numba", "numpy"):
+        raise InputError(f"engine must be 'numba' or 'numpy', got {engine!r}")
+    b0_hz, roi, brain = _masks(b0_hz, roi_mask, brain_mask)
+    use_pe = spec.echo_spacing_s is not None
+    protocols = protocol_grid(spec.thickness_mm, spec.te_s, spec.tilt_deg, spec.pe_signs if use_pe else (0,),
+                              spec.zshim_mtms_per_m)
+    if use_pe and 0 in {p.pe_sign for p in protocols}:
+        raise InputError("with an echo spacing, phase-encode polarities must be +1 or -1")
+    spec.check_tr_limits()
+    tilts = list(dict.fromkeys(p.tilt_deg for p in protocols))
+    frames: list[SliceFrame] = [frame_from_orientation(spec.orientation, t, pe_world_axis=spec.pe_world_axis,
+                                                       inplane_mm=spec.inplane_mm, pe_lines=spec.pe_lines)
+                                for t in tilts]
+    stats = _kernel_stats(b0_hz, affine, roi, brain, spec, protocols, frames, tilts, engine)
+    extents = mask_extent_mm(brain if spec.coverage == "brain" else roi, affine, np.array([f.normal for f in frames]))
+    slice_s = {te: float(spec.slice_times_s(te)) for te in spec.te_s}
+    rows = [_row(p, st, float(extents[tilts.index(p.tilt_deg)]), slice_s[p.te_s], spec)
+            for p, st in zip(protocols, stats)]
+    _add_merit(rows, spec)
+    return rank(rows, spec.ranking)
 
 
-def rank(rows: list[dict]) -> list[dict]:
-    """Rows sorted best first, each with its 1-based ``rank``."""
-    ordered = sorted((dict(r) for r in rows), key=_rank_key)
+def _row(p: Protocol, st, extent_mm: float, slice_s: float, spec: SweepSpec) -> dict:
+    n_slices = slices_to_cover(extent_mm, p.thickness_mm, spec.slice_gap_mm)
+    tr = float(f"{math.ceil(n_slices / spec.multiband) * slice_s:.12g}")  # plan_merit.volume_tr_s, per row
+    if spec.fixed_tr_s is not None:
+        tr = max(tr, spec.fixed_tr_s)
+    return {
+        "protocol": p.label(), "thickness_mm": p.thickness_mm, "te_s": p.te_s,
+        "te_ms": float(f"{p.te_s * 1e3:.9g}"), "tilt_deg": p.tilt_deg, "pe_sign": p.pe_sign,
+        "pe_polarity": {1: "+", -1: "-", 0: "none"}[p.pe_sign],
+        "pe_direction": _pe_direction(spec.pe_world_axis, p.pe_sign), "zshim_mtms_per_m": p.zshim_mtms_per_m,
+        "metric": "bold_sensitivity" if spec.echo_spacing_s is not None else "retention",
+        "roi_median": float(st[0]), "roi_percent_below": float(st[1]), "brain_median": float(st[2]),
+        "brain_percent_below": float(st[3]), "coverage_mm": float(extent_mm), "n_slices": n_slices,
+        "slice_time_s": slice_s, "tr_s": tr,
+        "fits_tr": bool(spec.max_tr_s is None or tr <= spec.max_tr_s + 1e-12),
+    }
+
+
+def _add_merit(rows: list[dict], spec: SweepSpec) -> None:
+    """Add the relative BOLD figure of merit and the modelled tSNR to every row."""
+    readout = readout_s(spec.pe_lines, spec.timing_echo_spacing_s, spec.partial_fourier)
+    merit, t = bold_merit([r["roi_median"] for r in rows], [r["te_s"] for r in rows],
+                          [r["thickness_mm"] * spec.inplane_mm ** 2 for r in rows], readout,
+                          [r["tr_s"] for r in rows], spec.physiology)
+    top = float(merit.max()) or 1.0
+    for row, m, ts in zip(rows, merit, t):
+        row.update(merit=float(f"{m / top:.9g}"), tsnr=float(f"{ts:.6g}"), readout_s=readout)
+
+
+def _rank_key(row: dict, ranking: str = "retention"):
+    first = (-row["merit"],) if ranking == "efficiency" else ()
+    return first + (-row["roi_median"], row["roi_percent_below"], -row["brain_median"], row["brain_percent_below"],
+                    row["tr_s"], row["thickness_mm"], row["te_s"], abs(row["tilt_deg"]))
+
+
+def rank(rows: list[dict], ranking: str = "retention") -> list[dict]:
+    """Rows sorted best first, each with its 1-based ``rank``.
+
+    ``ranking='retention'``: ROI median (descending), ROI percentage under the threshold, brain
+    median, brain percentage, TR. ``'efficiency'``: the figure of merit first, then the same.
+    """
+    ordered = sorted((dict(r) for r in rows), key=lambda r: _rank_key(r, ranking))
     for i, row in enumerate(ordered, 1):
         row["rank"] = i
     return ordered
 
 
-def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0.5) -> tuple[dict, str]:
+def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0.5,
+              ranking: str = "retention") -> tuple[dict, str]:
     """Pick one protocol and give the reason in one sentence.
 
-    Among rows that fit the TR limit (all rows if none does), those whose ROI median is
-    within `tolerance` of the best are candidates; the one with the fewest brain voxels
-    under the threshold wins, then the shortest TR, then the higher ROI median.
+    Among rows that fit the TR limit (all rows if none does), those whose ranked figure (ROI
+    median, or the relative merit with ``ranking='efficiency'``) is within `tolerance` of the
+    best are candidates; the one with the fewest brain voxels under the threshold wins, then the
+    shortest TR, then the better figure.
 
     Returns
     -------
@@ -357,24 +463,28 @@ def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0
         raise InputError("no protocols to choose from")
     pool = [r for r in rows if r.get("fits_tr", True)]
     limited = bool(pool) and len(pool) < len(rows)
-    if not pool:
-        pool = list(rows)
-    best = max(r["roi_median"] for r in pool)
-    candidates = [r for r in pool if r["roi_median"] >= best - tolerance]
-    choice = min(candidates, key=lambda r: (r["brain_pct_below"], r["tr_s"], -r["roi_median"], _rank_key(r)))
+    pool = pool or list(rows)
+    key = "merit" if ranking == "efficiency" else "roi_median"
+    best = max(r[key] for r in pool)
+    candidates = [r for r in pool if r[key] >= best - tolerance]
+    choice = min(candidates, key=lambda r: (r["brain_percent_below"], r["tr_s"], -r[key], _rank_key(r, ranking)))
     what = "BOLD sensitivity" if choice["metric"] == "bold_sensitivity" else "signal retention"
-    reason = (f"{choice['protocol']} keeps a median {what} of {choice['roi_median']:.2f} in the region of interest "
-              f"({choice['roi_pct_below']:.1f}% of its voxels under {threshold:g}), within {tolerance:g} of the best "
-              f"of {len(pool)} {'protocols fitting the TR limit' if limited else 'protocols'}, with the fewest "
-              f"whole-brain voxels under {threshold:g} ({choice['brain_pct_below']:.1f}%) among those and "
+    lead = (f"{choice['protocol']} has {choice['merit']:.2f} of the best BOLD contrast-to-noise per unit time "
+            f"(modelled tSNR {choice['tsnr']:.0f}) with" if ranking == "efficiency" else f"{choice['protocol']} keeps")
+    reason = (f"{lead} a median {what} of {choice['roi_median']:.2f} in the region of interest "
+              f"({choice['roi_percent_below']:.1f}% of its voxels under {threshold:g}), within {tolerance:g} of the "
+              f"best of {len(pool)} {'protocols fitting the TR limit' if limited else 'protocols'}, with the fewest "
+              f"whole-brain voxels under {threshold:g} ({choice['brain_percent_below']:.1f}%) among those and "
               f"{choice['n_slices']} slices at TR {choice['tr_s']:.2f} s.")
+    if not any(r.get("fits_tr", True) for r in rows):
+        reason += " No protocol fits the TR limit: fewer slices, multiband or a longer limit would."
     return choice, reason
-
 
 # --------------------------------------------------------------------------- figure
 
 
-def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = None, title: str | None = None):
+def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = None, title: str | None = None,
+                   ranking: str = "retention", modelled: bool = False):
     """Trade-off figure of a sweep (:func:`fieldfix.report.figures.tradeoff_figure`), written
     as a PNG to `path` when given.
 
@@ -386,6 +496,10 @@ def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = No
         Where to write a PNG.
     recommended : dict, optional
         Row to highlight (default: the first row).
+    ranking : {'retention', 'efficiency'}
+        The figure plotted: ROI median of the metric, or the relative BOLD figure of merit.
+    modelled : bool
+        Say in the title that the field was modelled.
 
     Returns
     -------
@@ -393,7 +507,7 @@ def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = No
     """
     from .report.figures import tradeoff_figure
 
-    fig = tradeoff_figure(rows, recommended=recommended, title=title)
+    fig = tradeoff_figure(rows, recommended=recommended, title=title, ranking=ranking, modelled=modelled)
     if path is not None:
         fig.savefig(str(path), dpi=100)
     return fig

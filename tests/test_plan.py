@@ -78,7 +78,8 @@ def test_planner_picks_thinner_slice_and_echo_earlier_polarity_above_air_cavity(
     affine, xyz, b0, roi, brain, centre, radius, roi_centre = _sphere_scenario()
     esp, lines, inplane = 5e-4, 64, 3.0
     rows = plan.sweep(b0, affine, roi, brain, thickness_mm=[2.0, 3.0, 4.0], te_s=[0.03], tilt_deg=[0.0],
-                      pe_signs=(1, -1), echo_spacing_s=esp, pe_lines=lines, inplane_mm=inplane, pe_world_axis="y")
+                      pe_signs=(1, -1), echo_spacing_s=esp, pe_lines=lines, inplane_mm=inplane, pe_world_axis="y",
+                      rank_by="retention")
     # Physics, independent of the planner: the analytic field gradient at the ROI.
     g = air_sphere_gradient_hz_per_mm(roi_centre, centre, radius)
     assert abs(g[2]) > 1.0  # a real through-plane gradient (Hz/mm) above the cavity
@@ -308,12 +309,12 @@ def test_sweep_rows_scan_time_and_tr_limit():
 
 
 def test_recommend_prefers_fewer_brain_losses_then_shorter_tr():
-    base = dict(metric="retention", roi_pct_below=0.0, brain_median=0.9, te_s=0.03, tilt_deg=0.0, pe_sign=0,
+    base = dict(metric="retention", roi_percent_below=0.0, brain_median=0.9, te_s=0.03, tilt_deg=0.0, pe_sign=0,
                 n_slices=40, fits_tr=True)
     rows = plan.rank([
-        dict(base, protocol="a", thickness_mm=2.0, roi_median=0.950, brain_pct_below=3.0, tr_s=3.0),
-        dict(base, protocol="b", thickness_mm=3.0, roi_median=0.945, brain_pct_below=3.0, tr_s=2.0),
-        dict(base, protocol="c", thickness_mm=4.0, roi_median=0.900, brain_pct_below=1.0, tr_s=1.5),
+        dict(base, protocol="a", thickness_mm=2.0, roi_median=0.950, brain_percent_below=3.0, tr_s=3.0),
+        dict(base, protocol="b", thickness_mm=3.0, roi_median=0.945, brain_percent_below=3.0, tr_s=2.0),
+        dict(base, protocol="c", thickness_mm=4.0, roi_median=0.900, brain_percent_below=1.0, tr_s=1.5),
     ])
     assert rows[0]["protocol"] == "a"
     assert plan.recommend(rows, tolerance=0.01)[0]["protocol"] == "b"
@@ -329,7 +330,7 @@ def test_plot_tradeoffs_writes_png(tmp_path):
     fig = plan.plot_tradeoffs(rows, tmp_path / "p.png", recommended=choice)
     data = (tmp_path / "p.png").read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10000
-    assert len(fig.axes) == 3
+    assert len(fig.axes) == 4
 
 
 def test_sweep_refuses_bad_input():
@@ -378,13 +379,15 @@ def test_run_plan_writes_table_json_and_figure(tmp_path):
         table = list(csv.DictReader(handle))
     assert len(table) == 24 == summary.protocols
     assert [int(r["rank"]) for r in table] == list(range(1, 25))
-    medians = [float(r["roi_median"]) for r in table]
-    assert medians == sorted(medians, reverse=True)
+    merits = [float(r["merit"]) for r in table]
+    assert merits == sorted(merits, reverse=True) and merits[0] == 1.0
+    assert summary.ranking == "efficiency" and summary.field_source == "measured"
     saved = json.loads((out / "x_plan.json").read_text())
+    assert set(saved["columns"]) == set(table[0]) and saved["columns"]["tr_s"] == "TR (s)"
     assert saved["reason"] == summary.reason and len(saved["rows"]) == 24
     assert len(saved["provenance"]["Inputs"][0]["sha256"]) == 64
     assert (out / "x_plan.png").read_bytes()[:4] == b"\x89PNG"
-    assert summary.recommended.thickness_mm == 2.0
+    assert summary.recommended.te_s == 0.025  # beside the air cavity the shorter echo time wins
     with pytest.raises(OutputError):
         run_plan(p["b0"], out, roi_path=p["roi"], te_s=[0.03], thickness_mm=[2.0], tag="x_")
 

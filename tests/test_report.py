@@ -305,7 +305,7 @@ def test_tradeoff_figure_has_one_legend_for_all_panels_and_a_label_off_the_point
     box = label.get_window_extent(fig.canvas.get_renderer())
     points = ax.transData.transform([(r["tr_s"], r["roi_median"]) for r in rows])
     assert not any(box.contains(x, y) for x, y in points)
-    assert [a.get_xlabel() for a in fig.axes[:3]] == ["slice tilt (\u00b0)", "echo time (ms)", "shortest TR (s)"]
+    assert [a.get_xlabel() for a in fig.axes[:3]] == ["slice tilt (\u00b0)", "echo time (ms)", "TR (s)"]
     assert fig._suptitle.get_text() == "$x$ plan".replace("$", r"\$")
 
 

@@ -6,7 +6,6 @@ import dataclasses
 from dataclasses import dataclass, field
 
 from ..records import Record
-
 from .base import CAUTION, JobFiles
 
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from ..records import Record
-
 from .base import CAUTION, JobFiles
 
 

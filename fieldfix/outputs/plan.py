@@ -5,23 +5,26 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from ..records import Record
-
 from .base import CAUTION, JobFiles
 
 
 @dataclass(frozen=True)
 class PlanFiles(JobFiles):
-    """Outputs of the planning job."""
+    """Outputs of the planning job (``modelled_b0_hz``: the modelled field, when no map was given,
+    for ``dropout --b0`` before the study)."""
 
     csv: str
     json: str
     figure: str
+    modelled_b0_hz: str | None = None
 
     SUMMARY_SUFFIX = "plan.json"
+    IMAGES = ("modelled_b0_hz",)
 
     @classmethod
-    def named(cls, tag: str = "") -> "PlanFiles":
-        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png")
+    def named(cls, tag: str = "", modelled: bool = False) -> "PlanFiles":
+        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png",
+                   modelled_b0_hz=f"{tag}plan_modelled_b0_hz.nii.gz" if modelled else None)
 
 
 @dataclass(frozen=True)
@@ -36,12 +39,15 @@ class PlanChoice(Record):
     pe_direction: str | None
     zshim_mtms_per_m: float
     roi_median: float
-    roi_pct_below: float
+    roi_percent_below: float
     brain_median: float | None
-    brain_pct_below: float | None
+    brain_percent_below: float | None
     n_slices: int
     tr_s: float
     rank: int
+    merit: float | None = None
+    tsnr: float | None = None
+    slice_time_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -59,6 +65,10 @@ class PlanSummary(Record):
     recommended: PlanChoice
     reason: str
     outputs: PlanFiles
+    ranking: str = "retention"
+    field_source: str = "measured"
+    warnings: list[str] = field(default_factory=list)
+    columns: dict[str, str] = field(default_factory=dict)
     parameters: dict[str, object] = field(default_factory=dict)
     provenance: dict[str, object] = field(default_factory=dict)
     rows: list[dict[str, object]] = field(default_factory=list)

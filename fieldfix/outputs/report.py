@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from ..records import Record
-
 from .base import CAUTION, JobFiles
 from .jobs import DropoutParameters, MapStatistics, TimingRecord
 from .plan import PlanChoice

@@ -30,7 +30,7 @@ __all__ = ["FieldView", "DropoutView", "PlanView", "measure_field_map", "measure
 #: Parameters of a plan held fixed across its protocols, in page order (run_plan's names).
 PLAN_FIXED = ("orientation", "pe_world_axis", "inplane_mm", "pe_lines", "echo_spacing_s", "partial_fourier",
               "profile", "tbw", "threshold", "slice_gap_mm", "time_per_slice_s", "multiband", "max_tr_s",
-              "tolerance", "coverage")
+              "fixed_tr_s", "tolerance", "coverage", "rank_by", "t2star_s", "field_strength_t", "lambda_physio")
 PLAN_TABLE_ROWS = 8
 _ROW_KEYS = ("protocol", "thickness_mm", "te_s", "te_ms", "tilt_deg", "pe_sign", "zshim_mtms_per_m", "roi_median",
              "tr_s", "metric")

@@ -205,7 +205,10 @@ _PLAN_FIXED = {
     "threshold": ("Loss threshold", "{:g}", "fraction of signal", 1.0),
     "slice_gap_mm": ("Slice gap", "{:g}", "mm", 1.0), "time_per_slice_s": ("Time per slice", "{:g}", "ms", 1000.0),
     "multiband": ("Multiband factor", "{:d}", "slices at once", 1.0), "max_tr_s": ("TR limit", "{:g}", "s", 1.0),
-    "tolerance": ("Tolerance on the ROI median", "{:g}", "fraction", 1.0), "coverage": ("Slices cover", None, "", 1.0),
+    "tolerance": ("Tolerance on the ranked figure", "{:g}", "fraction", 1.0), "coverage": ("Slices cover", None, "", 1.0),
+    "fixed_tr_s": ("TR of every protocol", "{:g}", "s", 1.0), "rank_by": ("Ranking", None, "", 1.0),
+    "t2star_s": ("T2* of the tissue", "{:g}", "ms", 1000.0), "field_strength_t": ("Field strength", "{:g}", "T", 1.0),
+    "lambda_physio": ("Physiological noise", "{:g}", "fraction of the signal", 1.0),
 }
 
 
@@ -232,9 +235,9 @@ PLAN_COLUMNS = (("rank", "Rank", "#", "{:d}", 1.0), ("protocol", "Protocol", "",
                 ("tilt_deg", "Tilt", "\u00b0", "{:g}", 1.0), ("pe_polarity", "PE polarity", "", None, 1.0),
                 ("zshim_mtms_per_m", "Z-shim", _ZSHIM_UNIT, "{:g}", 1.0),
                 ("roi_median", "ROI median", "fraction, 0\u20131", "{:.3f}", 1.0),
-                ("roi_pct_below", "ROI under threshold", "% of ROI", "{:.1f}", 1.0),
+                ("roi_percent_below", "ROI under threshold", "% of ROI", "{:.1f}", 1.0),
                 ("brain_median", "Brain median", "fraction, 0\u20131", "{:.3f}", 1.0),
-                ("brain_pct_below", "Brain under threshold", "% of brain", "{:.1f}", 1.0),
+                ("brain_percent_below", "Brain under threshold", "% of brain", "{:.1f}", 1.0),
                 ("n_slices", "Slices", "slices", "{:d}", 1.0), ("tr_s", "Shortest TR", "s", "{:.2f}", 1.0))
 
 

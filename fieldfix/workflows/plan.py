@@ -13,22 +13,24 @@ from __future__ import annotations
 import csv
 import dataclasses
 import io as _stdio
-from dataclasses import dataclass
+import logging
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
-from ..io import Provenance, load_image
+from ..geometry import resample_to_grid, same_grid
+from ..io import Provenance, load_image, save_image
 from ..jsonfile import to_jsonable, write_json
 from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
-from ..plan import CSV_COLUMNS, plot_tradeoffs, recommend, sweep
+from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
+from ..plan_field import FieldModel, ModelledField, field_from_label_image, modelled_field
 from .dropout import load_mask_on_grid
 
-__all__ = ["run_plan", "CAUTION"]
+__all__ = ["run_plan", "load_label_roi", "CAUTION"]
 
-
+log = logging.getLogger(__name__)
 
 def _csv_text(rows: list[dict]) -> str:
     buffer = _stdio.StringIO()
@@ -45,47 +47,28 @@ def _csv_text(rows: list[dict]) -> str:
     return buffer.getvalue()
 
 
-def run_plan(
-    b0_path,
-    job: JobOptions | str,
-    *,
-    roi_path,
-    brain_mask_path=None,
-    te_s=(0.03,),
-    thickness_mm=(3.0,),
-    tilt_deg=(0.0,),
-    pe_signs=(1, -1),
-    zshim_mtms_per_m=(0.0,),
-    orientation: str = "axial",
-    pe_world_axis: str = "y",
-    inplane_mm: float = 3.0,
-    pe_lines: int = 64,
-    echo_spacing_s: float | None = None,
-    partial_fourier: float = 1.0,
-    profile: str = "rect",
-    tbw: float = 4.0,
-    threshold: float = 0.5,
-    slice_gap_mm: float = 0.0,
-    time_per_slice_s: float = 0.06,
-    multiband: int = 1,
-    max_tr_s: float | None = None,
-    tolerance: float = 0.01,
-    coverage: str = "brain",
-    **job_changes,
-) -> PlanSummary:
+def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, spec: SweepSpec | None = None,
+             roi_labels=None, model: ModelledField | None = None, **changes) -> PlanSummary:
     """Sweep candidate protocols over a B0 map, rank them and write the table and figure.
 
-    Parameters are those of :func:`fieldfix.plan.sweep` (lists for the swept values) and
-    :func:`fieldfix.plan.recommend` (`tolerance`), plus file paths:
-
-    b0_path : path
-        B0 map in Hz (3D NIfTI), measured or modelled.
-    roi_path : path
-        Region-of-interest mask.
-    brain_mask_path : path, optional
-        Whole-brain mask (default: the non-zero voxels of the B0 map).
+    Parameters
+    ----------
+    b0_path : path or None
+        B0 map in Hz (3D NIfTI), measured or modelled; None: the field of the built-in head model
+        (:func:`fieldfix.plan_field.modelled_field` with `model`), and its brain as the brain mask.
     job : JobOptions or path
-        Output folder and writing options (``**job_changes`` names their fields).
+        Output folder and writing options.
+    roi_path : path
+        Region-of-interest mask, or a label image when `roi_labels` is given.
+    brain_mask_path : path, optional
+        Whole-brain mask (default: the non-zero voxels of the B0 map, or the model's brain).
+    spec : SweepSpec, optional
+        The protocols (:class:`fieldfix.plan.SweepSpec`); ``**changes`` names fields of it or of
+        :class:`fieldfix.outputs.JobOptions`.
+    roi_labels : sequence of int, optional
+        Label values of `roi_path` that form the ROI.
+    model : ModelledField, optional
+        Field strength and head pitch of the modelled field (used when `b0_path` is None).
 
     Returns
     -------
@@ -93,69 +76,118 @@ def run_plan(
         The recommended protocol and reason, counts and output names; ``plan.json`` holds it
         with the parameters, provenance and the full table.
     """
-    job, _ = job_and_settings(job, _NoSettings, None, job_changes)
-    b0_path = Path(b0_path)
-    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path) if p is not None]
-    files = PlanFiles.named(job.tag)
-    names = {k: job.path(v) for k, v in files.to_json().items()}
+    job, spec = job_and_settings(job, SweepSpec, spec, changes)
+    labels_path = model.labels_path if model is not None and b0_path is None else None
+    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path, labels_path) if p is not None]
+    files = PlanFiles.named(job.tag, modelled=b0_path is None)
+    names = {k: job.path(v) for k, v in files.to_json().items() if v is not None}
+    spec.check_tr_limits()
     with output_folder(job.out_dir):
         output_paths_guard(names.values(), inputs, job.overwrite)
-        return _plan_in_folder(
-            b0_path, job, files, names, inputs, roi_path=roi_path, brain_mask_path=brain_mask_path, te_s=te_s,
-            thickness_mm=thickness_mm, tilt_deg=tilt_deg, pe_signs=pe_signs, zshim_mtms_per_m=zshim_mtms_per_m,
-            orientation=orientation, pe_world_axis=pe_world_axis, inplane_mm=inplane_mm, pe_lines=pe_lines,
-            echo_spacing_s=echo_spacing_s, partial_fourier=partial_fourier, profile=profile, tbw=tbw,
-            threshold=threshold, slice_gap_mm=slice_gap_mm, time_per_slice_s=time_per_slice_s, multiband=multiband,
-            max_tr_s=max_tr_s, tolerance=tolerance, coverage=coverage)
+        field = _field(b0_path, model)
+        roi, brain = _masks(field, roi_path, brain_mask_path, roi_labels)
+        return _plan_in_folder(field, roi, brain, job, files, names, inputs, spec,
+                               dict(roi=str(roi_path), brain_mask=_brain_words(brain_mask_path, b0_path)))
 
 
-@dataclass(frozen=True)
-class _NoSettings:
-    """The planning job takes its sweep as keyword arguments."""
+def _brain_words(brain_mask_path, b0_path) -> str:
+    if brain_mask_path is not None:
+        return str(brain_mask_path)
+    return "non-zero B0 voxels" if b0_path is not None else "brain of the head model"
 
 
-def _plan_in_folder(b0_path, job, files, names, inputs, *, roi_path, brain_mask_path, te_s, thickness_mm, tilt_deg,
-                    pe_signs, zshim_mtms_per_m, orientation, pe_world_axis, inplane_mm, pe_lines, echo_spacing_s,
-                    partial_fourier, profile, tbw, threshold, slice_gap_mm, time_per_slice_s, multiband, max_tr_s,
-                    tolerance, coverage) -> PlanSummary:
+def _field(b0_path, model: ModelledField | None) -> FieldModel:
+    """The measured field of a file, or the modelled field of the built-in head."""
+    if b0_path is None and model is not None and model.labels_path is not None:
+        image = load_image(model.labels_path, ndim=(3,))
+        data = image.get_fdata(np.float32)
+        if not np.isfinite(data).all() or not np.allclose(data, np.rint(data)):
+            raise InputError("the label image must hold whole numbers", model.labels_path)
+        try:
+            return field_from_label_image(np.rint(data), image.affine, dict(model.table_ppm), model.brain_labels,
+                                          model)
+        except InputError as err:
+            raise InputError(err.message, model.labels_path) from None
+    if b0_path is None:
+        return modelled_field(model or ModelledField())
     b0_img = load_image(b0_path, ndim=(3,))
-    b0 = b0_img.get_fdata(np.float64)
-    roi = load_mask_on_grid(roi_path, b0.shape, b0_img.affine, what="ROI mask")
+    return FieldModel(b0_hz=b0_img.get_fdata(np.float64), affine=b0_img.affine, brain_mask=None, labels=None,
+                      source=f"measured: {b0_path}")
+
+
+def load_label_roi(path, labels, shape, affine) -> np.ndarray:
+    """ROI of the voxels of a label image holding any of `labels`, brought onto a grid (nearest).
+
+    Raises
+    ------
+    InputError
+        When a label is not present in the image (naming the file and the labels).
+    """
+    image = load_image(path, ndim=(3,))
+    data = np.rint(np.nan_to_num(image.get_fdata(np.float32))).astype(np.int64)
+    wanted = sorted({int(v) for v in labels})
+    absent = [v for v in wanted if not (data == v).any()]
+    if absent:
+        raise InputError(f"labels {absent} are not present in the label image", path)
+    inside = np.isin(data, wanted)
+    if same_grid(image.shape, image.affine, shape, affine):
+        return inside
+    values, covered = resample_to_grid(inside.astype(np.float32), image.affine, shape, affine, order=0,
+                                       outside=0.0)
+    roi = (values > 0.5) & covered
+    if not roi.any():
+        raise InputError("the labelled ROI does not overlap the B0 map", path)
+    return roi
+
+
+def _masks(field: FieldModel, roi_path, brain_mask_path, roi_labels):
+    shape, affine = field.b0_hz.shape, field.affine
+    if roi_labels is not None:
+        roi = load_label_roi(roi_path, roi_labels, shape, affine)
+    else:
+        roi = load_mask_on_grid(roi_path, shape, affine, what="ROI mask")
     if not roi.any():
         raise InputError("the ROI mask is empty on the B0 grid", roi_path)
-    brain = None
+    brain = field.brain_mask
     if brain_mask_path is not None:
-        brain = load_mask_on_grid(brain_mask_path, b0.shape, b0_img.affine, what="brain mask")
-    if not np.isfinite(b0[roi if brain is None else (brain | roi)]).all():
-        raise InputError("the B0 map has non-finite values inside the masks", b0_path)
+        brain = load_mask_on_grid(brain_mask_path, shape, affine, what="brain mask")
+    if not np.isfinite(field.b0_hz[roi if brain is None else (brain | roi)]).all():
+        raise InputError("the B0 map has non-finite values inside the masks", field.source.split(": ", 1)[-1])
+    return roi, brain
 
-    rows = sweep(b0, b0_img.affine, roi, brain, thickness_mm=thickness_mm, te_s=te_s, tilt_deg=tilt_deg,
-                 pe_signs=pe_signs, zshim_mtms_per_m=zshim_mtms_per_m, orientation=orientation,
-                 pe_world_axis=pe_world_axis, inplane_mm=inplane_mm, pe_lines=pe_lines,
-                 echo_spacing_s=echo_spacing_s, partial_fourier=partial_fourier, profile=profile, tbw=tbw,
-                 threshold=threshold, slice_gap_mm=slice_gap_mm, time_per_slice_s=time_per_slice_s,
-                 multiband=multiband, max_tr_s=max_tr_s, coverage=coverage)
-    choice, reason = recommend(rows, tolerance=tolerance, threshold=threshold)
 
-    parameters = {
-        "te_s": list(te_s), "thickness_mm": list(thickness_mm), "tilt_deg": list(tilt_deg),
-        "pe_signs": list(pe_signs) if echo_spacing_s is not None else [], "zshim_mtms_per_m": list(zshim_mtms_per_m),
-        "orientation": orientation, "pe_world_axis": pe_world_axis, "inplane_mm": inplane_mm,
-        "pe_lines": pe_lines, "echo_spacing_s": echo_spacing_s, "partial_fourier": partial_fourier,
-        "profile": profile, "tbw": tbw if profile == "rf" else None, "threshold": threshold,
-        "slice_gap_mm": slice_gap_mm, "time_per_slice_s": time_per_slice_s, "multiband": multiband,
-        "max_tr_s": max_tr_s, "tolerance": tolerance, "coverage": coverage,
-    }
+def _tr_warning(rows, choice, spec: SweepSpec) -> list[str]:
+    if spec.max_tr_s is None or choice["fits_tr"]:
+        return []
+    return [f"no protocol fits the TR limit of {spec.max_tr_s:g} s (shortest TR {min(r['tr_s'] for r in rows):.2f} s);"
+            " the recommendation exceeds it"]
+
+
+def _plan_in_folder(field: FieldModel, roi, brain, job, files, names, inputs, spec: SweepSpec,
+                    masks: dict) -> PlanSummary:
+    rows = sweep(field.b0_hz, field.affine, roi, brain, spec)
+    choice, reason = recommend(rows, tolerance=spec.tolerance, threshold=spec.threshold, ranking=spec.ranking)
+    warnings = _tr_warning(rows, choice, spec)
+    for text in warnings:
+        log.warning(text)
+    parameters = spec.as_dict()
+    modelled = field.source.startswith("modelled")
     with atomic_output(names["csv"], inputs, job.overwrite) as temporary:
         temporary.write_text(_csv_text(rows), encoding="utf-8")
+    if modelled:
+        save_image(names["modelled_b0_hz"], field.b0_hz, field.affine, inputs=inputs, overwrite=job.overwrite,
+                   provenance=Provenance(job.command, parameters, inputs),
+                   sidecar_extra={"Description": field.source, "Units": "Hz"})
     with atomic_output(names["figure"], inputs, job.overwrite) as temporary:
-        plot_tradeoffs(rows, temporary, recommended=choice)
+        plot_tradeoffs(rows, temporary, recommended=choice, ranking=spec.ranking, modelled=modelled)
     summary = PlanSummary(
-        b0=str(b0_path), roi=str(roi_path),
-        brain_mask=str(brain_mask_path) if brain_mask_path is not None else "non-zero B0 voxels",
-        roi_voxels=int(roi.sum()), protocols=len(rows), metric=rows[0]["metric"],
-        recommended=PlanChoice.from_json({f.name: choice[f.name] for f in dataclasses.fields(PlanChoice)}),
-        reason=reason, outputs=files, parameters=parameters,
-        provenance=Provenance(job.command, parameters, inputs).as_dict(), rows=to_jsonable(rows))
+        b0=field.source if modelled else field.source.split(": ", 1)[1], roi_voxels=int(roi.sum()),
+        protocols=len(rows), metric=rows[0]["metric"], ranking=spec.ranking,
+        field_source="modelled" if modelled else "measured", warnings=warnings,
+        columns={k: COLUMN_WORDS[k] for k in CSV_COLUMNS},
+        recommended=PlanChoice.from_json({f.name: choice.get(f.name) for f in dataclasses.fields(PlanChoice)}),
+        reason=("Modelled field (no field map): " if modelled else "") + reason, outputs=files,
+        parameters=to_jsonable(parameters), provenance=Provenance(job.command, parameters, inputs).as_dict(),
+        rows=to_jsonable(rows), **masks)
     write_json(names["json"], summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
