@@ -377,28 +377,28 @@ def sorted_edges_reference(phase, mask, dvalue, n_keys=N_KEYS):
 # --------------------------------------------------------------------------------------
 # merging groups along sorted edges
 # --------------------------------------------------------------------------------------
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _find(node, v):
-    """Root of voxel v and v's 2*pi multiple relative to it, with path compression.
+    """Root of voxel v and v's 2*pi multiple relative to it, with path halving.
 
     ``node[v, 0]`` is the parent (or ``-size`` at a root), ``node[v, 1]`` the offset to
-    the parent: both in one row, so one cache line serves a step up the tree.
+    the parent: both in one row, so one cache line serves a step up the tree.  Each
+    visited node is re-linked to its grandparent (its offset becomes the sum of the two
+    offsets): one pass up the tree instead of a second compressing pass.
     """
-    root = v
     total = 0
-    while node[root, 0] >= 0:
-        total += node[root, 1]
-        root = node[root, 0]
-    cur = v
-    acc = total
-    while node[cur, 0] >= 0:
-        nxt = node[cur, 0]
-        old = node[cur, 1]
-        node[cur, 0] = root
-        node[cur, 1] = acc
-        acc -= old
-        cur = nxt
-    return root, total
+    while True:
+        p = node[v, 0]
+        if p < 0:
+            return v, total
+        gp = node[p, 0]
+        if gp < 0:
+            return p, total + node[v, 1]
+        off = node[v, 1] + node[p, 1]
+        node[v, 0] = gp
+        node[v, 1] = off
+        total += off
+        v = gp
 
 
 @njit(cache=True)
@@ -495,3 +495,29 @@ def unwrap_quality_nb(phase, mask, directions, n_keys):
         if roots[c] == c:
             n_regions += 1
     return wrapped, inside, multiple, n_regions
+
+
+@njit(cache=True)
+def apply_multiple_nb(wrapped, inside, multiple, shift):
+    """In place: ``multiple -= shift`` and ``wrapped += 2*pi*multiple`` inside the mask.
+
+    Returns the number of mask voxels whose multiple is not zero afterwards.
+    """
+    wf = wrapped.ravel()
+    mf = multiple.ravel()
+    qf = inside.ravel()
+    n_changed = 0
+    for v in range(wf.size):
+        if qf[v]:
+            k = mf[v] - shift
+            mf[v] = k
+            if k != 0:
+                n_changed += 1
+                wf[v] += TWO_PI * k
+    return n_changed
+
+
+def apply_multiple_reference(wrapped, inside, multiple, shift):
+    """Plain-numpy twin of :func:`apply_multiple_nb` (returns new arrays and the count)."""
+    k = np.where(inside, multiple - shift, multiple)
+    return np.where(inside, wrapped + TWO_PI * k, wrapped), k, int(np.count_nonzero(k[inside]))

@@ -240,7 +240,18 @@ def unwrap_quality(wrapped_rad, mask=None):
     # one compiled call: edges join 6-neighbours only, so its groups are the 6-connected regions
     arr, m, multiple, n_regions = _k.unwrap_quality_nb(original, m, _k.DIRECTIONS, _k.N_KEYS)
     # arr is wrapped outside the mask too, where multiple is 0: no separate pass for those voxels
-    return _finish(arr, multiple, m, squeeze, "quality", n_regions=int(n_regions))
+    if n_regions > 1:
+        return _finish(arr, multiple, m, squeeze, "quality", n_regions=int(n_regions))
+    shift = 0
+    if n_regions == 1:  # the global-offset rule of _finish, on the mask voxels only
+        inside = arr[m]
+        inside += TWO_PI * multiple[m]
+        shift = int(np.round(np.median(inside) / TWO_PI))
+        del inside
+    n_changed = _k.apply_multiple_nb(arr, m, multiple, shift)  # arr becomes the result
+    if squeeze:
+        arr, m, multiple = arr[..., 0], m[..., 0], multiple[..., 0]
+    return UnwrapResult(arr, m, multiple, int(n_changed), int(n_regions), "quality")
 
 
 def _axis_pairs(mask):

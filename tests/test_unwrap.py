@@ -125,6 +125,17 @@ def test_one_call_kernel_matches_the_plain_pipeline(small_case):
     assert np.all(multiple[~rin] == 0)
 
 
+def test_apply_multiple_kernel_matches_reference(small_case):
+    phase, mask = small_case
+    k = np.random.default_rng(5).integers(-3, 4, phase.shape).astype(np.int32)
+    ref_phase, ref_k, ref_n = K.apply_multiple_reference(phase, mask, k, 2)
+    got_phase, got_k = phase.copy(), k.copy()
+    n = K.apply_multiple_nb(got_phase, mask, got_k, 2)
+    assert n == ref_n
+    assert np.array_equal(got_k, ref_k)
+    np.testing.assert_allclose(got_phase, ref_phase, atol=1e-12)
+
+
 # ---------------------------------------------------------------------------------------------
 # accuracy
 # ---------------------------------------------------------------------------------------------
