@@ -311,8 +311,10 @@ def _step(pa, pb):
 def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
     """Edges between 6-neighbours inside the mask, sorted from most to least reliable.
 
-    Returns ``(first, second, step)``: compact ids (int32, ``first < second``) of the two
-    ends and the required step of 2*pi multiples (int8, -1/0/1).  Keys: ``_edge_key`` of
+    Returns one int32 row per edge: the compact id of its first end and
+    ``4 * second + step + 1``, the compact id of its second end (``first < second``)
+    packed with the required step of 2*pi multiples (-1/0/1; callers keep the mask under
+    2**29 voxels); one row is one write in the scatter and one read in the merge.  Keys: ``_edge_key`` of
     ``dvalue`` (indexed by compact id).  The order is a stable counting sort of the keys
     of edges listed by voxel ``a`` in C order, then its +axis0, +axis1, +axis2 neighbour;
     the second pass scatters each edge straight to its sorted place.
@@ -338,9 +340,7 @@ def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
                     e += 1
     for t in range(n_keys):
         counts[t + 1] += counts[t]
-    first = np.empty(n_edges, dtype=np.int32)
-    second = np.empty(n_edges, dtype=np.int32)
-    step = np.empty(n_edges, dtype=np.int8)
+    edges = np.empty((n_edges, 2), dtype=np.int32)
     e = 0
     for i in range(nx):
         for j in range(ny):
@@ -356,11 +356,10 @@ def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
                     kk = keys[e]
                     pos = counts[kk]
                     counts[kk] = pos + 1
-                    first[pos] = ca
-                    second[pos] = ids[i1, j1, k1]
-                    step[pos] = _step(pa, phase[i1, j1, k1])
+                    edges[pos, 0] = ca
+                    edges[pos, 1] = 4 * ids[i1, j1, k1] + _step(pa, phase[i1, j1, k1]) + 1
                     e += 1
-    return first, second, step
+    return edges
 
 
 def sorted_edges_reference(phase, mask, dvalue, n_keys=N_KEYS):
@@ -370,8 +369,14 @@ def sorted_edges_reference(phase, mask, dvalue, n_keys=N_KEYS):
     order = np.argsort(keys, kind="stable")
     a, b = a[order], b[order]
     flat = np.asarray(phase, dtype=np.float64).ravel()
-    step = -np.floor((flat[b] - flat[a]) / TWO_PI + 0.5).astype(np.int8)
-    return ids.ravel()[a], ids.ravel()[b], step
+    step = -np.floor((flat[b] - flat[a]) / TWO_PI + 0.5).astype(np.int64)
+    return np.column_stack([ids.ravel()[a], 4 * ids.ravel()[b] + step + 1]).astype(np.int32)
+
+
+def unpack_edges(edges):
+    """``(first, second, step)`` of the packed edge rows of :func:`sorted_edges_nb`."""
+    first = edges[:, 0].astype(np.int64)
+    return first, edges[:, 1] >> 2, (edges[:, 1] & 3).astype(np.int64) - 1
 
 
 # --------------------------------------------------------------------------------------
@@ -402,11 +407,11 @@ def _find(node, v):
 
 
 @njit(cache=True)
-def merge_nb(first, second, step, n_nodes):
-    """Visit the sorted edges ``first[t] -- second[t]`` in turn and merge groups.
+def merge_nb(edges, n_nodes):
+    """Visit the sorted, packed edges of :func:`sorted_edges_nb` in turn and merge groups.
 
-    ``step[t]`` (-1, 0 or 1) is the required difference of 2*pi multiples, second minus
-    first.  Returns the multiple of every node relative to its group root (int32) and
+    Each row holds the first end and ``4 * second + step + 1``; ``step`` (-1, 0 or 1) is
+    the required difference of 2*pi multiples, second minus first.  Returns the multiple of every node relative to its group root (int32) and
     the root of every node (int32).  Union by size with path compression; parent (or
     ``-size`` at a root) and offset share one int32 row per node, so one cache line
     serves a step up the tree.  Nodes touched by no edge stay their own group with
@@ -415,12 +420,13 @@ def merge_nb(first, second, step, n_nodes):
     node = np.empty((n_nodes, 2), dtype=np.int32)
     node[:, 0] = -1
     node[:, 1] = 0
-    for t in range(first.size):
-        ra, ka = _find(node, first[t])
-        rb, kb = _find(node, second[t])
+    for t in range(edges.shape[0]):
+        ra, ka = _find(node, edges[t, 0])
+        packed = edges[t, 1]
+        rb, kb = _find(node, packed >> 2)
         if ra == rb:
             continue
-        rel = np.int64(step[t]) + ka - kb  # k_rb - k_ra
+        rel = np.int64(packed & 3) - 1 + ka - kb  # k_rb - k_ra
         if node[ra, 0] <= node[rb, 0]:  # ra is the larger group (sizes stored negated)
             node[ra, 0] += node[rb, 0]
             node[rb, 0] = ra
@@ -481,8 +487,8 @@ def unwrap_quality_nb(phase, mask, directions, n_keys):
     wrapped, inside = prepare_nb(phase, mask, True)
     ids, n = voxel_ids_nb(inside)
     dvalue = second_difference_compact_nb(wrapped, inside, ids, n, directions)
-    first, second, step = sorted_edges_nb(wrapped, inside, ids, dvalue, n_keys)
-    multiple_c, roots = merge_nb(first, second, step, n)
+    edges = sorted_edges_nb(wrapped, inside, ids, dvalue, n_keys)
+    multiple_c, roots = merge_nb(edges, n)
     multiple = np.zeros(wrapped.shape, dtype=np.int32)
     mf = multiple.ravel()
     idf = ids.ravel()

@@ -235,8 +235,9 @@ def unwrap_quality(wrapped_rad, mask=None):
     (True, 1)
     """
     original, m, squeeze = _validate(wrapped_rad, mask)
-    if original.size >= 2**31:
-        raise ValueError(f"phase image of {original.size} voxels is too large (the edge lists use 32-bit indices)")
+    if original.size >= 2**29:
+        raise ValueError(f"phase image of {original.size} voxels is too large (the edge lists pack 29-bit "
+                         "voxel indices)")
     # one compiled call: edges join 6-neighbours only, so its groups are the 6-connected regions
     arr, m, multiple, n_regions = _k.unwrap_quality_nb(original, m, _k.DIRECTIONS, _k.N_KEYS)
     # arr is wrapped outside the mask too, where multiple is 0: no separate pass for those voxels

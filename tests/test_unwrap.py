@@ -68,8 +68,9 @@ def test_sorted_edges_kernel_matches_reference(small_case):
     phase, mask = small_case
     d = K.second_difference_reference(phase, mask)
     ids, n = K.voxel_ids_reference(mask)
-    first, second, step = K.sorted_edges_nb(phase, mask, ids.astype(np.int32), d[mask], K.N_KEYS)
-    rfirst, rsecond, rstep = K.sorted_edges_reference(phase, mask, d)
+    first, second, step = K.unpack_edges(K.sorted_edges_nb(phase, mask, ids.astype(np.int32), d[mask], K.N_KEYS))
+    rfirst, rsecond, rstep = K.unpack_edges(K.sorted_edges_reference(phase, mask, d))
+    assert set(np.unique(step).tolist()) == {-1, 0, 1}
     assert first.size == rfirst.size
     # the same edges with the same steps; keys may differ only where float rounding
     # straddles a bin edge, which moves an edge among its neighbours in the order
@@ -95,10 +96,10 @@ def test_prepare_kernel_matches_reference():
 def test_merge_kernel_matches_herraez_group_lists(small_case):
     phase, mask = small_case
     d = K.second_difference_reference(phase, mask)
-    first, second, step = K.sorted_edges_reference(phase, mask, d)
+    edges = K.sorted_edges_reference(phase, mask, d)
     n = int(mask.sum())
-    k_nb, roots_nb = K.merge_nb(first.astype(np.int32), second.astype(np.int32), step, n)
-    k_ref, groups_ref = K.merge_reference(first, second, step, n)
+    k_nb, roots_nb = K.merge_nb(edges, n)
+    k_ref, groups_ref = K.merge_reference(*K.unpack_edges(edges), n)
     # same partition into groups
     pairs = {(int(r), int(g)) for r, g in zip(roots_nb, groups_ref)}
     assert len(pairs) == len(set(roots_nb.tolist())) == len(set(groups_ref.tolist()))
@@ -115,8 +116,7 @@ def test_one_call_kernel_matches_the_plain_pipeline(small_case):
     rw, rin = K.prepare_reference(phase, mask, True)
     np.testing.assert_allclose(wrapped, rw, atol=1e-12)
     d = K.second_difference_reference(rw, rin)
-    first, second, step = K.sorted_edges_reference(rw, rin, d)
-    k_ref, groups = K.merge_reference(first, second, step, int(rin.sum()))
+    k_ref, groups = K.merge_reference(*K.unpack_edges(K.sorted_edges_reference(rw, rin, d)), int(rin.sum()))
     assert n_regions == np.unique(groups).size
     # unwrapped differences agree within each group
     got = multiple[rin]
