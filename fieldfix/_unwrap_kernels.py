@@ -18,6 +18,8 @@ Step 3 is implemented here as a weighted union-find (each node stores its intege
 2*pi offset relative to its parent), which is equivalent to Herraez's linked group
 lists but needs no list splicing.  Edge order uses a counting sort of quantised
 reliability keys (65536 levels on a fixed logarithmic scale), so sorting is O(edges).
+:func:`unwrap_quality_nb` runs the steps in one compiled call (one cache load in a fresh
+process) on compact ids of the mask voxels, so the merge touches mask voxels only.
 
 Each ``*_nb`` kernel has a ``*_reference`` twin written with plain numpy / Python;
 tests compare them.
