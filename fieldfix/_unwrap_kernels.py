@@ -18,6 +18,8 @@ Step 3 is implemented here as a weighted union-find (each node stores its intege
 2*pi offset relative to its parent), which is equivalent to Herraez's linked group
 lists but needs no list splicing.  Edge order uses a counting sort of quantised
 reliability keys (65536 levels on a fixed logarithmic scale), so sorting is O(edges).
+:func:`unwrap_quality_nb` runs the steps in one compiled call (one cache load in a fresh
+process) on compact ids of the mask voxels, so the merge touches mask voxels only.
 
 Each ``*_nb`` kernel has a ``*_reference`` twin written with plain numpy / Python;
 tests compare them.
@@ -52,48 +54,65 @@ def _wrap(x):
     return x - TWO_PI * np.floor(x / TWO_PI + 0.5)
 
 
+@njit(cache=True, inline="always")
+def _wrap_step(x):
+    """``_wrap`` for a difference of two phases in [-pi, pi), i.e. ``x`` in (-2pi, 2pi)."""
+    if x >= np.pi:
+        return x - TWO_PI
+    if x < -np.pi:
+        return x + TWO_PI
+    return x
+
+
+@njit(cache=True, inline="always")
+def _second_difference_at(phase, mask, i, j, k, directions):
+    """``D`` at voxel (i, j, k) inside the mask (inf when no direction is available)."""
+    nx, ny, nz = phase.shape
+    nd = directions.shape[0]
+    p = phase[i, j, k]
+    acc = 0.0
+    n = 0
+    for d in range(nd):
+        di = directions[d, 0]
+        dj = directions[d, 1]
+        dk = directions[d, 2]
+        i0 = i - di
+        j0 = j - dj
+        k0 = k - dk
+        i1 = i + di
+        j1 = j + dj
+        k1 = k + dk
+        if i0 < 0 or j0 < 0 or k0 < 0 or i1 < 0 or j1 < 0 or k1 < 0:
+            continue
+        if i0 >= nx or j0 >= ny or k0 >= nz or i1 >= nx or j1 >= ny or k1 >= nz:
+            continue
+        if not (mask[i0, j0, k0] and mask[i1, j1, k1]):
+            continue
+        t = _wrap_step(phase[i0, j0, k0] - p) - _wrap_step(p - phase[i1, j1, k1])
+        acc += t * t
+        n += 1
+    if n == 0:
+        return np.inf
+    return np.sqrt(acc * nd / n)
+
+
 @njit(cache=True)
 def second_difference_nb(phase, mask, directions):
     """Second-difference measure ``D`` per voxel (inf where none is available).
 
     ``D**2 = 13/n * sum_d (wrap(p[i-d] - p[i]) - wrap(p[i] - p[i+d]))**2`` over the ``n``
-    directions whose two neighbours are inside the grid and the mask.
+    directions whose two neighbours are inside the grid and the mask; ``phase`` is
+    wrapped to [-pi, pi) (as :func:`prepare_nb` leaves it).
     """
     nx, ny, nz = phase.shape
-    nd = directions.shape[0]
     out = np.empty((nx, ny, nz), dtype=np.float64)
     for i in range(nx):
         for j in range(ny):
             for k in range(nz):
-                if not mask[i, j, k]:
-                    out[i, j, k] = np.inf
-                    continue
-                p = phase[i, j, k]
-                acc = 0.0
-                n = 0
-                for d in range(nd):
-                    di = directions[d, 0]
-                    dj = directions[d, 1]
-                    dk = directions[d, 2]
-                    i0 = i - di
-                    j0 = j - dj
-                    k0 = k - dk
-                    i1 = i + di
-                    j1 = j + dj
-                    k1 = k + dk
-                    if i0 < 0 or j0 < 0 or k0 < 0 or i1 < 0 or j1 < 0 or k1 < 0:
-                        continue
-                    if i0 >= nx or j0 >= ny or k0 >= nz or i1 >= nx or j1 >= ny or k1 >= nz:
-                        continue
-                    if not (mask[i0, j0, k0] and mask[i1, j1, k1]):
-                        continue
-                    t = _wrap(phase[i0, j0, k0] - p) - _wrap(p - phase[i1, j1, k1])
-                    acc += t * t
-                    n += 1
-                if n == 0:
-                    out[i, j, k] = np.inf
+                if mask[i, j, k]:
+                    out[i, j, k] = _second_difference_at(phase, mask, i, j, k, directions)
                 else:
-                    out[i, j, k] = np.sqrt(acc * nd / n)
+                    out[i, j, k] = np.inf
     return out
 
 
@@ -169,46 +188,6 @@ def _edge_count(mask):
     return n
 
 
-@njit(cache=True)
-def edges_nb(mask, dvalue, n_keys):
-    """Edges between 6-neighbours inside the mask with their quantised cost keys.
-
-    Returns ``(a, b, keys)``: flat C-order voxel indices (``a < b``, int32: callers
-    check that the grid has fewer than 2**31 voxels) and uint16 keys (small = reliable;
-    ``N_KEYS`` is 65536).  Edge order: voxel ``a`` in C order, then its +axis0, +axis1,
-    +axis2 neighbour.
-    """
-    nx, ny, nz = mask.shape
-    n = _edge_count(mask)
-    a = np.empty(n, dtype=np.int32)
-    b = np.empty(n, dtype=np.int32)
-    keys = np.empty(n, dtype=np.uint16)
-    e = 0
-    for i in range(nx):
-        for j in range(ny):
-            for k in range(nz):
-                if not mask[i, j, k]:
-                    continue
-                v = (i * ny + j) * nz + k
-                da = dvalue[i, j, k]
-                if i + 1 < nx and mask[i + 1, j, k]:
-                    a[e] = v
-                    b[e] = v + ny * nz
-                    keys[e] = _edge_key(da, dvalue[i + 1, j, k], n_keys, LOG10_LO, LOG10_HI)
-                    e += 1
-                if j + 1 < ny and mask[i, j + 1, k]:
-                    a[e] = v
-                    b[e] = v + nz
-                    keys[e] = _edge_key(da, dvalue[i, j + 1, k], n_keys, LOG10_LO, LOG10_HI)
-                    e += 1
-                if k + 1 < nz and mask[i, j, k + 1]:
-                    a[e] = v
-                    b[e] = v + 1
-                    keys[e] = _edge_key(da, dvalue[i, j, k + 1], n_keys, LOG10_LO, LOG10_HI)
-                    e += 1
-    return a, b, keys
-
-
 def quantise_reliability(rel_sum, n_keys=N_KEYS):
     """Plain-numpy key of an edge from its reliability sum ``1/D[a] + 1/D[b]``.
 
@@ -254,8 +233,12 @@ def edges_reference(mask, dvalue, n_keys=N_KEYS):
 
 
 @njit(cache=True)
-def prepare_nb(phase, mask):
-    """Wrap ``phase`` into [-pi, pi), zero it outside ``mask``; drop non-finite voxels."""
+def prepare_nb(phase, mask, keep_outside=False):
+    """Wrap ``phase`` into [-pi, pi) and drop non-finite voxels from ``mask``.
+
+    Outside the mask the phase is set to 0, or with ``keep_outside`` wrapped as well
+    (non-finite values become NaN, as :func:`fieldfix.unwrap.wrap_phase` makes them).
+    """
     out = np.empty(phase.shape, dtype=np.float64)
     m = np.empty(phase.shape, dtype=np.bool_)
     pf = phase.ravel()
@@ -263,103 +246,189 @@ def prepare_nb(phase, mask):
     of = out.ravel()
     qf = m.ravel()
     for i in range(pf.size):
-        p = pf[i]
+        p = np.float64(pf[i])
         ok = mf[i] and np.isfinite(p)
         qf[i] = ok
-        of[i] = _wrap(p) if ok else 0.0
+        of[i] = _wrap(p) if ok or keep_outside else 0.0
     return out, m
 
 
-def prepare_reference(phase, mask):
+def prepare_reference(phase, mask, keep_outside=False):
     """Plain-numpy twin of :func:`prepare_nb`."""
     phase = np.asarray(phase, dtype=np.float64)
     m = np.asarray(mask, dtype=bool) & np.isfinite(phase)
-    return np.where(m, _wrap_np(np.where(m, phase, 0.0)), 0.0), m
+    with np.errstate(invalid="ignore"):
+        rest = _wrap_np(phase) if keep_outside else 0.0
+        return np.where(m, _wrap_np(np.where(m, phase, 0.0)), rest), m
 
 
 @njit(cache=True)
-def counting_order_nb(keys, n_keys):
-    """Stable ascending order (int32) of integer ``keys`` in ``0..n_keys-1`` (counting sort)."""
+def voxel_ids_nb(mask):
+    """Compact id of every mask voxel in C order (int32; -1 outside) and their number."""
+    mf = mask.ravel()
+    ids = np.empty(mf.size, dtype=np.int32)
+    n = 0
+    for v in range(mf.size):
+        if mf[v]:
+            ids[v] = n
+            n += 1
+        else:
+            ids[v] = -1
+    return ids.reshape(mask.shape), n
+
+
+def voxel_ids_reference(mask):
+    """Plain-numpy twin of :func:`voxel_ids_nb`."""
+    m = np.asarray(mask, dtype=bool)
+    ids = np.where(m.ravel(), np.cumsum(m.ravel()) - 1, -1).reshape(m.shape)
+    return ids, int(m.sum())
+
+
+@njit(cache=True)
+def second_difference_compact_nb(phase, mask, ids, n, directions):
+    """``D`` of the mask voxels only, indexed by their compact id (see :func:`voxel_ids_nb`)."""
+    nx, ny, nz = phase.shape
+    out = np.empty(n, dtype=np.float64)
+    for i in range(nx):
+        for j in range(ny):
+            for k in range(nz):
+                if mask[i, j, k]:
+                    out[ids[i, j, k]] = _second_difference_at(phase, mask, i, j, k, directions)
+    return out
+
+
+@njit(cache=True, inline="always")
+def _step(pa, pb):
+    """Required ``k_b - k_a`` so that the step from a to b equals its wrapped value
+    (phases in [-pi, pi), so the difference lies in (-2pi, 2pi))."""
+    d = pb - pa
+    if d >= np.pi:
+        return np.int8(-1)
+    if d < -np.pi:
+        return np.int8(1)
+    return np.int8(0)
+
+
+@njit(cache=True)
+def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
+    """Edges between 6-neighbours inside the mask, sorted from most to least reliable.
+
+    Returns one int32 row per edge: the compact id of its first end and
+    ``4 * second + step + 1``, the compact id of its second end (``first < second``)
+    packed with the required step of 2*pi multiples (-1/0/1; callers keep the mask under
+    2**29 voxels); one row is one write in the scatter and one read in the merge.  Keys: ``_edge_key`` of
+    ``dvalue`` (indexed by compact id).  The order is a stable counting sort of the keys
+    of edges listed by voxel ``a`` in C order, then its +axis0, +axis1, +axis2 neighbour;
+    the second pass scatters each edge straight to its sorted place.
+    """
+    nx, ny, nz = mask.shape
+    n_edges = _edge_count(mask)
+    keys = np.empty(n_edges, dtype=np.uint16)
     counts = np.zeros(n_keys + 1, dtype=np.int64)
-    for i in range(keys.size):
-        counts[keys[i] + 1] += 1
-    for i in range(n_keys):
-        counts[i + 1] += counts[i]
-    order = np.empty(keys.size, dtype=np.int32)
-    for i in range(keys.size):
-        kk = keys[i]
-        order[counts[kk]] = i
-        counts[kk] += 1
-    return order
+    e = 0
+    for i in range(nx):
+        for j in range(ny):
+            for k in range(nz):
+                if not mask[i, j, k]:
+                    continue
+                da = dvalue[ids[i, j, k]]
+                for ax in range(3):
+                    i1, j1, k1 = i + (ax == 0), j + (ax == 1), k + (ax == 2)
+                    if i1 >= nx or j1 >= ny or k1 >= nz or not mask[i1, j1, k1]:
+                        continue
+                    kk = _edge_key(da, dvalue[ids[i1, j1, k1]], n_keys, LOG10_LO, LOG10_HI)
+                    keys[e] = kk
+                    counts[kk + 1] += 1
+                    e += 1
+    for t in range(n_keys):
+        counts[t + 1] += counts[t]
+    edges = np.empty((n_edges, 2), dtype=np.int32)
+    e = 0
+    for i in range(nx):
+        for j in range(ny):
+            for k in range(nz):
+                if not mask[i, j, k]:
+                    continue
+                ca = ids[i, j, k]
+                pa = phase[i, j, k]
+                for ax in range(3):
+                    i1, j1, k1 = i + (ax == 0), j + (ax == 1), k + (ax == 2)
+                    if i1 >= nx or j1 >= ny or k1 >= nz or not mask[i1, j1, k1]:
+                        continue
+                    kk = keys[e]
+                    pos = counts[kk]
+                    counts[kk] = pos + 1
+                    edges[pos, 0] = ca
+                    edges[pos, 1] = 4 * ids[i1, j1, k1] + _step(pa, phase[i1, j1, k1]) + 1
+                    e += 1
+    return edges
 
 
-def counting_order_reference(keys, n_keys=N_KEYS):
-    """Plain-numpy twin of :func:`counting_order_nb`."""
-    return np.argsort(np.asarray(keys), kind="stable")
+def sorted_edges_reference(phase, mask, dvalue, n_keys=N_KEYS):
+    """Plain-numpy twin of :func:`sorted_edges_nb`; ``dvalue`` is the full grid here."""
+    ids, _ = voxel_ids_reference(mask)
+    a, b, keys = edges_reference(mask, dvalue, n_keys)
+    order = np.argsort(keys, kind="stable")
+    a, b = a[order], b[order]
+    flat = np.asarray(phase, dtype=np.float64).ravel()
+    step = -np.floor((flat[b] - flat[a]) / TWO_PI + 0.5).astype(np.int64)
+    return np.column_stack([ids.ravel()[a], 4 * ids.ravel()[b] + step + 1]).astype(np.int32)
+
+
+def unpack_edges(edges):
+    """``(first, second, step)`` of the packed edge rows of :func:`sorted_edges_nb`."""
+    first = edges[:, 0].astype(np.int64)
+    return first, edges[:, 1] >> 2, (edges[:, 1] & 3).astype(np.int64) - 1
 
 
 # --------------------------------------------------------------------------------------
 # merging groups along sorted edges
 # --------------------------------------------------------------------------------------
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _find(node, v):
-    """Root of voxel v and v's 2*pi multiple relative to it, with path compression.
+    """Root of voxel v and v's 2*pi multiple relative to it, with path halving.
 
     ``node[v, 0]`` is the parent (or ``-size`` at a root), ``node[v, 1]`` the offset to
-    the parent: both in one row, so one cache line serves a step up the tree.
+    the parent: both in one row, so one cache line serves a step up the tree.  Each
+    visited node is re-linked to its grandparent (its offset becomes the sum of the two
+    offsets): one pass up the tree instead of a second compressing pass.
     """
-    root = v
     total = 0
-    while node[root, 0] >= 0:
-        total += node[root, 1]
-        root = node[root, 0]
-    cur = v
-    acc = total
-    while node[cur, 0] >= 0:
-        nxt = node[cur, 0]
-        old = node[cur, 1]
-        node[cur, 0] = root
-        node[cur, 1] = acc
-        acc -= old
-        cur = nxt
-    return root, total
+    while True:
+        p = node[v, 0]
+        if p < 0:
+            return v, total
+        gp = node[p, 0]
+        if gp < 0:
+            return p, total + node[v, 1]
+        off = node[v, 1] + node[p, 1]
+        node[v, 0] = gp
+        node[v, 1] = off
+        total += off
+        v = gp
 
 
 @njit(cache=True)
-def merge_nb(phase_flat, a, b, order, n_voxels):
-    """Visit edges in ``order`` and merge groups; return the 2*pi multiple per voxel
-    (relative to its group root, int32) and the root voxel per voxel (int64).
-    ``phase_flat`` is wrapped to [-pi, pi) (as :func:`prepare_nb` leaves it), so each
-    edge's step is -1, 0 or 1.
+def merge_nb(edges, n_nodes):
+    """Visit the sorted, packed edges of :func:`sorted_edges_nb` in turn and merge groups.
 
-    Union by size with path compression; parent, size and offset share one int32 row
-    per voxel, half the memory of separate int64 arrays and one cache line per step.
-    Voxels touched by no edge stay their own group with multiple 0. The edges are first
-    copied in visiting order with their required step (-1, 0 or 1, int8): the scattered
-    reads of edge ends and phases then run as independent loads in one pass, and the
-    union-find loop, whose steps depend on each other, reads its edges in sequence
-    (twice as fast on a 7 T head, same result).
+    Each row holds the first end and ``4 * second + step + 1``; ``step`` (-1, 0 or 1) is
+    the required difference of 2*pi multiples, second minus first.  Returns the multiple of every node relative to its group root (int32) and
+    the root of every node (int32).  Union by size with path compression; parent (or
+    ``-size`` at a root) and offset share one int32 row per node, so one cache line
+    serves a step up the tree.  Nodes touched by no edge stay their own group with
+    multiple 0.
     """
-    n_edges = order.size
-    first = np.empty(n_edges, dtype=np.int32)
-    second = np.empty(n_edges, dtype=np.int32)
-    step = np.empty(n_edges, dtype=np.int8)
-    for t in range(n_edges):
-        e = order[t]
-        va = a[e]
-        vb = b[e]
-        first[t] = va
-        second[t] = vb
-        # required k_b - k_a so that the step across the edge equals its wrapped value
-        step[t] = -np.int8(np.floor((phase_flat[vb] - phase_flat[va]) / TWO_PI + 0.5))
-    node = np.zeros((n_voxels, 2), dtype=np.int32)
+    node = np.empty((n_nodes, 2), dtype=np.int32)
     node[:, 0] = -1
-    for t in range(n_edges):
-        ra, ka = _find(node, first[t])
-        rb, kb = _find(node, second[t])
+    node[:, 1] = 0
+    for t in range(edges.shape[0]):
+        ra, ka = _find(node, edges[t, 0])
+        packed = edges[t, 1]
+        rb, kb = _find(node, packed >> 2)
         if ra == rb:
             continue
-        rel = np.int64(step[t]) + ka - kb  # k_rb - k_ra
+        rel = np.int64(packed & 3) - 1 + ka - kb  # k_rb - k_ra
         if node[ra, 0] <= node[rb, 0]:  # ra is the larger group (sizes stored negated)
             node[ra, 0] += node[rb, 0]
             node[rb, 0] = ra
@@ -368,32 +437,30 @@ def merge_nb(phase_flat, a, b, order, n_voxels):
             node[rb, 0] += node[ra, 0]
             node[ra, 0] = rb
             node[ra, 1] = -rel
-    multiple = np.zeros(n_voxels, dtype=np.int32)
-    roots = np.empty(n_voxels, dtype=np.int64)
-    for v in range(n_voxels):
+    multiple = np.empty(n_nodes, dtype=np.int32)
+    roots = np.empty(n_nodes, dtype=np.int32)
+    for v in range(n_nodes):
         r, kk = _find(node, v)
         multiple[v] = kk
         roots[v] = r
     return multiple, roots
 
 
-def merge_reference(phase_flat, a, b, order, n_voxels):
+def merge_reference(first, second, step, n_nodes):
     """Pure-Python twin of :func:`merge_nb` in Herraez's original form: explicit group
     member lists; the smaller group is shifted by a multiple of 2*pi and appended to
-    the larger one.  Returns ``(multiple, roots)`` where ``roots`` is a group label.
+    the larger one.  Returns ``(multiple, groups)`` where ``groups`` is a group label.
 
     Multiples may differ from :func:`merge_nb` by one constant per group (the group's
     reference voxel differs); unwrapped differences within a group are identical.
     """
-    group = list(range(n_voxels))
-    members = {v: [v] for v in range(n_voxels)}
-    multiple = [0] * n_voxels
-    for e in order:
-        va, vb = int(a[e]), int(b[e])
+    group = list(range(n_nodes))
+    members = {v: [v] for v in range(n_nodes)}
+    multiple = [0] * n_nodes
+    for va, vb, d in zip(first.tolist(), second.tolist(), step.tolist()):
         ga, gb = group[va], group[vb]
         if ga == gb:
             continue
-        d = -int(np.floor((phase_flat[vb] - phase_flat[va]) / TWO_PI + 0.5))
         shift = d + multiple[va] - multiple[vb]  # add to every member of b's group
         if len(members[ga]) >= len(members[gb]):
             for v in members[gb]:
@@ -406,3 +473,59 @@ def merge_reference(phase_flat, a, b, order, n_voxels):
                 group[v] = gb
             members[gb].extend(members.pop(ga))
     return np.array(multiple, dtype=np.int64), np.array(group, dtype=np.int64)
+
+
+# --------------------------------------------------------------------------------------
+# the whole quality-guided unwrap in one compiled call
+# --------------------------------------------------------------------------------------
+@njit(cache=True)
+def unwrap_quality_nb(phase, mask, directions, n_keys):
+    """Prepare, rank edges and merge; one call, so a fresh process loads one cached kernel.
+
+    Returns ``(wrapped, inside, multiple, n_regions)``: the phase and mask of
+    :func:`prepare_nb` (``keep_outside``: the phase is wrapped everywhere), the 2*pi multiple of every voxel relative to its group root
+    (int32, 0 outside the mask) and the number of groups (6-connected regions).
+    """
+    wrapped, inside = prepare_nb(phase, mask, True)
+    ids, n = voxel_ids_nb(inside)
+    dvalue = second_difference_compact_nb(wrapped, inside, ids, n, directions)
+    edges = sorted_edges_nb(wrapped, inside, ids, dvalue, n_keys)
+    multiple_c, roots = merge_nb(edges, n)
+    multiple = np.zeros(wrapped.shape, dtype=np.int32)
+    mf = multiple.ravel()
+    idf = ids.ravel()
+    for v in range(idf.size):
+        c = idf[v]
+        if c >= 0:
+            mf[v] = multiple_c[c]
+    n_regions = 0
+    for c in range(n):
+        if roots[c] == c:
+            n_regions += 1
+    return wrapped, inside, multiple, n_regions
+
+
+@njit(cache=True)
+def apply_multiple_nb(wrapped, inside, multiple, shift):
+    """In place: ``multiple -= shift`` and ``wrapped += 2*pi*multiple`` inside the mask.
+
+    Returns the number of mask voxels whose multiple is not zero afterwards.
+    """
+    wf = wrapped.ravel()
+    mf = multiple.ravel()
+    qf = inside.ravel()
+    n_changed = 0
+    for v in range(wf.size):
+        if qf[v]:
+            k = mf[v] - shift
+            mf[v] = k
+            if k != 0:
+                n_changed += 1
+                wf[v] += TWO_PI * k
+    return n_changed
+
+
+def apply_multiple_reference(wrapped, inside, multiple, shift):
+    """Plain-numpy twin of :func:`apply_multiple_nb` (returns new arrays and the count)."""
+    k = np.where(inside, multiple - shift, multiple)
+    return np.where(inside, wrapped + TWO_PI * k, wrapped), k, int(np.count_nonzero(k[inside]))

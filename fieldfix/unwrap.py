@@ -44,8 +44,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.fft
-import scipy.ndimage as ndi
 
 from . import _unwrap_kernels as _k
 from ._solvers import conjugate_gradient
@@ -105,8 +103,11 @@ def wrap_phase(phase_rad):
     return p - TWO_PI * np.floor(p / TWO_PI + 0.5)
 
 
-def _prepare(wrapped, mask):
-    arr = np.asarray(wrapped, dtype=np.float64)
+def _validate(wrapped, mask):
+    """Checked C-contiguous 3D phase (float32 kept, else float64) and bool mask."""
+    arr = np.asarray(wrapped)
+    if arr.dtype != np.float32:
+        arr = arr.astype(np.float64, copy=False)
     if arr.ndim not in (2, 3):
         raise ValueError(f"phase must be 2D or 3D, got shape {arr.shape}")
     squeeze = arr.ndim == 2
@@ -120,8 +121,13 @@ def _prepare(wrapped, mask):
             m = m[..., None]
         if m.shape != arr.shape:
             raise ValueError(f"mask shape {m.shape} does not match phase shape {arr.shape}")
+    return np.ascontiguousarray(arr), np.ascontiguousarray(m), squeeze
+
+
+def _prepare(wrapped, mask):
+    arr, m, squeeze = _validate(wrapped, mask)
     original = arr
-    arr, m = _k.prepare_nb(np.ascontiguousarray(arr), np.ascontiguousarray(m))
+    arr, m = _k.prepare_nb(arr, m)
     return arr, m, squeeze, original
 
 
@@ -143,6 +149,8 @@ def _place_regions(wrapped, multiple, mask, labels, n_regions):
     """Disconnected-region rule (see module docstring); updates ``multiple`` in place."""
     if n_regions <= 1:
         return
+    import scipy.ndimage as ndi  # imported on first use: most masks are one region
+
     sizes = np.bincount(labels.ravel(), minlength=n_regions + 1)[1:]
     order = np.argsort(-sizes, kind="stable") + 1
     flat_lab = labels.ravel()
@@ -181,6 +189,8 @@ def _finish(wrapped, multiple, mask, squeeze, method, smooth=None, n_regions=Non
     multiple = multiple.astype(np.int64)
     multiple[~mask] = 0
     if n_regions is None or n_regions > 1:
+        import scipy.ndimage as ndi
+
         labels, n_regions = ndi.label(mask)  # 6-connectivity in 3D
         _place_regions(wrapped, multiple, mask, labels, n_regions)
     if mask.any():
@@ -224,21 +234,25 @@ def unwrap_quality(wrapped_rad, mask=None):
     >>> bool(np.allclose(res.phase, truth)), res.n_regions
     (True, 1)
     """
-    arr, m, squeeze, original = _prepare(wrapped_rad, mask)
-    if arr.size >= 2**31:
-        raise ValueError(f"phase image of {arr.size} voxels is too large (the edge lists use 32-bit indices)")
-    dval = _k.second_difference_nb(arr, m, _k.DIRECTIONS)
-    a, b, keys = _k.edges_nb(m, dval, _k.N_KEYS)
-    del dval
-    order = _k.counting_order_nb(keys, _k.N_KEYS)
-    del keys
-    multiple, roots = _k.merge_nb(arr.ravel(), a, b, order, arr.size)
-    del a, b, order
-    # edges join 6-neighbours only, so union-find groups are the 6-connected regions
-    n_regions = int(np.count_nonzero(m.ravel() & (roots == np.arange(roots.size))))
-    del roots
-    return _finish(arr, multiple.reshape(arr.shape), m, squeeze, "quality", n_regions=n_regions,
-                   outside=original)
+    original, m, squeeze = _validate(wrapped_rad, mask)
+    if original.size >= 2**29:
+        raise ValueError(f"phase image of {original.size} voxels is too large (the edge lists pack 29-bit "
+                         "voxel indices)")
+    # one compiled call: edges join 6-neighbours only, so its groups are the 6-connected regions
+    arr, m, multiple, n_regions = _k.unwrap_quality_nb(original, m, _k.DIRECTIONS, _k.N_KEYS)
+    # arr is wrapped outside the mask too, where multiple is 0: no separate pass for those voxels
+    if n_regions > 1:
+        return _finish(arr, multiple, m, squeeze, "quality", n_regions=int(n_regions))
+    shift = 0
+    if n_regions == 1:  # the global-offset rule of _finish, on the mask voxels only
+        inside = arr[m]
+        inside += TWO_PI * multiple[m]
+        shift = int(np.round(np.median(inside) / TWO_PI))
+        del inside
+    n_changed = _k.apply_multiple_nb(arr, m, multiple, shift)  # arr becomes the result
+    if squeeze:
+        arr, m, multiple = arr[..., 0], m[..., 0], multiple[..., 0]
+    return UnwrapResult(arr, m, multiple, int(n_changed), int(n_regions), "quality")
 
 
 def _axis_pairs(mask):
@@ -267,6 +281,8 @@ def _graph_laplacian(u, pairs):
 def _poisson_neumann(rhs):
     """Solve ``lap u = rhs`` on the whole grid (7-point stencil, Neumann box boundary,
     unit spacing) with the DCT-II; the mean of ``u`` is 0."""
+    import scipy.fft  # imported on first use: the quality-guided unwrap needs no FFT
+
     coeff = scipy.fft.dctn(rhs, type=2, norm="ortho")
     denom = np.zeros(rhs.shape)
     for ax, n in enumerate(rhs.shape):
@@ -349,6 +365,8 @@ def unwrap_laplacian(wrapped_rad, mask=None, *, congruent=True, refinements=2, r
             rhs[hi] -= d
         step, _ = _solve_masked_poisson(rhs, m, pairs, rtol=rtol, maxiter=maxiter)
         est = est + step
+    import scipy.ndimage as ndi
+
     # each region's solution has its own arbitrary constant: anchor it to the data
     labels, n_regions = ndi.label(m)
     if n_regions == 1:

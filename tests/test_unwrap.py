@@ -53,19 +53,31 @@ def test_second_difference_kernel_matches_reference(small_case):
     np.testing.assert_allclose(nb[fin], ref[fin], rtol=1e-12, atol=1e-12)
 
 
-def test_edges_kernel_matches_reference(small_case):
+def test_compact_second_difference_matches_reference(small_case):
+    phase, mask = small_case
+    ids, n = K.voxel_ids_nb(mask)
+    rids, rn = K.voxel_ids_reference(mask)
+    assert n == rn and np.array_equal(ids, rids)
+    nb = K.second_difference_compact_nb(phase, mask, ids, n, K.DIRECTIONS)
+    ref = K.second_difference_reference(phase, mask)[mask]
+    assert np.array_equal(np.isinf(nb), np.isinf(ref))
+    np.testing.assert_allclose(nb[np.isfinite(ref)], ref[np.isfinite(ref)], rtol=1e-12)
+
+
+def test_sorted_edges_kernel_matches_reference(small_case):
     phase, mask = small_case
     d = K.second_difference_reference(phase, mask)
-    a, b, keys = K.edges_nb(mask, d, K.N_KEYS)
-    ra, rb, rkeys = K.edges_reference(mask, d)
-    assert np.array_equal(a, ra) and np.array_equal(b, rb)
-    # keys may differ only where float rounding straddles a bin edge
-    assert np.mean(keys == rkeys) > 0.99 and np.max(np.abs(keys - rkeys)) <= 1
-
-
-def test_counting_order_matches_stable_argsort():
-    keys = np.random.default_rng(0).integers(0, K.N_KEYS, 5000)
-    assert np.array_equal(K.counting_order_nb(keys, K.N_KEYS), K.counting_order_reference(keys))
+    ids, n = K.voxel_ids_reference(mask)
+    first, second, step = K.unpack_edges(K.sorted_edges_nb(phase, mask, ids.astype(np.int32), d[mask], K.N_KEYS))
+    rfirst, rsecond, rstep = K.unpack_edges(K.sorted_edges_reference(phase, mask, d))
+    assert set(np.unique(step).tolist()) == {-1, 0, 1}
+    assert first.size == rfirst.size
+    # the same edges with the same steps; keys may differ only where float rounding
+    # straddles a bin edge, which moves an edge among its neighbours in the order
+    assert np.mean((first == rfirst) & (second == rsecond)) > 0.95
+    got = {(int(x), int(y)): int(z) for x, y, z in zip(first, second, step)}
+    want = {(int(x), int(y)): int(z) for x, y, z in zip(rfirst, rsecond, rstep)}
+    assert got == want
 
 
 def test_prepare_kernel_matches_reference():
@@ -73,20 +85,21 @@ def test_prepare_kernel_matches_reference():
     p = rng.uniform(-20, 20, (6, 7, 8))
     p[0, 0, 0] = np.nan
     m = rng.random(p.shape) > 0.3
-    out, mm = K.prepare_nb(p, m)
-    rout, rmm = K.prepare_reference(p, m)
-    assert np.array_equal(mm, rmm)
-    np.testing.assert_allclose(out, rout, atol=1e-12)
+    for keep in (False, True):
+        out, mm = K.prepare_nb(p, m, keep)
+        rout, rmm = K.prepare_reference(p, m, keep)
+        assert np.array_equal(mm, rmm)
+        np.testing.assert_allclose(out, rout, atol=1e-12)
+    assert np.isnan(out[0, 0, 0])
 
 
 def test_merge_kernel_matches_herraez_group_lists(small_case):
     phase, mask = small_case
     d = K.second_difference_reference(phase, mask)
-    a, b, keys = K.edges_reference(mask, d)
-    order = K.counting_order_reference(keys)
-    flat = phase.ravel()
-    k_nb, roots_nb = K.merge_nb(flat, a, b, order, flat.size)
-    k_ref, groups_ref = K.merge_reference(flat, a, b, order, flat.size)
+    edges = K.sorted_edges_reference(phase, mask, d)
+    n = int(mask.sum())
+    k_nb, roots_nb = K.merge_nb(edges, n)
+    k_ref, groups_ref = K.merge_reference(*K.unpack_edges(edges), n)
     # same partition into groups
     pairs = {(int(r), int(g)) for r, g in zip(roots_nb, groups_ref)}
     assert len(pairs) == len(set(roots_nb.tolist())) == len(set(groups_ref.tolist()))
@@ -95,6 +108,32 @@ def test_merge_kernel_matches_herraez_group_lists(small_case):
         members = roots_nb == root
         diff = k_nb[members] - k_ref[members]
         assert np.unique(diff).size == 1
+
+
+def test_one_call_kernel_matches_the_plain_pipeline(small_case):
+    phase, mask = small_case
+    wrapped, inside, multiple, n_regions = K.unwrap_quality_nb(phase, mask, K.DIRECTIONS, K.N_KEYS)
+    rw, rin = K.prepare_reference(phase, mask, True)
+    np.testing.assert_allclose(wrapped, rw, atol=1e-12)
+    d = K.second_difference_reference(rw, rin)
+    k_ref, groups = K.merge_reference(*K.unpack_edges(K.sorted_edges_reference(rw, rin, d)), int(rin.sum()))
+    assert n_regions == np.unique(groups).size
+    # unwrapped differences agree within each group
+    got = multiple[rin]
+    for g in np.unique(groups):
+        assert np.unique(got[groups == g] - k_ref[groups == g]).size == 1
+    assert np.all(multiple[~rin] == 0)
+
+
+def test_apply_multiple_kernel_matches_reference(small_case):
+    phase, mask = small_case
+    k = np.random.default_rng(5).integers(-3, 4, phase.shape).astype(np.int32)
+    ref_phase, ref_k, ref_n = K.apply_multiple_reference(phase, mask, k, 2)
+    got_phase, got_k = phase.copy(), k.copy()
+    n = K.apply_multiple_nb(got_phase, mask, got_k, 2)
+    assert n == ref_n
+    assert np.array_equal(got_k, ref_k)
+    np.testing.assert_allclose(got_phase, ref_phase, atol=1e-12)
 
 
 # ---------------------------------------------------------------------------------------------
