@@ -23,9 +23,9 @@ import subprocess
 import time
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import pytest
+from _mounts import mounted_tmpfs
 
 from test_bad_input import SCRIPT, field_hz, grid_affine, make_b0, make_run, run_data, write_image
 
@@ -189,16 +189,8 @@ def test_full_disk_in_the_field_map_job(tmp_path, monkeypatch, capsys):
 def tiny_disk(tmp_path):
     mount_point = tmp_path / "tiny"
     mount_point.mkdir()
-    if os.geteuid() != 0:
-        pytest.skip("mounting a tmpfs needs root")
-    result = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(mount_point)],
-                            capture_output=True, text=True)
-    if result.returncode != 0:
-        pytest.skip(f"mounting a tmpfs is not permitted here: {result.stderr.strip()}")
-    try:
+    with mounted_tmpfs(mount_point, "size=256k"):
         yield mount_point
-    finally:
-        subprocess.run(["umount", str(mount_point)], capture_output=True)
 
 
 def test_real_full_disk_on_tmpfs(tmp_path, tiny_disk):

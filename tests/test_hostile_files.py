@@ -29,6 +29,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from _mounts import mounted_tmpfs
 
 from fieldfix._memory import MEMORY_ENV, WORKING_COPIES, memory_budget
 from fieldfix.errors import InputError, MemoryLimitError
@@ -282,14 +283,8 @@ def read_only_folder(tmp_path):
         yield folder
         folder.chmod(0o755)
         return
-    result = subprocess.run(["mount", "-t", "tmpfs", "-o", "ro,size=64k", "tmpfs", str(folder)], capture_output=True,
-                            text=True)
-    if result.returncode != 0:
-        pytest.skip(f"mounting a read-only tmpfs is not permitted here: {result.stderr.strip()}")
-    try:
+    with mounted_tmpfs(folder, "ro,size=64k"):
         yield folder
-    finally:
-        subprocess.run(["umount", str(folder)], capture_output=True)
 
 
 def test_read_only_output_folder_is_one_line(tmp_path, capsys, read_only_folder):
