@@ -45,7 +45,6 @@ from .jsonfile import read_json, to_jsonable, write_json
 from .outputs import CAUTION
 from .outdir import (
     atomic_output,
-    folder_for,
     output_folder,
     output_paths_guard,
     output_transaction,
