@@ -78,15 +78,14 @@ def check_choice(parameter: str, value, choices, what: str | None = None) -> Non
 
     Examples
     --------
-    >>> check_choice("interp", "cubic", ("linear", "cubic"))
-    >>> check_choice("interp", "sinc", ("linear", "cubic"))
+    >>> check_choice("interp", "cubic", ("linear", "cubic"), "interpolation")
+    >>> check_choice("interp", "sinc", ("linear", "cubic"), "interpolation")
     Traceback (most recent call last):
     fieldfix.errors.InputError: interp: unknown interpolation 'sinc'; choose one of linear, cubic
     """
     if value not in choices:
         what = what or parameter.replace("_", " ")
-        names = {"interp": "interpolation"}
-        raise InputError(f"unknown {names.get(what, what)} {value!r}; choose one of {', '.join(map(str, choices))}",
+        raise InputError(f"unknown {what} {value!r}; choose one of {', '.join(map(str, choices))}",
                          parameter=parameter)
 
 

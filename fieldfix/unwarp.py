@@ -249,7 +249,7 @@ def _taps(position: np.ndarray, n: int, interp: str) -> tuple[np.ndarray, np.nda
         weights = np.sinc(x) * np.sinc(x / a)
         weights /= weights.sum(axis=-1, keepdims=True)
         return _mirror(taps, n), weights
-    check_choice("interp", interp, INTERPOLATIONS)
+    check_choice("interp", interp, INTERPOLATIONS, "interpolation")
     raise AssertionError(f"interpolation {interp!r} has no kernel")
 
 
@@ -378,7 +378,7 @@ def build_tables(
     shift_vox = np.asarray(shift_vox, float)
     if shift_vox.ndim != 3:
         raise GeometryError(f"the shift map must be 3D, got {shift_vox.ndim} dimensions")
-    check_choice("interp", interp, INTERPOLATIONS)
+    check_choice("interp", interp, INTERPOLATIONS, "interpolation")
     own = np.indices(shift_vox.shape, sparse=True)[pe_axis]
     position = own + shift_vox
     scale = intensity_weight(jacobian_from_shift(shift_vox, pe_axis), jacobian_floor) if jacobian else None

@@ -100,7 +100,7 @@ class BatchOptions:
         if self.phase_units is not None:
             lookup_phase_units(self.phase_units)
         check_choice("unwrap_method", self.unwrap_method, METHODS)
-        check_choice("interp", self.interp, INTERPOLATIONS)
+        check_choice("interp", self.interp, INTERPOLATIONS, "interpolation")
         check_choice("masks", self.masks, MASK_CHOICES, "mask choice")
         if not self.smooth_mm >= 0:
             raise InputError(f"smoothing width must be zero or positive, got {self.smooth_mm}", parameter="smooth_mm")

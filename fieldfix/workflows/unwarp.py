@@ -160,7 +160,7 @@ class UnwarpSettings:
         for name in ("readout_time_s", "echo_spacing_s"):
             if getattr(self, name) is not None:
                 check_plausible(name, getattr(self, name))
-        check_choice("interp", self.interp, INTERPOLATIONS)
+        check_choice("interp", self.interp, INTERPOLATIONS, "interpolation")
         check_choice("compress", self.compress, COMPRESSIONS, "compression")
         check_choice("gzip_effort", self.gzip_effort, GZIP_EFFORTS)
 
