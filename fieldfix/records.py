@@ -39,7 +39,7 @@ from typing import Any, ClassVar
 from .errors import InputError
 from .jsonfile import to_jsonable
 
-__all__ = ["Record", "SummaryError"]
+__all__ = ["Record", "SummaryError", "fields_of"]
 
 
 class SummaryError(InputError):
@@ -104,6 +104,23 @@ def _convert(value, tp, where: str):
             raise SummaryError(f"{where} must be text, found {type(value).__name__}")
         return value
     raise TypeError(f"unsupported field type {_type_name(tp)} at {where}")
+
+
+def fields_of(record, part: type) -> dict:
+    """The values of `record` for the fields of the dataclass `part` (one of its bases), by name.
+
+    A report entry that extends a job summary's numbers (:class:`fieldfix.outputs.ShiftNumbers`,
+    ...) is built from them with this, so no field is copied by hand.
+
+    Examples
+    --------
+    >>> from fieldfix.outputs import MapStatistics
+    >>> fields_of(MapStatistics(median=0.8, percent_below_threshold=12.5, voxels=400), MapStatistics)
+    {'median': 0.8, 'percent_below_threshold': 12.5, 'voxels': 400}
+    """
+    if not isinstance(record, part):
+        raise TypeError(f"{type(record).__name__} is not a {part.__name__}")
+    return {f.name: getattr(record, f.name) for f in dataclasses.fields(part)}
 
 
 @dataclasses.dataclass(frozen=True)

@@ -12,7 +12,9 @@ and in the report.
   relative to its own folder, so a folder can be moved and nothing outside it is ever
   referred to as an output.
 * **Summaries** (:class:`FieldMapSummary`, :class:`UnwarpSummary`, :class:`DropoutSummary`,
-  :class:`PlanSummary`): what each job reports, units in the field names.
+  :class:`PlanSummary`): what each job reports, units in the field names. The part of each
+  that the report carries too is a base of both (:class:`FieldMapNumbers`,
+  :class:`ShiftNumbers`, :class:`DropoutNumbers`, :class:`PlanNumbers`), defined once.
 * :func:`find_summaries` lists the summaries in a folder by the registry's names.
 * **The report** (:class:`ReportFiles`, :class:`ReportSummary`): the page, the figure for
   papers and ``report.json``, which holds every number the page shows.
@@ -45,14 +47,17 @@ from .jobs import (
     TimingRecord,
     AlignmentRecord,
     MotionRecord,
+    FieldMapNumbers,
     FieldMapSummary,
+    ShiftNumbers,
     UnwarpSummary,
     MapStatistics,
     DropoutParameters,
     FrameRecord,
+    DropoutNumbers,
     DropoutSummary,
 )
-from .plan import PlanFiles, PlanChoice, PlanSummary
+from .plan import PlanFiles, PlanChoice, PlanNumbers, PlanSummary
 from .folders import FolderSummaries, find_summaries
 from .report import (
     ReportFiles,
@@ -82,13 +87,17 @@ __all__ = [
     "TimingRecord",
     "AlignmentRecord",
     "MotionRecord",
+    "FieldMapNumbers",
     "FieldMapSummary",
+    "ShiftNumbers",
     "UnwarpSummary",
     "MapStatistics",
     "DropoutParameters",
     "FrameRecord",
+    "DropoutNumbers",
     "DropoutSummary",
     "PlanChoice",
+    "PlanNumbers",
     "PlanSummary",
     "FolderSummaries",
     "find_summaries",

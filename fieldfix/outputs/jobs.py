@@ -136,38 +136,45 @@ class PairRecord(Record):
     method: str
 
 
-@dataclass(frozen=True)
-class FieldMapSummary(Record):
-    """What the field-map job reports (``<tag>b0_summary.json``).
+@dataclass(frozen=True, kw_only=True)
+class FieldMapNumbers(Record):
+    """The numbers of a field map that its job's summary and the report both carry.
 
     ``unaliased_range_hz`` is the half-width: fields within +-that value are unambiguous.
     """
 
-    KIND = "fieldmap"
-
     input_kind: str
-    method: str
     echo_times_s: list[float] | None
-    echo_times_source: str | None
     delta_te_s: float | None
     unaliased_range_hz: float | None
-    phase_units: list[PhaseUnitsRecord]
     mask_source: str
-    mask_voxels: int
     mask_volume_ml: float
-    mask_fraction_of_grid: float
     field_percentiles_hz: dict[str, float]
     field_mean_hz: float
     voxels_offset_changed: int
-    mask_regions: int
     outlier_voxels: int
     smooth_fwhm_mm: float
+    field_strength_t: float | None
+    percent_mask_beyond_unaliased_range: float | None = None
+
+
+@dataclass(frozen=True)
+class FieldMapSummary(FieldMapNumbers):
+    """What the field-map job reports (``<tag>b0_summary.json``): :class:`FieldMapNumbers` and
+    how they were made."""
+
+    KIND = "fieldmap"
+
+    method: str
+    echo_times_source: str | None
+    phase_units: list[PhaseUnitsRecord]
+    mask_voxels: int
+    mask_fraction_of_grid: float
+    mask_regions: int
     unwrap_method: str | None
     voxel_size_mm: list[float]
-    field_strength_t: float | None
     outputs: FieldMapFiles
     field_percentiles_ppm: dict[str, float] | None = None
-    percent_mask_beyond_unaliased_range: float | None = None
     pair: PairRecord | None = None
     caution: str = CAUTION
 
@@ -224,12 +231,33 @@ class MotionRecord(Record):
     method: str
 
 
+@dataclass(frozen=True, kw_only=True)
+class ShiftNumbers(Record):
+    """The numbers of an unwarped run that its job's summary and the report both carry.
+
+    Shift statistics ``max_abs_shift_*``, ``percent_shifted_over_1_voxel`` and ``folded_voxels``
+    are over the statistics region (the field map's mask on the run grid).
+    """
+
+    pe_code: str
+    pe_axis: int
+    pe_direction_world: str
+    timing: TimingRecord
+    interp: str
+    jacobian_floor: float
+    max_abs_shift_vox: float
+    max_abs_shift_mm: float
+    percent_shifted_over_1_voxel: float
+    folded_voxels: int
+    statistics_region: str
+    coverage_percent: float
+
+
 @dataclass(frozen=True)
-class UnwarpSummary(Record):
+class UnwarpSummary(ShiftNumbers):
     """What the unwarping job reports for one run (``<tag><stem>_unwarp.json``).
 
-    Shift statistics ``max_abs_shift_*``, ``percent_shifted_over_1_voxel``, ``folded_voxels`` and
-    ``voxels_in_mask`` are over the statistics region (the field map's mask on the run grid);
+    :class:`ShiftNumbers`, and: ``voxels_in_mask`` (the statistics region's size);
     ``signal_*_abs_shift_vox`` over the voxels where the run has signal inside it, the region of
     the shift-size guard; ``large_shifts`` flags large but plausible shifts (see ``warnings``).
     """
@@ -239,23 +267,11 @@ class UnwarpSummary(Record):
     run: str
     b0_map: str
     b0_mask: str | None
-    statistics_region: str
     n_volumes: int
-    pe_code: str
-    pe_axis: int
-    pe_direction_world: str
-    timing: TimingRecord
-    interp: str
     jacobian: bool
-    max_abs_shift_vox: float
-    max_abs_shift_mm: float
-    percent_shifted_over_1_voxel: float
-    folded_voxels: int
     voxels_in_mask: int
     pe_voxel_size_mm: float
-    jacobian_floor: float
     folded_voxels_total: int
-    coverage_percent: float
     partial_coverage: bool
     warnings: list[str]
     signal_max_abs_shift_vox: float
@@ -326,8 +342,20 @@ class FrameRecord(Record):
     description: str | None = None
 
 
+@dataclass(frozen=True, kw_only=True)
+class DropoutNumbers(Record):
+    """The numbers of a dropout prediction that its job's summary and the report both carry."""
+
+    parameters: DropoutParameters
+    mask: str
+    retention: MapStatistics
+    bold_sensitivity: MapStatistics | None = None
+    percent_echo_lost: float | None = None
+    pe_direction_world: str | None = None
+
+
 @dataclass(frozen=True)
-class DropoutSummary(Record):
+class DropoutSummary(DropoutNumbers):
     """What the dropout job reports (``<tag>dropout.json``)."""
 
     KIND = "dropout"
@@ -335,13 +363,7 @@ class DropoutSummary(Record):
     b0: str
     geometry_from: str
     frame: FrameRecord
-    parameters: DropoutParameters
-    mask: str
-    retention: MapStatistics
     outputs: DropoutFiles
-    bold_sensitivity: MapStatistics | None = None
-    pe_direction_world: str | None = None
-    percent_echo_lost: float | None = None
     b0_units: str = "Hz"
     epi_placement: str | None = None
     caution: str = CAUTION

@@ -50,13 +50,10 @@ class PlanChoice(Record):
     slice_time_s: float | None = None
 
 
-@dataclass(frozen=True)
-class PlanSummary(Record):
-    """What the planning job reports (``<tag>plan.json`` holds it with the full table)."""
+@dataclass(frozen=True, kw_only=True)
+class PlanNumbers(Record):
+    """The outcome of a plan that its job's summary and the report both carry."""
 
-    KIND = "plan"
-
-    b0: str
     roi: str
     brain_mask: str
     roi_voxels: int
@@ -64,6 +61,15 @@ class PlanSummary(Record):
     metric: str
     recommended: PlanChoice
     reason: str
+
+
+@dataclass(frozen=True)
+class PlanSummary(PlanNumbers):
+    """What the planning job reports (``<tag>plan.json`` holds it with the full table)."""
+
+    KIND = "plan"
+
+    b0: str
     outputs: PlanFiles
     ranking: str = "retention"
     field_source: str = "measured"

@@ -6,8 +6,8 @@ from dataclasses import dataclass, field
 
 from ..records import Record
 from .base import CAUTION, JobFiles
-from .jobs import DropoutParameters, MapStatistics, TimingRecord
-from .plan import PlanChoice
+from .jobs import DropoutNumbers, FieldMapNumbers, ShiftNumbers
+from .plan import PlanChoice, PlanNumbers
 
 
 @dataclass(frozen=True)
@@ -51,51 +51,27 @@ class HeadlineMeasure(Record):
 
 
 @dataclass(frozen=True)
-class ReportFieldMap(Record):
-    """A field map as the report shows it (the job's numbers, plus what the images add)."""
+class ReportFieldMap(FieldMapNumbers):
+    """A field map as the report shows it: the job's :class:`FieldMapNumbers`, plus what the
+    images add."""
 
     name: str
     subject: str | None
     b0_hz: str | None
-    input_kind: str
-    field_percentiles_hz: dict[str, float]
-    field_mean_hz: float
-    unaliased_range_hz: float | None
-    percent_mask_beyond_unaliased_range: float | None
-    echo_times_s: list[float] | None
-    delta_te_s: float | None
     phase_units: list[str]
-    mask_source: str
-    mask_volume_ml: float
-    voxels_offset_changed: int
-    outlier_voxels: int
-    smooth_fwhm_mm: float
-    field_strength_t: float | None
     mask_coverage: float | None
     display_limit_hz: float | None
     notes: list[str] = field(default_factory=list)
 
 
 @dataclass(frozen=True)
-class ReportRun(Record):
-    """An unwarped run: the job's numbers and the report's edge agreements (NGF, 0 to 1)."""
+class ReportRun(ShiftNumbers):
+    """An unwarped run: the job's :class:`ShiftNumbers` and the report's edge agreements (NGF, 0 to 1)."""
 
     stem: str
     name: str
     subject: str | None
     field_map: str | None
-    pe_code: str
-    pe_axis: int
-    pe_direction_world: str
-    timing: TimingRecord
-    interp: str
-    jacobian_floor: float
-    max_abs_shift_vox: float
-    max_abs_shift_mm: float
-    percent_shifted_over_1_voxel: float
-    folded_voxels: int
-    statistics_region: str
-    coverage_percent: float
     before_view: bool
     edge_region: str | None
     edge_agreement_before: float | None
@@ -110,33 +86,20 @@ class ReportRun(Record):
 
 
 @dataclass(frozen=True)
-class ReportDropout(Record):
-    """A dropout prediction: its protocol, the job's mask and statistics."""
+class ReportDropout(DropoutNumbers):
+    """A dropout prediction: the job's :class:`DropoutNumbers` (its protocol, mask and statistics)."""
 
     name: str
     subject: str | None
-    parameters: DropoutParameters
-    mask: str
-    retention: MapStatistics
-    bold_sensitivity: MapStatistics | None
-    percent_echo_lost: float | None
-    pe_direction_world: str | None
     notes: list[str] = field(default_factory=list)
 
 
 @dataclass(frozen=True)
-class ReportPlan(Record):
-    """A protocol plan: masks, the protocol held fixed, the recommendation and the best rows."""
+class ReportPlan(PlanNumbers):
+    """A protocol plan: the job's :class:`PlanNumbers`, the protocol held fixed and the best rows."""
 
     name: str
     subject: str | None
-    roi: str
-    brain_mask: str
-    roi_voxels: int
-    protocols: int
-    metric: str
-    recommended: PlanChoice
-    reason: str
     fixed: dict[str, object]
     top: list[PlanChoice]
 

@@ -19,7 +19,9 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import InputError
-from ..outputs import PlanChoice, ReportDropout, ReportFieldMap, ReportPlan
+from ..outputs import (DropoutNumbers, FieldMapNumbers, PlanChoice, PlanNumbers, ReportDropout, ReportFieldMap,
+                       ReportPlan)
+from ..records import fields_of
 from .figures.panels import pick_slices, worst_slices
 from .orientation import DisplayGrid
 from .stats import mask_coverage, symmetric_limit
@@ -109,14 +111,9 @@ def measure_field_map(found) -> tuple[ReportFieldMap, FieldView | None]:
         view = FieldView(grid, shown, mask_shown, pick_slices(mask_shown, 4, focus=shown, n_z=shown.shape[2]),
                          symmetric_limit(inside, 99.0), inside, s.unaliased_range_hz)
     record = ReportFieldMap(
-        name=found.name, subject=found.subject, b0_hz=s.outputs.b0_hz if b0 is not None else None,
-        input_kind=s.input_kind, field_percentiles_hz=dict(s.field_percentiles_hz), field_mean_hz=s.field_mean_hz,
-        unaliased_range_hz=s.unaliased_range_hz,
-        percent_mask_beyond_unaliased_range=s.percent_mask_beyond_unaliased_range,
-        echo_times_s=s.echo_times_s, delta_te_s=s.delta_te_s,
+        **fields_of(s, FieldMapNumbers), name=found.name, subject=found.subject,
+        b0_hz=s.outputs.b0_hz if b0 is not None else None,
         phase_units=[f"{Path(p.path).name}: {p.units} ({p.how})" for p in s.phase_units],
-        mask_source=s.mask_source, mask_volume_ml=s.mask_volume_ml, voxels_offset_changed=s.voxels_offset_changed,
-        outlier_voxels=s.outlier_voxels, smooth_fwhm_mm=s.smooth_fwhm_mm, field_strength_t=s.field_strength_t,
         mask_coverage=coverage, display_limit_hz=view.limit_hz if view is not None else None, notes=notes)
     return record, view
 
@@ -155,10 +152,8 @@ def measure_dropout(found) -> tuple[ReportDropout, DropoutView | None]:
         lost = (shown[0][1] < s.parameters.threshold) & (mask_shown if mask_shown is not None else True)
         slices = worst_slices(lost, mask_shown, 4)
         view = DropoutView(grid, shown, mask_shown, slices, s.parameters.threshold)
-    record = ReportDropout(name=found.name, subject=found.subject, parameters=s.parameters, mask=mask_name(s.mask),
-                           retention=s.retention, bold_sensitivity=s.bold_sensitivity,
-                           percent_echo_lost=s.percent_echo_lost, pe_direction_world=s.pe_direction_world,
-                           notes=notes)
+    record = ReportDropout(**{**fields_of(s, DropoutNumbers), "mask": mask_name(s.mask)}, name=found.name,
+                           subject=found.subject, notes=notes)
     return record, view
 
 
@@ -176,9 +171,8 @@ def measure_plan(found) -> tuple[ReportPlan, PlanView]:
         top = [s.recommended]
     usable = [r for r in rows if all(k in r for k in _ROW_KEYS)]
     recommended = next((r for r in usable if r["protocol"] == s.recommended.protocol), None)
-    record = ReportPlan(name=found.name, subject=found.subject, roi=mask_name(s.roi),
-                        brain_mask=mask_name(s.brain_mask), roi_voxels=s.roi_voxels, protocols=s.protocols,
-                        metric=s.metric, recommended=s.recommended, reason=s.reason,
+    record = ReportPlan(**{**fields_of(s, PlanNumbers), "roi": mask_name(s.roi), "brain_mask": mask_name(s.brain_mask)},
+                        name=found.name, subject=found.subject,
                         fixed={k: s.parameters[k] for k in PLAN_FIXED if k in s.parameters}, top=top)
     return record, PlanView(usable if len(usable) == len(rows) else [], recommended)
 

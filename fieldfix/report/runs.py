@@ -23,7 +23,8 @@ from scipy import ndimage
 
 from ..geometry import resample_to_grid
 from ..io import image_stem
-from ..outputs import ReportRun
+from ..outputs import ReportRun, ShiftNumbers
+from ..records import fields_of
 from .agreement import edge_agreement, edge_agreement_by_slice, moved_region
 from .figures.charts import Profile
 from .figures.panels import pick_slices, reference_edges
@@ -211,12 +212,8 @@ def _view(a: _Arrays, s, profile, point) -> RunView:
 def _record(found, field_map, s, edges: _Edges, region: str | None, slices_mm, point_mm, notes, before_view):
     stem = image_stem(s.run)  # the run's own name: the same in a job folder and in batch derivatives
     return ReportRun(
-        stem=stem, name=found.name, subject=found.subject,
-        field_map=field_map.name if field_map is not None else None, pe_code=s.pe_code, pe_axis=s.pe_axis,
-        pe_direction_world=s.pe_direction_world, timing=s.timing, interp=s.interp, jacobian_floor=s.jacobian_floor,
-        max_abs_shift_vox=s.max_abs_shift_vox, max_abs_shift_mm=s.max_abs_shift_mm,
-        percent_shifted_over_1_voxel=s.percent_shifted_over_1_voxel, folded_voxels=s.folded_voxels,
-        statistics_region=s.statistics_region, coverage_percent=s.coverage_percent, before_view=before_view,
+        **fields_of(s, ShiftNumbers), stem=stem, name=found.name, subject=found.subject,
+        field_map=field_map.name if field_map is not None else None, before_view=before_view,
         edge_region=f"{region}, dilated by {EDGE_DILATION_VOX} voxels" if region and edges.after is not None
         else None,
         edge_agreement_before=edges.before, edge_agreement_after=edges.after,
