@@ -38,6 +38,14 @@ def _diagonal(n, c, i):  # pragma: no cover - compiled
     return c * (2.0 - (i == 1) - (i == n))
 
 
+@njit(cache=True, inline="always")
+def _row(x, c0, c1, c2, i, j, k, dij):  # pragma: no cover - compiled
+    """``(A x)[i, j, k]``: the diagonal (`dij` its i, j part) times the voxel minus its six neighbours."""
+    acc = (c0 * (x[i - 1, j, k] + x[i + 1, j, k]) + c1 * (x[i, j - 1, k] + x[i, j + 1, k])
+           + c2 * (x[i, j, k - 1] + x[i, j, k + 1]))
+    return (dij + _diagonal(x.shape[2] - 2, c2, k)) * x[i, j, k] - acc
+
+
 @njit(cache=True)
 def residual_nb(x, b, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
     """``out = b - A x`` at unknown voxels, 0 elsewhere (padded arrays, see `gauss_seidel_nb`)."""
@@ -46,13 +54,7 @@ def residual_nb(x, b, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
         for j in range(1, p1 - 1):
             dij = _diagonal(p0 - 2, c0, i) + _diagonal(p1 - 2, c1, j)
             for k in range(1, p2 - 1):
-                if unknown[i, j, k]:
-                    acc = (c0 * (x[i - 1, j, k] + x[i + 1, j, k]) + c1 * (x[i, j - 1, k] + x[i, j + 1, k])
-                           + c2 * (x[i, j, k - 1] + x[i, j, k + 1]))
-                    d = dij + _diagonal(p2 - 2, c2, k)
-                    out[i, j, k] = b[i, j, k] - (d * x[i, j, k] - acc)
-                else:
-                    out[i, j, k] = 0.0
+                out[i, j, k] = b[i, j, k] - _row(x, c0, c1, c2, i, j, k, dij) if unknown[i, j, k] else 0.0
 
 
 @njit(cache=True)
@@ -63,12 +65,7 @@ def apply_nb(x, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
         for j in range(1, p1 - 1):
             dij = _diagonal(p0 - 2, c0, i) + _diagonal(p1 - 2, c1, j)
             for k in range(1, p2 - 1):
-                if unknown[i, j, k]:
-                    acc = (c0 * (x[i - 1, j, k] + x[i + 1, j, k]) + c1 * (x[i, j - 1, k] + x[i, j + 1, k])
-                           + c2 * (x[i, j, k - 1] + x[i, j, k + 1]))
-                    out[i, j, k] = (dij + _diagonal(p2 - 2, c2, k)) * x[i, j, k] - acc
-                else:
-                    out[i, j, k] = 0.0
+                out[i, j, k] = _row(x, c0, c1, c2, i, j, k, dij) if unknown[i, j, k] else 0.0
 
 
 @njit(cache=True)

@@ -425,16 +425,11 @@ def apply_tables(tables: UnwarpTables, volume: np.ndarray, out: np.ndarray | Non
     return out
 
 
-def unwarp_volume(
-    volume: np.ndarray,
-    shift_vox: np.ndarray,
-    pe_axis: int,
-    *,
-    interp: str = "cubic",
-    jacobian: bool = True,
-    jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
-) -> np.ndarray:
+def unwarp_volume(volume: np.ndarray, shift_vox: np.ndarray, pe_axis: int, **options) -> np.ndarray:
     """Unwarp a single 3D volume (builds the tables, then applies them).
+
+    `options` are those of :func:`unwarp_array` (`interp`, `jacobian`, `jacobian_floor`); a 4D
+    array is refused here.
 
     Examples
     --------
@@ -445,7 +440,7 @@ def unwarp_volume(
     """
     if np.ndim(volume) != 3:
         raise GeometryError(f"expected a 3D volume, got {np.ndim(volume)} dimensions")
-    return unwarp_array(volume, shift_vox, pe_axis, interp=interp, jacobian=jacobian, jacobian_floor=jacobian_floor)
+    return unwarp_array(volume, shift_vox, pe_axis, **options)
 
 
 def unwarp_array(
