@@ -24,10 +24,12 @@ from __future__ import annotations
 
 import gzip
 import json
+import shutil
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+import pytest
 from scipy import ndimage
 
 SHAPE = (24, 24, 12)
@@ -186,4 +188,18 @@ def build_dataset(root, *, n_volumes: int = 4, shape=SHAPE, broken: bool = True,
         _phasediff_fmap(sdir / "fmap", f"sub-{i:02d}", b0,
                         [f"func/sub-{i:02d}_task-rest_bold.nii.gz"])
         _bold(sdir / "func" / f"sub-{i:02d}_task-rest_bold.nii.gz", b0, n_volumes, 100 + i)
+    return root
+
+
+# Fixtures shared by the batch test modules (imported by name there): the clean dataset is built
+# once per module and each test works on its own copy.
+@pytest.fixture(scope="module")
+def pristine(tmp_path_factory):
+    return build_dataset(tmp_path_factory.mktemp("pristine") / "study", broken=False)
+
+
+@pytest.fixture
+def dataset(pristine, tmp_path):
+    root = tmp_path / "study"
+    shutil.copytree(pristine, root)
     return root

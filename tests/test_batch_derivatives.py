@@ -28,7 +28,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from _batch_dataset import build_dataset  # noqa: E402
+from _batch_dataset import dataset, pristine  # noqa: E402,F401 (fixtures)
 from test_batch import fake_workflows  # noqa: E402,F401  (fixture)
 
 from fieldfix import batch  # noqa: E402
@@ -43,18 +43,6 @@ ORDER = ["sub", "ses", "sample", "task", "tracksys", "acq", "nuc", "voi", "ce", 
 SUFFIXES = {"bold", "sbref", "dwi", "asl", "m0scan", "cbv", "fieldmap", "mask", "magnitude", "shift", "jacobian",
             "displacement", "retention", "boldsensitivity", "summary"}
 NAME = re.compile(r"^(?P<entities>(?:[a-z]+-[a-zA-Z0-9]+_)+)(?P<suffix>[a-zA-Z0-9]+)(?P<ext>\.nii\.gz|\.json)$")
-
-
-@pytest.fixture(scope="module")
-def pristine(tmp_path_factory):
-    return build_dataset(tmp_path_factory.mktemp("pristine") / "study", broken=False)
-
-
-@pytest.fixture
-def dataset(pristine, tmp_path):
-    root = tmp_path / "study"
-    shutil.copytree(pristine, root)
-    return root
 
 
 @pytest.fixture(scope="module")

@@ -24,7 +24,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from _batch_dataset import build_dataset  # noqa: E402
+from _batch_dataset import build_dataset, dataset, pristine  # noqa: E402,F401 (fixtures)
 from test_batch import fake_workflows  # noqa: E402,F401  (fixture)
 
 from fieldfix import batch  # noqa: E402
@@ -35,18 +35,6 @@ from fieldfix.errors import UnitError  # noqa: E402
 from fieldfix_cli.main import main  # noqa: E402
 
 EXE = Path(sys.executable).with_name("fieldfix")
-
-
-@pytest.fixture(scope="module")
-def pristine(tmp_path_factory):
-    return build_dataset(tmp_path_factory.mktemp("pristine") / "study", broken=False)
-
-
-@pytest.fixture
-def dataset(pristine, tmp_path):
-    root = tmp_path / "study"
-    shutil.copytree(pristine, root)
-    return root
 
 
 def _batch(capsys, *args):

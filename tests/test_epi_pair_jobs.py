@@ -49,10 +49,8 @@ def _save(path: Path, data, sidecar):
     return path
 
 
-@pytest.fixture(scope="module")
-def pair(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("epi")
-    obj, field = _truth()
+def _pair_images(folder, obj, field) -> dict:
+    """The spin-echo images of both polarities ('j' and 'j-'), saved with their sidecars."""
     rng = np.random.default_rng(3)
     paths = {}
     for code, label in (("j", "pa"), ("j-", "ap")):
@@ -60,6 +58,14 @@ def pair(tmp_path_factory):
                              noise_sd=4.0, rng=rng, spin_echo=True)
         paths[code] = _save(folder / f"sub-01_dir-{label}_epi.nii.gz", image,
                             {"PhaseEncodingDirection": code, "TotalReadoutTime": READOUT_S})
+    return paths
+
+
+@pytest.fixture(scope="module")
+def pair(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("epi")
+    obj, field = _truth()
+    paths = _pair_images(folder, obj, field)
     run = simulate_epi(obj, field, pe_code="j-", echo_spacing_s=ESP_S, echo_time_s=0.03, oversample=2)
     run_path = _save(folder / "sub-01_task-rest_bold.nii.gz", np.stack([run, run * 1.01], axis=-1),
                      {"PhaseEncodingDirection": "j-", "TotalReadoutTime": READOUT_S, "RepetitionTime": 2.0})
@@ -99,13 +105,7 @@ def strong_pair(tmp_path_factory):
     (Jacobians 0.92 .. 1.06) there is nothing for a second polarity to recover."""
     folder = tmp_path_factory.mktemp("epi_strong")
     obj, field = _truth(bump_hz=400.0)
-    rng = np.random.default_rng(3)
-    paths = {}
-    for code, label in (("j", "pa"), ("j-", "ap")):
-        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ESP_S, echo_time_s=0.05, oversample=2,
-                             noise_sd=4.0, rng=rng, spin_echo=True)
-        paths[code] = _save(folder / f"sub-01_dir-{label}_epi.nii.gz", image,
-                            {"PhaseEncodingDirection": code, "TotalReadoutTime": READOUT_S})
+    paths = _pair_images(folder, obj, field)
     return folder, paths, _coarse(field), _coarse(obj)
 
 
