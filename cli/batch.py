@@ -12,6 +12,14 @@ from fieldfix.units import parse_angle_deg, parse_length_mm, parse_time_s
 
 HELP = "correct every run of a BIDS dataset into a derivatives dataset (local processes or dask)"
 
+#: Shown after the options in --help.
+EPILOG = (
+    "Outputs form a BIDS derivatives dataset in --out; one batch at a time writes into it. Finished outputs "
+    "whose inputs and parameters are unchanged are kept, so an interrupted batch resumes where it stopped; "
+    "--overwrite redoes everything. Exit status: 0 every run with a field map corrected, 1 some run or task "
+    "failed (listed at the end and in DIR/logs), 2 bad input or the folder is busy."
+)
+
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"jobs": "--jobs", "phase_units": "--phase-units", "smooth_mm": "--smooth", "unwrap_method": "--unwrap",
          "interp": "--interp", "dropout_te_s": "--dropout-te", "dropout_thickness_mm": "--dropout-thickness",
@@ -75,12 +83,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
     where.add_argument("--scheduler-file", metavar="F",
                        help="dask scheduler file (from 'dask scheduler --scheduler-file F')")
     _processing_options(parser)
-    parser.epilog = (
-        "Outputs form a BIDS derivatives dataset in --out; one batch at a time writes into it. Finished outputs "
-        "whose inputs and parameters are unchanged are kept, so an interrupted batch resumes where it stopped; "
-        "--overwrite redoes everything. Exit status: 0 every run with a field map corrected, 1 some run or task "
-        "failed (listed at the end and in DIR/logs), 2 bad input or the folder is busy."
-    )
 
 
 class _FailureLines(logging.Handler):

@@ -6,6 +6,13 @@ import argparse
 
 HELP = "run the whole job (field map, unwarping, dropout, plan, report) on an invented sample scenario"
 
+#: Shown after the options in --help.
+EPILOG = (
+    "The scenario's dataset (BIDS layout, with its ground truth) is built into DIR/dataset on first use "
+    "and reused by later runs into the same DIR. --out receives the B0 map, the corrected "
+    "run with its shift and Jacobian maps, dropout and plan results, report.html and demo_summary.json."
+)
+
 
 def configure(parser: argparse.ArgumentParser) -> None:
     from fieldfix.scenarios import list_scenarios
@@ -15,11 +22,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--scenario", default=DEFAULT_SCENARIO, metavar="NAME",
                         help=f"sample scenario name ({', '.join(names) or 'none found'}) or a folder holding "
                              f"a scenario.json (default: {DEFAULT_SCENARIO})")
-    parser.epilog = (
-        "The scenario's dataset (BIDS layout, with its ground truth) is built into DIR/dataset on first use "
-        "and reused by later runs into the same DIR. --out receives the B0 map, the corrected "
-        "run with its shift and Jacobian maps, dropout and plan results, report.html and demo_summary.json."
-    )
 
 
 def _seconds(step) -> str:

@@ -6,6 +6,18 @@ import argparse
 
 HELP = "make a B0 map in Hz from dual-/multi-echo gradient-echo images, with 3D phase unwrapping"
 
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Field (Hz) = phase gained between the echoes / (2 pi x echo spacing), unambiguous within "
+    "+-1/(2 x spacing) before unwrapping. With --epi-pair the field is the smooth one under which the "
+    "images, each unwarped with its own shift and Jacobian, agree. --out receives b0_hz.nii.gz (extended "
+    "beyond the mask), b0_mask.nii.gz, b0_magnitude.nii.gz and b0_summary.json; with --epi-pair also "
+    "b0_confidence.nii.gz and b0_epi_corrected.nii.gz (the inputs corrected)."
+)
+
 
 def configure(parser: argparse.ArgumentParser) -> None:
     from .main import plausible
@@ -57,16 +69,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
                            "(default: stop with an error)")
     pair.add_argument("--pair-motion", action="store_true",
                       help="also estimate a rigid head motion between the polarities")
-    from .main import add_tag_option
-
-    add_tag_option(opts)
-    parser.epilog = (
-        "Field (Hz) = phase gained between the echoes / (2 pi x echo spacing), unambiguous within "
-        "+-1/(2 x spacing) before unwrapping. With --epi-pair the field is the smooth one under which the "
-        "images, each unwarped with its own shift and Jacobian, agree. --out receives b0_hz.nii.gz (extended "
-        "beyond the mask), b0_mask.nii.gz, b0_magnitude.nii.gz and b0_summary.json; with --epi-pair also "
-        "b0_confidence.nii.gz and b0_epi_corrected.nii.gz (the inputs corrected)."
-    )
 
 
 #: Library parameters -> the options that set them (for error messages).

@@ -1,7 +1,9 @@
 """The ``fieldfix`` command: a thin layer over the library.
 
 Each subcommand is a module of this package defining ``HELP`` (one line),
-``configure(parser)`` and ``run(args) -> dict``. The frame adds the common options,
+``configure(parser)`` and ``run(args) -> dict``, and optionally ``EPILOG`` (text after the
+options), ``TAGGED`` (takes ``--tag``), ``FLAGS``, ``DASH_VALUES``, ``OUT_REQUIRED``,
+``ALL_OR_NOTHING`` and ``output_root(args)``. The frame adds the common options,
 turns fieldfix errors into one line on standard error with exit status 2, prints the
 summary (as JSON with ``--json``), and makes SIGTERM interrupt cleanly so that atomic
 writers remove their temporary files.
@@ -57,10 +59,12 @@ def _load_subcommands():
     return modules
 
 
-def add_common_options(parser: argparse.ArgumentParser, *, out_required: bool = True) -> None:
-    """Options every subcommand takes."""
+def add_common_options(parser: argparse.ArgumentParser, *, out_required: bool = True, tagged: bool = False) -> None:
+    """Options every subcommand takes (and ``--tag`` for those whose module sets ``TAGGED``)."""
     group = parser.add_argument_group("common options")
     group.add_argument("--out", metavar="DIR", required=out_required, help="output folder (created if missing)")
+    if tagged:
+        add_tag_option(group)
     group.add_argument("--overwrite", action="store_true",
                        help="replace earlier fieldfix outputs in DIR (input files are never replaced)")
     group.add_argument("--quiet", action="store_true", help="no progress bars and no summary text")
@@ -131,9 +135,11 @@ def build_parser() -> argparse.ArgumentParser:
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name, module in _load_subcommands().items():
         sub = subparsers.add_parser(name, help=module.HELP, description=f"{module.HELP}\n\n{CAUTION}",
+                                    epilog=getattr(module, "EPILOG", None),
                                     formatter_class=argparse.RawDescriptionHelpFormatter)
         module.configure(sub)
-        add_common_options(sub, out_required=getattr(module, "OUT_REQUIRED", True))
+        add_common_options(sub, out_required=getattr(module, "OUT_REQUIRED", True),
+                           tagged=getattr(module, "TAGGED", False))
         sub.set_defaults(_module=module)
     return parser
 

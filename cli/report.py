@@ -7,6 +7,13 @@ import argparse
 HELP = ("build a self-contained HTML quality report (plus a summary PNG and JSON) from an output folder "
         "or from job summary files")
 
+#: Shown after the options in --help.
+EPILOG = (
+    "Writes report.html (one file, everything inline, no network requests), report_summary.png "
+    "and report.json into --out (default: the folder, or the folder holding all the summaries). --out may "
+    "also name the page itself, e.g. --out qc/sub-01.html."
+)
+
 #: The report goes into FOLDER itself unless --out is given.
 OUT_REQUIRED = False
 
@@ -37,11 +44,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="a folder written by fieldfix fieldmap, unwarp, dropout or plan, or job summary files "
                              "(b0_summary.json, <run>_unwarp.json, dropout.json, plan.json)")
     parser.add_argument("--title", default=None, help="page title (default: the folder name)")
-    parser.epilog = (
-        "Writes report.html (one file, everything inline, no network requests), report_summary.png "
-        "and report.json into --out (default: the folder, or the folder holding all the summaries). --out may "
-        "also name the page itself, e.g. --out qc/sub-01.html."
-    )
 
 
 def run(args) -> dict:

@@ -7,6 +7,18 @@ import sys
 
 HELP = "unwarp EPI runs along the phase-encode axis with a B0 map (Hz), with Jacobian intensity correction"
 
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Shift in voxels = field (Hz) x effective echo spacing (s) x phase-encode lines; with a total "
+    "readout time, echo spacing = readout time / (lines - 1). For each RUN, --out receives "
+    "<stem>_corrected.nii.gz, _shift_vox, _jacobian, _fold_mask, _displacement_mm (NIfTI vector "
+    "field, world mm; .nii instead of .nii.gz for a .nii run or --compress none) and <stem>_unwarp.json, "
+    "and a quality report (report.html, report_summary.png, report.json) unless --no-report."
+)
+
 
 #: On/off options of unwarp beyond the basic ones, with their help.
 SWITCHES = (
@@ -62,18 +74,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--displacement-frame", choices=("ras", "lps"), default="ras",
                         help="world frame of the displacement field's vectors: ras (NIfTI, default) or lps (the "
                              "physical space most registration toolkits expect; x and y negated)")
-    from .main import add_tag_option
-
-    add_tag_option(parser)
     parser.add_argument("--no-report", action="store_true",
                         help="do not build the HTML quality report (report.html) in the output folder")
-    parser.epilog = (
-        "Shift in voxels = field (Hz) x effective echo spacing (s) x phase-encode lines; with a total "
-        "readout time, echo spacing = readout time / (lines - 1). For each RUN, --out receives "
-        "<stem>_corrected.nii.gz, _shift_vox, _jacobian, _fold_mask, _displacement_mm (NIfTI vector "
-        "field, world mm; .nii instead of .nii.gz for a .nii run or --compress none) and <stem>_unwarp.json, "
-        "and a quality report (report.html, report_summary.png, report.json) unless --no-report."
-    )
 
 
 #: Library parameters -> the options that set them (for error messages).
