@@ -164,9 +164,10 @@ def _corner(p, n):  # pragma: no cover - compiled
 
 
 @njit(cache=True, inline="always")
-def _cell(matrix, offset, x, y, z, n0, n1, n2):  # pragma: no cover - compiled
-    """The trilinear cell of voxel (x, y, z) mapped by ``matrix @ x + offset``: its lower and
-    upper corner indices and the fractions along each axis (clamped to the grid)."""
+def _cell(matrix, offset, x, y, z, shape):  # pragma: no cover - compiled
+    """The trilinear cell of voxel (x, y, z) mapped by ``matrix @ x + offset`` into a grid of
+    `shape`: its lower and upper corner indices and the fractions along each axis (clamped)."""
+    n0, n1, n2 = shape
     i, f = _corner(matrix[0, 0] * x + matrix[0, 1] * y + matrix[0, 2] * z + offset[0], n0)
     j, g = _corner(matrix[1, 0] * x + matrix[1, 1] * y + matrix[1, 2] * z + offset[1], n1)
     k, h = _corner(matrix[2, 0] * x + matrix[2, 1] * y + matrix[2, 2] * z + offset[2], n2)
@@ -175,11 +176,10 @@ def _cell(matrix, offset, x, y, z, n0, n1, n2):  # pragma: no cover - compiled
 
 @njit(cache=True, parallel=True)
 def _pull_kernel(volume, matrix, offset, out):  # pragma: no cover - compiled
-    n0, n1, n2 = volume.shape
-    for x in prange(n0):
-        for y in range(n1):
-            for z in range(n2):
-                i, j, k, i1, j1, k1, f, g, h = _cell(matrix, offset, x, y, z, n0, n1, n2)
+    for x in prange(volume.shape[0]):
+        for y in range(volume.shape[1]):
+            for z in range(volume.shape[2]):
+                i, j, k, i1, j1, k1, f, g, h = _cell(matrix, offset, x, y, z, volume.shape)
                 out[x, y, z] = ((1 - f) * ((1 - g) * ((1 - h) * volume[i, j, k] + h * volume[i, j, k1])
                                            + g * ((1 - h) * volume[i, j1, k] + h * volume[i, j1, k1]))
                                 + f * ((1 - g) * ((1 - h) * volume[i1, j, k] + h * volume[i1, j, k1])
@@ -188,11 +188,10 @@ def _pull_kernel(volume, matrix, offset, out):  # pragma: no cover - compiled
 
 @njit(cache=True)
 def _pull_adjoint_kernel(grad, matrix, offset, out):  # pragma: no cover - compiled
-    n0, n1, n2 = grad.shape
-    for x in range(n0):
-        for y in range(n1):
-            for z in range(n2):
-                i, j, k, i1, j1, k1, f, g, h = _cell(matrix, offset, x, y, z, n0, n1, n2)
+    for x in range(grad.shape[0]):
+        for y in range(grad.shape[1]):
+            for z in range(grad.shape[2]):
+                i, j, k, i1, j1, k1, f, g, h = _cell(matrix, offset, x, y, z, grad.shape)
                 v = grad[x, y, z]
                 out[i, j, k] += (1 - f) * (1 - g) * (1 - h) * v
                 out[i, j, k1] += (1 - f) * (1 - g) * h * v
