@@ -8,6 +8,18 @@ from ._field_model import MODEL_FLAGS, add_field_options
 
 HELP = "predict signal retention and BOLD sensitivity for one protocol from a B0 map (Hz) or a modelled field"
 
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
+    "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
+    "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
+    "resampled onto the EPI grid. Without --b0 the field is modelled on the model's grid, its "
+    "brain is the default --mask, and modelled_b0_hz.nii.gz holds the field used."
+)
+
 
 def configure(parser: argparse.ArgumentParser) -> None:
     add_field_options(parser, field_strength_help="the modelled field's strength (default 3T); with --b0, the "
@@ -41,14 +53,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help=f"z-shim moment along the slice normal, e.g. -0.5mT*ms/m ({plausible('zshim_mtms_per_m')})")
     parser.add_argument("--mask", metavar="MASK", default=None, help="brain mask (statistics; maps are 0 outside)")
     parser.add_argument("--threshold", type=float, default=0.5, help="level counted as lost (default 0.5)")
-    from .main import add_tag_option
-
-    add_tag_option(parser)
-    parser.epilog = ("Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
-                     "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
-                     "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
-                     "resampled onto the EPI grid. Without --b0 the field is modelled on the model's grid, its "
-                     "brain is the default --mask, and modelled_b0_hz.nii.gz holds the field used.")
 
 
 def parse_fraction(text: str) -> float:

@@ -8,6 +8,16 @@ from ._field_model import MODEL_FLAGS, add_field_options
 
 HELP = "sweep slice thickness, echo time, tilt and phase-encode polarity over a B0 map and rank the protocols"
 
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Writes plan.csv (ranked table), plan.json (recommendation, reason, all rows, the columns in words "
+    "with units) and plan.png; without --b0 also plan_modelled_b0_hz.nii.gz, the modelled field. "
+    "The figure of merit is relative: no absolute SNR is claimed."
+)
+
 
 def configure(parser: argparse.ArgumentParser) -> None:
     add_field_options(parser, field_strength_help="sets the default T2* and the physiological noise, and the "
@@ -67,12 +77,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="mask the slices must cover (default brain)")
     parser.add_argument("--tolerance", type=float, default=0.01,
                         help="ROI medians this close to the best count as equal when recommending (default 0.01)")
-    from .main import add_tag_option
-
-    add_tag_option(parser)
-    parser.epilog = ("Writes plan.csv (ranked table), plan.json (recommendation, reason, all rows, the columns in words "
-                     "with units) and plan.png; without --b0 also plan_modelled_b0_hz.nii.gz, the modelled field. "
-                     "The figure of merit is relative: no absolute SNR is claimed.")
 
 
 #: Library parameters -> the options that set them (for error messages).

@@ -97,6 +97,13 @@ def test_dropout_from_a_label_image_on_a_pilot_epi_grid(tmp_path, capsys):
     on_epi = _data(out / "retention_on_epi.nii.gz")
     assert on_epi.shape == (48, 60, 40) and 0.0 < on_epi.max() <= 1.0 + 1e-6
     assert (out / "bold_sensitivity_on_epi.nii.gz").is_file()
+    # the report carries where the field came from, and its page says it
+    from fieldfix.report import build_report
+
+    page = build_report(out, tmp_path / "qc")
+    entry = json.loads((tmp_path / "qc" / "report.json").read_text())["dropout"][0]
+    assert entry["field_source"] == "modelled" and entry["mask"] == "brain of the head model"
+    assert '<th scope="row">B0 field</th><td><span class="txt">modelled</span>' in page.read_text()
 
 
 def test_field_strength_with_b0_reads_a_ppm_map(tmp_path, capsys):

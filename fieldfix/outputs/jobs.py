@@ -348,7 +348,8 @@ class FrameRecord(Record):
 
 @dataclass(frozen=True, kw_only=True)
 class DropoutNumbers(Record):
-    """The numbers of a dropout prediction that its job's summary and the report both carry."""
+    """The numbers of a dropout prediction that its job's summary and the report both carry
+    (``field_source``: ``"measured"`` B0 map or ``"modelled"`` field)."""
 
     parameters: DropoutParameters
     mask: str
@@ -356,6 +357,7 @@ class DropoutNumbers(Record):
     bold_sensitivity: MapStatistics | None = None
     percent_echo_lost: float | None = None
     pe_direction_world: str | None = None
+    field_source: str = "measured"
 
 
 @dataclass(frozen=True)
@@ -371,5 +373,4 @@ class DropoutSummary(DropoutNumbers):
     outputs: DropoutFiles
     b0_units: str = "Hz"
     epi_placement: str | None = None
-    field_source: str = "measured"
     caution: str = CAUTION
