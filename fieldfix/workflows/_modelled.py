@@ -36,6 +36,12 @@ def read_modelled_field(model: ModelledField | None) -> FieldModel:
     InputError
         For a label image that is not whole numbers, a label without a susceptibility or a
         brain label not in the image (naming the image).
+
+    Example
+    -------
+    >>> f = read_modelled_field(ModelledField(field_strength_t=7.0, voxel_mm=8.0, shape=(22, 26, 26)))
+    >>> f.b0_hz.dtype.name, f.source
+    ('float32', 'modelled: built-in head, 7 T, pitch 0 deg')
     """
     model = model if model is not None else ModelledField()
     if model.labels_path is None:
