@@ -25,7 +25,8 @@ def add_field_options(parser: argparse.ArgumentParser, *, field_strength_help: s
     group.add_argument("--field-strength", metavar="FIELD", default=None,
                        help=f"main field, e.g. 7T: {field_strength_help}")
     group.add_argument("--pitch", metavar="ANGLE", default=None,
-                       help="head pitch of the modelled field, e.g. 10deg (positive: chin towards the chest; default 0deg)")
+                       help="head pitch of the modelled field, e.g. 10deg (positive: chin towards the chest; "
+                            "default 0deg)")
     group.add_argument("--model-labels", metavar="LABELS", default=None,
                        help="a label image whose field is modelled instead of the built-in head")
     group.add_argument("--model-table", metavar="TABLE", default=None,

@@ -266,7 +266,8 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
     s.check()
     _check_field_source(b0_path, model, s)
     b0_path = Path(b0_path) if b0_path is not None else None
-    mask_path = find_b0_mask(b0_path, s.mask) if b0_path is not None else s.mask and Path(s.mask)
+    mask_path = find_b0_mask(b0_path, s.mask) if b0_path is not None else \
+        Path(s.mask) if s.mask is not None else None
     inputs = [Path(p) for p in (b0_path, s.like, mask_path) if p is not None]
     inputs += model_inputs(model) if b0_path is None else []
     with output_folder(job.out_dir):
