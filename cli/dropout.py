@@ -1,14 +1,30 @@
-"""``fieldfix dropout``: predict through-plane signal retention and BOLD sensitivity from a B0 map."""
+"""``fieldfix dropout``: predict signal retention and BOLD sensitivity from a B0 map or a modelled field."""
 
 from __future__ import annotations
 
 import argparse
 
-HELP = "predict signal retention and BOLD sensitivity for one protocol from a B0 map (Hz)"
+from ._field_model import MODEL_FLAGS, add_field_options
+
+HELP = "predict signal retention and BOLD sensitivity for one protocol from a B0 map (Hz) or a modelled field"
+
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
+    "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
+    "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
+    "resampled onto the EPI grid. Without --b0 the field is modelled on the model's grid, its "
+    "brain is the default --mask, and modelled_b0_hz.nii.gz holds the field used."
+)
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--b0", required=True, metavar="B0_HZ", help="B0 map in Hz (3D NIfTI)")
+    add_field_options(parser, field_strength_help="the modelled field's strength (default 3T); with --b0, the "
+                                                  "field strength of a map in ppm (default: its sidecar's "
+                                                  "MagneticFieldStrength)")
     from .main import plausible
 
     parser.add_argument("--te", required=True, metavar="TIME",
@@ -37,13 +53,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help=f"z-shim moment along the slice normal, e.g. -0.5mT*ms/m ({plausible('zshim_mtms_per_m')})")
     parser.add_argument("--mask", metavar="MASK", default=None, help="brain mask (statistics; maps are 0 outside)")
     parser.add_argument("--threshold", type=float, default=0.5, help="level counted as lost (default 0.5)")
-    from .main import add_tag_option
-
-    add_tag_option(parser)
-    parser.epilog = ("Writes retention.nii.gz (through-plane retention at the nominal TE), bold_sensitivity.nii.gz "
-                     "(with --phase-encoding and an echo spacing) and dropout.json, on the B0 map's grid; with "
-                     "--like on another grid, also retention_on_epi.nii.gz and bold_sensitivity_on_epi.nii.gz "
-                     "resampled onto the EPI grid.")
 
 
 def parse_fraction(text: str) -> float:
@@ -62,7 +71,7 @@ def parse_fraction(text: str) -> float:
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"te_s": "--te", "thickness_mm": "--thickness", "tilt_deg": "--tilt", "pe_code": "--phase-encoding",
          "echo_spacing_s": "--echo-spacing", "partial_fourier": "--partial-fourier", "profile": "--profile",
-         "zshim_mtms_per_m": "--zshim", "threshold": "--threshold", "tag": "--tag"}
+         "zshim_mtms_per_m": "--zshim", "threshold": "--threshold", "tag": "--tag", **MODEL_FLAGS}
 #: Options whose values may start with '-' (e.g. --tilt -15deg, --zshim -0.5mT*ms/m).
 DASH_VALUES = ("--tilt", "--zshim", "--phase-encoding", "--te", "--thickness", "--echo-spacing")
 
@@ -71,8 +80,10 @@ def run(args) -> dict:
     from fieldfix.units import parse_checked
     from fieldfix.workflows.dropout import DropoutSettings, run_dropout
 
+    from ._field_model import field_strength_t, modelled_field_of
     from .main import job_options
 
+    model = modelled_field_of(args)
     settings = DropoutSettings(
         te_s=parse_checked(args.te, "te_s"), thickness_mm=parse_checked(args.thickness, "thickness_mm"), like=args.like,
         slice_axis="ijk".index(args.slice_axis) if args.slice_axis else None,
@@ -81,10 +92,10 @@ def run(args) -> dict:
         partial_fourier=parse_fraction(args.partial_fourier) if args.partial_fourier else None,
         profile=args.profile, tbw=args.tbw,
         zshim_mtms_per_m=parse_checked(args.zshim, "zshim_mtms_per_m") if args.zshim else 0.0, mask=args.mask,
-        threshold=args.threshold)
+        threshold=args.threshold, field_strength_t=field_strength_t(args, None) if model is None else None)
     job = job_options(args)
-    summary = run_dropout(args.b0, job, settings)
-    out = {"retention": summary.retention.to_json(),
+    summary = run_dropout(args.b0, job, settings, model=model)
+    out = {"b0": summary.b0, "field_source": summary.field_source, "retention": summary.retention.to_json(),
            "outputs": {k: str(v) for k, v in summary.outputs.paths(job.out_dir).items()}}
     if summary.bold_sensitivity is not None:
         out["bold_sensitivity"] = summary.bold_sensitivity.to_json()

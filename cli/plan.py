@@ -4,13 +4,24 @@ from __future__ import annotations
 
 import argparse
 
+from ._field_model import MODEL_FLAGS, add_field_options
+
 HELP = "sweep slice thickness, echo time, tilt and phase-encode polarity over a B0 map and rank the protocols"
+
+#: Takes --tag (added by the frame with the common options).
+TAGGED = True
+
+#: Shown after the options in --help.
+EPILOG = (
+    "Writes plan.csv (ranked table), plan.json (recommendation, reason, all rows, the columns in words "
+    "with units) and plan.png; without --b0 also plan_modelled_b0_hz.nii.gz, the modelled field. "
+    "The figure of merit is relative: no absolute SNR is claimed."
+)
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--b0", default=None, metavar="B0_HZ",
-                        help="B0 map in Hz (3D NIfTI); without it the field of the built-in head model is used "
-                             "(--field-strength, --pitch) and the outputs say 'modelled'")
+    add_field_options(parser, field_strength_help="sets the default T2* and the physiological noise, and the "
+                                                  "modelled field's strength (default 3T)")
     parser.add_argument("--roi", required=True, metavar="ROI", help="region-of-interest mask, or a label image with "
                                                                    "--roi-label")
     parser.add_argument("--roi-label", metavar="VALUES", default=None,
@@ -60,33 +71,19 @@ def configure(parser: argparse.ArgumentParser) -> None:
                              "retention: the ROI median of the signal metric only")
     parser.add_argument("--t2star", metavar="TIME", default=None,
                         help="T2* of the tissue (default grey matter at --field-strength: 60/45/27 ms at 1.5/3/7 T)")
-    parser.add_argument("--field-strength", metavar="FIELD", default="3T", help="main field (default 3T)")
     parser.add_argument("--physio-noise", type=float, default=0.011,
                         help="physiological noise as a fraction of the signal (default 0.011; 0 for thermal only)")
-    parser.add_argument("--model-labels", metavar="LABELS", default=None,
-                        help="without --b0: a label image whose field is modelled instead of the built-in head")
-    parser.add_argument("--model-table", metavar="TABLE", default=None,
-                        help="susceptibility of each label in ppm, e.g. 0=0.36,1=-9.05,4=-9.04 (with --model-labels)")
-    parser.add_argument("--model-brain", metavar="VALUES", default=None,
-                        help="labels of --model-labels that are brain (the shim region and brain mask), e.g. 4")
-    parser.add_argument("--pitch", metavar="ANGLE", default="0deg",
-                        help="head pitch of the modelled field (without --b0; default 0deg)")
     parser.add_argument("--coverage", choices=("brain", "roi"), default="brain",
                         help="mask the slices must cover (default brain)")
     parser.add_argument("--tolerance", type=float, default=0.01,
                         help="ROI medians this close to the best count as equal when recommending (default 0.01)")
-    from .main import add_tag_option
-
-    add_tag_option(parser)
-    parser.epilog = ("Writes plan.csv (ranked table), plan.json (recommendation, reason, all rows, the columns in words "
-                     "with units) and plan.png. The figure of merit is relative: no absolute SNR is claimed.")
 
 
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"te_s": "--te", "thickness_mm": "--thickness", "tilt_deg": "--tilt", "pe_lines": "--pe-lines",
          "multiband": "--multiband", "max_tr_s": "--max-tr", "fixed_tr_s": "--tr", "echo_spacing_s": "--echo-spacing",
-         "tag": "--tag", "t2star_s": "--t2star", "field_strength_t": "--field-strength", "rank_by": "--rank-by",
-         "time_per_slice_s": "--time-per-slice", "lambda_physio": "--physio-noise"}
+         "tag": "--tag", "t2star_s": "--t2star", "rank_by": "--rank-by", "time_per_slice_s": "--time-per-slice",
+         "lambda_physio": "--physio-noise", **MODEL_FLAGS}
 #: Options whose values may start with '-' (e.g. --tilt -30deg:30deg:10deg).
 DASH_VALUES = ("--tilt", "--zshim")
 
@@ -100,9 +97,10 @@ def _spec(args):
     from fieldfix.units import parse_checked, parse_length_mm, parse_quantity_list
     from fieldfix.workflows._plan_pilot import spec_from_pilot
 
+    from ._field_model import field_strength_t
     from .dropout import parse_fraction
 
-    field_t = parse_checked(args.field_strength, "field_strength_t")
+    field_t = field_strength_t(args)
     typed = {
         "te_s": parse_quantity_list(args.te, "time") if args.te else None,
         "thickness_mm": parse_quantity_list(args.thickness, "length") if args.thickness else None,
@@ -124,51 +122,23 @@ def _spec(args):
                                  lambda_physio=args.physio_noise))
     if args.like:
         spec = spec_from_pilot(args.like, spec, given=set(typed))
-    return dataclasses.replace(spec, **typed), field_t
-
-
-def _whole_numbers(text: str, flag: str) -> list[int]:
-    from fieldfix.errors import InputError
-
-    try:
-        return [int(v) for v in text.split(",") if v.strip()]
-    except ValueError:
-        raise InputError(f"{flag}: cannot read {text!r} as whole numbers, e.g. 11,12") from None
-
-
-def _label_model(args) -> dict:
-    """The label-image fields of the modelled field (empty without --model-labels)."""
-    from fieldfix.errors import InputError
-
-    if args.model_labels is None:
-        return {}
-    if args.b0 is not None or not args.model_table or not args.model_brain:
-        raise InputError("--model-labels needs --model-table and --model-brain, and no --b0")
-    try:
-        table = tuple((int(k), float(v)) for k, v in (item.split("=") for item in args.model_table.split(",")))
-    except ValueError:
-        raise InputError(f"--model-table: cannot read {args.model_table!r}; write label=ppm pairs, e.g. "
-                         "0=0.36,4=-9.04") from None
-    return {"labels_path": args.model_labels, "table_ppm": table,
-            "brain_labels": tuple(_whole_numbers(args.model_brain, "--model-brain"))}
+    return dataclasses.replace(spec, **typed)
 
 
 def run(args) -> dict:
     from fieldfix.errors import InputError
-    from fieldfix.plan_field import ModelledField
-    from fieldfix.units import parse_checked
     from fieldfix.workflows.plan import run_plan
 
+    from ._field_model import modelled_field_of, whole_numbers
     from .main import job_options
 
     if (args.pe_lines is not None and args.pe_lines < 2) or args.multiband < 1:
         raise InputError("--pe-lines must be at least 2 and --multiband at least 1")
     if not args.like and not (args.te and args.thickness):
         raise InputError("--te and --thickness are needed (or --like a pilot EPI to take them from)")
-    labels = _whole_numbers(args.roi_label, "--roi-label") if args.roi_label else None
-    spec, field_t = _spec(args)
-    model = ModelledField(field_strength_t=field_t, pitch_deg=parse_checked(args.pitch, "tilt_deg", "pitch_deg"),
-                          **_label_model(args))
+    labels = whole_numbers(args.roi_label, "--roi-label") if args.roi_label else None
+    model = modelled_field_of(args)
+    spec = _spec(args)
     job = job_options(args)
     summary = run_plan(args.b0, job, roi_path=args.roi, brain_mask_path=args.brain_mask, spec=spec,
                        roi_labels=labels, model=model)

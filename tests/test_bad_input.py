@@ -253,6 +253,19 @@ def plan_case(pattern, names="roi", b0_kw=None, roi=None, roi_affine=None, extra
     return build
 
 
+def model_case(pattern, names="labels", table="0=0.36,4=-9.04,5=0.36", brain="4", extra=()):
+    """dropout without --b0, its field modelled from a label image (0 air, 4 brain, 5 a sinus)."""
+    def make(folder):
+        labels = np.where(head() > 0, 4, 0)
+        labels[6:9, 10:13, 3:5] = 5
+        return {"labels": write_image(folder / "labels.nii.gz", labels)}
+
+    def argv_of(paths, out):
+        return ["dropout", "--model-labels", paths["labels"], "--model-table", table, "--model-brain", brain,
+                "--te", "30ms", "--thickness", "3mm", "--out", out, *extra]
+    return _files_case(pattern, names, make, argv_of, None)
+
+
 def _add_like(data=None, affine=None, sidecar=None):
     def mutate(folder, paths):
         paths["like"] = make_run(folder, name="like_bold.nii.gz", data=data, affine=affine, sidecar=sidecar)
@@ -431,6 +444,24 @@ REFUSALS = [
                  id="dropout-pe-code-unknown"),
     pytest.param(dropout_case(r"empty", names="mask", before=_add_mask(np.zeros(SHAPE)), extra=("--mask", "mask")),
                  id="dropout-mask-empty"),
+    # the modelled field (no --b0): its options refused beside a B0 map, a label image checked
+    pytest.param(dropout_case(r"for a modelled field, used only without --b0", names=["--pitch"],
+                              extra=("--pitch", "10deg")), id="dropout-model-option-with-b0"),
+    pytest.param(dropout_case(r"used only without --b0", names=["--model-labels, --model-table, --model-brain"],
+                              extra=("--model-labels", "b0", "--model-table", "0=0.36", "--model-brain", "4")),
+                 id="dropout-model-labels-with-b0"),
+    pytest.param(model_case(r"labels \[5\] of the label image have no susceptibility",
+                            names=["labels", "--model-table"], table="0=0.36,4=-9.04"),
+                 id="dropout-model-table-lacks-a-label"),
+    pytest.param(model_case(r"\[9\] not present in the label image", names=["labels", "--model-brain"], brain="9"),
+                 id="dropout-model-brain-not-in-image"),
+    pytest.param(model_case(r"cannot read .* label=ppm pairs", names=["--model-table"], table="0:0.36"),
+                 id="dropout-model-table-unreadable"),
+    pytest.param(simple_case(lambda f: ["dropout", "--model-table", "0=0.36", "--te", "30ms", "--thickness", "3mm",
+                                        "--out", f / "out"], r"--model-labels, which is missing",
+                             lambda f: ["--model-table"]), id="dropout-model-table-without-labels"),
+    pytest.param(plan_case(r"for a modelled field, used only without --b0", names=["--pitch"],
+                           extra=("--pitch", "10deg")), id="plan-model-option-with-b0"),
     pytest.param(plan_case(r"empty", roi=np.zeros(SHAPE)), id="plan-roi-empty"),
     pytest.param(plan_case(r"NaN|infinite|finite", names="b0", b0_kw={"values": with_nan(field_hz())}),
                  id="plan-b0-nan"),

@@ -83,23 +83,27 @@ class CombinedFiles(JobFiles):
 
 @dataclass(frozen=True)
 class DropoutFiles(JobFiles):
-    """Outputs of the dropout job (the BOLD-sensitivity and EPI-grid maps when made)."""
+    """Outputs of the dropout job (the BOLD-sensitivity and EPI-grid maps when made;
+    ``modelled_b0_hz``: the modelled field used when no B0 map was given)."""
 
     retention: str
     summary: str
     bold_sensitivity: str | None = None
     retention_on_epi: str | None = None
     bold_sensitivity_on_epi: str | None = None
+    modelled_b0_hz: str | None = None
 
     SUMMARY_SUFFIX = "dropout.json"
-    IMAGES = ("retention", "bold_sensitivity", "retention_on_epi", "bold_sensitivity_on_epi")
+    IMAGES = ("retention", "bold_sensitivity", "retention_on_epi", "bold_sensitivity_on_epi", "modelled_b0_hz")
 
     @classmethod
-    def named(cls, tag: str = "", *, bold: bool = False, on_epi: bool = False) -> "DropoutFiles":
+    def named(cls, tag: str = "", *, bold: bool = False, on_epi: bool = False,
+              modelled: bool = False) -> "DropoutFiles":
         return cls(retention=f"{tag}retention.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
                    bold_sensitivity=f"{tag}bold_sensitivity.nii.gz" if bold else None,
                    retention_on_epi=f"{tag}retention_on_epi.nii.gz" if on_epi else None,
-                   bold_sensitivity_on_epi=f"{tag}bold_sensitivity_on_epi.nii.gz" if bold and on_epi else None)
+                   bold_sensitivity_on_epi=f"{tag}bold_sensitivity_on_epi.nii.gz" if bold and on_epi else None,
+                   modelled_b0_hz=f"{tag}modelled_b0_hz.nii.gz" if modelled else None)
 
 
 
@@ -344,7 +348,8 @@ class FrameRecord(Record):
 
 @dataclass(frozen=True, kw_only=True)
 class DropoutNumbers(Record):
-    """The numbers of a dropout prediction that its job's summary and the report both carry."""
+    """The numbers of a dropout prediction that its job's summary and the report both carry
+    (``field_source``: ``"measured"`` B0 map or ``"modelled"`` field)."""
 
     parameters: DropoutParameters
     mask: str
@@ -352,11 +357,13 @@ class DropoutNumbers(Record):
     bold_sensitivity: MapStatistics | None = None
     percent_echo_lost: float | None = None
     pe_direction_world: str | None = None
+    field_source: str = "measured"
 
 
 @dataclass(frozen=True)
 class DropoutSummary(DropoutNumbers):
-    """What the dropout job reports (``<tag>dropout.json``)."""
+    """What the dropout job reports (``<tag>dropout.json``); ``b0`` is the map's path, or for a
+    modelled field (``field_source`` ``"modelled"``) how it was modelled, as in the plan's summary."""
 
     KIND = "dropout"
 

@@ -181,7 +181,8 @@ def dropout_facts(data, i: int) -> tuple[list, list]:
                 ("Effective echo spacing", num(data, f"{q}.echo_spacing_s", "{:.3f}", "ms", 1000.0)),
                 ("Partial Fourier", num(data, f"{q}.partial_fourier", "{:g}", "of k-space")),
                 ("Loss threshold", num(data, f"{q}.threshold", "{:g}", "fraction of signal"))]
-    stats = [("Statistics inside", text(data, f"{p}.mask")),
+    stats = [("B0 field", text(data, f"{p}.field_source")),
+             ("Statistics inside", text(data, f"{p}.mask")),
              ("Voxels", num(data, f"{p}.retention.voxels", "{:d}", "voxels")),
              ("Median retention", num(data, f"{p}.retention.median", "{:.3f}", "fraction, 0\u20131")),
              ("Retention under the threshold", num(data, f"{p}.retention.percent_below_threshold", "{:.1f}",

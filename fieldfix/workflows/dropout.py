@@ -14,6 +14,11 @@ each image. With an EPI image on another grid, the maps are also written resampl
 interpolation, 0 outside the B0 map) onto the EPI grid: ``<t>retention_on_epi.nii.gz`` and
 ``<t>bold_sensitivity_on_epi.nii.gz``, for overlays on the (corrected) EPI.
 
+Without a B0 map the field is modelled (:mod:`fieldfix.plan_field`, as the planner does: the
+built-in head or a label image, a field strength and a head pitch), the maps are computed on the
+model's grid, its brain is the default mask, the field used is written as
+``<t>modelled_b0_hz.nii.gz`` and the summary says ``field_source: "modelled"`` and how.
+
 Research software, not a medical device: predicted maps are a planning aid.
 """
 
@@ -33,6 +38,8 @@ from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..shift import resolve_timing
 from ._b0 import read_field_hz
+from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
+from ..plan_field import FieldModel, ModelledField
 from ..align import Readout
 from ._placement import alignment, find_b0_magnitude, read_magnitude_on_map
 from ._run_checks import find_b0_mask
@@ -86,7 +93,8 @@ class DropoutSettings:
         ``PartialFourier``, else 1.
     mask : path, optional
         Mask of the statistics (maps set to 0 outside); default: the field map's mask
-        (``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz``), else the non-zero B0 voxels.
+        (``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz``), else the non-zero B0 voxels;
+        for a modelled field the model's brain.
     threshold : float
         Level under which a voxel counts as lost in the statistics.
     b0_units : str, optional
@@ -99,6 +107,8 @@ class DropoutSettings:
         aligned to it as for unwarping (:mod:`fieldfix.workflows._placement`).
     b0_magnitude : path, optional
 
+    ``b0_units``, ``field_strength_t`` and ``b0_magnitude`` read a B0 map and are refused
+    without one (a modelled field's strength is that of its :class:`fieldfix.plan_field.ModelledField`).
     The plausible ranges of the quantities are those of :data:`fieldfix.units.PLAUSIBLE`.
     """
 
@@ -170,7 +180,7 @@ class _Geometry:
     """Slice frame and readout of the prediction, resolved from the settings and the EPI sidecar."""
 
     frame: object
-    source: Image
+    source_affine: np.ndarray
     pe_code: str | None
     pe_sign: int | None
     echo_spacing_s: float | None
@@ -178,9 +188,9 @@ class _Geometry:
     partial_fourier: float
 
 
-def _geometry(s: DropoutSettings, b0_img: Image, like: Image | None) -> _Geometry:
+def _geometry(s: DropoutSettings, field: FieldModel, like: Image | None) -> _Geometry:
     sidecar = like.sidecar if like is not None else {}
-    source = like if like is not None else b0_img
+    affine, shape = (like.affine, like.shape[:3]) if like is not None else (field.affine, field.b0_hz.shape)
     slice_axis, pe_code, echo_spacing_s = s.slice_axis, s.pe_code, s.echo_spacing_s
     if slice_axis is None:
         code = sidecar.get("SliceEncodingDirection")
@@ -206,14 +216,14 @@ def _geometry(s: DropoutSettings, b0_img: Image, like: Image | None) -> _Geometr
             raise MetadataError(f"effective echo spacing {echo_spacing_s * 1e3:g} ms is implausible "
                                 "(expected 0.001-10 ms); check the unit", parameter="echo_spacing_s")
     partial_fourier = _partial_fourier(s.partial_fourier, sidecar, like)
-    frame = frame_from_affine(source.affine, slice_axis, pe_axis, tilt_deg=s.tilt_deg, shape=source.shape[:3])
+    frame = frame_from_affine(affine, slice_axis, pe_axis, tilt_deg=s.tilt_deg, shape=shape)
     if pe_code is not None:
         start, _ = acquisition_window_s(s.te_s, echo_spacing_s, frame.pe_lines, partial_fourier)
         if start < 0:
             raise MetadataError(f"echo time {s.te_s * 1e3:g} ms is shorter than the time to reach the k-space centre "
                                 f"({(s.te_s - start) * 1e3:g} ms) with {frame.pe_lines} lines and this echo spacing",
                                 parameter="te_s")
-    return _Geometry(frame, source, pe_code, pe_sign, echo_spacing_s, slice_axis, partial_fourier)
+    return _Geometry(frame, affine, pe_code, pe_sign, echo_spacing_s, slice_axis, partial_fourier)
 
 
 def _partial_fourier(given: float | None, sidecar: dict, like: Image | None) -> float:
@@ -229,17 +239,21 @@ def _partial_fourier(given: float | None, sidecar: dict, like: Image | None) -> 
     return float(value)
 
 
-def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None = None,
-                **changes) -> DropoutSummary:
+def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None = None, *,
+                model: ModelledField | None = None, **changes) -> DropoutSummary:
     """Predict retention (and BOLD sensitivity) maps for one protocol and write them.
 
     Parameters
     ----------
-    b0_path : path
-        B0 map in Hz (3D NIfTI).
+    b0_path : path or None
+        B0 map in Hz (3D NIfTI); None: the field `model` describes, on the model's grid, written
+        as ``<tag>modelled_b0_hz.nii.gz``, with the model's brain as the default mask.
     job : JobOptions or path
         Output folder and writing options.
     settings : DropoutSettings, optional
+    model : ModelledField, optional
+        How to model the field when there is no B0 map (:mod:`fieldfix.plan_field`; default the
+        built-in head at 3 T, pitch 0 deg).
     **changes
         Fields of :class:`JobOptions` or :class:`DropoutSettings` to set on top.
 
@@ -250,35 +264,73 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
     """
     job, s = job_and_settings(job, DropoutSettings, settings, changes)
     s.check()
-    b0_path = Path(b0_path)
-    mask_path = find_b0_mask(b0_path, s.mask)
+    _check_field_source(b0_path, model, s)
+    b0_path = Path(b0_path) if b0_path is not None else None
+    mask_path = find_b0_mask(b0_path, s.mask) if b0_path is not None else \
+        Path(s.mask) if s.mask is not None else None
     inputs = [Path(p) for p in (b0_path, s.like, mask_path) if p is not None]
+    inputs += model_inputs(model) if b0_path is None else []
     with output_folder(job.out_dir):
-        b0_img = load_image(b0_path, ndim=(3,))
-        b0, b0_units = read_field_hz(b0_img, s.b0_units, s.field_strength_t, finite_everywhere=False)
+        field, b0_img, b0_units = _read_field(b0_path, model, s)
         like = load_image(s.like, ndim=(3, 4)) if s.like is not None else None
-        if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, b0_img.affine) == 0.0:
+        b0 = field.b0_hz
+        if like is not None and overlap_fraction(like.shape[:3], like.affine, b0.shape, field.affine) == 0.0:
             raise GeometryError("the EPI image does not overlap the B0 map; check that both are in the same "
                                 "scanner space", s.like)
-        geometry = _geometry(s, b0_img, like)
-        on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, b0_img.affine)
-        files = DropoutFiles.named(job.tag, bold=geometry.pe_code is not None, on_epi=on_epi)
+        geometry = _geometry(s, field, like)
+        on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, field.affine)
+        files = DropoutFiles.named(job.tag, bold=geometry.pe_code is not None, on_epi=on_epi, modelled=b0_img is None)
         output_paths_guard(files.guarded(job.out_dir), inputs, job.overwrite)
-        mask = load_mask_on_grid(mask_path, b0.shape, b0_img.affine, what="mask") if mask_path is not None \
-            else np.isfinite(b0) & (b0 != 0)
+        mask = _mask(mask_path, field)
         if not np.isfinite(b0[mask]).all():
             raise InputError("the B0 map has non-finite values inside the mask", b0_path)
-        b0 = np.where(np.isfinite(b0), b0, 0.0)
-        matrix, placement = _epi_placement(s, b0_path, b0_img, b0, like, geometry) if on_epi else (np.eye(4), None)
-        summary = dataclasses.replace(_predict_and_write(b0, b0_img, like, mask, geometry, files, s, job, inputs,
+        field = dataclasses.replace(field, b0_hz=np.where(np.isfinite(b0), b0, 0.0))
+        matrix, placement = _epi_placement(s, b0_path, b0_img, field.b0_hz, like, geometry) if on_epi \
+            else (np.eye(4), None)
+        summary = dataclasses.replace(_predict_and_write(field, b0_img, like, mask, geometry, files, s, job, inputs,
                                                          matrix),
-                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask), epi_placement=placement)
+                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask, b0_img is None),
+                                      epi_placement=placement)
         write_json(job.path(files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
 
-def _epi_placement(s: DropoutSettings, b0_path: Path, b0_img: Image, b0, like: Image, geometry: _Geometry):
+def _check_field_source(b0_path, model: ModelledField | None, s: DropoutSettings) -> None:
+    """A B0 map and a field model exclude each other; the settings that read a map need one."""
+    if b0_path is not None and model is not None:
+        raise InputError("a field model is for a job without a B0 map; give the map or the model, not both",
+                         parameter="model")
+    for name in ("b0_units", "field_strength_t", "b0_magnitude"):
+        if b0_path is None and getattr(s, name) is not None:
+            raise InputError("reads a B0 map, and none is given (the field is modelled: its field strength is "
+                             "the model's)", parameter=name)
+
+
+def _read_field(b0_path: Path | None, model: ModelledField | None,
+                s: DropoutSettings) -> tuple[FieldModel, Image | None, str]:
+    """(the field in Hz on its grid, the B0 map's image (None: modelled), how its units were known)."""
+    if b0_path is None:
+        return read_modelled_field(model), None, "Hz (modelled)"
+    b0_img = load_image(b0_path, ndim=(3,))
+    b0, b0_units = read_field_hz(b0_img, s.b0_units, s.field_strength_t, finite_everywhere=False)
+    return FieldModel(b0_hz=b0, affine=b0_img.affine, brain_mask=None, labels=None,
+                      source=f"measured: {b0_img.path}"), b0_img, b0_units
+
+
+def _mask(mask_path: Path | None, field: FieldModel) -> np.ndarray:
+    """The statistics mask on the field's grid: given or found, else the model's brain, else non-zero B0."""
+    if mask_path is not None:
+        return load_mask_on_grid(mask_path, field.b0_hz.shape, field.affine, what="mask")
+    if field.brain_mask is not None:
+        return field.brain_mask
+    return np.isfinite(field.b0_hz) & (field.b0_hz != 0)
+
+
+def _epi_placement(s: DropoutSettings, b0_path: Path | None, b0_img: Image | None, b0, like: Image,
+                   geometry: _Geometry):
     """(field-map world -> EPI world matrix, how) for the maps written on the EPI grid."""
+    if b0_img is None:
+        return np.eye(4), "affines only: a modelled field has no magnitude to align with the EPI image"
     magnitude_path = find_b0_magnitude(b0_path, s.b0_magnitude) if s.align_fieldmap else None
     if s.align_fieldmap and magnitude_path is not None and geometry.pe_code is None:
         return np.eye(4), "affines only: the EPI image's phase encoding is unknown, so its distortion cannot be modelled"
@@ -289,11 +341,12 @@ def _epi_placement(s: DropoutSettings, b0_path: Path, b0_img: Image, b0, like: I
     return matrix, how
 
 
-def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: DropoutFiles, s: DropoutSettings,
-                       job: JobOptions, inputs, matrix) -> DropoutSummary:
+def _predict_and_write(field: FieldModel, b0_img: Image | None, like, mask, geometry: _Geometry,
+                       files: DropoutFiles, s: DropoutSettings, job: JobOptions, inputs, matrix) -> DropoutSummary:
     profile = slice_profile(s.profile, tbw=s.tbw)
-    maps = dropout_maps(b0, b0_img.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm, profile=profile,
-                        zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m), pe_sign=geometry.pe_sign,
+    maps = dropout_maps(field.b0_hz, field.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm,
+                        profile=profile, zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m),
+                        pe_sign=geometry.pe_sign,
                         echo_spacing_s=geometry.echo_spacing_s if geometry.pe_code is not None else None,
                         partial_fourier=geometry.partial_fourier)
     parameters = DropoutParameters(
@@ -302,34 +355,38 @@ def _predict_and_write(b0, b0_img, like, mask, geometry: _Geometry, files: Dropo
         zshim_mtms_per_m=s.zshim_mtms_per_m, threshold=s.threshold, **_profile_fields(profile))
     provenance = Provenance(job.command, parameters.to_json(), inputs)
     common = dict(inputs=inputs, overwrite=job.overwrite, provenance=provenance)
+    if files.modelled_b0_hz is not None:
+        save_modelled_field(job.path(files.modelled_b0_hz), field, **common)
     written = {"retention": np.where(mask, maps["retention"], 0.0)}
     if geometry.pe_code is not None:
         written["bold_sensitivity"] = np.where(mask, maps["bold_sensitivity"], 0.0)
     for kind, values in written.items():
-        save_image(job.path(getattr(files, kind)), values, b0_img.affine, template=b0_img, **common,
+        save_image(job.path(getattr(files, kind)), values, field.affine, template=b0_img, **common,
                    sidecar_extra={"Description": _DESCRIPTIONS[kind]})
         if files.retention_on_epi is not None:  # the same maps on the EPI grid, for overlays
-            resampled, _ = resample_to_grid(values, matrix @ b0_img.affine, like.shape[:3], like.affine, order=1,
+            resampled, _ = resample_to_grid(values, matrix @ field.affine, like.shape[:3], like.affine, order=1,
                                             outside=0.0)
             note = f"{_DESCRIPTIONS[kind]}, resampled (linear) onto the grid of {like.path.name}"
             save_image(job.path(getattr(files, f"{kind}_on_epi")), resampled, like.affine, template=like, **common,
                        sidecar_extra={"Description": note})
     bold = geometry.pe_code is not None
     return DropoutSummary(
-        b0=str(b0_img.path), geometry_from=str(s.like) if s.like is not None else "B0 grid",
+        b0=str(b0_img.path) if b0_img is not None else field.source,
+        field_source="measured" if b0_img is not None else "modelled",
+        geometry_from=str(s.like) if s.like is not None else "B0 grid",
         frame=FrameRecord.from_json(geometry.frame.as_dict()), parameters=parameters,
         mask=str(s.mask) if s.mask is not None else "non-zero B0 voxels",
         retention=_stats(maps["retention"], mask, s.threshold), outputs=files,
         bold_sensitivity=_stats(maps["bold_sensitivity"], mask, s.threshold) if bold else None,
-        pe_direction_world=pe_world_direction(geometry.pe_code, geometry.source.affine) if bold else None,
+        pe_direction_world=pe_world_direction(geometry.pe_code, geometry.source_affine) if bold else None,
         percent_echo_lost=float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
         if bold else None)
 
 
-def _mask_words(mask_path, given) -> str:
+def _mask_words(mask_path, given, modelled: bool) -> str:
     """Which mask the statistics are over (every summary names it)."""
     if mask_path is None:
-        return "non-zero B0 voxels (no mask given and none beside the B0 map)"
+        return MODEL_BRAIN if modelled else "non-zero B0 voxels (no mask given and none beside the B0 map)"
     return str(mask_path) if given is not None else f"{mask_path} (the field map's mask, found beside it)"
 
 

@@ -20,12 +20,13 @@ import numpy as np
 
 from ..errors import InputError
 from ..geometry import resample_to_grid, same_grid
-from ..io import Provenance, load_image, save_image
+from ..io import Provenance, load_image
 from ..jsonfile import to_jsonable, write_json
 from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
 from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
-from ..plan_field import FieldModel, ModelledField, field_from_label_image, modelled_field
+from ..plan_field import FieldModel, ModelledField
+from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
 from .dropout import load_mask_on_grid
 
 __all__ = ["run_plan", "load_label_roi", "CAUTION"]
@@ -54,8 +55,8 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
     Parameters
     ----------
     b0_path : path or None
-        B0 map in Hz (3D NIfTI), measured or modelled; None: the field of the built-in head model
-        (:func:`fieldfix.plan_field.modelled_field` with `model`), and its brain as the brain mask.
+        B0 map in Hz (3D NIfTI), measured or modelled; None: the field `model` describes (built-in
+        head or a label image, :mod:`fieldfix.plan_field`), and its brain as the brain mask.
     job : JobOptions or path
         Output folder and writing options.
     roi_path : path
@@ -68,7 +69,8 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
     roi_labels : sequence of int, optional
         Label values of `roi_path` that form the ROI.
     model : ModelledField, optional
-        Field strength and head pitch of the modelled field (used when `b0_path` is None).
+        Field strength, head pitch and label image of the modelled field (used when `b0_path` is
+        None; default the built-in head at 3 T).
 
     Returns
     -------
@@ -77,8 +79,8 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
         with the parameters, provenance and the full table.
     """
     job, spec = job_and_settings(job, SweepSpec, spec, changes)
-    labels_path = model.labels_path if model is not None and b0_path is None else None
-    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path, labels_path) if p is not None]
+    inputs = [Path(p) for p in (b0_path, roi_path, brain_mask_path) if p is not None]
+    inputs += model_inputs(model) if b0_path is None else []
     files = PlanFiles.named(job.tag, modelled=b0_path is None)
     names = {k: job.path(v) for k, v in files.to_json().items() if v is not None}
     spec.check_tr_limits()
@@ -93,23 +95,13 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
 def _brain_words(brain_mask_path, b0_path) -> str:
     if brain_mask_path is not None:
         return str(brain_mask_path)
-    return "non-zero B0 voxels" if b0_path is not None else "brain of the head model"
+    return "non-zero B0 voxels" if b0_path is not None else MODEL_BRAIN
 
 
 def _field(b0_path, model: ModelledField | None) -> FieldModel:
-    """The measured field of a file, or the modelled field of the built-in head."""
-    if b0_path is None and model is not None and model.labels_path is not None:
-        image = load_image(model.labels_path, ndim=(3,))
-        data = image.get_fdata(np.float32)
-        if not np.isfinite(data).all() or not np.allclose(data, np.rint(data)):
-            raise InputError("the label image must hold whole numbers", model.labels_path)
-        try:
-            return field_from_label_image(np.rint(data), image.affine, dict(model.table_ppm), model.brain_labels,
-                                          model)
-        except InputError as err:
-            raise InputError(err.message, model.labels_path) from None
+    """The measured field of a file, or the modelled field (built-in head or label image)."""
     if b0_path is None:
-        return modelled_field(model or ModelledField())
+        return read_modelled_field(model)
     b0_img = load_image(b0_path, ndim=(3,))
     return FieldModel(b0_hz=b0_img.get_fdata(np.float64), affine=b0_img.affine, brain_mask=None, labels=None,
                       source=f"measured: {b0_path}")
@@ -175,9 +167,8 @@ def _plan_in_folder(field: FieldModel, roi, brain, job, files, names, inputs, sp
     with atomic_output(names["csv"], inputs, job.overwrite) as temporary:
         temporary.write_text(_csv_text(rows), encoding="utf-8")
     if modelled:
-        save_image(names["modelled_b0_hz"], field.b0_hz, field.affine, inputs=inputs, overwrite=job.overwrite,
-                   provenance=Provenance(job.command, parameters, inputs),
-                   sidecar_extra={"Description": field.source, "Units": "Hz"})
+        save_modelled_field(names["modelled_b0_hz"], field, inputs=inputs, overwrite=job.overwrite,
+                            provenance=Provenance(job.command, parameters, inputs))
     with atomic_output(names["figure"], inputs, job.overwrite) as temporary:
         plot_tradeoffs(rows, temporary, recommended=choice, ranking=spec.ranking, modelled=modelled)
     summary = PlanSummary(
