@@ -327,7 +327,7 @@ def _kernel_stats(b0_hz, affine, roi, brain, spec: SweepSpec, protocols, frames,
     in_roi = roi.ravel()[idx]
     idx = np.concatenate([idx[in_roi], idx[~in_roi]])
     finite = b0_hz if np.isfinite(b0_hz).all() else np.where(np.isfinite(b0_hz), b0_hz, 0.0)
-    grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)
+    grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)  # (3, n): no copy
     dirs = np.array([[f.normal, f.pe_step_mm, f.ro_step_mm] for f in frames])
     args = (grad, dirs, roi.ravel()[idx], np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64),
             np.array([p.pe_sign for p in protocols], np.int64), np.array([p.te_s for p in protocols]),
