@@ -41,7 +41,8 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient"]
+__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient",
+           "gradient_rows"]
 
 
 @numba.njit(cache=True, inline="always")
@@ -247,6 +248,36 @@ def _project(grad, dirs_t, signed_t_pe_s, gn, gro, inv):
         gro[v] = r0 * x + r1 * y + r2 * z
         d = 1.0 + signed_t_pe_s * (p0 * x + p1 * y + p2 * z)
         inv[v] = 1.0 / d if d > 0.0 else -1.0  # -1 flags "no echo forms"
+
+
+@numba.njit(cache=True, inline="always")
+def _index_difference(flat, i, stride, index, n):
+    """numpy.gradient's difference along one voxel axis: central inside, one-sided at the edges."""
+    if n == 1:
+        return 0.0
+    up = index < n - 1
+    down = index > 0
+    return (flat[i + stride * up] - flat[i - stride * down]) / (1.0 * up + down)
+
+
+@numba.njit(cache=True)
+def gradient_rows(field, at, inverse_transpose):
+    """(3, N) world gradient of a 3D map at flat (C-order) indices `at`, one row per world axis.
+
+    The same differences and chain rule, in the same order of operations, as
+    :func:`fieldfix.geometry.world_gradient` with `at` (its plain-numpy twin): equal to the last bit.
+    """
+    nx, ny, nz = field.shape
+    flat = field.ravel()
+    out = np.empty((3, at.shape[0]))
+    for v in range(at.shape[0]):
+        i = at[v]
+        d2 = _index_difference(flat, i, 1, i % nz, nz)
+        d1 = _index_difference(flat, i, nz, i // nz % ny, ny)
+        d0 = _index_difference(flat, i, ny * nz, i // (ny * nz), nx)
+        for r in range(3):
+            out[r, v] = (inverse_transpose[r, 0] * d0 + inverse_transpose[r, 1] * d1) + inverse_transpose[r, 2] * d2
+    return out
 
 
 @numba.njit(cache=True, parallel=True)
