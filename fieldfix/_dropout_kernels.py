@@ -41,7 +41,8 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient"]
+__all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient",
+           "gradient_rows"]
 
 
 @numba.njit(cache=True, inline="always")
@@ -127,8 +128,8 @@ _SAMPLE_SIZE = 4096
 _BRACKET_SIGMAS = 3.0
 _CHUNK = 2048  # voxels per chunk: the chunk's terms and values stay in the L1 cache
 _GAUSS_RATE = np.pi**2 / (4.0 * np.log(2.0))  # Gaussian slab of FWHM = thickness: R = exp(-rate u^2)
-# Taylor series of sin(y)/y in y**2 (terms 1..7; |y| <= pi/2 here) and of exp(y) (terms 3..13)
-_SIN_PI_COEFFS = tuple((-1.0) ** k / math.factorial(2 * k + 1) for k in range(1, 8))
+# Taylor series of sin(pi t)/(pi t) in t**2 (terms 1..7; |t| <= 1/2 here) and of exp(y) (terms 3..13)
+_SIN_PI_COEFFS = tuple((-1.0) ** k * math.pi ** (2 * k) / math.factorial(2 * k + 1) for k in range(1, 8))
 _EXP_COEFFS = tuple(1.0 / math.factorial(k) for k in range(3, 14))
 _ANALYTIC = {None: 0, "rect": 1, "gaussian": 2}
 CLOSED_FORMS = ("rect", "gaussian")  #: slice profiles the kernel can evaluate in closed form
@@ -157,17 +158,19 @@ def _terms(start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
     return j
 
 
-@numba.njit(cache=True, error_model="numpy")
+# fastmath "contract" only lets LLVM fuse a * b + c into one FMA (one rounding instead of two):
+# no reassociation, no assumptions about NaN or infinity.
+@numba.njit(cache=True, error_model="numpy", fastmath={"contract"})
 def _evaluate(wv, fv, n, thick, analytic, table, step, tail_sinc, vals):
     """vals[:n] = R(wv * thick) * fv: a closed form (analytic 1: rect, 2: Gaussian) or the table."""
     if analytic == 1:  # |sin(pi u)| / (pi u) from the argument reduced to [-1/2, 1/2]: vectorises
         c1, c2, c3, c4, c5, c6, c7 = _SIN_PI_COEFFS
         for v in range(n):
             u = wv[v] * thick
-            y = np.pi * (u - np.floor(u + 0.5))
-            y2 = y * y
-            s = 1.0 + y2 * (c1 + y2 * (c2 + y2 * (c3 + y2 * (c4 + y2 * (c5 + y2 * (c6 + y2 * c7))))))
-            far = abs(y * s) / (np.pi * max(u, 0.5))
+            t = u - np.floor(u + 0.5)  # sin(pi u) = +-sin(pi t)
+            t2 = t * t
+            s = 1.0 + t2 * (c1 + t2 * (c2 + t2 * (c3 + t2 * (c4 + t2 * (c5 + t2 * (c6 + t2 * c7))))))
+            far = abs(t * s) / max(u, 0.5)  # |sin(pi t)| / (pi u), with s = sin(pi t) / (pi t)
             vals[v] = (s if u < 0.5 else far) * fv[v]  # below 1/2 cycle the reduction is the identity
         return
     if analytic == 2:  # exp(-a u^2) as (Taylor series of exp(-a u^2 / 256)) ** 256: vectorises
@@ -245,6 +248,36 @@ def _project(grad, dirs_t, signed_t_pe_s, gn, gro, inv):
         gro[v] = r0 * x + r1 * y + r2 * z
         d = 1.0 + signed_t_pe_s * (p0 * x + p1 * y + p2 * z)
         inv[v] = 1.0 / d if d > 0.0 else -1.0  # -1 flags "no echo forms"
+
+
+@numba.njit(cache=True, inline="always")
+def _index_difference(flat, i, stride, index, n):
+    """numpy.gradient's difference along one voxel axis: central inside, one-sided at the edges."""
+    if n == 1:
+        return 0.0
+    up = index < n - 1
+    down = index > 0
+    return (flat[i + stride * up] - flat[i - stride * down]) / (1.0 * up + down)
+
+
+@numba.njit(cache=True)
+def gradient_rows(field, at, inverse_transpose):
+    """(3, N) world gradient of a 3D map at flat (C-order) indices `at`, one row per world axis.
+
+    The same differences and chain rule, in the same order of operations, as
+    :func:`fieldfix.geometry.world_gradient` with `at` (its plain-numpy twin): equal to the last bit.
+    """
+    nx, ny, nz = field.shape
+    flat = field.ravel()
+    out = np.empty((3, at.shape[0]))
+    for v in range(at.shape[0]):
+        i = at[v]
+        d2 = _index_difference(flat, i, 1, i % nz, nz)
+        d1 = _index_difference(flat, i, nz, i // nz % ny, ny)
+        d0 = _index_difference(flat, i, ny * nz, i // (ny * nz), nx)
+        for r in range(3):
+            out[r, v] = (inverse_transpose[r, 0] * d0 + inverse_transpose[r, 1] * d1) + inverse_transpose[r, 2] * d2
+    return out
 
 
 @numba.njit(cache=True, parallel=True)

@@ -404,6 +404,15 @@ class SliceProfile:
         return out
 
 
+@functools.lru_cache(maxsize=2)
+def _closed_form_table(kind: str) -> np.ndarray:
+    """Retention table of the rectangular (|sinc|) or Gaussian (FWHM = thickness) profile."""
+    if kind == "rect":
+        return np.abs(np.sinc(np.arange(0.0, _RECT_TABLE_MAX + TABLE_STEP / 2, TABLE_STEP)))
+    u = np.arange(0.0, _GAUSS_TABLE_MAX + TABLE_STEP / 2, TABLE_STEP)
+    return np.exp(-(np.pi**2) * u**2 / (4.0 * np.log(2.0)))
+
+
 @functools.lru_cache(maxsize=16)
 def _rf_table(tbw: float, window: str) -> np.ndarray:
     tau, b1 = windowed_sinc_pulse(tbw, 512, window)
@@ -439,14 +448,8 @@ def slice_profile(kind: str = "rect", *, tbw: float = 4.0, window: str = "hammin
     """
     if isinstance(kind, SliceProfile):
         return kind
-    if kind == "rect":
-        u = np.arange(0.0, _RECT_TABLE_MAX + TABLE_STEP / 2, TABLE_STEP)
-        table = np.abs(np.sinc(u))
-        return SliceProfile("rect", table, TABLE_STEP, "sinc")
-    if kind == "gaussian":
-        u = np.arange(0.0, _GAUSS_TABLE_MAX + TABLE_STEP / 2, TABLE_STEP)
-        table = np.exp(-(np.pi**2) * u**2 / (4.0 * np.log(2.0)))
-        return SliceProfile("gaussian", table, TABLE_STEP, "zero")
+    if kind in ("rect", "gaussian"):
+        return SliceProfile(kind, _closed_form_table(kind), TABLE_STEP, "sinc" if kind == "rect" else "zero")
     if kind == "rf":
         return SliceProfile("rf", _rf_table(float(tbw), str(window)), TABLE_STEP, "zero", float(tbw), str(window))
     raise InputError(f"unknown slice profile {kind!r}; use one of {', '.join(PROFILES)}")

@@ -331,7 +331,8 @@ def world_gradient(field: np.ndarray, affine: np.ndarray, at: np.ndarray | None 
     Returns
     -------
     (X, Y, Z, 3) float64 array, or (N, 3) with `at`
-        Derivatives along world x (R), y (A), z (S).
+        Derivatives along world x (R), y (A), z (S). With `at` the array is the transpose of a
+        C-ordered (3, N) array (``world_gradient(...).T`` is contiguous, one row per world axis).
 
     Examples
     --------
@@ -350,16 +351,27 @@ def world_gradient(field: np.ndarray, affine: np.ndarray, at: np.ndarray | None 
             [np.gradient(field, axis=a) if field.shape[a] > 1 else np.zeros_like(field) for a in range(3)], axis=-1
         )
         return per_index @ inverse_transpose.T
-    at = np.asarray(at, np.intp).ravel()
+    return _gradient_rows(field, np.asarray(at, np.intp).ravel(), inverse_transpose).T
+
+
+def _gradient_rows(field: np.ndarray, at: np.ndarray, inverse_transpose: np.ndarray) -> np.ndarray:
+    """(3, N) world gradient at flat indices `at`; elementwise sums, not a matrix product (no BLAS threads)."""
     flat = field.ravel()
-    per_index = np.zeros((at.size, 3))
-    coords = np.unravel_index(at, field.shape)
+    per_index = np.zeros((3, at.size))
     stride = 1
     for a in (2, 1, 0):  # as numpy.gradient: central inside, one-sided at the edges
         n = field.shape[a]
         if n > 1:
-            up = coords[a] < n - 1
-            down = coords[a] > 0
-            per_index[:, a] = (flat[at + stride * up] - flat[at - stride * down]) / (up.astype(float) + down)
+            index = at // stride % n
+            up = index < n - 1
+            down = index > 0
+            if up.all() and down.all():  # no voxel on this axis's edges: central differences only
+                per_index[a] = (flat[at + stride] - flat[at - stride]) / 2.0
+            else:
+                per_index[a] = (flat[at + stride * up] - flat[at - stride * down]) / (up.astype(float) + down)
         stride *= n
-    return per_index @ inverse_transpose.T
+    rows = np.empty_like(per_index)
+    for r in range(3):  # row r of inverse_transpose @ per_index
+        rows[r] = inverse_transpose[r, 0] * per_index[0] + inverse_transpose[r, 1] * per_index[1] \
+            + inverse_transpose[r, 2] * per_index[2]
+    return rows

@@ -327,7 +327,11 @@ def _kernel_stats(b0_hz, affine, roi, brain, spec: SweepSpec, protocols, frames,
     in_roi = roi.ravel()[idx]
     idx = np.concatenate([idx[in_roi], idx[~in_roi]])
     finite = b0_hz if np.isfinite(b0_hz).all() else np.where(np.isfinite(b0_hz), b0_hz, 0.0)
-    grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)
+    if engine == "numba":  # the same values as field_gradient_hz_per_mm(finite, affine, at=idx).T
+        inverse_transpose = np.linalg.inv(np.asarray(affine, float)[:3, :3]).T
+        grad = kernels.gradient_rows(np.ascontiguousarray(finite), idx, np.ascontiguousarray(inverse_transpose))
+    else:
+        grad = np.ascontiguousarray(field_gradient_hz_per_mm(finite, affine, at=idx).T)  # (3, n): no copy
     dirs = np.array([[f.normal, f.pe_step_mm, f.ro_step_mm] for f in frames])
     args = (grad, dirs, roi.ravel()[idx], np.array([tilts.index(p.tilt_deg) for p in protocols], np.int64),
             np.array([p.pe_sign for p in protocols], np.int64), np.array([p.te_s for p in protocols]),
@@ -392,40 +396,42 @@ def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mas
                                 for t in tilts]
     stats = _kernel_stats(b0_hz, affine, roi, brain, spec, protocols, frames, tilts, engine)
     extents = mask_extent_mm(brain if spec.coverage == "brain" else roi, affine, np.array([f.normal for f in frames]))
+    rows = _rows(protocols, stats, [float(extents[tilts.index(p.tilt_deg)]) for p in protocols], spec)
+    return _rank_in_place(rows, spec.ranking)
+
+
+def _rows(protocols: list[Protocol], stats: np.ndarray, extents_mm: list[float], spec: SweepSpec) -> list[dict]:
+    """One row per protocol: its statistics, timing, and the relative BOLD figure of merit with the
+    modelled tSNR. Values shared by many protocols (slice counts, TRs, words) are worked out once."""
     slice_s = {te: float(spec.slice_times_s(te)) for te in spec.te_s}
-    rows = [_row(p, st, float(extents[tilts.index(p.tilt_deg)]), slice_s[p.te_s], spec)
-            for p, st in zip(protocols, stats)]
-    _add_merit(rows, spec)
-    return rank(rows, spec.ranking)
-
-
-def _row(p: Protocol, st, extent_mm: float, slice_s: float, spec: SweepSpec) -> dict:
-    n_slices = slices_to_cover(extent_mm, p.thickness_mm, spec.slice_gap_mm)
-    tr = float(f"{math.ceil(n_slices / spec.multiband) * slice_s:.12g}")  # plan_merit.volume_tr_s, per row
-    if spec.fixed_tr_s is not None:
-        tr = max(tr, spec.fixed_tr_s)
-    return {
-        "protocol": p.label(), "thickness_mm": p.thickness_mm, "te_s": p.te_s,
-        "te_ms": float(f"{p.te_s * 1e3:.9g}"), "tilt_deg": p.tilt_deg, "pe_sign": p.pe_sign,
-        "pe_polarity": {1: "+", -1: "-", 0: "none"}[p.pe_sign],
-        "pe_direction": _pe_direction(spec.pe_world_axis, p.pe_sign), "zshim_mtms_per_m": p.zshim_mtms_per_m,
-        "metric": "bold_sensitivity" if spec.echo_spacing_s is not None else "retention",
-        "roi_median": float(st[0]), "roi_percent_below": float(st[1]), "brain_median": float(st[2]),
-        "brain_percent_below": float(st[3]), "coverage_mm": float(extent_mm), "n_slices": n_slices,
-        "slice_time_s": slice_s, "tr_s": tr,
-        "fits_tr": bool(spec.max_tr_s is None or tr <= spec.max_tr_s + 1e-12),
-    }
-
-
-def _add_merit(rows: list[dict], spec: SweepSpec) -> None:
-    """Add the relative BOLD figure of merit and the modelled tSNR to every row."""
+    n_slices = {}
+    for p, extent in zip(protocols, extents_mm):
+        if (extent, p.thickness_mm) not in n_slices:
+            n_slices[extent, p.thickness_mm] = slices_to_cover(extent, p.thickness_mm, spec.slice_gap_mm)
+    counts = [n_slices[extent, p.thickness_mm] for p, extent in zip(protocols, extents_mm)]
+    tr_s = {}
+    for p, n in zip(protocols, counts):
+        if (n, p.te_s) not in tr_s:  # plan_merit.volume_tr_s, rounded as a row shows it
+            tr = float(f"{math.ceil(n / spec.multiband) * slice_s[p.te_s]:.12g}")
+            tr_s[n, p.te_s] = tr if spec.fixed_tr_s is None else max(tr, spec.fixed_tr_s)
+    trs = [tr_s[n, p.te_s] for p, n in zip(protocols, counts)]
     readout = readout_s(spec.pe_lines, spec.timing_echo_spacing_s, spec.partial_fourier)
-    merit, t = bold_merit([r["roi_median"] for r in rows], [r["te_s"] for r in rows],
-                          [r["thickness_mm"] * spec.inplane_mm ** 2 for r in rows], readout,
-                          [r["tr_s"] for r in rows], spec.physiology)
-    top = float(merit.max()) or 1.0
-    for row, m, ts in zip(rows, merit, t):
-        row.update(merit=float(f"{m / top:.9g}"), tsnr=float(f"{ts:.6g}"), readout_s=readout)
+    merit, tsnr = bold_merit(stats[:, 0], [p.te_s for p in protocols],
+                             [p.thickness_mm * spec.inplane_mm ** 2 for p in protocols], readout, trs, spec.physiology)
+    merit = merit / (float(merit.max()) or 1.0)
+    te_ms = {te: float(f"{te * 1e3:.9g}") for te in spec.te_s}
+    words = {s: ({1: "+", -1: "-", 0: "none"}[s], _pe_direction(spec.pe_world_axis, s)) for s in (1, -1, 0)}
+    metric = "bold_sensitivity" if spec.echo_spacing_s is not None else "retention"
+    limit = math.inf if spec.max_tr_s is None else spec.max_tr_s + 1e-12
+    return [{
+        "protocol": p.label(), "thickness_mm": p.thickness_mm, "te_s": p.te_s, "te_ms": te_ms[p.te_s],
+        "tilt_deg": p.tilt_deg, "pe_sign": p.pe_sign, "pe_polarity": words[p.pe_sign][0],
+        "pe_direction": words[p.pe_sign][1], "zshim_mtms_per_m": p.zshim_mtms_per_m, "metric": metric,
+        "roi_median": st[0], "roi_percent_below": st[1], "brain_median": st[2], "brain_percent_below": st[3],
+        "coverage_mm": extent, "n_slices": n, "slice_time_s": slice_s[p.te_s], "tr_s": tr, "fits_tr": tr <= limit,
+        "merit": float(f"{m:.9g}"), "tsnr": float(f"{ts:.6g}"), "readout_s": readout,
+    } for p, st, extent, n, tr, m, ts in zip(protocols, stats.tolist(), extents_mm, counts, trs, merit.tolist(),
+                                              tsnr.tolist())]
 
 
 def _rank_key(row: dict, ranking: str = "retention"):
@@ -440,10 +446,14 @@ def rank(rows: list[dict], ranking: str = "retention") -> list[dict]:
     ``ranking='retention'``: ROI median (descending), ROI percentage under the threshold, brain
     median, brain percentage, TR. ``'efficiency'``: the figure of merit first, then the same.
     """
-    ordered = sorted((dict(r) for r in rows), key=lambda r: _rank_key(r, ranking))
-    for i, row in enumerate(ordered, 1):
+    return _rank_in_place([dict(r) for r in rows], ranking)
+
+
+def _rank_in_place(rows: list[dict], ranking: str) -> list[dict]:
+    rows.sort(key=lambda r: _rank_key(r, ranking))
+    for i, row in enumerate(rows, 1):
         row["rank"] = i
-    return ordered
+    return rows
 
 
 def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0.5,

@@ -168,3 +168,20 @@ def test_world_gradient_at_chosen_voxels_equals_the_full_map(shape):
     full = world_gradient(field, affine)
     at = rng.choice(field.size, size=min(field.size, 40), replace=False)
     assert np.allclose(world_gradient(field, affine, at=at), full.reshape(-1, 3)[at], atol=1e-12)
+
+
+@pytest.mark.parametrize("shape", [(6, 7, 8), (1, 5, 4), (5, 1, 2), (4, 3, 1)])
+def test_numba_gradient_rows_equal_the_numpy_subset_path(shape):
+    # the planner's numba gradient against its plain-numpy twin (bit for bit) and numpy.gradient,
+    # every voxel included so that each edge and each single-voxel axis is crossed
+    from fieldfix import _dropout_kernels as kernels
+
+    rng = np.random.default_rng(7)
+    field = rng.normal(size=shape)
+    affine = np.eye(4)
+    affine[:3, :3] = nib.eulerangles.euler2mat(z=-0.5, y=0.1, x=0.3) @ np.diag([2.5, 1.0, 3.5])
+    at = rng.permutation(field.size)
+    rows = kernels.gradient_rows(field, at, np.ascontiguousarray(np.linalg.inv(affine[:3, :3]).T))
+    assert rows.shape == (3, field.size)
+    assert np.array_equal(rows, world_gradient(field, affine, at=at).T)
+    assert np.allclose(rows.T, world_gradient(field, affine).reshape(-1, 3)[at], atol=1e-12)
