@@ -39,6 +39,8 @@ from __future__ import annotations
 import math
 
 import numba
+
+from ._select_kernels import median_of, middle_of, select_kth
 import numpy as np
 
 __all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient",
@@ -57,65 +59,6 @@ def _lookup(x, table, tail_sinc, step):
         pu = np.pi * x * step
         return abs(np.sin(pu)) / pu
     return 0.0
-
-
-@numba.njit(cache=True)
-def _select(a, n, k):
-    """Partially order a[:n] in place so that a[k] is the k-th smallest; return it."""
-    lo = 0
-    hi = n - 1
-    while hi > lo:
-        mid = (lo + hi) >> 1
-        # median of three as pivot
-        x, y, z = a[lo], a[mid], a[hi]
-        if x > y:
-            x, y = y, x
-        if y > z:
-            y = z
-            if x > y:
-                y = x
-        pivot = y
-        i = lo
-        j = hi
-        while i <= j:
-            while a[i] < pivot:
-                i += 1
-            while a[j] > pivot:
-                j -= 1
-            if i <= j:
-                t = a[i]
-                a[i] = a[j]
-                a[j] = t
-                i += 1
-                j -= 1
-        if k <= j:
-            hi = j
-        elif k >= i:
-            lo = i
-        else:
-            return a[k]
-    return a[k]
-
-
-@numba.njit(cache=True)
-def _middle(a, n, k, even):
-    """The k-th smallest of a[:n] (reorders a); with `even`, its mean with the (k-1)-th (k >= 1)."""
-    upper = _select(a, n, k)
-    if not even:
-        return upper
-    lower = a[0]  # after the selection a[:k] holds the k values ranked below
-    for i in range(1, k):
-        if a[i] > lower:
-            lower = a[i]
-    return 0.5 * (lower + upper)
-
-
-@numba.njit(cache=True)
-def _select_median(a, n):
-    """Exact median of a[:n] by quickselect (reorders a)."""
-    if n == 0:
-        return np.nan
-    return _middle(a, n, n // 2, n % 2 == 0)
 
 
 # Exact brain medians without sorting every protocol's values (Floyd & Rivest 1975, Commun. ACM 18:165,
@@ -329,12 +272,12 @@ def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, bloc
                 p = p0 + q
                 _evaluate(wv, fv, n_roi, thickness_mm[p], analytic, table, step, tail_sinc, vals)
                 out[p, 1] = 100.0 * _count(vals, n_roi, threshold, 0.0, 0.0)[0] / n_roi if n_roi > 0 else np.nan
-                out[p, 0] = _select_median(vals, n_roi)
+                out[p, 0] = median_of(vals, n_roi)
             _terms(0, n_vox, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
             for q in range(nb):
                 _evaluate(wv, fv, n_samp, thickness_mm[p0 + q], analytic, table, step, tail_sinc, vals)
-                b_hi[q] = _select(vals, n_samp, r_hi) if r_hi < n_samp else np.inf
-                b_lo[q] = _select(vals, min(r_hi, n_samp), r_lo) if r_lo >= 0 else -np.inf
+                b_hi[q] = select_kth(vals, n_samp, r_hi) if r_hi < n_samp else np.inf
+                b_lo[q] = select_kth(vals, min(r_hi, n_samp), r_lo) if r_lo >= 0 else -np.inf
                 n_cand[q] = 0
                 n_under[q] = 0
                 below[q] = 0
@@ -356,13 +299,13 @@ def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, bloc
                 if n_vox == 0:
                     out[p, 2] = np.nan
                 elif c0 <= k_lo and k_hi < c0 + n_cand[q]:  # both middle ranks inside the bracket
-                    out[p, 2] = _middle(cand[q], n_cand[q], k_hi - c0, k_lo != k_hi)
+                    out[p, 2] = middle_of(cand[q], n_cand[q], k_hi - c0, k_lo != k_hi)
                 else:  # the bracket missed: evaluate again and select over all voxels
                     misses[p] = 1
                     for c1 in range(0, n_vox, _CHUNK):
                         m = _terms(c1, min(c1 + _CHUNK, n_vox), 1, gn, gro, inv, te, zs, lo, hi, mode, wv, fv)
                         _evaluate(wv, fv, m, thickness_mm[p], analytic, table, step, tail_sinc, cand[q, c1:])
-                    out[p, 2] = _select_median(cand[q], n_vox)
+                    out[p, 2] = median_of(cand[q], n_vox)
 
 
 def sweep_stats(grad, dirs, roi, tilt_index, pe_sign, te_s, thickness_mm, zshim_cpmm, mode, t_pe_s,

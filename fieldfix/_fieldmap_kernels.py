@@ -16,46 +16,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._select_kernels import median_of
+
 __all__ = ["local_residuals_nb", "local_residuals_reference"]
-
-
-@njit(cache=True)
-def _select(values, n, k):  # pragma: no cover - compiled
-    """The k-th smallest of values[:n] (0-based), partially reordering them (Hoare's select)."""
-    lo = 0
-    hi = n - 1
-    while lo < hi:
-        pivot = values[(lo + hi) // 2]
-        i = lo
-        j = hi
-        while i <= j:
-            while values[i] < pivot:
-                i += 1
-            while values[j] > pivot:
-                j -= 1
-            if i <= j:
-                values[i], values[j] = values[j], values[i]
-                i += 1
-                j -= 1
-        if k <= j:
-            hi = j
-        elif k >= i:
-            lo = i
-        else:
-            return values[k]
-    return values[k]
-
-
-@njit(cache=True)
-def _median(values, n):  # pragma: no cover - compiled
-    upper = _select(values, n, n // 2)
-    if n % 2:
-        return upper
-    lower = values[0]
-    for t in range(1, n // 2):  # after the select, values[:n // 2] hold the lower half
-        if values[t] > lower:
-            lower = values[t]
-    return 0.5 * (lower + upper)
 
 
 @njit(parallel=True, cache=True)
@@ -80,7 +43,7 @@ def local_residuals_nb(field, mask):  # pragma: no cover - compiled
                             if mask[a, b, c]:
                                 scratch[n] = field[a, b, c]
                                 n += 1
-                residual[i, j, k] = field[i, j, k] - _median(scratch, n)
+                residual[i, j, k] = field[i, j, k] - median_of(scratch, n)
     local_sd = np.zeros(field.shape)
     for i in prange(n0):
         for j in range(n1):
