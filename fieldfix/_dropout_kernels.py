@@ -39,9 +39,9 @@ from __future__ import annotations
 import math
 
 import numba
+import numpy as np
 
 from ._select_kernels import median_of, middle_of, select_kth
-import numpy as np
 
 __all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient",
            "gradient_rows"]

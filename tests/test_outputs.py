@@ -124,3 +124,28 @@ def test_numbers_written_as_numpy_values_read_back_as_plain_numbers(tmp_path):
     write_json(tmp_path / "m.json", record.to_json())
     assert MapStatistics.read(tmp_path / "m.json") == record
     assert Path(tmp_path / "m.json").read_text().count("\n") > 1
+
+
+def test_the_report_carries_each_jobs_numbers_as_the_job_wrote_them(all_jobs, tmp_path):
+    """Each report entry extends its job's shared numbers (one definition); the values in report.json are
+    the job summary's own, apart from mask paths, which the page shows by name."""
+    from fieldfix.outputs import (DropoutNumbers, FieldMapNumbers, PlanNumbers, ReportSummary, ShiftNumbers)
+    from fieldfix.records import fields_of
+    from fieldfix.report import build_report
+
+    out, jobs = all_jobs
+    page = build_report(out, tmp_path / "qc" / "report.html")
+    report = ReportSummary.read(page.with_suffix(".json"))
+    entries = {"fieldmap": (report.field_maps, FieldMapNumbers), "unwarp": (report.runs, ShiftNumbers),
+               "dropout": (report.dropout, DropoutNumbers), "plan": (report.plans, PlanNumbers)}
+    for kind, (items, part) in entries.items():
+        assert len(items) == 1, kind
+        shown, written = fields_of(items[0], part), fields_of(jobs[kind], part)
+        assert set(shown) == set(written) and len(shown) >= 6, kind
+        for name in shown:
+            if name in ("mask", "roi", "brain_mask"):
+                assert shown[name] == Path(written[name]).name, (kind, name)
+            else:
+                assert shown[name] == written[name], (kind, name)
+    with pytest.raises(TypeError, match="is not a ShiftNumbers"):
+        fields_of(jobs["plan"], ShiftNumbers)
