@@ -392,6 +392,23 @@ def test_run_plan_writes_table_json_and_figure(tmp_path):
         run_plan(p["b0"], out, roi_path=p["roi"], te_s=[0.03], thickness_mm=[2.0], tag="x_")
 
 
+def test_run_plan_honours_the_b0_maps_units(tmp_path):
+    """A map in rad/s (BIDS sidecar Units) plans as the same map in Hz; 2 pi rad/s = 1 Hz by definition."""
+    from fieldfix.workflows.plan import run_plan
+
+    p = _scenario_files(tmp_path)
+    img = nib.load(str(p["b0"]))
+    rads = tmp_path / "b0_rads.nii.gz"
+    nib.save(nib.Nifti1Image(img.get_fdata().astype(np.float32) * np.float32(2 * np.pi), img.affine), str(rads))
+    (tmp_path / "b0_rads.json").write_text(json.dumps({"Units": "rad/s"}))
+    options = dict(roi_path=p["roi"], brain_mask_path=p["brain"], te_s=[0.025, 0.035], thickness_mm=[2.0, 4.0])
+    in_hz = run_plan(p["b0"], tmp_path / "hz", **options)
+    in_rads = run_plan(rads, tmp_path / "rads", **options)
+    assert in_rads.recommended.protocol == in_hz.recommended.protocol
+    for a, b in zip(in_hz.rows, in_rads.rows):
+        assert a["protocol"] == b["protocol"] and abs(a["roi_median"] - b["roi_median"]) < 1e-5
+
+
 def test_cli_plan_end_to_end(tmp_path):
     p = _scenario_files(tmp_path)
     out = tmp_path / "cli"

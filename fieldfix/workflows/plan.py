@@ -26,6 +26,7 @@ from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
 from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
 from ..plan_field import FieldModel, ModelledField
+from ._b0 import field_strength_from, read_field_hz
 from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
 from .dropout import load_mask_on_grid
 
@@ -86,7 +87,7 @@ def run_plan(b0_path, job: JobOptions | str, *, roi_path, brain_mask_path=None, 
     spec.check_tr_limits()
     with output_folder(job.out_dir):
         output_paths_guard(names.values(), inputs, job.overwrite)
-        field = _field(b0_path, model)
+        field = _field(b0_path, model, spec.physiology.field_strength_t)
         roi, brain = _masks(field, roi_path, brain_mask_path, roi_labels)
         return _plan_in_folder(field, roi, brain, job, files, names, inputs, spec,
                                dict(roi=str(roi_path), brain_mask=_brain_words(brain_mask_path, b0_path)))
@@ -98,12 +99,16 @@ def _brain_words(brain_mask_path, b0_path) -> str:
     return "non-zero B0 voxels" if b0_path is not None else MODEL_BRAIN
 
 
-def _field(b0_path, model: ModelledField | None) -> FieldModel:
-    """The measured field of a file, or the modelled field (built-in head or label image)."""
+def _field(b0_path, model: ModelledField | None, field_strength_t: float) -> FieldModel:
+    """The measured field of a file in Hz (its sidecar's Units honoured, as for dropout and unwarp; a
+    ppm map at the sidecar's MagneticFieldStrength, else at `field_strength_t`), or the modelled
+    field (built-in head or label image)."""
     if b0_path is None:
         return read_modelled_field(model)
     b0_img = load_image(b0_path, ndim=(3,))
-    return FieldModel(b0_hz=b0_img.get_fdata(np.float64), affine=b0_img.affine, brain_mask=None, labels=None,
+    strength = field_strength_from(b0_img, None) or field_strength_t
+    b0_hz, _ = read_field_hz(b0_img, None, strength, finite_everywhere=False)
+    return FieldModel(b0_hz=b0_hz.astype(np.float64), affine=b0_img.affine, brain_mask=None, labels=None,
                       source=f"measured: {b0_path}")
 
 
