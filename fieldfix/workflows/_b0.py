@@ -17,9 +17,10 @@ import numpy as np
 from ..errors import InputError, MetadataError, UnitError
 from ..fieldmap import field_to_hz
 from ..io import Image, sidecar_path
+from ..plan_field import FieldModel
 from ..units import check_plausible
 
-__all__ = ["read_field_hz", "field_strength_from"]
+__all__ = ["read_field_hz", "field_strength_from", "measured_field"]
 
 _PHASE_UNITS = {"rad", "radian", "radians", "deg", "degree", "degrees"}
 _PHASE_NAME = re.compile(r"_(phasediff|phase\d*)\.nii(\.gz)?$")
@@ -70,3 +71,12 @@ def read_field_hz(image: Image, units: str | None = None, field_strength_t: floa
             f"{chosen} ({how})"
     except UnitError as err:
         raise UnitError(err.message, image.path) from None
+
+
+def measured_field(image: Image, units: str | None = None, field_strength_t: float | None = None) -> tuple[FieldModel, str]:
+    """A B0 map as a :class:`fieldfix.plan_field.FieldModel` in Hz (no brain mask, source "measured:
+    <path>"), the form a modelled field has too, and how its units were known (see :func:`read_field_hz`;
+    non-finite voxels are kept for the caller's mask)."""
+    b0_hz, how = read_field_hz(image, units, field_strength_t, finite_everywhere=False)
+    return FieldModel(b0_hz=b0_hz, affine=image.affine, brain_mask=None, labels=None,
+                      source=f"measured: {image.path}"), how

@@ -37,7 +37,7 @@ from ..io import Image, Provenance, load_image, output_paths_guard, save_image, 
 from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..shift import resolve_timing
-from ._b0 import read_field_hz
+from ._b0 import measured_field
 from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
 from ..plan_field import FieldModel, ModelledField
 from ..align import Readout
@@ -312,9 +312,8 @@ def _read_field(b0_path: Path | None, model: ModelledField | None,
     if b0_path is None:
         return read_modelled_field(model), None, "Hz (modelled)"
     b0_img = load_image(b0_path, ndim=(3,))
-    b0, b0_units = read_field_hz(b0_img, s.b0_units, s.field_strength_t, finite_everywhere=False)
-    return FieldModel(b0_hz=b0, affine=b0_img.affine, brain_mask=None, labels=None,
-                      source=f"measured: {b0_img.path}"), b0_img, b0_units
+    field, b0_units = measured_field(b0_img, s.b0_units, s.field_strength_t)
+    return field, b0_img, b0_units
 
 
 def _mask(mask_path: Path | None, field: FieldModel) -> np.ndarray:

@@ -26,7 +26,7 @@ from ..outdir import atomic_output, output_folder, output_paths_guard
 from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
 from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
 from ..plan_field import FieldModel, ModelledField
-from ._b0 import field_strength_from, read_field_hz
+from ._b0 import field_strength_from, measured_field
 from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
 from .dropout import load_mask_on_grid
 
@@ -106,10 +106,7 @@ def _field(b0_path, model: ModelledField | None, field_strength_t: float) -> Fie
     if b0_path is None:
         return read_modelled_field(model)
     b0_img = load_image(b0_path, ndim=(3,))
-    strength = field_strength_from(b0_img, None) or field_strength_t
-    b0_hz, _ = read_field_hz(b0_img, None, strength, finite_everywhere=False)
-    return FieldModel(b0_hz=b0_hz.astype(np.float64), affine=b0_img.affine, brain_mask=None, labels=None,
-                      source=f"measured: {b0_path}")
+    return measured_field(b0_img, None, field_strength_from(b0_img, None) or field_strength_t)[0]
 
 
 def load_label_roi(path, labels, shape, affine) -> np.ndarray:
