@@ -45,80 +45,38 @@ def _row(source, index, weight, v):  # pragma: no cover - compiled
     return acc
 
 
-# Fixed tap counts let the compiler unroll the inner loop (two to three times faster).
-@njit(cache=True, inline="always")
-def _row2(source, index, weight, v):  # pragma: no cover - compiled
-    return np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
+def _fixed_row(taps: int):
+    """The row sum for a fixed tap count: the count is a compile-time constant, so the
+    compiler unrolls the inner loop (two to three times faster than :func:`_row`)."""
+
+    @njit(cache=True, inline="always")
+    def row(source, index, weight, v):  # pragma: no cover - compiled
+        acc = 0.0
+        for t in range(taps):
+            acc += np.float64(weight[v, t]) * source[index[v, t]]
+        return acc
+
+    return row
 
 
-@njit(cache=True, inline="always")
-def _row4(source, index, weight, v):  # pragma: no cover - compiled
-    acc = np.float64(weight[v, 0]) * source[index[v, 0]] + np.float64(weight[v, 1]) * source[index[v, 1]]
-    return acc + np.float64(weight[v, 2]) * source[index[v, 2]] + np.float64(weight[v, 3]) * source[index[v, 3]]
+def _gather_loop(row, parallel: bool):
+    """The loop over voxels; `parallel` spreads it over the numba threads (prange). The
+    single-threaded form serves callers that already run one job per core (several
+    processes), where extra threads would only compete for the same cores."""
+
+    @njit(parallel=parallel, cache=True)
+    def loop(source, index, weight, out):  # pragma: no cover - compiled
+        for v in prange(index.shape[0]):
+            out[v] = row(source, index, weight, v)
+
+    return loop
 
 
-@njit(cache=True, inline="always")
-def _row8(source, index, weight, v):  # pragma: no cover - compiled
-    acc = 0.0
-    for t in range(8):
-        acc += np.float64(weight[v, t]) * source[index[v, t]]
-    return acc
-
-
-# Parallel loops (prange over voxels) and their single-threaded twins. The twins serve
-# callers that already run one job per core (several processes), where extra threads
-# would only compete for the same cores.
-@njit(parallel=True, cache=True)
-def _gather_parallel(source, index, weight, out):  # pragma: no cover - compiled
-    for v in prange(index.shape[0]):
-        out[v] = _row(source, index, weight, v)
-
-
-@njit(parallel=True, cache=True)
-def _gather2_parallel(source, index, weight, out):  # pragma: no cover - compiled
-    for v in prange(index.shape[0]):
-        out[v] = _row2(source, index, weight, v)
-
-
-@njit(parallel=True, cache=True)
-def _gather4_parallel(source, index, weight, out):  # pragma: no cover - compiled
-    for v in prange(index.shape[0]):
-        out[v] = _row4(source, index, weight, v)
-
-
-@njit(parallel=True, cache=True)
-def _gather8_parallel(source, index, weight, out):  # pragma: no cover - compiled
-    for v in prange(index.shape[0]):
-        out[v] = _row8(source, index, weight, v)
-
-
-@njit(cache=True)
-def _gather_serial(source, index, weight, out):  # pragma: no cover - compiled
-    for v in range(index.shape[0]):
-        out[v] = _row(source, index, weight, v)
-
-
-@njit(cache=True)
-def _gather2_serial(source, index, weight, out):  # pragma: no cover - compiled
-    for v in range(index.shape[0]):
-        out[v] = _row2(source, index, weight, v)
-
-
-@njit(cache=True)
-def _gather4_serial(source, index, weight, out):  # pragma: no cover - compiled
-    for v in range(index.shape[0]):
-        out[v] = _row4(source, index, weight, v)
-
-
-@njit(cache=True)
-def _gather8_serial(source, index, weight, out):  # pragma: no cover - compiled
-    for v in range(index.shape[0]):
-        out[v] = _row8(source, index, weight, v)
-
-
+_FIXED_ROWS = {taps: _fixed_row(taps) for taps in (2, 4, 8)}
 _KERNELS = {
-    True: ({2: _gather2_parallel, 4: _gather4_parallel, 8: _gather8_parallel}, _gather_parallel),
-    False: ({2: _gather2_serial, 4: _gather4_serial, 8: _gather8_serial}, _gather_serial),
+    parallel: ({taps: _gather_loop(row, parallel) for taps, row in _FIXED_ROWS.items()},
+               _gather_loop(_row, parallel))
+    for parallel in (True, False)
 }
 
 
