@@ -88,12 +88,15 @@ def _filter_rows(c):  # pragma: no cover - compiled
             c[k, q] *= 6.0
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _filter_last(c, i):  # pragma: no cover - compiled
     """Prefilter plane i along the last axis (transposed so that the recursion is vectorised)."""
     t = np.ascontiguousarray(c[i].T)
     _filter_rows(t)
-    c[i] = t.T
+    ny, nz = c.shape[1], c.shape[2]
+    for j in range(ny):
+        for k in range(nz):
+            c[i, j, k] = t[k, j]
 
 
 @njit(parallel=True, cache=True)
@@ -483,7 +486,7 @@ def _accumulate(acc, wn, r, row, still):  # pragma: no cover - compiled
     acc[29] += wn * still * still
 
 
-@njit(cache=True, inline="always", fastmath=_FMA)
+@njit(cache=True, fastmath=_FMA)
 def _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, lo, hi,
                   acc):  # pragma: no cover - compiled
     y, p, row = np.empty(3), np.empty(3), np.empty(6)
