@@ -71,7 +71,8 @@ def _align_record(quick: bool) -> dict:
     from scipy import ndimage, optimize
 
     from fieldfix import _pose
-    from fieldfix.align import Readout, align_fieldmap, align_rigid_matrix
+    from fieldfix.align import align_fieldmap, align_rigid_matrix
+    from fieldfix.shift import Readout
 
     shape = (48, 48, 30) if quick else (64, 64, 40)
     run_affine, fm_affine = _grid(shape, 3.5), _grid((56, 60, 44), 3.8)
@@ -141,7 +142,7 @@ def _recovery_errors(result, matrices):
 
 
 def _motion_record(quick: bool, rng) -> dict:
-    from fieldfix.align import Readout
+    from fieldfix.shift import Readout
     from fieldfix.motion import align_motion, align_motion_model, align_run_volumes
     from fieldfix.unwarp import apply_tables, build_tables
 
@@ -178,7 +179,7 @@ import json, sys
 import numpy as np
 sys.path.insert(0, sys.argv[4])
 import bench_align as b
-from fieldfix.align import Readout
+from fieldfix.shift import Readout
 from fieldfix.motion import align_motion_model, align_run_volumes
 path, shape, n = sys.argv[1], tuple(json.loads(sys.argv[2])), int(sys.argv[3])
 run = np.memmap(path, dtype=np.float32, mode="r", shape=shape + (n,))

@@ -55,10 +55,9 @@ import numpy as np
 from . import _pose
 from .errors import GeometryError, InputError
 from .geometry import parse_pe_code, resample_to_grid, voxel_sizes_mm
-from .shift import shift_vox_from_field
+from .shift import Readout
 
 __all__ = [
-    "Readout",
     "AlignOptions",
     "FieldmapAlignment",
     "align_rigid_matrix",
@@ -72,30 +71,6 @@ __all__ = [
 MIN_OVERLAP = 0.05
 #: Below this fraction after alignment, the result carries a warning.
 WARN_OVERLAP = 0.5
-
-
-@dataclass(frozen=True)
-class Readout:
-    """Phase-encode code and effective echo spacing of a run (as in :mod:`fieldfix.shift`).
-
-    Attributes
-    ----------
-    pe_code : str, BIDS phase-encode code
-    echo_spacing_s : float, effective echo spacing, s
-    n_pe_lines : int, optional, reconstructed PE matrix (default: the grid's size)
-    """
-
-    pe_code: str
-    echo_spacing_s: float
-    n_pe_lines: int | None = None
-
-    def shift_per_hz(self, shape) -> float:
-        """Shift in voxels along the PE axis per hertz (signed by the polarity)."""
-        axis, _ = parse_pe_code(self.pe_code)
-        if not np.isfinite(self.echo_spacing_s) or self.echo_spacing_s <= 0:
-            raise InputError(f"echo_spacing_s must be a positive number of seconds, got {self.echo_spacing_s!r}")
-        lines = shape[axis] if self.n_pe_lines is None else self.n_pe_lines
-        return float(shift_vox_from_field(np.ones((1, 1, 1)), self.pe_code, self.echo_spacing_s, lines)[0, 0, 0])
 
 
 @dataclass(frozen=True)

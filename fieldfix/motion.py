@@ -67,7 +67,7 @@ import numpy as np
 from . import _motion_kernels
 from . import _pose
 from ._progress import progress_bar
-from .align import Readout
+from .shift import Readout
 from .errors import GeometryError, InputError
 from .geometry import parse_pe_code
 from .shift import DEFAULT_JACOBIAN_FLOOR

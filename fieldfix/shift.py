@@ -75,6 +75,7 @@ __all__ = [
     "echo_spacing_from_readout_time",
     "readout_time_from_echo_spacing",
     "shift_vox_from_field",
+    "Readout",
     "jacobian_from_shift",
     "fold_mask",
     "intensity_weight",
@@ -291,6 +292,35 @@ def shift_vox_from_field(
     if n_pe_lines is None:
         n_pe_lines = b0_hz.shape[axis]
     return sign * b0_hz * float(echo_spacing_s) * int(n_pe_lines)
+
+
+@dataclass(frozen=True)
+class Readout:
+    """Phase-encode code and effective echo spacing of a run: what turns a field into a shift.
+
+    Attributes
+    ----------
+    pe_code : str, BIDS phase-encode code
+    echo_spacing_s : float, effective echo spacing, s
+    n_pe_lines : int, optional, reconstructed PE matrix (default: the grid's size)
+
+    Examples
+    --------
+    >>> Readout("j-", 5e-4, 64).shift_per_hz((64, 64, 30))
+    -0.032
+    """
+
+    pe_code: str
+    echo_spacing_s: float
+    n_pe_lines: int | None = None
+
+    def shift_per_hz(self, shape) -> float:
+        """Shift in voxels along the PE axis per hertz (signed by the polarity), on a grid of `shape`."""
+        axis, _ = parse_pe_code(self.pe_code)
+        if not np.isfinite(self.echo_spacing_s) or self.echo_spacing_s <= 0:
+            raise InputError(f"echo_spacing_s must be a positive number of seconds, got {self.echo_spacing_s!r}")
+        lines = shape[axis] if self.n_pe_lines is None else self.n_pe_lines
+        return float(shift_vox_from_field(np.ones((1, 1, 1)), self.pe_code, self.echo_spacing_s, lines)[0, 0, 0])
 
 
 def jacobian_from_shift(shift_vox: np.ndarray, pe_axis: int) -> np.ndarray:

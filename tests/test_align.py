@@ -9,7 +9,6 @@ from fieldfix import _align_kernels as kernels
 from fieldfix import _pose
 from fieldfix.align import (
     AlignOptions,
-    Readout,
     align_field_to_run,
     align_fieldmap,
     align_rigid_matrix,
@@ -17,7 +16,7 @@ from fieldfix.align import (
     normalised_mutual_information,
 )
 from fieldfix.errors import GeometryError, InputError
-from fieldfix.shift import shift_vox_from_field
+from fieldfix.shift import Readout, shift_vox_from_field
 from fieldfix.unwarp import distort, unwarp_volume
 
 RNG = np.random.default_rng(11)

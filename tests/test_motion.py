@@ -9,7 +9,8 @@ from scipy.spatial.transform import Rotation
 import _align_data as data
 from fieldfix import _motion_kernels as kernels
 from fieldfix import _pose
-from fieldfix.align import Readout, align_rigid_matrix, align_rigid_parameters
+from fieldfix.align import align_rigid_matrix, align_rigid_parameters
+from fieldfix.shift import Readout
 from fieldfix.errors import GeometryError, InputError
 from fieldfix.motion import (
     MotionOptions,

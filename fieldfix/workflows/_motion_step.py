@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..align import Readout
+from ..shift import Readout
 from ..motion import (
     MotionOptions,
     MotionResult,

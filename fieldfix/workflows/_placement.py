@@ -16,7 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..align import AlignOptions, Readout, align_field_to_run, align_fieldmap
+from ..align import AlignOptions, align_field_to_run, align_fieldmap
+from ..shift import Readout
 from ..errors import FieldfixError, GeometryError
 from ..geometry import resample_to_grid, same_grid
 from ..io import Image, load_image

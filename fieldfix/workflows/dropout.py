@@ -40,7 +40,7 @@ from ..shift import resolve_timing
 from ._b0 import measured_field
 from ._modelled import MODEL_BRAIN, model_inputs, read_modelled_field, save_modelled_field
 from ..plan_field import FieldModel, ModelledField
-from ..align import Readout
+from ..shift import Readout
 from ._placement import alignment, find_b0_magnitude, read_magnitude_on_map
 from ._run_checks import find_b0_mask
 from ..units import PLAUSIBLE, check_plausible

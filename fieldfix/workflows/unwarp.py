@@ -50,7 +50,7 @@ from ._run_checks import (
     signal_mask,
 )
 from ._b0 import read_field_hz
-from ..align import Readout
+from ..shift import Readout
 from ._motion_step import MotionFollower
 from ._placement import Placement, find_b0_magnitude, mask_on_run, place_field, read_magnitude_on_map
 from ._combine import check_combinable, write_combined_run
