@@ -53,7 +53,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import _pose
-from .errors import GeometryError, InputError
+from .errors import GeometryError
 from .geometry import parse_pe_code, resample_to_grid, voxel_sizes_mm
 from .shift import Readout
 

@@ -67,10 +67,9 @@ import numpy as np
 from . import _motion_kernels
 from . import _pose
 from ._progress import progress_bar
-from .shift import Readout
 from .errors import GeometryError, InputError
 from .geometry import parse_pe_code
-from .shift import DEFAULT_JACOBIAN_FLOOR
+from .shift import DEFAULT_JACOBIAN_FLOOR, Readout
 
 __all__ = [
     "MotionOptions",
