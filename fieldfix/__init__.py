@@ -20,7 +20,7 @@ Fields from reversed phase-encode pairs
 Field map placement and head motion
     :func:`align_fieldmap`, :func:`align_field_to_run`, :func:`align_rigid_matrix`,
     :func:`align_rigid_parameters`, :func:`align_motion_model`, :func:`align_volume_pose`,
-    :func:`align_resample_volume`, :func:`align_run_volumes`, :func:`align_motion`,
+    :func:`align_resample_volume`, :func:`align_run_volumes`, :func:`align_motion`, :func:`align_motion_result`,
     :func:`align_framewise_displacement`, :func:`align_motion_tsv`
 Dropout and planning
     :func:`frame_from_affine`, :func:`frame_from_orientation`, :func:`dropout_maps`,
@@ -74,7 +74,7 @@ _EXPORTS = {
     "geometry": ["parse_pe_code", "pe_world_direction", "resample_to_grid"],
     "align": ["align_fieldmap", "align_field_to_run", "align_rigid_matrix", "align_rigid_parameters"],
     "motion": ["align_motion_model", "align_volume_pose", "align_resample_volume", "align_run_volumes",
-               "align_motion", "align_framewise_displacement", "align_motion_tsv"],
+               "align_motion", "align_motion_result", "align_framewise_displacement", "align_motion_tsv"],
     "errors": ["FieldfixError", "InputError", "UnitError", "MetadataError", "GeometryError", "OutputError"],
     "report": ["build_report"],
     "batch": ["run_batch"],

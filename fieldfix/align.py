@@ -67,12 +67,6 @@ __all__ = [
     "normalised_mutual_information",
 ]
 
-#: Below this fraction of run voxels covered by the field map (at the start), alignment is refused.
-MIN_OVERLAP = 0.05
-#: Below this fraction after alignment, the result carries a warning.
-WARN_OVERLAP = 0.5
-
-
 @dataclass(frozen=True)
 class AlignOptions:
     """Options of :func:`align_fieldmap`.
@@ -84,6 +78,8 @@ class AlignOptions:
     step_mm, step_deg : float, convergence rule on the finest level (see the module docstring)
     relative_cost : float, convergence rule on the cost change
     edge_fraction : float, NGF edge parameter as a fraction of the mean gradient magnitude
+    min_overlap : float, fraction of run voxels the field map must cover at the start (else refused)
+    warn_overlap : float, below this fraction after alignment the result carries a warning
     """
 
     levels: tuple = (4, 2, 1)
@@ -92,6 +88,8 @@ class AlignOptions:
     step_deg: float = 0.01
     relative_cost: float = 1e-7
     edge_fraction: float = 0.3
+    min_overlap: float = 0.05
+    warn_overlap: float = 0.5
 
     def rule(self, factor: int) -> _pose.StopRule:
         return _pose.StopRule(self.step_mm * factor, self.step_deg * factor, self.relative_cost,
@@ -296,7 +294,7 @@ def align_fieldmap(
     params = np.zeros(6)
     finest = _level_problem(inputs, 1, params, options.edge_fraction)
     start_coverage = finest.coverage(params)
-    if start_coverage < MIN_OVERLAP:
+    if start_coverage < options.min_overlap:
         raise GeometryError(f"fieldmap_affine: the field map covers {100 * start_coverage:.1f}% of the run's "
                             f"voxels; it does not overlap the run's field of view")
     before = _measures(finest, inputs.target, params)
@@ -317,7 +315,7 @@ def _result(inputs, params, before, after, iterations, solution, coverage, optio
     if not converged:
         warnings.append(f"the registration did not converge within {options.max_iterations} iterations on the "
                         f"finest level; the placement may be wrong")
-    if coverage < WARN_OVERLAP:
+    if coverage < options.warn_overlap:
         warnings.append(f"the field map covers only {100 * coverage:.0f}% of the run's voxels after alignment")
     if np.abs(translation).max() > 20.0 or np.abs(rotation).max() > 15.0:
         warnings.append("the head moved more than 20 mm or 15 degrees between field map and run; check the "

@@ -81,9 +81,11 @@ __all__ = [
     "align_resample_volume",
     "align_run_volumes",
     "align_motion",
+    "align_motion_result",
     "align_framewise_displacement",
     "align_motion_tsv",
     "FD_RADIUS_MM",
+    "LARGE_MOTION",
 ]
 
 #: Radius of the sphere on which rotations become displacements (Power et al. 2012).
@@ -481,23 +483,27 @@ def align_motion(run, model: MotionModel, *, progress: bool = False) -> MotionRe
     -------
     MotionResult, with a warning for volumes that did not converge or moved far.
     """
-    rows, costs, converged = [], [], []
-    for _, pose, _ in align_run_volumes(run, model, resample=False, progress=progress):
-        rows.append(np.r_[pose.translation_mm, pose.rotation_deg])
-        costs.append(pose.cost_after)
-        converged.append(pose.converged)
-    table = np.array(rows).reshape(-1, 6)
+    poses = [pose for _, pose, _ in align_run_volumes(run, model, resample=False, progress=progress)]
+    return align_motion_result(poses)
+
+
+def align_motion_result(poses) -> MotionResult:
+    """The poses of a run's volumes, in order, as one :class:`MotionResult`, with a warning for
+    volumes that did not converge or moved more than ``LARGE_MOTION`` (mm or degrees) from the
+    reference."""
+    translation = np.array([p.translation_mm for p in poses], float).reshape(-1, 3)
+    rotation = np.array([p.rotation_deg for p in poses], float).reshape(-1, 3)
+    converged = np.array([p.converged for p in poses], bool)
     warnings = []
-    if not all(converged):
-        bad = [str(t) for t, ok in enumerate(converged) if not ok]
-        warnings.append(f"the pose did not converge for volume(s) {', '.join(bad)}")
-    far = np.flatnonzero(np.abs(table).max(axis=1) > LARGE_MOTION) if table.size else []
-    if len(far):
+    if not converged.all():
+        warnings.append(f"the pose did not converge for volume(s) {', '.join(map(str, np.flatnonzero(~converged)))}")
+    far = np.flatnonzero(np.maximum(np.abs(translation).max(axis=1, initial=0.0),
+                                    np.abs(rotation).max(axis=1, initial=0.0)) > LARGE_MOTION)
+    if far.size:
         warnings.append(f"volume(s) {', '.join(map(str, far))} moved more than {LARGE_MOTION:g} mm or degrees "
-                        f"from the reference; check them by eye")
-    return MotionResult(table[:, :3], table[:, 3:],
-                        align_framewise_displacement(table[:, :3], table[:, 3:]), np.array(costs),
-                        np.array(converged, bool), tuple(warnings))
+                        "from the reference; inspect them")
+    return MotionResult(translation, rotation, align_framewise_displacement(translation, rotation),
+                        np.array([p.cost_after for p in poses], float), converged, tuple(warnings))
 
 
 def align_framewise_displacement(translation_mm, rotation_deg, radius_mm: float = FD_RADIUS_MM) -> np.ndarray:

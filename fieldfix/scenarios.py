@@ -54,6 +54,7 @@ Example
 from __future__ import annotations
 
 import copy
+import dataclasses
 import hashlib
 import json
 import os
@@ -69,10 +70,9 @@ from .errors import InputError, OutputError
 from .geometry import parse_pe_code
 from .io import save_image, write_json
 from .outdir import output_folder
-
+from .scenario_spec import RoiSpec, RunSpec, ScenarioSpec, parse_definition, parse_labels
 from .simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
 from .simulate.gradient_echo import simulate_gradient_echo
-from .units import parse_angle_deg, parse_field_t, parse_length_mm, parse_time_s
 
 #: Sub-samples through the slice in the EPI simulation. Two sub-samples sum two phasors and
 #: underestimate through-slice dephasing (|cos(pi x / 2)| instead of |sinc(x)|); four bring the
@@ -182,13 +182,17 @@ def load_definition(definition_or_path) -> dict:
     Returns
     -------
     dict
-        The definition with parsed SI values under the key ``"_parsed"``.
+        The definition with its defaults filled in (its typed form: :func:`fieldfix.scenario_spec.parse_definition`).
 
     Raises
     ------
     InputError, UnitError
         Naming the file and the bad key.
     """
+    return _load(definition_or_path)[0]
+
+
+def _load(definition_or_path) -> tuple[dict, ScenarioSpec]:
     source = None
     if isinstance(definition_or_path, dict):
         raw = definition_or_path
@@ -203,115 +207,13 @@ def load_definition(definition_or_path) -> dict:
     d = _merge({k: v for k, v in _DEFAULTS.items() if k != "run"}, raw)
     d["runs"] = [_merge(_DEFAULTS["run"], r) for r in raw.get("runs", [{}])]
     try:
-        d["_parsed"] = _parse(d)
+        spec = parse_definition(d)
     except InputError as err:
         raise type(err)(str(err.args[0]) if err.args else str(err), source) from None
     except (TypeError, ValueError, KeyError) as err:
         raise InputError(f"bad scenario definition: {err}", source) from None
     d["_source"] = str(source) if source else None
-    return d
-
-
-def _vec_mm(values, what) -> np.ndarray:
-    if len(values) != 3:
-        raise InputError(f"{what} needs three values")
-    return np.array([parse_length_mm(v) for v in values], float)
-
-
-def _shape(values, what) -> tuple[int, int, int]:
-    if len(values) != 3 or any(int(v) != v or int(v) < 2 for v in values):
-        raise InputError(f"{what} must be three integers >= 2")
-    return tuple(int(v) for v in values)
-
-
-def _voxel(value, what) -> np.ndarray:
-    if isinstance(value, (list, tuple)):
-        return _vec_mm(value, what)
-    return np.full(3, parse_length_mm(value))
-
-
-def _labels(spec, prefix_width: int = 2) -> list[str]:
-    if isinstance(spec, (list, tuple)):
-        labels = [str(s) for s in spec]
-        if any(not s.isalnum() for s in labels):
-            raise InputError("subject and session labels must be letters and digits")
-        return labels
-    n = int(spec)
-    if n < 0:
-        raise InputError("the number of subjects/sessions cannot be negative")
-    return [str(i + 1).zfill(prefix_width) for i in range(n)]
-
-
-def _parse(d: dict) -> dict:
-    head = d["head"]
-    fm = d["fieldmap"]
-    if fm["kind"] not in ("phasediff", "phase-pair"):
-        raise InputError("fieldmap.kind must be 'phasediff' or 'phase-pair'")
-    tes = [parse_time_s(t) for t in fm["echo_times"]]
-    if len(tes) != 2 or not 0 < tes[0] < tes[1]:
-        raise InputError("fieldmap.echo_times must be two increasing echo times")
-    p = {
-        "field_t": parse_field_t(d["field_strength"]),
-        "subjects": _labels(d["subjects"]),
-        "sessions": _labels(d["sessions"], 1) if d["sessions"] else [],
-        "pitch_deg": parse_angle_deg(head["pitch"]),
-        "roll_deg": parse_angle_deg(head["roll"]),
-        "pitch_jitter_deg": parse_angle_deg(head["pitch_jitter"]),
-        "scale": float(head["scale"]),
-        "scale_jitter": float(head["scale_jitter"]),
-        "shim_order": int(head["shim_order"]),
-        "model_voxel_mm": _voxel(d["model"]["voxel_size"], "model.voxel_size"),
-        "fieldmap": {
-            "kind": fm["kind"],
-            "echo_times_s": tes,
-            "voxel_mm": _voxel(fm["voxel_size"], "fieldmap.voxel_size"),
-            "shape": _shape(fm["shape"], "fieldmap.shape"),
-            "center_mm": _vec_mm(fm["center"], "fieldmap.center"),
-            "snr": float(fm["snr"]),
-            "t2star_s": parse_time_s(fm["t2star"]),
-        },
-        "runs": [],
-        "roi": None,
-    }
-    if not p["subjects"]:
-        raise InputError("a scenario needs at least one subject")
-    if p["shim_order"] not in (0, 1, 2):
-        raise InputError("head.shim_order must be 0, 1 or 2")
-    tasks = set()
-    for i, r in enumerate(d["runs"]):
-        task = str(r["task"])
-        if not task.isalnum() or task in tasks:
-            raise InputError(f"runs[{i}].task must be a unique word of letters and digits")
-        tasks.add(task)
-        parse_pe_code(r["phase_encoding_direction"])
-        run = {
-            "task": task,
-            "voxel_mm": _voxel(r["voxel_size"], f"runs[{i}].voxel_size"),
-            "shape": _shape(r["shape"], f"runs[{i}].shape"),
-            "center_mm": _vec_mm(r["center"], f"runs[{i}].center"),
-            "pe_code": str(r["phase_encoding_direction"]),
-            "echo_spacing_s": parse_time_s(r["echo_spacing"]),
-            "echo_time_s": parse_time_s(r["echo_time"]),
-            "repetition_time_s": parse_time_s(r["repetition_time"]),
-            "volumes": int(r["volumes"]),
-            "acceleration": int(r["acceleration"]),
-            "partial_fourier": float(r["partial_fourier"]),
-            "t2star_s": parse_time_s(r["t2star"]),
-            "noise": float(r["noise"]),
-            "motion_translation_mm": parse_length_mm(r["motion_translation"]),
-            "motion_rotation_deg": parse_angle_deg(r["motion_rotation"]),
-        }
-        if run["volumes"] < 1:
-            raise InputError(f"runs[{i}].volumes must be at least 1")
-        p["runs"].append(run)
-    if "roi" in d and d["roi"]:
-        roi = d["roi"]
-        name = str(roi.get("name", "roi"))
-        if not name.isalnum():
-            raise InputError("roi.name must be letters and digits")
-        p["roi"] = {"name": name, "center_mm": _vec_mm(roi["center"], "roi.center"),
-                    "semi_axes_mm": _vec_mm(roi["semi_axes"], "roi.semi_axes")}
-    return p
+    return d, spec
 
 
 def definition_hash(d: dict) -> str:
@@ -394,25 +296,24 @@ def _bids_dir(sub: str, ses: str | None) -> Path:
     return Path(f"sub-{sub}") / (f"ses-{ses}" if ses else "")
 
 
-def _model_field(p: dict, scale: float, pitch_deg: float):
+def _model_field(p: ScenarioSpec, scale: float, pitch_deg: float):
     """Shimmed B0 map (Hz) of the head on the model grid, with the model."""
-    vox = p["model_voxel_mm"]
+    vox = p.model_voxel_mm
     half = sus.head_extent_mm(scale) + 12.0
     shape = tuple(int(np.ceil(2 * h / v)) + 1 for h, v in zip(half, vox))
     hm = sus.head_model(shape, tuple(vox), scale=scale, supersample=2)
-    b_dir = sus.b0_direction_from_pitch(pitch_deg, p["roll_deg"])
-    raw = sus.field_from_susceptibility(hm.chi_ppm, hm.affine, field_t=p["field_t"], b0_direction=b_dir,
+    b_dir = sus.b0_direction_from_pitch(pitch_deg, p.roll_deg)
+    raw = sus.field_from_susceptibility(hm.chi_ppm, hm.affine, field_t=p.field_strength_t, b0_direction=b_dir,
                                         workers=-1)
-    b0, _ = sus.shim_field(raw, hm.brain_mask, hm.affine, order=p["shim_order"])
+    b0, _ = sus.shim_field(raw, hm.brain_mask, hm.affine, order=p.shim_order)
     return b0, hm
 
 
-def _roi_mask(p, scale, x, y, z, brain):
-    roi = p["roi"]
+def _roi_mask(roi: RoiSpec | None, scale, x, y, z, brain):
     if roi is None:
         return None
-    c = roi["center_mm"] * scale
-    a = roi["semi_axes_mm"] * scale
+    c = roi.center_mm * scale
+    a = roi.semi_axes_mm * scale
     inside = ((x - c[0]) / a[0]) ** 2 + ((y - c[1]) / a[1]) ** 2 + ((z - c[2]) / a[2]) ** 2 <= 1
     return inside & brain
 
@@ -421,7 +322,7 @@ def _roi_mask(p, scale, x, y, z, brain):
 class _Subject:
     """What the generation of one subject (and session) shares: where it writes and its head."""
 
-    p: dict
+    p: ScenarioSpec
     root: Path
     rel_dir: Path
     truth_dir: Path
@@ -445,54 +346,54 @@ class _Subject:
 def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.SeedSequence,
                   scale: float, overwrite: bool) -> dict:
     rng = np.random.default_rng(seq)
-    pitch = p["pitch_deg"] + (rng.normal(0, p["pitch_jitter_deg"]) if p["pitch_jitter_deg"] > 0 else 0.0)
+    pitch = p.pitch_deg + (rng.normal(0, p.pitch_jitter_deg) if p.pitch_jitter_deg > 0 else 0.0)
     pitch = float(np.round(pitch, 3))
     b0_model, hm = _model_field(p, scale, pitch)
     rel_dir = _bids_dir(sub, ses)
     ctx = _Subject(p, root, rel_dir, TRUTH_DIR / rel_dir, _bids_stem(sub, ses), scale, b0_model, hm, rng, overwrite)
     # EPI runs first, so that the field map can name them in IntendedFor
-    runs = [_simulated_run(ctx, run) for run in p["runs"]]
+    runs = [_simulated_run(ctx, run) for run in p.runs]
     intended = [str(Path(rec["bold"]).relative_to(Path(f"sub-{sub}"))) for rec in runs]
     fieldmap, truth = _simulated_fieldmap(ctx, intended)
     return {"subject": sub, "session": ses or "", "pitch_deg": pitch, "head_scale": scale, "runs": runs,
             "fieldmap": fieldmap, "truth": truth}
 
 
-def _simulated_run(ctx: _Subject, run: dict) -> dict:
+def _simulated_run(ctx: _Subject, run: RunSpec) -> dict:
     """One EPI run acquired in k-space (with motion and noise), its sidecar and its truth on the run grid."""
-    aff = _grid_affine(run["voxel_mm"], run["shape"], run["center_mm"])
+    aff = _grid_affine(run.voxel_mm, run.shape, run.center_mm)
     # Two sub-samples along the phase-encode axis (field variation within a voxel) and along
     # the slice (through-slice dephasing); the readout needs none in this signal model.
-    pe_axis, _ = parse_pe_code(run["pe_code"])
+    pe_axis, _ = parse_pe_code(run.pe_code)
     slice_axis = 2 if pe_axis != 2 else 1
     factors = tuple({pe_axis: 2, slice_axis: SLICE_SUBSAMPLES}.get(a, 1) for a in range(3))
-    fx, fy, fz = _world(aff, fine_coordinates(run["shape"], factors))
+    fx, fy, fz = _world(aff, fine_coordinates(run.shape, factors))
     obj_fine = tissue_image(fx, fy, fz, ctx.scale)
     b0_fine = ctx.b0_at(fx, fy, fz)
     b0_fine[obj_fine <= 0] = 0.0  # no signal there; keeps the air's extreme values out
-    options = dict(pe_code=run["pe_code"], echo_spacing_s=run["echo_spacing_s"], echo_time_s=run["echo_time_s"],
-                   oversample=factors, acceleration=run["acceleration"], partial_fourier=run["partial_fourier"],
-                   t2star_s=run["t2star_s"])
-    mean_vox = float(np.mean(run["voxel_mm"]))
-    data, motion = simulate_epi_run(obj_fine, b0_fine, run["volumes"], noise_sd=run["noise"],
-                                    translation_sd_vox=run["motion_translation_mm"] / mean_vox,
-                                    rotation_sd_deg=run["motion_rotation_deg"], rng=ctx.rng, **options)
+    options = dict(pe_code=run.pe_code, echo_spacing_s=run.echo_spacing_s, echo_time_s=run.echo_time_s,
+                   oversample=factors, acceleration=run.acceleration, partial_fourier=run.partial_fourier,
+                   t2star_s=run.t2star_s)
+    mean_vox = float(np.mean(run.voxel_mm))
+    data, motion = simulate_epi_run(obj_fine, b0_fine, run.volumes, noise_sd=run.noise,
+                                    translation_sd_vox=run.motion_translation_mm / mean_vox,
+                                    rotation_sd_deg=run.motion_rotation_deg, rng=ctx.rng, **options)
     reference, _ = simulate_epi_run(obj_fine, np.zeros_like(b0_fine), 1, **options)
     scale_signal = 1000.0  # scanner-like numbers
-    bold_rel = ctx.rel_dir / "func" / f"{ctx.stem}_task-{run['task']}_bold.nii.gz"
-    sidecar = epi_sidecar(run["pe_code"], run["shape"][pe_axis], run["echo_spacing_s"], run["echo_time_s"],
-                          run["acceleration"])
-    sidecar.update({"TaskName": run["task"], "RepetitionTime": run["repetition_time_s"],
-                    "MagneticFieldStrength": ctx.p["field_t"], "SliceThickness": float(run["voxel_mm"][2]),
-                    "PartialFourier": run["partial_fourier"]})
-    ctx.save(bold_rel, data * scale_signal, aff, sidecar=sidecar, template=_tr_template(aff, run["repetition_time_s"]))
-    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run["shape"]])
+    bold_rel = ctx.rel_dir / "func" / f"{ctx.stem}_task-{run.task}_bold.nii.gz"
+    sidecar = epi_sidecar(run.pe_code, run.shape[pe_axis], run.echo_spacing_s, run.echo_time_s,
+                          run.acceleration)
+    sidecar.update({"TaskName": run.task, "RepetitionTime": run.repetition_time_s,
+                    "MagneticFieldStrength": ctx.p.field_strength_t, "SliceThickness": float(run.voxel_mm[2]),
+                    "PartialFourier": run.partial_fourier})
+    ctx.save(bold_rel, data * scale_signal, aff, sidecar=sidecar, template=_tr_template(aff, run.repetition_time_s))
+    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run.shape])
     brain_run = sus.head_labels_at(cx, cy, cz, ctx.scale) == sus.HEAD_LABELS["brain"]
-    folder, tstem = ctx.truth_dir / "func", f"{ctx.stem}_task-{run['task']}"
+    folder, tstem = ctx.truth_dir / "func", f"{ctx.stem}_task-{run.task}"
     rec = {
-        "task": run["task"], "bold": str(bold_rel), "pe_code": run["pe_code"],
+        "task": run.task, "bold": str(bold_rel), "pe_code": run.pe_code,
         "total_readout_time_s": sidecar["TotalReadoutTime"], "effective_echo_spacing_s": sidecar["EffectiveEchoSpacing"],
-        "echo_time_s": run["echo_time_s"], "slice_thickness_mm": float(run["voxel_mm"][2]),
+        "echo_time_s": run.echo_time_s, "slice_thickness_mm": float(run.voxel_mm[2]),
         "motion": motion.round(6).tolist(),
         "truth_b0_hz": ctx.save(folder / f"{tstem}_desc-truth_fieldmap.nii.gz", ctx.b0_at(cx, cy, cz), aff,
                                 sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),
@@ -500,29 +401,29 @@ def _simulated_run(ctx: _Subject, run: dict) -> dict:
         "undistorted": ctx.save(folder / f"{tstem}_desc-undistorted_bold.nii.gz", reference[..., 0] * scale_signal,
                                 aff),
     }
-    roi = _roi_mask(ctx.p, ctx.scale, cx, cy, cz, brain_run)
+    roi = _roi_mask(ctx.p.roi, ctx.scale, cx, cy, cz, brain_run)
     if roi is not None:
-        rec["roi_mask"] = ctx.save(folder / f"{tstem}_desc-{ctx.p['roi']['name']}_mask.nii.gz", roi, aff,
+        rec["roi_mask"] = ctx.save(folder / f"{tstem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
                                    dtype=np.uint8)
     return rec
 
 
 def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[dict, dict]:
     """The dual-echo gradient-echo field map of the subject, and its truth on the field-map grid."""
-    fm, field_t = ctx.p["fieldmap"], ctx.p["field_t"]
-    aff = _grid_affine(fm["voxel_mm"], fm["shape"], fm["center_mm"])
-    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in fm["shape"]])
+    fm, field_t = ctx.p.fieldmap, ctx.p.field_strength_t
+    aff = _grid_affine(fm.voxel_mm, fm.shape, fm.center_mm)
+    cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in fm.shape])
     b0_fm = ctx.b0_at(cx, cy, cz).astype(np.float64)
-    gre = simulate_gradient_echo(b0_fm, fm["echo_times_s"], magnitude=tissue_image(cx, cy, cz, ctx.scale),
-                                 t2star_s=fm["t2star_s"], snr=fm["snr"], rng=ctx.rng)
-    te1, te2 = fm["echo_times_s"]
+    gre = simulate_gradient_echo(b0_fm, fm.echo_times_s, magnitude=tissue_image(cx, cy, cz, ctx.scale),
+                                 t2star_s=fm.t2star_s, snr=fm.snr, rng=ctx.rng)
+    te1, te2 = fm.echo_times_s
     fdir, stem = ctx.rel_dir / "fmap", ctx.stem
     common = {"MagneticFieldStrength": field_t, "IntendedFor": intended}
     mags = gre.magnitudes()
     files = {f"magnitude{n}": ctx.save(fdir / f"{stem}_magnitude{n}.nii.gz", mags[n - 1] * 1000.0, aff,
                                        sidecar={"EchoTime": te, "MagneticFieldStrength": field_t})
              for n, te in ((1, te1), (2, te2))}
-    if fm["kind"] == "phasediff":
+    if fm.kind == "phasediff":
         dphi = np.angle(gre.echoes[1] * np.conj(gre.echoes[0]))
         files["phasediff"] = ctx.save(fdir / f"{stem}_phasediff.nii.gz", dphi, aff,
                                       sidecar={"EchoTime1": te1, "EchoTime2": te2, "Units": "rad", **common})
@@ -538,14 +439,14 @@ def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[dict, dict]
                           sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
         "brain_mask": ctx.save(folder / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff, dtype=np.uint8),
     }
-    roi = _roi_mask(ctx.p, ctx.scale, cx, cy, cz, brain_fm)
+    roi = _roi_mask(ctx.p.roi, ctx.scale, cx, cy, cz, brain_fm)
     if roi is not None:
-        truth["roi_mask"] = ctx.save(folder / f"{stem}_desc-{ctx.p['roi']['name']}_mask.nii.gz", roi, aff,
+        truth["roi_mask"] = ctx.save(folder / f"{stem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
                                      dtype=np.uint8)
     brain_b0 = b0_fm[brain_fm]
     truth["brain_b0_hz_percentiles"] = {q: float(np.percentile(brain_b0, v)) for q, v in
                                         (("p1", 1), ("p50", 50), ("p99", 99))}
-    return {"kind": fm["kind"], "echo_times_s": [te1, te2], "files": files}, truth
+    return {"kind": fm.kind, "echo_times_s": [te1, te2], "files": files}, truth
 
 
 def _tr_template(affine, tr_s: float):
@@ -590,14 +491,13 @@ def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int 
     OutputError
         ``out_root`` holds files and ``overwrite`` is false.
     """
-    d = load_definition(definition_or_path)
-    p = d["_parsed"]
+    d, p = _load(definition_or_path)
     if subjects is not None:
-        p["subjects"] = _labels(subjects)
-        if not p["subjects"]:
+        p = dataclasses.replace(p, subjects=parse_labels(subjects))
+        if not p.subjects:
             raise InputError("a scenario needs at least one subject")
     if sessions is not None:
-        p["sessions"] = _labels(sessions, 1) if sessions else []
+        p = dataclasses.replace(p, sessions=parse_labels(sessions, 1) if sessions else ())
     seed = int(seed)
     root = Path(out_root)
     if root.exists() and not root.is_dir():
@@ -609,7 +509,7 @@ def generate_scenario(definition_or_path, out_root, *, subjects=None, seed: int 
         return _write_dataset(d, p, root, seed, overwrite)
 
 
-def _write_dataset(d: dict, p: dict, root: Path, seed: int, overwrite: bool) -> Path:
+def _write_dataset(d: dict, p: ScenarioSpec, root: Path, seed: int, overwrite: bool) -> Path:
     public = {k: v for k, v in d.items() if not k.startswith("_")}
     write_json(root / "dataset_description.json", {
         "Name": f"fieldfix sample scenario: {d.get('title', d['name'])}",
@@ -625,12 +525,12 @@ def _write_dataset(d: dict, p: dict, root: Path, seed: int, overwrite: bool) -> 
     }, overwrite=overwrite)
     entries = []
     rows = ["participant_id\thead_scale"]
-    for i, sub in enumerate(p["subjects"]):
+    for i, sub in enumerate(p.subjects):
         sub_rng = np.random.default_rng(np.random.SeedSequence([seed, i]))
-        scale = p["scale"] * (1.0 + (sub_rng.normal(0, p["scale_jitter"]) if p["scale_jitter"] > 0 else 0.0))
+        scale = p.scale * (1.0 + (sub_rng.normal(0, p.scale_jitter) if p.scale_jitter > 0 else 0.0))
         scale = float(np.round(scale, 4))
         rows.append(f"sub-{sub}\t{scale}")
-        for j, ses in enumerate(p["sessions"] or [None]):
+        for j, ses in enumerate(p.sessions or [None]):
             seq = np.random.SeedSequence([seed, i, j + 1])
             entries.append(_generate_one(p, d, root, sub, ses, seq, scale, overwrite))
     _write_text(root / "participants.tsv", "\n".join(rows) + "\n", overwrite)
@@ -641,8 +541,8 @@ def _write_dataset(d: dict, p: dict, root: Path, seed: int, overwrite: bool) -> 
         "definition_sha256": definition_hash(d),
         "definition": public,
         "seed": seed,
-        "field_strength_t": p["field_t"],
-        "roi_name": p["roi"]["name"] if p["roi"] else None,
+        "field_strength_t": p.field_strength_t,
+        "roi_name": p.roi.name if p.roi else None,
         "entries": entries,
     }
     write_json(root / TRUTH_DIR / "manifest.json", manifest, overwrite=overwrite)

@@ -1,5 +1,7 @@
 """Field-map-to-run alignment: kernels against references, conventions, recovery, acceptance, bad input."""
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy import ndimage
@@ -20,6 +22,13 @@ from fieldfix.shift import Readout, shift_vox_from_field
 from fieldfix.unwarp import distort, unwarp_volume
 
 RNG = np.random.default_rng(11)
+
+
+@pytest.fixture(autouse=True)
+def _same_draws_in_any_order():
+    """Each test draws the same numbers whichever tests ran before it in its process."""
+    global RNG
+    RNG = np.random.default_rng(11)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -211,6 +220,24 @@ def test_no_overlap_is_a_geometry_error():
     far[:3, 3] = 500.0
     with pytest.raises(GeometryError, match="fieldmap_affine"):
         align_fieldmap(blob, np.zeros_like(blob), far, blob, affine, Readout("j", 5e-4))
+
+
+def test_overlap_limits_are_options():
+    # A field map 10 of 16 voxels off along x starts covering 6/16 = 37.5% of the run's voxels
+    # (by hand); the registration then moves it back over the head.
+    blob, affine = _small()
+    off = affine.copy()
+    off[0, 3] = 30.0
+    still = AlignOptions(levels=(1,), max_iterations=1)
+    with pytest.raises(GeometryError, match=r"covers 37\.5%"):
+        align_fieldmap(blob, np.zeros_like(blob), off, blob, affine, Readout("j", 5e-4),
+                       dataclasses.replace(still, min_overlap=0.4))
+    result = align_fieldmap(blob, np.zeros_like(blob), off, blob, affine, Readout("j", 5e-4), still)
+    assert 0.375 < result.coverage < 0.95
+    assert not any("covers only" in w for w in result.warnings)
+    strict = dataclasses.replace(still, warn_overlap=0.95)
+    result = align_fieldmap(blob, np.zeros_like(blob), off, blob, affine, Readout("j", 5e-4), strict)
+    assert any("covers only" in w for w in result.warnings)
 
 
 def test_zero_magnitude_is_an_input_error():

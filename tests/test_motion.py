@@ -18,8 +18,10 @@ from fieldfix.motion import (
     PoseLevel,
     VolumePose,
     align_framewise_displacement,
+    LARGE_MOTION,
     align_motion,
     align_motion_model,
+    align_motion_result,
     align_motion_tsv,
     align_resample_volume,
     align_run_volumes,
@@ -29,6 +31,13 @@ from fieldfix.simulate.epi import simulate_epi_run
 from fieldfix.unwarp import distort_with_field, unwarp_volume
 
 RNG = np.random.default_rng(23)
+
+
+@pytest.fixture(autouse=True)
+def _same_draws_in_any_order():
+    """Each test draws the same numbers whichever tests ran before it in its process."""
+    global RNG
+    RNG = np.random.default_rng(23)
 
 SHAPE, VOXEL, CENTRE = (48, 48, 30), 4.0, (0.0, -5.0, 10.0)
 ESP = 5e-4
@@ -329,6 +338,23 @@ def test_framewise_displacement_hand_computed():
     assert fd == pytest.approx([0.0, 1.03633, 1.17266], abs=1e-5)
     with pytest.raises(InputError):
         align_framewise_displacement(translation, rotation[:2])
+
+
+def test_motion_result_gathers_poses_and_warns():
+    # Volume 1 turned 0.5 degree (FD 0.5 deg = 0.0087266 rad x 50 mm = 0.43633 mm, by hand),
+    # volume 2 moved just past the large-motion limit and did not converge.
+    def pose(translation, rotation, converged=True):
+        return VolumePose(tuple(translation), tuple(rotation), np.eye(4), 1.0, 0.5, 3, converged)
+
+    poses = [pose([0, 0, 0], [0, 0, 0]), pose([0, 0, 0], [0, 0.5, 0]),
+             pose([0, LARGE_MOTION + 0.1, 0], [0, 0.5, 0], converged=False)]
+    result = align_motion_result(poses)
+    assert result.translation_mm.shape == (3, 3) and result.rotation_deg[1, 1] == 0.5
+    assert result.framewise_displacement_mm[:2] == pytest.approx([0.0, 0.43633], abs=1e-5)
+    assert result.converged.tolist() == [True, True, False]
+    assert [w.split(" ")[0] for w in result.warnings] == ["the", "volume(s)"]
+    assert "volume(s) 2" in result.warnings[0] and result.warnings[1].startswith("volume(s) 2 moved")
+    assert align_motion_result(poses[:2]).warnings == ()
 
 
 def test_motion_table_text():

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 from fieldfix import scenarios
+from fieldfix.scenario_spec import parse_definition
 from fieldfix.errors import InputError, OutputError, UnitError
 from fieldfix.units import GAMMA_HZ_PER_T  # noqa: F401  (imported to check the constants module exists)
 
@@ -162,7 +163,7 @@ def test_sample_scenarios_are_valid():
         folder = scenarios.scenario_path(name).parent
         readme = (folder / "README.md").read_text()
         assert "invented" in readme.lower()
-        assert d["_parsed"]["runs"], name
+        assert parse_definition(d).runs, name
 
 
 def test_field_map_workflow_recovers_modelled_field_through_wraps(tmp_path):

@@ -16,7 +16,6 @@ CAUTION = ("Research software, not a medical device: inspect corrected images, B
            "predictions before they are used for any decision about a person.")
 
 
-
 @dataclass(frozen=True)
 class JobOptions:
     """Where and how a file-level job writes.
@@ -80,12 +79,25 @@ def job_and_settings(job, settings_type, settings, changes: dict):
     return job, settings
 
 
-
 class JobFiles(Record):
     """A job's output names (relative to its folder); image roles get provenance sidecars."""
 
     SUMMARY_SUFFIX = ""
     IMAGES: tuple = ()
+
+    @classmethod
+    def prefixed(cls, prefix: str, names: dict[str, str], made: dict[str, bool] | None = None):
+        """The list with `prefix` in front of every name; `made` (role -> bool) leaves out the
+        optional outputs a job does not write.
+
+        Example
+        -------
+        >>> from fieldfix.outputs import CombinedFiles
+        >>> CombinedFiles.prefixed("sub-01_", {"corrected": "a.nii.gz", "summary": "a.json"}).corrected
+        'sub-01_a.nii.gz'
+        """
+        made = made or {}
+        return cls(**{role: prefix + name for role, name in names.items() if made.get(role, True)})
 
     def paths(self, folder: str | os.PathLike) -> dict[str, Path]:
         """Role -> path inside `folder`, for the outputs this job writes."""

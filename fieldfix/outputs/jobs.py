@@ -29,12 +29,11 @@ class FieldMapFiles(JobFiles):
         """The names; a field map from reversed phase-encode images also has its confidence map
         and the input images corrected with it (``b0_epi_corrected``, 4D)."""
         units = set(also_units)
-        return cls(b0_hz=f"{tag}b0_hz.nii.gz", mask=f"{tag}b0_mask.nii.gz",
-                   magnitude=f"{tag}b0_magnitude.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
-                   b0_rads=f"{tag}b0_rads.nii.gz" if "rad/s" in units else None,
-                   b0_ppm=f"{tag}b0_ppm.nii.gz" if "ppm" in units else None,
-                   confidence=f"{tag}b0_confidence.nii.gz" if epi_pair else None,
-                   epi_corrected=f"{tag}b0_epi_corrected.nii.gz" if epi_pair else None)
+        names = {"b0_hz": "b0_hz.nii.gz", "mask": "b0_mask.nii.gz", "magnitude": "b0_magnitude.nii.gz",
+                 "summary": cls.SUMMARY_SUFFIX, "b0_rads": "b0_rads.nii.gz", "b0_ppm": "b0_ppm.nii.gz",
+                 "confidence": "b0_confidence.nii.gz", "epi_corrected": "b0_epi_corrected.nii.gz"}
+        return cls.prefixed(tag, names, {"b0_rads": "rad/s" in units, "b0_ppm": "ppm" in units,
+                                         "confidence": epi_pair, "epi_corrected": epi_pair})
 
 
 @dataclass(frozen=True)
@@ -58,11 +57,9 @@ class UnwarpFiles(JobFiles):
         `motion`, the per-volume motion table ``<stem>_motion.tsv`` too."""
         if suffix not in (".nii.gz", ".nii"):
             raise ValueError(f"suffix must be '.nii.gz' or '.nii', got {suffix!r}")
-        stem = f"{tag}{run_stem}"
-        return cls(corrected=f"{stem}_corrected{suffix}", shift_vox=f"{stem}_shift_vox{suffix}",
-                   jacobian=f"{stem}_jacobian{suffix}", fold_mask=f"{stem}_fold_mask{suffix}",
-                   displacement_mm=f"{stem}_displacement_mm{suffix}", summary=f"{stem}{cls.SUMMARY_SUFFIX}",
-                   motion=f"{stem}_motion.tsv" if motion else None)
+        names = {role: f"_{role}{suffix}" for role in cls.IMAGES}
+        names.update(summary=cls.SUMMARY_SUFFIX, motion="_motion.tsv")
+        return cls.prefixed(f"{tag}{run_stem}", names, {"motion": motion})
 
 
 @dataclass(frozen=True)
@@ -77,8 +74,7 @@ class CombinedFiles(JobFiles):
 
     @classmethod
     def named(cls, run_stem: str, tag: str = "") -> "CombinedFiles":
-        stem = f"{tag}{run_stem}"
-        return cls(corrected=f"{stem}_combined.nii.gz", summary=f"{stem}{cls.SUMMARY_SUFFIX}")
+        return cls.prefixed(f"{tag}{run_stem}", {"corrected": "_combined.nii.gz", "summary": cls.SUMMARY_SUFFIX})
 
 
 @dataclass(frozen=True)
@@ -99,12 +95,10 @@ class DropoutFiles(JobFiles):
     @classmethod
     def named(cls, tag: str = "", *, bold: bool = False, on_epi: bool = False,
               modelled: bool = False) -> "DropoutFiles":
-        return cls(retention=f"{tag}retention.nii.gz", summary=f"{tag}{cls.SUMMARY_SUFFIX}",
-                   bold_sensitivity=f"{tag}bold_sensitivity.nii.gz" if bold else None,
-                   retention_on_epi=f"{tag}retention_on_epi.nii.gz" if on_epi else None,
-                   bold_sensitivity_on_epi=f"{tag}bold_sensitivity_on_epi.nii.gz" if bold and on_epi else None,
-                   modelled_b0_hz=f"{tag}modelled_b0_hz.nii.gz" if modelled else None)
-
+        names = {role: f"{role}.nii.gz" for role in cls.IMAGES}
+        names["summary"] = cls.SUMMARY_SUFFIX
+        return cls.prefixed(tag, names, {"bold_sensitivity": bold, "retention_on_epi": on_epi,
+                                         "bold_sensitivity_on_epi": bold and on_epi, "modelled_b0_hz": modelled})
 
 
 @dataclass(frozen=True)

@@ -23,8 +23,8 @@ class PlanFiles(JobFiles):
 
     @classmethod
     def named(cls, tag: str = "", modelled: bool = False) -> "PlanFiles":
-        return cls(csv=f"{tag}plan.csv", json=f"{tag}{cls.SUMMARY_SUFFIX}", figure=f"{tag}plan.png",
-                   modelled_b0_hz=f"{tag}plan_modelled_b0_hz.nii.gz" if modelled else None)
+        return cls.prefixed(tag, {"csv": "plan.csv", "json": cls.SUMMARY_SUFFIX, "figure": "plan.png",
+                                  "modelled_b0_hz": "plan_modelled_b0_hz.nii.gz"}, {"modelled_b0_hz": modelled})
 
 
 @dataclass(frozen=True)

@@ -22,7 +22,7 @@ class ReportFiles(JobFiles):
 
     @classmethod
     def named(cls, stem: str = "report") -> "ReportFiles":
-        return cls(html=f"{stem}.html", png=f"{stem}_summary.png", json=f"{stem}.json")
+        return cls.prefixed(stem, {"html": ".html", "png": "_summary.png", "json": ".json"})
 
 
 @dataclass(frozen=True)

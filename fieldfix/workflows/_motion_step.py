@@ -17,8 +17,8 @@ from ..shift import Readout
 from ..motion import (
     MotionOptions,
     MotionResult,
-    align_framewise_displacement,
     align_motion_model,
+    align_motion_result,
     align_motion_tsv,
     align_resample_volume,
     align_volume_pose,
@@ -31,8 +31,6 @@ __all__ = ["MotionFollower", "MOTION_METHOD"]
 MOTION_METHOD = ("per-volume rigid pose against the first volume (least squares, the field moving with the head, "
                  "Gauss-Newton over a 4-2-1 pyramid), motion and distortion undone in one cubic B-spline "
                  "interpolation with the Jacobian; framewise displacement after Power et al. 2012 (NeuroImage)")
-#: Volumes whose pose moved more than this (mm, or degrees) from the first are named in a warning.
-LARGE_MOTION = 10.0
 
 
 class MotionFollower:
@@ -52,11 +50,7 @@ class MotionFollower:
         return align_resample_volume(self.model, volume, pose)
 
     def result(self) -> MotionResult:
-        translation = np.array([p.translation_mm for p in self.poses], float).reshape(-1, 3)
-        rotation = np.array([p.rotation_deg for p in self.poses], float).reshape(-1, 3)
-        return MotionResult(translation, rotation, align_framewise_displacement(translation, rotation),
-                            np.array([p.cost_after for p in self.poses]),
-                            np.array([p.converged for p in self.poses], bool))
+        return align_motion_result(self.poses)
 
     def write_table(self, path, inputs, overwrite: bool) -> MotionRecord:
         """Write the motion table (TSV) and return the run's motion record."""
@@ -64,18 +58,9 @@ class MotionFollower:
         with atomic_output(path, inputs, overwrite) as temporary:
             temporary.write_text(align_motion_tsv(result), encoding="utf-8")
         fd = result.framewise_displacement_mm
-        warnings = []
-        stuck = np.flatnonzero(~result.converged)
-        if stuck.size:
-            warnings.append(f"the pose did not converge for volume(s) {', '.join(map(str, stuck))}")
-        far = np.flatnonzero(np.maximum(np.abs(result.translation_mm).max(axis=1),
-                                        np.abs(result.rotation_deg).max(axis=1)) > LARGE_MOTION)
-        if far.size:
-            warnings.append(f"volume(s) {', '.join(map(str, far))} moved more than {LARGE_MOTION:g} mm or degrees "
-                            "from the first; inspect them")
         return MotionRecord(
             volumes=len(self.poses), mean_framewise_displacement_mm=float(fd.mean()) if fd.size else 0.0,
             max_framewise_displacement_mm=float(fd.max()) if fd.size else 0.0,
             max_translation_mm=float(np.abs(result.translation_mm).max()) if fd.size else 0.0,
             max_rotation_deg=float(np.abs(result.rotation_deg).max()) if fd.size else 0.0,
-            converged_volumes=int(result.converged.sum()), warnings=warnings, method=MOTION_METHOD)
+            converged_volumes=int(result.converged.sum()), warnings=list(result.warnings), method=MOTION_METHOD)
