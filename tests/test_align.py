@@ -21,14 +21,8 @@ from fieldfix.errors import GeometryError, InputError
 from fieldfix.shift import Readout, shift_vox_from_field
 from fieldfix.unwarp import distort, unwarp_volume
 
-RNG = np.random.default_rng(11)
-
-
-@pytest.fixture(autouse=True)
-def _same_draws_in_any_order():
-    """Each test draws the same numbers whichever tests ran before it in its process."""
-    global RNG
-    RNG = np.random.default_rng(11)
+RNG_SEED = 11  # a new RNG from it before each test (tests/conftest.py)
+RNG = np.random.default_rng(RNG_SEED)
 
 
 # ---------------------------------------------------------------------------------------------

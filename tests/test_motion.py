@@ -30,14 +30,8 @@ from fieldfix.motion import (
 from fieldfix.simulate.epi import simulate_epi_run
 from fieldfix.unwarp import distort_with_field, unwarp_volume
 
-RNG = np.random.default_rng(23)
-
-
-@pytest.fixture(autouse=True)
-def _same_draws_in_any_order():
-    """Each test draws the same numbers whichever tests ran before it in its process."""
-    global RNG
-    RNG = np.random.default_rng(23)
+RNG_SEED = 23  # a new RNG from it before each test (tests/conftest.py)
+RNG = np.random.default_rng(RNG_SEED)
 
 SHAPE, VOXEL, CENTRE = (48, 48, 30), 4.0, (0.0, -5.0, 10.0)
 ESP = 5e-4

@@ -228,7 +228,7 @@ def test_slice_positions_are_world_millimetres_and_the_panel_map_is_linear():
 def _lightness(cmap_name, n=33):
     from skimage.color import rgb2lab
 
-    from fieldfix.report.figures._style import colormap
+    from fieldfix.report.figures.style import colormap
 
     rgb = colormap(cmap_name)(np.linspace(0, 1, n))[:, :3]
     return rgb2lab(rgb[None])[0, :, 0]
@@ -238,18 +238,18 @@ def _lightness(cmap_name, n=33):
 def test_diverging_maps_are_symmetric_in_lightness_and_monotone_per_half(name):
     # Perceptual check with an external colour library (scikit-image CIELAB): +x and -x look
     # equally strong, and lightness falls monotonically away from the centre.
-    from fieldfix.report.figures import _style
+    from fieldfix.report.figures import style
 
-    light = _lightness(getattr(_style, name))
+    light = _lightness(getattr(style, name))
     assert np.allclose(light, light[::-1], atol=3.0)
     half = light[: len(light) // 2 + 1]
     assert np.all(np.diff(half) > 0)
 
 
 def test_fraction_map_is_monotone_in_lightness():
-    from fieldfix.report.figures import _style
+    from fieldfix.report.figures import style
 
-    assert np.all(np.diff(_lightness(_style.FRACTION)) > 0)
+    assert np.all(np.diff(_lightness(style.FRACTION)) > 0)
 
 
 def test_scales_fit_the_data():

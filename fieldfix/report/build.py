@@ -15,7 +15,7 @@ from pathlib import Path
 from ..errors import OutputError
 from ..outputs import CAUTION, DemoChecks, ReportFiles, ReportSummary
 from .checks import collect_warnings
-from .figures import _style
+from .figures import style
 from .figures.charts import GroupRow, group_figure
 from .headline import headline
 from .measure import measure_dropout, measure_field_map, measure_plan
@@ -111,7 +111,7 @@ def _group_picture(record: ReportSummary, dpi: int) -> Picture | None:
     fig = group_figure(rows)
     if fig is None:
         return None
-    return Picture(id="group", png=_style.figure_png(fig, dpi=dpi), alt="runs across subjects",
+    return Picture(id="group", png=style.figure_png(fig, dpi=dpi), alt="runs across subjects",
                    caption="One dot per run (dropout: per prediction), by subject.")
 
 

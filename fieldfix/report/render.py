@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .figures import _style
+from .figures import style
 from .figures.charts import field_histogram, profile_figure, tradeoff_figure
 from .figures.paper import PaperPanel, summary_figure
 from .figures.panels import Layers, Scale, colourbar_png, panel_png, pick_slices
@@ -73,7 +73,7 @@ def _panel(grid, volume, k, scale, layers, alt, dpi) -> Panel:
 def _run_columns(view) -> list:
     """(title, volume, scale, layers) of each column of a run's grid."""
     lo, hi = view.grey
-    grey = Scale(_style.GREY, lo, hi)
+    grey = Scale(style.GREY, lo, hi)
     epi = Layers(edges=view.edges, line=view.line)
     columns = []
     if view.before is not None:
@@ -82,17 +82,17 @@ def _run_columns(view) -> list:
     if view.before is not None:
         limit = view.difference_limit
         columns.append(("After \u2212 before", view.after - view.before,
-                        Scale(_style.SIGNED, -limit, limit, label="intensity difference (EPI units)"),
+                        Scale(style.SIGNED, -limit, limit, label="intensity difference (EPI units)"),
                         Layers(mask=view.mask, line=view.line)))
     if view.shift_mm is not None:
         limit = view.shift_limit_mm
         columns.append(("Shift", view.shift_mm,
-                        Scale(_style.SIGNED, -limit, limit, label=f"shift (mm, + towards {view.towards})"),
+                        Scale(style.SIGNED, -limit, limit, label=f"shift (mm, + towards {view.towards})"),
                         Layers(mask=view.mask, line=view.line)))
     if view.jacobian is not None:
         k = view.jacobian_k
         columns.append(("Jacobian", view.jacobian,
-                        Scale(_style.RATIO, 1.0 / k, k, log=True, label="intensity factor (log scale, 1 = none)",
+                        Scale(style.RATIO, 1.0 / k, k, log=True, label="intensity factor (log scale, 1 = none)",
                               ticks=(round(1.0 / k, 3), 1.0, k)),
                         Layers(mask=view.mask, overlay=view.fold)))
     return columns
@@ -124,7 +124,7 @@ def run_grid(view, index: int, name: str, dpi: int) -> PanelGrid:
 def field_grid(view, index: int, name: str, dpi: int) -> PanelGrid:
     """The field map in four slices, colour scale fitted to the data."""
     limit = view.limit_hz
-    scale = Scale(_style.SIGNED, -limit, limit, label="B0 field (Hz)")
+    scale = Scale(style.SIGNED, -limit, limit, label="B0 field (Hz)")
     layers = Layers(mask=view.mask)
     panels = [_panel(view.grid, view.field_hz, k, scale, layers, f"B0 field, {name}, {view.grid.slice_label(k)}", dpi)
               for k in view.slices]
@@ -144,7 +144,7 @@ def field_picture(view, index: int, dpi: int) -> Picture | None:
         where = f"dashed: the unaliased range \u00b1{view.unaliased_hz:.1f} Hz"
     else:
         where = f"the unaliased range \u00b1{view.unaliased_hz:.1f} Hz lies beyond this plot"
-    return Picture(id=f"field{index}-histogram", png=_style.figure_png(fig, dpi=dpi), alt="field histogram",
+    return Picture(id=f"field{index}-histogram", png=style.figure_png(fig, dpi=dpi), alt="field histogram",
                    caption=f"Voxels inside the mask by field (values beyond \u00b1{span:g} Hz drawn at the edge); "
                            f"{where}.")
 
@@ -153,7 +153,7 @@ def dropout_grid(view, index: int, name: str, dpi: int) -> PanelGrid:
     """Retention (and BOLD sensitivity) in four slices, one of them with the most loss."""
     rows = []
     for label, values in view.maps:
-        scale = Scale(_style.FRACTION, 0.0, 1.0, label=f"{label} (fraction, 0\u20131)")
+        scale = Scale(style.FRACTION, 0.0, 1.0, label=f"{label} (fraction, 0\u20131)")
         panels = [_panel(view.grid, values, k, scale, Layers(mask=view.mask),
                          f"{label}, {name}, {view.grid.slice_label(k)}", dpi) for k in view.slices]
         rows.append(GridRow(label, panels, colourbar_png(scale, dpi=dpi)))
@@ -165,7 +165,7 @@ def dropout_grid(view, index: int, name: str, dpi: int) -> PanelGrid:
 def profile_picture(view, index: int, dpi: int) -> Picture | None:
     if view.profile is None:
         return None
-    return Picture(id=f"run{index}-profile", png=_style.figure_png(profile_figure(view.profile), dpi=dpi),
+    return Picture(id=f"run{index}-profile", png=style.figure_png(profile_figure(view.profile), dpi=dpi),
                    alt="line profile",
                    caption="Each curve is scaled to its own image's 99th percentile inside the mask; edges in the "
                            "right place line up with the dashed field-map magnitude.")
@@ -175,7 +175,7 @@ def plan_picture(view, record, index: int, dpi: int) -> Picture | None:
     if not view.rows:
         return None
     fig = tradeoff_figure(view.rows, recommended=view.recommended)
-    return Picture(id=f"plan{index}", png=_style.figure_png(fig, dpi=dpi), alt="protocol trade-offs",
+    return Picture(id=f"plan{index}", png=style.figure_png(fig, dpi=dpi), alt="protocol trade-offs",
                    caption=f"Predicted median {METRIC_WORDS.get(record.metric, record.metric)} in the region of "
                            f"interest for "
                            f"{record.protocols} protocols (ringed: the recommended one).")
@@ -193,31 +193,31 @@ def paper_panels(field_views, run_views, dropout_views) -> list[PaperPanel]:
         v = run_views[0]
         k = v.line[1][2] if v.line is not None else v.slices[len(v.slices) // 2]
         z_mm = float(v.grid.slice_centre_mm(k)[2])
-        grey = Scale(_style.GREY, *v.grey)
+        grey = Scale(style.GREY, *v.grey)
         if v.before is not None:
             panels.append(PaperPanel("EPI before correction", v.grid, v.before, k, grey, Layers(edges=v.edges)))
         panels.append(PaperPanel("EPI after correction", v.grid, v.after, k, grey, Layers(edges=v.edges)))
         if v.shift_mm is not None:
             panels.append(PaperPanel("Shift", v.grid, v.shift_mm, k, Scale(
-                _style.SIGNED, -v.shift_limit_mm, v.shift_limit_mm, label=f"mm, + towards {v.towards}"),
+                style.SIGNED, -v.shift_limit_mm, v.shift_limit_mm, label=f"mm, + towards {v.towards}"),
                 Layers(mask=v.mask)))
     if field_views:
         v = field_views[0]
         k = _nearest_slice(v.grid, z_mm) if z_mm is not None else \
             pick_slices(v.mask, 1, focus=v.field_hz, n_z=v.field_hz.shape[2])[0]
         panels.insert(0, PaperPanel("B0 field", v.grid, v.field_hz, k,
-                                    Scale(_style.SIGNED, -v.limit_hz, v.limit_hz, label="Hz"), Layers(mask=v.mask)))
+                                    Scale(style.SIGNED, -v.limit_hz, v.limit_hz, label="Hz"), Layers(mask=v.mask)))
     if dropout_views:
         v = dropout_views[0]
         label, values = v.maps[0]
         lost = (values < v.threshold) & (v.mask if v.mask is not None else True)
         k = pick_slices(v.mask, 1, focus=lost, n_z=values.shape[2], count=True)[0]
         panels.append(PaperPanel(f"Predicted {label}", v.grid, values, k,
-                                 Scale(_style.FRACTION, 0.0, 1.0, label="fraction of signal"), Layers(mask=v.mask)))
+                                 Scale(style.FRACTION, 0.0, 1.0, label="fraction of signal"), Layers(mask=v.mask)))
     return panels[:6]
 
 
 def paper_png(panels, title: str, dpi: int) -> bytes | None:
     if not panels:
         return None
-    return _style.figure_png(summary_figure(panels, title=title), dpi=max(dpi, 150))
+    return style.figure_png(summary_figure(panels, title=title), dpi=max(dpi, 150))

@@ -7,7 +7,7 @@
 * :mod:`.paper`: the report's figure for papers (:func:`summary_figure`).
 """
 
-from ._style import figure_png, literal
+from .style import figure_png, literal
 from .charts import GroupRow, Profile, field_histogram, group_figure, profile_figure, tradeoff_figure
 from .paper import PaperPanel, summary_figure
 from .panels import Layers, Scale, colourbar_png, draw_axial, panel_figure, panel_png, pick_slices, reference_edges

@@ -19,7 +19,7 @@ from typing import Sequence
 
 import numpy as np
 
-from ._style import LINE_COLOURS, literal, new_figure, text_literal
+from .style import LINE_COLOURS, literal, new_figure, text_literal
 
 __all__ = ["field_histogram", "Profile", "profile_figure", "tradeoff_figure", "GroupRow", "group_figure"]
 

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..orientation import DisplayGrid
-from ._style import BACKGROUND, EDGE_COLOUR, FOLD_COLOUR, PROFILE_COLOUR, colormap, figure_png, new_figure
+from .style import BACKGROUND, EDGE_COLOUR, FOLD_COLOUR, PROFILE_COLOUR, colormap, figure_png, new_figure
 
 __all__ = ["Scale", "Layers", "panel_rgba", "draw_axial", "panel_figure", "panel_png", "colourbar_png",
            "reference_edges", "pick_slices", "worst_slices", "PANEL_PX", "EDGE_UPSAMPLE"]

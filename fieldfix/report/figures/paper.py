@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..orientation import DisplayGrid
-from ._style import new_figure
+from .style import new_figure
 from .panels import Layers, Scale, draw_axial
 
 __all__ = ["PaperPanel", "summary_figure"]
