@@ -69,10 +69,10 @@ def run(quick: bool) -> list[dict]:
                      extra={"protocols": n_protocols, "brain_voxels": int(brain.sum()), "roi_voxels": int(roi.sum()),
                             "grid": "x".join(map(str, shape))})
     fast, ref = record.pop("_results")
-    by_name = {r["protocol"]: r for r in ref}
+    by_name = {r.protocol: r for r in ref}
     record["max_abs_median_difference"] = max(
-        max(abs(r["roi_median"] - by_name[r["protocol"]]["roi_median"]),
-            abs(r["brain_median"] - by_name[r["protocol"]]["brain_median"])) for r in fast)
+        max(abs(r.roi_median - by_name[r.protocol].roi_median),
+            abs(r.brain_median - by_name[r.protocol].brain_median)) for r in fast)
     record["absolute_goal_met"] = bool(record["ours_s"] < 30.0)
     record["met"] = bool(record["met"] and record["absolute_goal_met"])
     return [record]

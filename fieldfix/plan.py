@@ -44,6 +44,7 @@ from .dropout import (
     zshim_cyc_per_mm,
 )
 from .errors import GeometryError, InputError
+from .outputs.plan import PlanRow
 from .plan_merit import DEFAULT_MAX_TR_S, DEFAULT_OVERHEAD_S, Physiology, bold_merit, readout_s, slice_time_s
 
 __all__ = [
@@ -63,13 +64,13 @@ __all__ = [
 _WORLD_WORDS = {"x": ("left", "right"), "y": ("posterior", "anterior"), "z": ("inferior", "superior")}
 
 #: Columns of the ranked table, in order.
-CSV_COLUMNS = ("rank", "thickness_mm", "te_ms", "tilt_deg", "pe_polarity", "pe_direction", "zshim_mtms_per_m",
+CSV_COLUMNS = ("rank", "thickness_mm", "te_s", "tilt_deg", "pe_polarity", "pe_direction", "zshim_mtms_per_m",
                "metric", "roi_median", "roi_percent_below", "brain_median", "brain_percent_below", "merit", "tsnr",
                "n_slices", "slice_time_s", "tr_s", "fits_tr")
 
 #: The columns in words, with units (the figure's table and the README).
 COLUMN_WORDS = {
-    "rank": "rank (1 = recommended order)", "thickness_mm": "slice thickness (mm)", "te_ms": "echo time (ms)",
+    "rank": "rank (1 = recommended order)", "thickness_mm": "slice thickness (mm)", "te_s": "echo time (s)",
     "tilt_deg": "slice tilt (degrees)", "pe_polarity": "phase-encode polarity (+/-)",
     "pe_direction": "phase-encode direction (world words)", "zshim_mtms_per_m": "z-shim moment (mT*ms/m)",
     "metric": "signal metric used", "roi_median": "ROI median of the metric (0-1)",
@@ -352,7 +353,7 @@ def _kernel_stats(b0_hz, affine, roi, brain, spec: SweepSpec, protocols, frames,
 
 
 def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mask: np.ndarray | None = None,
-          spec: SweepSpec | None = None, *, engine: str = "numba", **changes) -> list[dict]:
+          spec: SweepSpec | None = None, *, engine: str = "numba", **changes) -> list[PlanRow]:
     """Evaluate a sweep of protocols over a B0 map and rank them.
 
     Parameters
@@ -370,15 +371,15 @@ def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mas
 
     Returns
     -------
-    list of dict, one per protocol, ranked (see :func:`rank`); keys in :data:`CSV_COLUMNS` and
-    ``protocol``, ``te_s``, ``pe_sign``, ``coverage_mm``, ``slice_time_s``.
+    list of :class:`fieldfix.outputs.PlanRow`, one per protocol, ranked (see :func:`rank`);
+    :data:`CSV_COLUMNS` are the fields ``plan.csv`` shows.
 
     Example
     -------
     >>> m = np.zeros((8, 8, 8), bool); m[2:6, 2:6, 2:6] = True
     >>> rows = sweep(np.zeros((8, 8, 8)), np.eye(4) * 3, m, m, te_s=[0.03, 0.045], echo_spacing_s=5e-4)
-    >>> rows[0]["te_ms"], rows[0]["merit"]
-    (45.0, 1.0)
+    >>> rows[0].te_s, rows[0].merit
+    (0.045, 1.0)
     """
     spec = dataclasses.replace(spec or SweepSpec(), **changes)
     if engine not in ("numba", "numpy"):
@@ -397,10 +398,10 @@ def sweep(b0_hz: np.ndarray, affine: np.ndarray, roi_mask: np.ndarray, brain_mas
     stats = _kernel_stats(b0_hz, affine, roi, brain, spec, protocols, frames, tilts, engine)
     extents = mask_extent_mm(brain if spec.coverage == "brain" else roi, affine, np.array([f.normal for f in frames]))
     rows = _rows(protocols, stats, [float(extents[tilts.index(p.tilt_deg)]) for p in protocols], spec)
-    return _rank_in_place(rows, spec.ranking)
+    return rank(rows, spec.ranking)
 
 
-def _rows(protocols: list[Protocol], stats: np.ndarray, extents_mm: list[float], spec: SweepSpec) -> list[dict]:
+def _rows(protocols: list[Protocol], stats: np.ndarray, extents_mm: list[float], spec: SweepSpec) -> list[PlanRow]:
     """One row per protocol: its statistics, timing, and the relative BOLD figure of merit with the
     modelled tSNR. Values shared by many protocols (slice counts, TRs, words) are worked out once."""
     slice_s = {te: float(spec.slice_times_s(te)) for te in spec.te_s}
@@ -419,45 +420,37 @@ def _rows(protocols: list[Protocol], stats: np.ndarray, extents_mm: list[float],
     merit, tsnr = bold_merit(stats[:, 0], [p.te_s for p in protocols],
                              [p.thickness_mm * spec.inplane_mm ** 2 for p in protocols], readout, trs, spec.physiology)
     merit = merit / (float(merit.max()) or 1.0)
-    te_ms = {te: float(f"{te * 1e3:.9g}") for te in spec.te_s}
     words = {s: ({1: "+", -1: "-", 0: "none"}[s], _pe_direction(spec.pe_world_axis, s)) for s in (1, -1, 0)}
     metric = "bold_sensitivity" if spec.echo_spacing_s is not None else "retention"
     limit = math.inf if spec.max_tr_s is None else spec.max_tr_s + 1e-12
-    return [{
-        "protocol": p.label(), "thickness_mm": p.thickness_mm, "te_s": p.te_s, "te_ms": te_ms[p.te_s],
-        "tilt_deg": p.tilt_deg, "pe_sign": p.pe_sign, "pe_polarity": words[p.pe_sign][0],
-        "pe_direction": words[p.pe_sign][1], "zshim_mtms_per_m": p.zshim_mtms_per_m, "metric": metric,
-        "roi_median": st[0], "roi_percent_below": st[1], "brain_median": st[2], "brain_percent_below": st[3],
-        "coverage_mm": extent, "n_slices": n, "slice_time_s": slice_s[p.te_s], "tr_s": tr, "fits_tr": tr <= limit,
-        "merit": float(f"{m:.9g}"), "tsnr": float(f"{ts:.6g}"), "readout_s": readout,
-    } for p, st, extent, n, tr, m, ts in zip(protocols, stats.tolist(), extents_mm, counts, trs, merit.tolist(),
+    return [PlanRow(
+        protocol=p.label(), thickness_mm=p.thickness_mm, te_s=p.te_s, tilt_deg=p.tilt_deg, pe_sign=p.pe_sign,
+        pe_polarity=words[p.pe_sign][0], pe_direction=words[p.pe_sign][1], zshim_mtms_per_m=p.zshim_mtms_per_m,
+        metric=metric, roi_median=st[0], roi_percent_below=st[1], brain_median=st[2], brain_percent_below=st[3],
+        coverage_mm=extent, n_slices=n, slice_time_s=slice_s[p.te_s], tr_s=tr, fits_tr=tr <= limit,
+        merit=float(f"{m:.9g}"), tsnr=float(f"{ts:.6g}"), readout_s=readout, rank=0,
+    ) for p, st, extent, n, tr, m, ts in zip(protocols, stats.tolist(), extents_mm, counts, trs, merit.tolist(),
                                               tsnr.tolist())]
 
 
-def _rank_key(row: dict, ranking: str = "retention"):
-    first = (-row["merit"],) if ranking == "efficiency" else ()
-    return first + (-row["roi_median"], row["roi_percent_below"], -row["brain_median"], row["brain_percent_below"],
-                    row["tr_s"], row["thickness_mm"], row["te_s"], abs(row["tilt_deg"]))
+def _rank_key(row: PlanRow, ranking: str = "retention"):
+    first = (-row.merit,) if ranking == "efficiency" else ()
+    return first + (-row.roi_median, row.roi_percent_below, -row.brain_median, row.brain_percent_below,
+                    row.tr_s, row.thickness_mm, row.te_s, abs(row.tilt_deg))
 
 
-def rank(rows: list[dict], ranking: str = "retention") -> list[dict]:
+def rank(rows: list[PlanRow], ranking: str = "retention") -> list[PlanRow]:
     """Rows sorted best first, each with its 1-based ``rank``.
 
     ``ranking='retention'``: ROI median (descending), ROI percentage under the threshold, brain
     median, brain percentage, TR. ``'efficiency'``: the figure of merit first, then the same.
     """
-    return _rank_in_place([dict(r) for r in rows], ranking)
+    ordered = sorted(rows, key=lambda r: _rank_key(r, ranking))
+    return [dataclasses.replace(row, rank=i) for i, row in enumerate(ordered, 1)]
 
 
-def _rank_in_place(rows: list[dict], ranking: str) -> list[dict]:
-    rows.sort(key=lambda r: _rank_key(r, ranking))
-    for i, row in enumerate(rows, 1):
-        row["rank"] = i
-    return rows
-
-
-def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0.5,
-              ranking: str = "retention") -> tuple[dict, str]:
+def recommend(rows: list[PlanRow], *, tolerance: float = 0.01, threshold: float = 0.5,
+              ranking: str = "retention") -> tuple[PlanRow, str]:
     """Pick one protocol and give the reason in one sentence.
 
     Among rows that fit the TR limit (all rows if none does), those whose ranked figure (ROI
@@ -471,40 +464,40 @@ def recommend(rows: list[dict], *, tolerance: float = 0.01, threshold: float = 0
     """
     if not rows:
         raise InputError("no protocols to choose from")
-    pool = [r for r in rows if r.get("fits_tr", True)]
+    pool = [r for r in rows if r.fits_tr]
     limited = bool(pool) and len(pool) < len(rows)
     pool = pool or list(rows)
-    key = "merit" if ranking == "efficiency" else "roi_median"
-    best = max(r[key] for r in pool)
-    candidates = [r for r in pool if r[key] >= best - tolerance]
-    choice = min(candidates, key=lambda r: (r["brain_percent_below"], r["tr_s"], -r[key], _rank_key(r, ranking)))
-    what = "BOLD sensitivity" if choice["metric"] == "bold_sensitivity" else "signal retention"
-    lead = (f"{choice['protocol']} has {choice['merit']:.2f} of the best BOLD contrast-to-noise per unit time "
-            f"(modelled tSNR {choice['tsnr']:.0f}) with" if ranking == "efficiency" else f"{choice['protocol']} keeps")
-    reason = (f"{lead} a median {what} of {choice['roi_median']:.2f} in the region of interest "
-              f"({choice['roi_percent_below']:.1f}% of its voxels under {threshold:g}), within {tolerance:g} of the "
+    figure = (lambda r: r.merit) if ranking == "efficiency" else (lambda r: r.roi_median)
+    best = max(figure(r) for r in pool)
+    candidates = [r for r in pool if figure(r) >= best - tolerance]
+    choice = min(candidates, key=lambda r: (r.brain_percent_below, r.tr_s, -figure(r), _rank_key(r, ranking)))
+    what = "BOLD sensitivity" if choice.metric == "bold_sensitivity" else "signal retention"
+    lead = (f"{choice.protocol} has {choice.merit:.2f} of the best BOLD contrast-to-noise per unit time "
+            f"(modelled tSNR {choice.tsnr:.0f}) with" if ranking == "efficiency" else f"{choice.protocol} keeps")
+    reason = (f"{lead} a median {what} of {choice.roi_median:.2f} in the region of interest "
+              f"({choice.roi_percent_below:.1f}% of its voxels under {threshold:g}), within {tolerance:g} of the "
               f"best of {len(pool)} {'protocols fitting the TR limit' if limited else 'protocols'}, with the fewest "
-              f"whole-brain voxels under {threshold:g} ({choice['brain_percent_below']:.1f}%) among those and "
-              f"{choice['n_slices']} slices at TR {choice['tr_s']:.2f} s.")
-    if not any(r.get("fits_tr", True) for r in rows):
+              f"whole-brain voxels under {threshold:g} ({choice.brain_percent_below:.1f}%) among those and "
+              f"{choice.n_slices} slices at TR {choice.tr_s:.2f} s.")
+    if not any(r.fits_tr for r in rows):
         reason += " No protocol fits the TR limit: fewer slices, multiband or a longer limit would."
     return choice, reason
 
 # --------------------------------------------------------------------------- figure
 
 
-def plot_tradeoffs(rows: list[dict], path=None, *, recommended: dict | None = None, title: str | None = None,
+def plot_tradeoffs(rows: list[PlanRow], path=None, *, recommended: PlanRow | None = None, title: str | None = None,
                    ranking: str = "retention", modelled: bool = False):
     """Trade-off figure of a sweep (:func:`fieldfix.report.figures.tradeoff_figure`), written
     as a PNG to `path` when given.
 
     Parameters
     ----------
-    rows : list of dict
+    rows : list of PlanRow
         Output of :func:`sweep`.
     path : str or Path, optional
         Where to write a PNG.
-    recommended : dict, optional
+    recommended : PlanRow, optional
         Row to highlight (default: the first row).
     ranking : {'retention', 'efficiency'}
         The figure plotted: ROI median of the metric, or the relative BOLD figure of merit.

@@ -126,3 +126,15 @@ def write_outputs(root: str | Path, *, peak_hz: float = 240.0, wrong_polarity: b
     return {"out": out, "stem": stem, "jobs": jobs, "paths": paths, "fieldmap_out": fm_out,
             "max_abs_shift_vox": float(np.abs(shift[head]).max()),
             "field_p50_hz": float(np.percentile(field_hz(peak_hz)[head], 50))}
+
+
+def plan_row(**fields):
+    """A :class:`fieldfix.outputs.PlanRow` for hand-made tables: the given fields over plain
+    defaults (one 3 mm, 30 ms protocol with every voxel kept)."""
+    from fieldfix.outputs import PlanRow
+
+    row = dict(protocol="p", thickness_mm=3.0, te_s=0.03, tilt_deg=0.0, pe_sign=0, pe_polarity="none",
+               pe_direction=None, zshim_mtms_per_m=0.0, metric="retention", roi_median=1.0, roi_percent_below=0.0,
+               brain_median=1.0, brain_percent_below=0.0, coverage_mm=120.0, n_slices=40, slice_time_s=0.05,
+               tr_s=2.0, fits_tr=True, merit=1.0, tsnr=100.0, readout_s=0.03, rank=0)
+    return PlanRow(**{**row, **fields})

@@ -96,6 +96,20 @@ def test_a_renamed_or_missing_key_is_refused_naming_file_and_key(all_jobs, tmp_p
         assert isinstance(info.value, InputError)
 
 
+def test_a_plan_row_with_a_renamed_key_is_refused(all_jobs, tmp_path):
+    # The table's rows are typed as well: a row key renamed by a writer is an error, not a
+    # column that silently disappears from the report's trade-off figure.
+    out, jobs = all_jobs
+    data = json.loads((out / jobs["plan"].outputs.json).read_text())
+    assert set(data["rows"][0]) >= set(data["columns"])  # every CSV column is a row field
+    row = {("echo_time_s" if k == "te_s" else k): v for k, v in data["rows"][1].items()}
+    path = tmp_path / "renamed_plan.json"
+    path.write_text(json.dumps(dict(data, rows=[data["rows"][0], row])))
+    with pytest.raises(SummaryError) as info:
+        PlanSummary.read(path)
+    assert str(path) in str(info.value) and "rows[1]" in str(info.value) and "echo_time_s" in str(info.value)
+
+
 def test_one_name_per_quantity_across_records():
     """The share of voxels under the threshold has one name in every record that reports it."""
     from fieldfix.outputs import DemoChecks, MapStatistics

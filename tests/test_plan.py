@@ -9,6 +9,7 @@ import pytest
 from fieldfix import _dropout_kernels as kernels
 from fieldfix import dropout as dp
 from fieldfix import plan
+from _report_fixtures import plan_row
 from fieldfix.errors import InputError
 
 GAMMA_B0_3T_HZ = 42.577e6 * 3.0  # proton Larmor frequency at 3 T (from memory)
@@ -87,14 +88,14 @@ def test_planner_picks_thinner_slice_and_echo_earlier_polarity_above_air_cavity(
     # whose k-space traversal adds to the in-plane gradient, i.e. sign(polarity) = sign(dF/dy).
     earlier = 1 if g[1] > 0 else -1
     best = rows[0]
-    assert best["thickness_mm"] == 2.0
-    assert best["pe_sign"] == earlier
+    assert best.thickness_mm == 2.0
+    assert best.pe_sign == earlier
     choice, reason = plan.recommend(rows, tolerance=0.0)
-    assert choice["thickness_mm"] == 2.0 and choice["pe_sign"] == earlier
+    assert choice.thickness_mm == 2.0 and choice.pe_sign == earlier
     assert reason.count(".") >= 1 and "2 mm" in reason
     # thinner slices keep more in the ROI for either polarity (common practice, no source)
     for sign in (1, -1):
-        med = [next(r["roi_median"] for r in rows if r["thickness_mm"] == d and r["pe_sign"] == sign)
+        med = [next(r.roi_median for r in rows if r.thickness_mm == d and r.pe_sign == sign)
                for d in (2.0, 3.0, 4.0)]
         assert med[0] > med[1] > med[2]
 
@@ -102,9 +103,9 @@ def test_planner_picks_thinner_slice_and_echo_earlier_polarity_above_air_cavity(
 def test_planner_longer_te_loses_more_above_air_cavity():
     affine, xyz, b0, roi, brain, *_ = _sphere_scenario()
     rows = plan.sweep(b0, affine, roi, brain, thickness_mm=[3.0], te_s=[0.02, 0.03, 0.04], tilt_deg=[0.0])
-    med = {r["te_ms"]: r["roi_median"] for r in rows}
-    assert med[20.0] > med[30.0] > med[40.0]
-    assert rows[0]["te_ms"] == 20.0 and rows[0]["metric"] == "retention"
+    med = {r.te_s: r.roi_median for r in rows}
+    assert med[0.02] > med[0.03] > med[0.04]
+    assert rows[0].te_s == 0.02 and rows[0].metric == "retention"
 
 
 def test_planner_picks_tilt_perpendicular_to_gradient():
@@ -116,11 +117,11 @@ def test_planner_picks_tilt_perpendicular_to_gradient():
     roi = np.zeros(b0.shape, bool)
     roi[4:8, 4:8, 4:8] = True
     rows = plan.sweep(b0, affine, roi, thickness_mm=[3.0], te_s=[0.03], tilt_deg=np.arange(-30, 31, 10.0))
-    assert rows[0]["tilt_deg"] == 20.0
-    assert rows[0]["roi_median"] == pytest.approx(1.0, abs=1e-6)
+    assert rows[0].tilt_deg == 20.0
+    assert rows[0].roi_median == pytest.approx(1.0, abs=1e-6)
     expected = {t: abs(np.sinc(8.0 * np.sin(np.deg2rad(20 - t)) * 0.03 * 3.0)) for t in range(-30, 31, 10)}
     for r in rows:
-        assert r["roi_median"] == pytest.approx(expected[int(r["tilt_deg"])], abs=1e-5)
+        assert r.roi_median == pytest.approx(expected[int(r.tilt_deg)], abs=1e-5)
 
 
 def _random_smooth_inputs(n_tilts=3, n_vox=3001, seed=1):
@@ -255,12 +256,12 @@ def test_numba_and_numpy_engines_agree_through_sweep():
               partial_fourier=0.75, zshim_mtms_per_m=(0.0, -0.5), profile="gaussian")
     a = plan.sweep(b0, affine, roi, brain, engine="numba", **kw)
     b = plan.sweep(b0, affine, roi, brain, engine="numpy", **kw)
-    assert [r["protocol"] for r in a] == [r["protocol"] for r in b] or all(
-        abs(x["roi_median"] - y["roi_median"]) < 1e-5 for x, y in zip(a, b))
-    key = {r["protocol"]: r for r in b}
+    assert [r.protocol for r in a] == [r.protocol for r in b] or all(
+        abs(x.roi_median - y.roi_median) < 1e-5 for x, y in zip(a, b))
+    key = {r.protocol: r for r in b}
     for r in a:
-        assert r["roi_median"] == pytest.approx(key[r["protocol"]]["roi_median"], abs=2e-6)
-        assert r["brain_median"] == pytest.approx(key[r["protocol"]]["brain_median"], abs=2e-6)
+        assert r.roi_median == pytest.approx(key[r.protocol].roi_median, abs=2e-6)
+        assert r.brain_median == pytest.approx(key[r.protocol].brain_median, abs=2e-6)
 
 
 def test_mask_extent_equals_brute_force_projection_of_every_voxel():
@@ -297,29 +298,28 @@ def test_sweep_rows_scan_time_and_tr_limit():
     affine, xyz, b0, roi, brain, *_ = _sphere_scenario()
     rows = plan.sweep(b0, affine, roi, brain, thickness_mm=[2.0, 3.0], te_s=[0.03], tilt_deg=[0.0],
                       time_per_slice_s=0.05, slice_gap_mm=0.0, max_tr_s=2.0)
-    by = {r["thickness_mm"]: r for r in rows}
+    by = {r.thickness_mm: r for r in rows}
     extent = plan.mask_extent_mm(brain | roi, affine, np.array([0, 0, 1.0]))
-    assert by[2.0]["n_slices"] == int(np.ceil(extent / 2.0 - 1e-9))
-    assert by[3.0]["n_slices"] < by[2.0]["n_slices"]
-    assert by[2.0]["tr_s"] == pytest.approx(by[2.0]["n_slices"] * 0.05)
-    assert by[2.0]["fits_tr"] == (by[2.0]["tr_s"] <= 2.0)
+    assert by[2.0].n_slices == int(np.ceil(extent / 2.0 - 1e-9))
+    assert by[3.0].n_slices < by[2.0].n_slices
+    assert by[2.0].tr_s == pytest.approx(by[2.0].n_slices * 0.05)
+    assert by[2.0].fits_tr == (by[2.0].tr_s <= 2.0)
     choice, reason = plan.recommend(rows, tolerance=0.5)
-    assert choice["fits_tr"]
-    assert [r["rank"] for r in rows] == list(range(1, len(rows) + 1))
+    assert choice.fits_tr
+    assert [r.rank for r in rows] == list(range(1, len(rows) + 1))
 
 
 def test_recommend_prefers_fewer_brain_losses_then_shorter_tr():
-    base = dict(metric="retention", roi_percent_below=0.0, brain_median=0.9, te_s=0.03, tilt_deg=0.0, pe_sign=0,
-                n_slices=40, fits_tr=True)
+    base = dict(brain_median=0.9, n_slices=40)
     rows = plan.rank([
-        dict(base, protocol="a", thickness_mm=2.0, roi_median=0.950, brain_percent_below=3.0, tr_s=3.0),
-        dict(base, protocol="b", thickness_mm=3.0, roi_median=0.945, brain_percent_below=3.0, tr_s=2.0),
-        dict(base, protocol="c", thickness_mm=4.0, roi_median=0.900, brain_percent_below=1.0, tr_s=1.5),
+        plan_row(**base, protocol="a", thickness_mm=2.0, roi_median=0.950, brain_percent_below=3.0, tr_s=3.0),
+        plan_row(**base, protocol="b", thickness_mm=3.0, roi_median=0.945, brain_percent_below=3.0, tr_s=2.0),
+        plan_row(**base, protocol="c", thickness_mm=4.0, roi_median=0.900, brain_percent_below=1.0, tr_s=1.5),
     ])
-    assert rows[0]["protocol"] == "a"
-    assert plan.recommend(rows, tolerance=0.01)[0]["protocol"] == "b"
-    assert plan.recommend(rows, tolerance=0.0)[0]["protocol"] == "a"
-    assert plan.recommend(rows, tolerance=0.1)[0]["protocol"] == "c"
+    assert rows[0].protocol == "a"
+    assert plan.recommend(rows, tolerance=0.01)[0].protocol == "b"
+    assert plan.recommend(rows, tolerance=0.0)[0].protocol == "a"
+    assert plan.recommend(rows, tolerance=0.1)[0].protocol == "c"
 
 
 def test_plot_tradeoffs_writes_png(tmp_path):
@@ -406,7 +406,7 @@ def test_run_plan_honours_the_b0_maps_units(tmp_path):
     in_rads = run_plan(rads, tmp_path / "rads", **options)
     assert in_rads.recommended.protocol == in_hz.recommended.protocol
     for a, b in zip(in_hz.rows, in_rads.rows):
-        assert a["protocol"] == b["protocol"] and abs(a["roi_median"] - b["roi_median"]) < 1e-5
+        assert a.protocol == b.protocol and abs(a.roi_median - b.roi_median) < 1e-5
 
 
 def test_cli_plan_end_to_end(tmp_path):

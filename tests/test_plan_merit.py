@@ -62,20 +62,20 @@ def test_no_field_thermal_noise_fixed_tr_recommends_te_at_t2star():
     spec = plan.SweepSpec(thickness_mm=(3.0,), te_s=tuple(TES), echo_spacing_s=5e-4, fixed_tr_s=2.5,
                           physiology=pm.Physiology(t2star_s=T2STAR, lambda_physio=0.0))
     rows = plan.sweep(flat, affine, roi, brain, spec)
-    assert rows[0]["te_s"] == T2STAR
+    assert rows[0].te_s == T2STAR
     choice, _ = plan.recommend(rows, tolerance=0.0, ranking=spec.ranking)
-    assert choice["te_s"] == T2STAR
+    assert choice.te_s == T2STAR
     # the figure of merit is TE exp(-TE/T2*) up to a constant when only the echo time changes
-    expected = pm.bold_contrast(np.array([r["te_s"] for r in rows]), T2STAR)
-    assert np.allclose([r["merit"] for r in rows], expected / expected.max())
+    expected = pm.bold_contrast(np.array([r.te_s for r in rows]), T2STAR)
+    assert np.allclose([r.merit for r in rows], expected / expected.max())
 
 
 def test_no_field_default_model_prefers_thick_slices_and_te_near_t2star():
     affine, flat, _, roi, brain = _flat_scene()
     rows = plan.sweep(flat, affine, roi, brain, thickness_mm=[2.0, 3.0, 4.0], te_s=TES, echo_spacing_s=5e-4)
     choice, reason = plan.recommend(rows, ranking="efficiency")
-    assert choice["thickness_mm"] == 4.0
-    assert 0.8 * T2STAR <= choice["te_s"] <= 1.4 * T2STAR
+    assert choice.thickness_mm == 4.0
+    assert 0.8 * T2STAR <= choice.te_s <= 1.4 * T2STAR
     assert "BOLD contrast-to-noise" in reason
 
 
@@ -85,7 +85,7 @@ def test_physiological_noise_moves_the_optimum_to_longer_te():
     for lam in (0.0, 0.05):
         rows = plan.sweep(flat, affine, roi, brain, thickness_mm=[3.0], te_s=TES, echo_spacing_s=5e-4, fixed_tr_s=2.5,
                           physiology=pm.Physiology(lambda_physio=lam))
-        best[lam] = rows[0]["te_s"]
+        best[lam] = rows[0].te_s
     assert best[0.05] > best[0.0] == T2STAR
 
 
@@ -94,8 +94,8 @@ def test_beside_air_cavity_the_recommendation_moves_to_shorter_te():
     kwargs = dict(thickness_mm=[2.0, 3.0, 4.0], te_s=TES, echo_spacing_s=5e-4)
     calm = plan.recommend(plan.sweep(flat, affine, roi, brain, **kwargs), ranking="efficiency")[0]
     cavity = plan.recommend(plan.sweep(b0, affine, roi, brain, **kwargs), ranking="efficiency")[0]
-    assert cavity["te_s"] < calm["te_s"]
-    assert cavity["thickness_mm"] <= calm["thickness_mm"]
+    assert cavity.te_s < calm.te_s
+    assert cavity.thickness_mm <= calm.thickness_mm
 
 
 def test_merit_follows_the_simulated_roi_signal():
@@ -118,7 +118,7 @@ def test_merit_follows_the_simulated_roi_signal():
                              oversample=(1, 1, sub), slice_axis=2, t2star_s=None)
         simulated[te] = float(np.median(image[roi])) * float(pm.bold_contrast(te, T2STAR))
     order_sim = sorted(simulated, key=simulated.get, reverse=True)
-    assert [r["te_s"] for r in rows] == order_sim
+    assert [r.te_s for r in rows] == order_sim
 
 
 # --------------------------------------------------------------------------- files, modelled field, refusals

@@ -26,7 +26,7 @@ from fieldfix.outputs import DemoChecks, ReportSummary, UnwarpSummary
 from fieldfix.report import stats
 from fieldfix.report.orientation import DisplayGrid, direction_letters
 
-from _report_fixtures import affine, anatomy, write_outputs
+from _report_fixtures import affine, anatomy, plan_row, write_outputs
 
 EYE = np.eye(4)
 
@@ -284,10 +284,9 @@ def _plan_rows():
             for tilt in (-10.0, 0.0, 10.0):
                 for sign in (1, -1):
                     median = 0.9 - 0.05 * thickness - 4.0 * (te - 0.025) - 0.002 * abs(tilt) + 0.01 * sign
-                    rows.append({"protocol": f"{thickness:g} mm {te * 1e3:g} ms {tilt:g} deg {sign}",
-                                 "thickness_mm": thickness, "te_s": te, "te_ms": te * 1e3, "tilt_deg": tilt,
-                                 "pe_sign": sign, "zshim_mtms_per_m": 0.0, "roi_median": median,
-                                 "tr_s": 2.0 + thickness, "metric": "bold_sensitivity"})
+                    rows.append(plan_row(protocol=f"{thickness:g} mm {te * 1e3:g} ms {tilt:g} deg {sign}",
+                                         thickness_mm=thickness, te_s=te, tilt_deg=tilt, pe_sign=sign,
+                                         roi_median=median, tr_s=2.0 + thickness, metric="bold_sensitivity"))
     return rows
 
 
@@ -295,7 +294,7 @@ def test_tradeoff_figure_has_one_legend_for_all_panels_and_a_label_off_the_point
     from fieldfix.report.figures import tradeoff_figure
 
     rows = _plan_rows()
-    best = max(rows, key=lambda r: r["roi_median"])
+    best = max(rows, key=lambda r: r.roi_median)
     fig = tradeoff_figure(rows, recommended=best, title="$x$ plan")
     fig.canvas.draw()
     legend = [t.get_text() for t in fig.legends[0].get_texts()]
@@ -303,7 +302,7 @@ def test_tradeoff_figure_has_one_legend_for_all_panels_and_a_label_off_the_point
     ax = fig.axes[2]
     label = next(t for t in ax.texts if t.get_text() == "recommended")
     box = label.get_window_extent(fig.canvas.get_renderer())
-    points = ax.transData.transform([(r["tr_s"], r["roi_median"]) for r in rows])
+    points = ax.transData.transform([(r.tr_s, r.roi_median) for r in rows])
     assert not any(box.contains(x, y) for x, y in points)
     assert [a.get_xlabel() for a in fig.axes[:3]] == ["slice tilt (\u00b0)", "echo time (ms)", "TR (s)"]
     assert fig._suptitle.get_text() == "$x$ plan".replace("$", r"\$")
@@ -430,7 +429,7 @@ def test_the_page_shows_the_jobs_own_numbers(study):
     assert drop["parameters"] == jobs["dropout"].parameters.to_json()
     plan = data["plans"][0]
     assert plan["recommended"] == jobs["plan"].recommended.to_json()
-    assert [r["protocol"] for r in plan["top"]] == [r["protocol"] for r in jobs["plan"].rows[:8]]
+    assert [r["protocol"] for r in plan["top"]] == [r.protocol for r in jobs["plan"].rows[:8]]
     assert plan["fixed"]["echo_spacing_s"] == 0.0005 and plan["brain_mask"] == "brain_mask.nii.gz"
 
 

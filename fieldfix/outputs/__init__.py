@@ -57,7 +57,7 @@ from .jobs import (
     DropoutNumbers,
     DropoutSummary,
 )
-from .plan import PlanFiles, PlanChoice, PlanNumbers, PlanSummary
+from .plan import PlanFiles, PlanChoice, PlanRow, PlanNumbers, PlanSummary
 from .folders import FolderSummaries, find_summaries
 from .report import (
     ReportFiles,
@@ -97,6 +97,7 @@ __all__ = [
     "DropoutNumbers",
     "DropoutSummary",
     "PlanChoice",
+    "PlanRow",
     "PlanNumbers",
     "PlanSummary",
     "FolderSummaries",

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 from ..records import Record
 from .base import CAUTION, JobFiles
@@ -51,6 +51,25 @@ class PlanChoice(Record):
 
 
 @dataclass(frozen=True, kw_only=True)
+class PlanRow(PlanChoice):
+    """One protocol of a sweep (:func:`fieldfix.plan.sweep`): a row of ``plan.csv`` and of the
+    summary's ``rows``. Besides the :class:`PlanChoice` numbers: ``pe_sign`` (+1, -1, or 0 when
+    polarity is not swept), ``metric`` ('retention' or 'bold_sensitivity'), ``coverage_mm`` (the
+    covered mask's extent along the slice normal), ``fits_tr`` (TR within the limit) and
+    ``readout_s`` (the EPI readout). ``rank`` is 0 until the rows are ranked."""
+
+    pe_sign: int
+    metric: str
+    coverage_mm: float
+    fits_tr: bool
+    readout_s: float
+
+    def choice(self) -> PlanChoice:
+        """The row's :class:`PlanChoice` part (what a summary keeps of a recommended protocol)."""
+        return PlanChoice(**{f.name: getattr(self, f.name) for f in fields(PlanChoice)})
+
+
+@dataclass(frozen=True, kw_only=True)
 class PlanNumbers(Record):
     """The outcome of a plan that its job's summary and the report both carry."""
 
@@ -77,5 +96,5 @@ class PlanSummary(PlanNumbers):
     columns: dict[str, str] = field(default_factory=dict)
     parameters: dict[str, object] = field(default_factory=dict)
     provenance: dict[str, object] = field(default_factory=dict)
-    rows: list[dict[str, object]] = field(default_factory=list)
+    rows: list[PlanRow] = field(default_factory=list)
     caution: str = CAUTION

@@ -11,15 +11,13 @@ page-size limit asks, without measuring again.
 
 from __future__ import annotations
 
-import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from scipy import ndimage
 
-from ..errors import InputError
-from ..outputs import (DropoutNumbers, FieldMapNumbers, PlanChoice, PlanNumbers, ReportDropout, ReportFieldMap,
+from ..outputs import (DropoutNumbers, FieldMapNumbers, PlanNumbers, PlanRow, ReportDropout, ReportFieldMap,
                        ReportPlan)
 from ..records import fields_of
 from .figures.panels import pick_slices, worst_slices
@@ -34,8 +32,7 @@ PLAN_FIXED = ("orientation", "pe_world_axis", "inplane_mm", "pe_lines", "echo_sp
               "profile", "tbw", "threshold", "slice_gap_mm", "time_per_slice_s", "multiband", "max_tr_s",
               "fixed_tr_s", "tolerance", "coverage", "rank_by", "t2star_s", "field_strength_t", "lambda_physio")
 PLAN_TABLE_ROWS = 8
-_ROW_KEYS = ("protocol", "thickness_mm", "te_s", "te_ms", "tilt_deg", "pe_sign", "zshim_mtms_per_m", "roi_median",
-             "tr_s", "metric")
+
 
 
 def read_volume(path: Path | None, shape=None, *, ndim=(3,)):
@@ -85,8 +82,8 @@ class DropoutView:
 class PlanView:
     """A plan's sweep rows (for the trade-off figure) and its recommended row."""
 
-    rows: list
-    recommended: dict | None
+    rows: list[PlanRow]
+    recommended: PlanRow | None
 
 
 def measure_field_map(found) -> tuple[ReportFieldMap, FieldView | None]:
@@ -157,24 +154,15 @@ def measure_dropout(found) -> tuple[ReportDropout, DropoutView | None]:
     return record, view
 
 
-def _choice(row: dict, found) -> PlanChoice:
-    return PlanChoice.from_json({f.name: row.get(f.name) for f in dataclasses.fields(PlanChoice)}, found.path)
-
-
 def measure_plan(found) -> tuple[ReportPlan, PlanView]:
     """The report's record of a plan (masks named, protocol held fixed, best rows) and its rows."""
     s = found.record
-    rows = [r for r in s.rows if isinstance(r, dict)]
-    try:
-        top = [_choice(r, found) for r in rows[:PLAN_TABLE_ROWS]]
-    except InputError:
-        top = [s.recommended]
-    usable = [r for r in rows if all(k in r for k in _ROW_KEYS)]
-    recommended = next((r for r in usable if r["protocol"] == s.recommended.protocol), None)
+    top = [row.choice() for row in s.rows[:PLAN_TABLE_ROWS]] or [s.recommended]
+    recommended = next((r for r in s.rows if r.protocol == s.recommended.protocol), None)
     record = ReportPlan(**{**fields_of(s, PlanNumbers), "roi": mask_name(s.roi), "brain_mask": mask_name(s.brain_mask)},
                         name=found.name, subject=found.subject,
                         fixed={k: s.parameters[k] for k in PLAN_FIXED if k in s.parameters}, top=top)
-    return record, PlanView(usable if len(usable) == len(rows) else [], recommended)
+    return record, PlanView(list(s.rows), recommended)
 
 
 def dilate(mask: np.ndarray, voxels: int) -> np.ndarray:

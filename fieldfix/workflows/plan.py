@@ -11,7 +11,6 @@ Research software, not a medical device: predictions are a planning aid.
 from __future__ import annotations
 
 import csv
-import dataclasses
 import io as _stdio
 import logging
 from pathlib import Path
@@ -23,7 +22,7 @@ from ..geometry import resample_to_grid, same_grid
 from ..io import Provenance, load_image
 from ..jsonfile import to_jsonable, write_json
 from ..outdir import atomic_output, output_folder, output_paths_guard
-from ..outputs import CAUTION, JobOptions, PlanChoice, PlanFiles, PlanSummary, job_and_settings
+from ..outputs import CAUTION, JobOptions, PlanFiles, PlanRow, PlanSummary, job_and_settings
 from ..plan import COLUMN_WORDS, CSV_COLUMNS, SweepSpec, plot_tradeoffs, recommend, sweep
 from ..plan_field import FieldModel, ModelledField
 from ._b0 import field_strength_from, measured_field
@@ -34,14 +33,14 @@ __all__ = ["run_plan", "load_label_roi", "CAUTION"]
 
 log = logging.getLogger(__name__)
 
-def _csv_text(rows: list[dict]) -> str:
+def _csv_text(rows: list[PlanRow]) -> str:
     buffer = _stdio.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for r in rows:
         out = []
         for col in CSV_COLUMNS:
-            value = r[col]
+            value = getattr(r, col)
             if isinstance(value, float):
                 value = f"{value:.6g}"
             out.append(value)
@@ -151,9 +150,9 @@ def _masks(field: FieldModel, roi_path, brain_mask_path, roi_labels):
 
 
 def _tr_warning(rows, choice, spec: SweepSpec) -> list[str]:
-    if spec.max_tr_s is None or choice["fits_tr"]:
+    if spec.max_tr_s is None or choice.fits_tr:
         return []
-    return [f"no protocol fits the TR limit of {spec.max_tr_s:g} s (shortest TR {min(r['tr_s'] for r in rows):.2f} s);"
+    return [f"no protocol fits the TR limit of {spec.max_tr_s:g} s (shortest TR {min(r.tr_s for r in rows):.2f} s);"
             " the recommendation exceeds it"]
 
 
@@ -175,12 +174,12 @@ def _plan_in_folder(field: FieldModel, roi, brain, job, files, names, inputs, sp
         plot_tradeoffs(rows, temporary, recommended=choice, ranking=spec.ranking, modelled=modelled)
     summary = PlanSummary(
         b0=field.source if modelled else field.source.split(": ", 1)[1], roi_voxels=int(roi.sum()),
-        protocols=len(rows), metric=rows[0]["metric"], ranking=spec.ranking,
+        protocols=len(rows), metric=rows[0].metric, ranking=spec.ranking,
         field_source="modelled" if modelled else "measured", warnings=warnings,
         columns={k: COLUMN_WORDS[k] for k in CSV_COLUMNS},
-        recommended=PlanChoice.from_json({f.name: choice.get(f.name) for f in dataclasses.fields(PlanChoice)}),
+        recommended=choice.choice(),
         reason=("Modelled field (no field map): " if modelled else "") + reason, outputs=files,
         parameters=to_jsonable(parameters), provenance=Provenance(job.command, parameters, inputs).as_dict(),
-        rows=to_jsonable(rows), **masks)
+        rows=rows, **masks)
     write_json(names["json"], summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary

@@ -93,8 +93,8 @@ def profile_figure(profile: Profile):
 
 # ----------------------------------------------------------------------------- plan trade-offs
 
-def _metric_words(row: dict) -> str:
-    return "BOLD sensitivity" if row.get("metric") == "bold_sensitivity" else "retention"
+def _metric_words(row) -> str:
+    return "BOLD sensitivity" if row.metric == "bold_sensitivity" else "retention"
 
 
 def _label_offset(ax, x: float, y: float, xs, ys) -> tuple[float, float]:
@@ -111,14 +111,16 @@ def _label_offset(ax, x: float, y: float, xs, ys) -> tuple[float, float]:
     return offset
 
 
-def _against(ax, rows, rec, xkey, others, xlabel, colour, thicknesses, ylabel, ykey="roi_median"):
+def _against(ax, rows, rec, x, others, xlabel, colour, thicknesses, ylabel, y):
+    """`x`, `y`: the plotted numbers of a row; lines join rows that differ from `rec` only in `x`
+    (the fields `others` equal to the recommended row's)."""
     for d in thicknesses:
-        sel = sorted((r for r in rows if r["thickness_mm"] == d and all(r[k] == rec[k] for k in others)),
-                     key=lambda r: r[xkey])
+        sel = sorted((r for r in rows if r.thickness_mm == d and all(getattr(r, k) == getattr(rec, k) for k in others)),
+                     key=x)
         if sel:
-            ax.plot([r[xkey] for r in sel], [r[ykey] for r in sel], "-o", color=colour[d], ms=3.5, lw=1.6)
-    ax.axvline(rec[xkey], color="#9aa0a6", lw=0.8, ls=":")
-    ax.plot([rec[xkey]], [rec[ykey]], "o", ms=11, mfc="none", mec="#111111", mew=1.3)
+            ax.plot([x(r) for r in sel], [y(r) for r in sel], "-o", color=colour[d], ms=3.5, lw=1.6)
+    ax.axvline(x(rec), color="#9aa0a6", lw=0.8, ls=":")
+    ax.plot([x(rec)], [y(rec)], "o", ms=11, mfc="none", mec="#111111", mew=1.3)
     ax.set_xlabel(xlabel, fontsize=8.5)
     ax.set_ylabel(ylabel, fontsize=8.5)
     _tidy(ax)
@@ -127,14 +129,14 @@ def _against(ax, rows, rec, xkey, others, xlabel, colour, thicknesses, ylabel, y
 def _scatter(ax, rows, rec, xkey, ykey, colour, thicknesses, xlabel, ylabel):
     for sign, marker in ((1, "^"), (-1, "v"), (0, "o")):
         for d in thicknesses:
-            sel = [r for r in rows if r["thickness_mm"] == d and r["pe_sign"] == sign]
+            sel = [r for r in rows if r.thickness_mm == d and r.pe_sign == sign]
             if sel:
-                ax.scatter([xkey(r) for r in sel], [r[ykey] for r in sel], s=16, marker=marker,
+                ax.scatter([xkey(r) for r in sel], [ykey(r) for r in sel], s=16, marker=marker,
                            color=colour[d], alpha=0.75, linewidths=0)
-    x, y = xkey(rec), rec[ykey]
+    x, y = xkey(rec), ykey(rec)
     ax.plot([x], [y], "o", ms=13, mfc="none", mec="#111111", mew=1.4)
     xs = np.array([xkey(r) for r in rows], float)
-    dx, dy = _label_offset(ax, x, y, xs, [r[ykey] for r in rows])
+    dx, dy = _label_offset(ax, x, y, xs, [ykey(r) for r in rows])
     if x > xs.min() + 0.7 * (np.ptp(xs) or 1.0):  # keep the label inside the panel
         dx = -abs(dx)
     ax.annotate("recommended", (x, y), xytext=(dx, dy), textcoords="offset points",
@@ -146,13 +148,13 @@ def _scatter(ax, rows, rec, xkey, ykey, colour, thicknesses, xlabel, ylabel):
     _tidy(ax)
 
 
-def _covered_mm(row: dict) -> float:
-    return row["n_slices"] * row["thickness_mm"]
+def _covered_mm(row) -> float:
+    return row.n_slices * row.thickness_mm
 
 
-def tradeoff_figure(rows: Sequence[dict], *, recommended: dict | None = None, title: str | None = None,
+def tradeoff_figure(rows: Sequence, *, recommended=None, title: str | None = None,
                     ranking: str = "retention", modelled: bool = False):
-    """Trade-offs of a protocol sweep (rows of :func:`fieldfix.plan.sweep`).
+    """Trade-offs of a protocol sweep (the :class:`fieldfix.outputs.PlanRow` of :func:`fieldfix.plan.sweep`).
 
     The figure ranked by (ROI median of the metric, or the relative BOLD contrast-to-noise per
     unit time with ``ranking='efficiency'``): (a) against slice tilt and (b) against echo time,
@@ -168,29 +170,29 @@ def tradeoff_figure(rows: Sequence[dict], *, recommended: dict | None = None, ti
     if not rows:
         raise InputError("no protocols to plot")
     rec = recommended or rows[0]
-    ykey = "merit" if ranking == "efficiency" else "roi_median"
-    ylabel = ("BOLD CNR per unit time (relative, best = 1)" if ykey == "merit"
+    efficiency = ranking == "efficiency"
+    y = (lambda r: r.merit) if efficiency else (lambda r: r.roi_median)
+    ylabel = ("BOLD CNR per unit time (relative, best = 1)" if efficiency
               else f"ROI median {_metric_words(rec)} (0\u20131)")
-    thicknesses = sorted({r["thickness_mm"] for r in rows})
+    thicknesses = sorted({r.thickness_mm for r in rows})
     colour = {d: LINE_COLOURS[i % len(LINE_COLOURS)] for i, d in enumerate(thicknesses)}
-    n_panels = 4 if all("n_slices" in r for r in rows) else 3
-    fig = new_figure(15.0 if n_panels == 4 else 12.0, 4.6)
+    n_panels = 4
+    fig = new_figure(15.0, 4.6)
     width = 0.94 / n_panels
     axes = [fig.add_axes((0.05 + i * width, 0.14, width * 0.78, 0.62)) for i in range(n_panels)]
-    _against(axes[0], rows, rec, "tilt_deg", ("te_s", "pe_sign", "zshim_mtms_per_m"), "slice tilt (\u00b0)", colour,
-             thicknesses, ylabel, ykey)
-    _against(axes[1], rows, rec, "te_ms", ("tilt_deg", "pe_sign", "zshim_mtms_per_m"), "echo time (ms)", colour,
-             thicknesses, ylabel, ykey)
-    _scatter(axes[2], rows, rec, lambda r: r["tr_s"], ykey, colour, thicknesses, "TR (s)", ylabel)
-    if n_panels == 4:
-        _scatter(axes[3], rows, rec, _covered_mm, ykey, colour, thicknesses,
-                 "slab covered: slices \u00d7 thickness (mm)", ylabel)
+    _against(axes[0], rows, rec, lambda r: r.tilt_deg, ("te_s", "pe_sign", "zshim_mtms_per_m"), "slice tilt (\u00b0)",
+             colour, thicknesses, ylabel, y)
+    _against(axes[1], rows, rec, lambda r: r.te_s * 1e3, ("tilt_deg", "pe_sign", "zshim_mtms_per_m"), "echo time (ms)",
+             colour, thicknesses, ylabel, y)
+    _scatter(axes[2], rows, rec, lambda r: r.tr_s, y, colour, thicknesses, "TR (s)", ylabel)
+    _scatter(axes[3], rows, rec, _covered_mm, y, colour, thicknesses, "slab covered: slices \u00d7 thickness (mm)",
+             ylabel)
     for axis, text in zip(axes, ("(a) against slice tilt", "(b) against echo time", "(c) against time",
                                       "(d) against coverage")):
         axis.set_title(text, loc="left", fontsize=9.5)
     handles = [Line2D([], [], color=colour[d], marker="o", lw=1.6, ms=4, label=f"{d:g} mm slices")
                for d in thicknesses]
-    polarities = {r["pe_sign"] for r in rows}
+    polarities = {r.pe_sign for r in rows}
     if 1 in polarities or -1 in polarities:
         handles += [Line2D([], [], ls="", marker="^", color="#444444", label="PE polarity +"),
                     Line2D([], [], ls="", marker="v", color="#444444", label="PE polarity \u2212")]
@@ -198,7 +200,7 @@ def tradeoff_figure(rows: Sequence[dict], *, recommended: dict | None = None, ti
     fig.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, 0.9), ncol=len(handles), fontsize=8,
                frameon=False)
     field = " (modelled field, no field map)" if modelled else ""
-    fig.suptitle(literal(title or f"Protocol trade-offs{field}; recommended: {rec['protocol']}"), fontsize=11,
+    fig.suptitle(literal(title or f"Protocol trade-offs{field}; recommended: {rec.protocol}"), fontsize=11,
                  y=0.985)
     fig.text(0.995, 0.005, "fieldfix prediction for planning; research software, not a medical device",
              ha="right", va="bottom", fontsize=7, color="#6b7280")
