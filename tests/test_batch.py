@@ -138,9 +138,9 @@ def test_plan_dependencies_and_layout(dataset, tmp_path):
         "fieldmap:sub-02_acq-spare", "fieldmap:sub-03"}
     u = by_id["unwarp:sub-01_ses-2_task-rest_bold"]
     assert u.deps == ("fieldmap:sub-01_ses-2",)
-    assert u.params["pe_code"] == "j-" and u.params["readout_time_s"] == 0.03
+    assert u.params.pe_code == "j-" and u.params.readout_time_s == 0.03
     assert u.out_dir == str((tmp_path / "deriv" / "sub-01" / "ses-2" / "func").resolve())
-    assert by_id["dropout:sub-02_task-rest_bold"].params["te_s"] == 0.03
+    assert by_id["dropout:sub-02_task-rest_bold"].params.te_s == 0.03
     assert "unwarp:sub-02_task-motor_bold" not in by_id  # no field map: nothing to unwarp
     report = by_id["report:sub-02"]
     assert set(report.deps) == {"fieldmap:sub-02", "fieldmap:sub-02_acq-spare",
@@ -192,7 +192,7 @@ def _fake_fieldmap(task, upstream, deriv, staging, command):
     img = load_image(primary)  # the broken file of sub-03 fails here
     files = FieldMapFiles.named()
     save_image(staging / files.b0_hz, img.get_fdata() * 2.0, img.affine,
-               provenance=Provenance(command, task.params, [primary]))
+               provenance=Provenance(command, task.parameters(), [primary]))
     _small(staging, files.mask, img, np.ones(img.shape))
     _small(staging, files.magnitude, img)
     return _stub(FieldMapSummary, outputs=files)

@@ -8,7 +8,7 @@ The batch ties the workflows together for a whole study, one module per concern:
   which field map belongs to which run (gradient-echo kinds and reversed phase-encode EPI
   groups);
 * :mod:`.options` -- processing options for the whole dataset (command line or config file);
-* :mod:`.plan` -- tasks, their dependencies and hashes (resume);
+* :mod:`.plan`, :mod:`.params` -- tasks, their typed parameters, dependencies and hashes (resume);
 * :mod:`.runners`, :mod:`.tasks`, :mod:`.execution` -- running a task into a staging folder,
   moving its outputs to their derivative names, executing the plan in process, in a local
   process pool or on dask;

@@ -30,6 +30,7 @@ from .bids import pe_code_problem
 from .fieldmaps import declared_phase_units, number
 from .inventory import FieldMapAcquisition, Inventory, Run
 from .options import BatchOptions
+from .params import DropoutParams, EpiGroupParams, FieldmapKind, GradientEchoParams, ScannerMapParams, UnwarpParams
 
 __all__ = ["TASK_FORMAT", "Task", "TaskResult", "plan_tasks", "task_hash", "run_entries", "REPORT_FOLDER"]
 
@@ -54,8 +55,8 @@ class Task:
         Task ids whose results this task needs.
     inputs : dict of str to str
         Role to absolute path of the raw input files (hashed).
-    params : dict
-        JSON values of the parameters (hashed), SI units.
+    params : record of :mod:`.params`, or None
+        The parameters (hashed as JSON), SI units; None for a report or a task that fails at once.
     out_dir : str
         Absolute folder of its derivatives.
     source : str
@@ -78,7 +79,7 @@ class Task:
     session: str
     deps: tuple[str, ...]
     inputs: dict[str, str]
-    params: dict
+    params: Record | None
     out_dir: str
     source: str
     dataset: str = ""
@@ -86,6 +87,10 @@ class Task:
     grids: dict[str, str] = field(default_factory=dict)
     problems: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+
+    def parameters(self) -> dict:
+        """The parameters as JSON values (what is hashed and recorded)."""
+        return self.params.to_json() if self.params is not None else {}
 
 
 @dataclass(frozen=True)
@@ -123,26 +128,27 @@ def _subject_folder(deriv: Path, subject: str, session: str) -> Path:
     return folder / f"ses-{session}" if session else folder
 
 
-def _fieldmap_params(fm: FieldMapAcquisition, options: BatchOptions) -> dict:
+def _fieldmap_params(fm: FieldMapAcquisition, options: BatchOptions) -> FieldmapKind:
     meta = fm.metadata
     if fm.kind == "phasediff":
         pd = meta.get("phasediff", {})
-        return {"kind": fm.kind, "echo_times_s": [number(pd, "EchoTime1"), number(pd, "EchoTime2")],
-                "declared_phase_units": declared_phase_units(pd), **options.fieldmap_params()}
+        return GradientEchoParams(kind=fm.kind, echo_times_s=[number(pd, "EchoTime1"), number(pd, "EchoTime2")],
+                                  declared_phase_units=declared_phase_units(pd), **options.fieldmap_params())
     if fm.kind == "phase-pair":
-        return {"kind": fm.kind, "echo_times_s": [number(meta.get(r, {}), "EchoTime") for r in ("phase1", "phase2")],
-                "declared_phase_units": declared_phase_units(meta.get("phase1", {})), **options.fieldmap_params()}
+        return GradientEchoParams(kind=fm.kind,
+                                  echo_times_s=[number(meta.get(r, {}), "EchoTime") for r in ("phase1", "phase2")],
+                                  declared_phase_units=declared_phase_units(meta.get("phase1", {})),
+                                  **options.fieldmap_params())
     if fm.kind == "fieldmap":
         fmap = meta.get("fieldmap", {})
-        return {"kind": fm.kind, "units": fmap.get("Units"),
-                "field_strength_t": number(fmap, "MagneticFieldStrength"), "smooth_mm": options.smooth_mm}
+        return ScannerMapParams(kind=fm.kind, units=fmap.get("Units"),
+                                field_strength_t=number(fmap, "MagneticFieldStrength"), smooth_mm=options.smooth_mm)
     if fm.kind == "epi":
         roles = sorted(fm.files)
-        return {"kind": fm.kind, "roles": roles,
-                "pe_codes": [meta[r].get("PhaseEncodingDirection") for r in roles],
-                "readout_times_s": [number(meta[r], "TotalReadoutTime") for r in roles],
-                "echo_spacings_s": [number(meta[r], "EffectiveEchoSpacing") for r in roles]}
-    return {"kind": fm.kind}
+        return EpiGroupParams(kind=fm.kind, roles=roles, pe_codes=[meta[r].get("PhaseEncodingDirection") for r in roles],
+                              readout_times_s=[number(meta[r], "TotalReadoutTime") for r in roles],
+                              echo_spacings_s=[number(meta[r], "EffectiveEchoSpacing") for r in roles])
+    return FieldmapKind(kind=fm.kind)
 
 
 def _fieldmap_task(fm: FieldMapAcquisition, root: Path, deriv: Path, options: BatchOptions) -> Task:
@@ -171,14 +177,14 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
                   out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
                   source=Path(run.path).name, dataset=str(root), metadata=dict(meta),
                   grids={"run": run.path, "fieldmap": fm.primary})
-    timing = {"pe_code": pe if problem is None else None, "readout_time_s": readout, "echo_spacing_s": spacing}
-    unwarp = Task(task_id=f"unwarp:{run.stem}", kind="unwarp", params={**timing, **options.unwarp_params()},
-                  problems=problems, **common)
+    timing = dict(pe_code=pe if problem is None else None, readout_time_s=readout, echo_spacing_s=spacing)
+    unwarp = Task(task_id=f"unwarp:{run.stem}", kind="unwarp",
+                  params=UnwarpParams(**timing, **options.unwarp_params()), problems=problems, **common)
     dropout_problems = list(run.problems) + ([] if te is not None else [f"{sidecar}: sidecar has no EchoTime"])
     dropout = Task(task_id=f"dropout:{run.stem}", kind="dropout",
-                   params={**timing, "te_s": te, "slice_thickness_mm": number(meta, "SliceThickness"),
-                           "slice_encoding_direction": meta.get("SliceEncodingDirection"),
-                           **options.dropout_params()},
+                   params=DropoutParams(**timing, te_s=te, slice_thickness_mm=number(meta, "SliceThickness"),
+                                        slice_encoding_direction=meta.get("SliceEncodingDirection"),
+                                        **options.dropout_params()),
                    problems=dropout_problems, **common)
     return [unwarp, dropout]
 
@@ -186,7 +192,7 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
 def _unlinked_run_task(run: Run, root: Path, deriv: Path) -> Task:
     """A task that fails at once with the problems of a run whose field map cannot be found."""
     return Task(task_id=f"unwarp:{run.stem}", kind="unwarp", subject=run.subject, session=run.session, deps=(),
-                inputs={}, params={}, out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
+                inputs={}, params=None, out_dir=str(_subject_folder(deriv, run.subject, run.session) / run.datatype),
                 source=Path(run.path).name, dataset=str(root), problems=list(run.problems))
 
 
@@ -233,7 +239,7 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: boo
         deps = tuple(by_subject.get(subject, ()))
         if deps:
             tasks.append(Task(task_id=f"report:sub-{subject}", kind="report", subject=subject, session="", deps=deps,
-                              inputs={}, params={}, out_dir=str(deriv / REPORT_FOLDER / f"sub-{subject}"),
+                              inputs={}, params=None, out_dir=str(deriv / REPORT_FOLDER / f"sub-{subject}"),
                               source=f"sub-{subject}_report.html", dataset=str(root)))
     ids = [t.task_id for t in tasks]
     if len(set(ids)) != len(ids):
@@ -245,7 +251,7 @@ def plan_tasks(inventory: Inventory, out_dir: str | os.PathLike, *, reports: boo
 
 def task_hash(task: Task, upstream: Mapping[str, TaskResult]) -> str:
     """SHA-256 over what determines a task's outputs (see the module docstring)."""
-    record = {"kind": task.kind, "format": TASK_FORMAT, "fieldfix": __version__, "params": task.params,
+    record = {"kind": task.kind, "format": TASK_FORMAT, "fieldfix": __version__, "params": task.parameters(),
               "metadata": task.metadata, "source": task.source,
               "inputs": {role: sha256_file(p) for role, p in sorted(task.inputs.items())},
               "upstream": {dep: upstream[dep].hash for dep in sorted(upstream)}}

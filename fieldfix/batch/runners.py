@@ -8,7 +8,6 @@ as arguments that win over the files' own sidecars (which may hold only part of 
 
 from __future__ import annotations
 
-import dataclasses
 from pathlib import Path
 from typing import Mapping
 
@@ -19,16 +18,15 @@ from ..geometry import parse_pe_code
 from ..io import load_image
 from ..outputs import JobOptions
 from ..workflows.dropout import run_dropout
-from ..workflows.fieldmap import FieldMapSettings, run_fieldmap
+from ..workflows.fieldmap import run_fieldmap
 from ..workflows.unwarp import run_unwarp
 from .fieldmaps import check_declared_phase_units
+from .params import EpiGroupParams, GradientEchoParams, ScannerMapParams
 from .plan import Task, TaskResult
 from .reports import SubjectReport, subject_report
 
-__all__ = ["RUNNERS", "NO_EPI_PAIRS"]
+__all__ = ["RUNNERS"]
 
-#: The reason an EPI-pair field map fails with while the workflow cannot make one.
-NO_EPI_PAIRS = "this fieldfix has no EPI-pair field maps yet"
 _B0_UNITS = {"hz": "hz", "rad/s": "rad/s", "rad s-1": "rad/s", "t": "T", "ppm": "ppm"}
 
 
@@ -43,15 +41,14 @@ def _fieldmap_of(upstream: Mapping[str, TaskResult]) -> TaskResult:
     raise InputError("the field-map task this task needs left no result")
 
 
-def _phase_units(task: Task, images: list[str]) -> str | None:
+def _phase_units(p: GradientEchoParams, images: list[str]) -> str | None:
     """The phase units to use: the option, else the sidecar's when the values agree with it."""
-    p = task.params
-    if p.get("phase_units"):
-        return p["phase_units"]
-    declared = p.get("declared_phase_units")
+    if p.phase_units:
+        return p.phase_units
+    declared = p.declared_phase_units
     if declared is None:
         return None
-    times = p.get("echo_times_s") or []
+    times = p.echo_times_s
     delta = abs(times[1] - times[0]) if len(times) == 2 and None not in times else None
     for path in images:
         check_declared_phase_units(load_image(path, sidecar=False).get_fdata(), declared, delta, path)
@@ -60,24 +57,24 @@ def _phase_units(task: Task, images: list[str]) -> str | None:
 
 def _gre_fieldmap(task: Task, staging: Path, command):
     i, p = task.inputs, task.params
-    common = dict(smooth_mm=p["smooth_mm"], unwrap_method=p["unwrap_method"], echo_times_s=tuple(p["echo_times_s"]),
+    common = dict(smooth_mm=p.smooth_mm, unwrap_method=p.unwrap_method, echo_times_s=tuple(p.echo_times_s),
                   echo_times_win="arguments")
-    if p["kind"] == "phasediff":
+    if p.kind == "phasediff":
         mags = tuple(i[m] for m in ("magnitude1", "magnitude2") if m in i)
         if "magnitude1" not in i:
             mags = (i["magnitude2"],)
         return run_fieldmap(_job(staging, command), phase_diff=i["phasediff"], magnitude=mags,
-                            phase_units=_phase_units(task, [i["phasediff"]]), **common)
+                            phase_units=_phase_units(p, [i["phasediff"]]), **common)
     return run_fieldmap(_job(staging, command), phase=(i["phase1"], i["phase2"]),
                         magnitude=(i["magnitude1"], i["magnitude2"]),
-                        phase_units=_phase_units(task, [i["phase1"], i["phase2"]]), **common)
+                        phase_units=_phase_units(p, [i["phase1"], i["phase2"]]), **common)
 
 
 def _readout_times(task: Task) -> list[float]:
     """Total readout time of each EPI image: the sidecar's, else echo spacing x (lines - 1)."""
     p = task.params
     times = []
-    for role, readout, spacing, code in zip(p["roles"], p["readout_times_s"], p["echo_spacings_s"], p["pe_codes"]):
+    for role, readout, spacing, code in zip(p.roles, p.readout_times_s, p.echo_spacings_s, p.pe_codes):
         if readout is None:
             lines = nib.load(task.inputs[role]).shape[parse_pe_code(code)[0]]
             readout = spacing * (lines - 1)
@@ -86,40 +83,33 @@ def _readout_times(task: Task) -> list[float]:
 
 
 def _epi_fieldmap(task: Task, staging: Path, command):
-    names = {f.name for f in dataclasses.fields(FieldMapSettings)}
-    if "epi" not in names:
-        raise InputError(NO_EPI_PAIRS)
     p = task.params
-    extra = {}
-    if "epi_pe_codes" in names:
-        extra["epi_pe_codes"] = list(p["pe_codes"])
-    if "epi_readout_times_s" in names:
-        extra["epi_readout_times_s"] = _readout_times(task)
-    return run_fieldmap(_job(staging, command), epi=[task.inputs[r] for r in p["roles"]], **extra)
+    return run_fieldmap(_job(staging, command), epi=[task.inputs[r] for r in p.roles], epi_pe_codes=list(p.pe_codes),
+                        epi_readout_times_s=_readout_times(task))
 
 
 def run_fieldmap_task(task: Task, upstream, deriv: Path, staging: Path, command):
     """The field-map job for one acquisition (gradient-echo kinds or an EPI group)."""
-    kind = task.params["kind"]
-    if kind in ("phasediff", "phase-pair"):
+    p = task.params
+    if isinstance(p, GradientEchoParams):
         return _gre_fieldmap(task, staging, command)
-    if kind == "fieldmap":
-        units = str(task.params.get("units") or "")
+    if isinstance(p, ScannerMapParams):
+        units = str(p.units or "")
         b0_units = _B0_UNITS.get(units.strip().lower())
         if b0_units is None:
             raise InputError(f"field map Units {units!r} not understood (Hz, rad/s, T or ppm)",
                              path=task.inputs["fieldmap"])
         return run_fieldmap(_job(staging, command), b0=task.inputs["fieldmap"], b0_units=b0_units,
-                            magnitude=(task.inputs["magnitude"],), smooth_mm=task.params["smooth_mm"],
-                            field_strength_t=task.params.get("field_strength_t"))
-    if kind == "epi":
+                            magnitude=(task.inputs["magnitude"],), smooth_mm=p.smooth_mm,
+                            field_strength_t=p.field_strength_t)
+    if isinstance(p, EpiGroupParams):
         return _epi_fieldmap(task, staging, command)
-    raise InputError(f"field maps of kind {kind!r} are not supported")
+    raise InputError(f"field maps of kind {p.kind!r} are not supported")
 
 
 def _b0_and_mask(task: Task, upstream, deriv: Path) -> tuple[Path, Path | None]:
     fieldmap = _fieldmap_of(upstream)
-    mask = fieldmap.outputs.get("mask") if task.params.get("masks", "fieldmap") == "fieldmap" else None
+    mask = fieldmap.outputs.get("mask") if task.params.masks == "fieldmap" else None
     return deriv / fieldmap.outputs["b0_hz"], (deriv / mask) if mask else None
 
 
@@ -127,12 +117,12 @@ def run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
     """Unwarp one run with its field map's B0 map."""
     p = task.params
     b0, mask = _b0_and_mask(task, upstream, deriv)
-    timing = ({"readout_time_s": p["readout_time_s"]} if p.get("readout_time_s") is not None
-              else {"echo_spacing_s": p["echo_spacing_s"]})
+    timing = ({"readout_time_s": p.readout_time_s} if p.readout_time_s is not None
+              else {"echo_spacing_s": p.echo_spacing_s})
     magnitude = _fieldmap_of(upstream).outputs.get("magnitude")
-    summaries = run_unwarp([task.inputs["run"]], b0, _job(staging, command), pe_code=p["pe_code"],
-                           timing_win="arguments", b0_mask=mask, interp=p.get("interp", "cubic"),
-                           align_fieldmap=p.get("align_fieldmap", True), motion=p.get("motion", False),
+    summaries = run_unwarp([task.inputs["run"]], b0, _job(staging, command), pe_code=p.pe_code,
+                           timing_win="arguments", b0_mask=mask, interp=p.interp,
+                           align_fieldmap=p.align_fieldmap, motion=p.motion,
                            b0_magnitude=deriv / magnitude if magnitude else None, **timing)
     return summaries[0]
 
@@ -146,12 +136,12 @@ def run_geometry(task: Task) -> tuple[float, int, float | None]:
     """
     p = task.params
     image = load_image(task.inputs["run"], sidecar=False)
-    direction = p.get("slice_encoding_direction")
+    direction = p.slice_encoding_direction
     axis = parse_pe_code(direction)[0] if isinstance(direction, str) and direction.strip() else 2
-    thickness = p.get("thickness_mm_option") or p.get("slice_thickness_mm") or float(image.zooms[axis])
-    spacing = p.get("echo_spacing_s")
-    if spacing is None and p.get("readout_time_s") is not None and p.get("pe_code"):
-        spacing = float(p["readout_time_s"]) / (image.shape[parse_pe_code(p["pe_code"])[0]] - 1)
+    thickness = p.thickness_mm_option or p.slice_thickness_mm or float(image.zooms[axis])
+    spacing = p.echo_spacing_s
+    if spacing is None and p.readout_time_s is not None and p.pe_code:
+        spacing = float(p.readout_time_s) / (image.shape[parse_pe_code(p.pe_code)[0]] - 1)
     return float(thickness), axis, spacing
 
 
@@ -159,10 +149,10 @@ def run_dropout_task(task: Task, upstream, deriv: Path, staging: Path, command):
     """Predict the dropout maps of one run's protocol with its field map's B0 map."""
     b0, mask = _b0_and_mask(task, upstream, deriv)
     thickness, axis, spacing = run_geometry(task)
-    pe = task.params.get("pe_code") if spacing is not None else None
-    return run_dropout(b0, _job(staging, command), te_s=task.params["te_s"], thickness_mm=thickness,
-                       like=task.inputs["run"], slice_axis=axis, pe_code=pe, echo_spacing_s=spacing, mask=mask,
-                       tilt_deg=task.params.get("tilt_deg", 0.0))
+    p = task.params
+    return run_dropout(b0, _job(staging, command), te_s=p.te_s, thickness_mm=thickness, like=task.inputs["run"],
+                       slice_axis=axis, pe_code=p.pe_code if spacing is not None else None, echo_spacing_s=spacing,
+                       mask=mask, tilt_deg=p.tilt_deg)
 
 
 def run_report_task(task: Task, upstream, deriv: Path, staging: Path, command) -> SubjectReport:

@@ -199,7 +199,7 @@ def _execute_in_folder(task: Task, upstream, deriv: Path, command, redo: bool, r
         remove_output(path)
     with ThreadLimit(), YoungObjectsOnly():
         outputs, summary = _run_in_staging(task, upstream, deriv, command)
-    record = TaskMarker(task_id=task.task_id, kind=task.kind, hash=digest, format=TASK_FORMAT, params=task.params,
+    record = TaskMarker(task_id=task.task_id, kind=task.kind, hash=digest, format=TASK_FORMAT, params=task.parameters(),
                         inputs=task.inputs, upstream={d: upstream[d].hash for d in sorted(upstream)},
                         outputs=outputs, summary=summary, remarks=remarks)
     write_json(path, record.to_json(), overwrite=True)
