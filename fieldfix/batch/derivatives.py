@@ -202,7 +202,7 @@ def write_dataset_description(deriv: Path, bids_root: Path) -> Path:
         names = [g.get("Name") for g in existing.get("GeneratedBy", []) if isinstance(g, dict)]
         if DERIVATIVE_NAME not in names:
             raise OutputError("this folder holds another dataset (its dataset_description.json was not written by "
-                              "fieldfix); choose another --out", path=path)
+                              "fieldfix); choose another output folder", path=path)
     raw = bids_root / "dataset_description.json"
     source_name = read_json(raw).get("Name") if raw.is_file() else None
     description = {

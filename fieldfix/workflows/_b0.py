@@ -58,7 +58,7 @@ def read_field_hz(image: Image, units: str | None = None, field_strength_t: floa
     if units is None and isinstance(side, str) and side.strip().lower() in _PHASE_UNITS or \
             units is None and _PHASE_NAME.search(image.path.name):
         raise InputError("this is a phase image, not a field map in Hz; make a field map from it first "
-                         "(fieldfix fieldmap --phase-diff ...)", image.path)
+                         "(the fieldmap command or run_fieldmap, given the phase difference)", image.path)
     chosen = units if units is not None else side if isinstance(side, str) else "Hz"
     how = "given" if units is not None else "the sidecar's Units" if isinstance(side, str) else \
         "no Units in the sidecar: read as Hz"
