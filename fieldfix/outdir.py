@@ -54,6 +54,7 @@ from pathlib import Path
 from typing import Iterable, Iterator
 
 from .errors import InputError, OutputError
+from .jsonfile import read_json
 
 __all__ = [
     "STATE_DIR",
@@ -229,8 +230,8 @@ class OutputFolder:
         if key is None:
             return None
         try:
-            record = json.loads(self._record_path(relative).read_text(encoding="utf-8"))
-        except (OSError, ValueError):
+            record = read_json(self._record_path(relative))
+        except InputError:  # missing or damaged: not a record fieldfix wrote
             return None
         if not isinstance(record, dict) or record.get("path") != relative:
             return None

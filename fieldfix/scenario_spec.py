@@ -1,7 +1,9 @@
-"""The parsed, typed form of a sample scenario definition (SI units; see :mod:`fieldfix.scenarios`).
+"""The typed forms of a sample scenario: its definition and the manifest of what was generated.
 
 :func:`parse_definition` turns a definition (defaults filled in, every quantity a string with
-its unit) into a :class:`ScenarioSpec`; the generator reads only that.
+its unit) into a :class:`ScenarioSpec` (SI units); the generator reads only that. What the
+generator wrote is a :class:`ScenarioManifest` (``derivatives/scenario-truth/manifest.json``,
+paths relative to the dataset root), read back strictly by :func:`fieldfix.scenarios.load_manifest`.
 
 Example
 -------
@@ -19,9 +21,11 @@ import numpy as np
 
 from .errors import InputError
 from .geometry import parse_pe_code
+from .records import Record
 from .units import parse_angle_deg, parse_field_t, parse_length_mm, parse_time_s
 
-__all__ = ["ScenarioSpec", "FieldmapSpec", "RunSpec", "RoiSpec", "parse_definition", "parse_labels"]
+__all__ = ["ScenarioSpec", "FieldmapSpec", "RunSpec", "RoiSpec", "parse_definition", "parse_labels",
+           "ScenarioManifest", "ManifestEntry", "ManifestRun", "ManifestFieldmap", "FieldmapTruth"]
 
 
 @dataclass(frozen=True)
@@ -191,3 +195,70 @@ def _roi(roi: dict) -> RoiSpec:
         raise InputError("roi.name must be letters and digits")
     return RoiSpec(name=name, center_mm=_vec_mm(roi["center"], "roi.center"),
                    semi_axes_mm=_vec_mm(roi["semi_axes"], "roi.semi_axes"))
+
+
+@dataclass(frozen=True)
+class ManifestRun(Record):
+    """One generated EPI run: the image, its timing, the simulated motion (per volume:
+    translation in voxels and rotation in degrees) and its truth on the run grid (B0 in Hz,
+    brain mask, undistorted reference; the ROI mask when the scenario names one)."""
+
+    task: str
+    bold: str
+    pe_code: str
+    total_readout_time_s: float
+    effective_echo_spacing_s: float
+    echo_time_s: float
+    slice_thickness_mm: float
+    motion: list[list[float]]
+    truth_b0_hz: str
+    brain_mask: str
+    undistorted: str
+    roi_mask: str | None = None
+
+
+@dataclass(frozen=True)
+class ManifestFieldmap(Record):
+    """The generated gradient-echo field map: its kind, echo times (s) and files by BIDS suffix."""
+
+    kind: str
+    echo_times_s: list[float]
+    files: dict[str, str]
+
+
+@dataclass(frozen=True)
+class FieldmapTruth(Record):
+    """The truth on the field-map grid: B0 (Hz), brain mask, brain B0 percentiles (p1, p50, p99)."""
+
+    b0_hz: str
+    brain_mask: str
+    brain_b0_hz_percentiles: dict[str, float]
+    roi_mask: str | None = None
+
+
+@dataclass(frozen=True)
+class ManifestEntry(Record):
+    """One subject (and session): the head's pitch (degrees) and size, runs, field map and truth."""
+
+    subject: str
+    session: str
+    pitch_deg: float
+    head_scale: float
+    runs: list[ManifestRun]
+    fieldmap: ManifestFieldmap
+    truth: FieldmapTruth
+
+
+@dataclass(frozen=True)
+class ScenarioManifest(Record):
+    """Everything a generation wrote, with the definition, its hash and the seed."""
+
+    scenario: str
+    title: str
+    generator_version: int
+    definition_sha256: str
+    definition: dict[str, object]
+    seed: int
+    field_strength_t: float
+    roi_name: str | None
+    entries: list[ManifestEntry]

@@ -69,8 +69,10 @@ from . import susceptibility as sus
 from .errors import InputError, OutputError
 from .geometry import parse_pe_code
 from .io import save_image, write_json
+from .jsonfile import read_json
 from .outdir import output_folder
-from .scenario_spec import RoiSpec, RunSpec, ScenarioSpec, parse_definition, parse_labels
+from .scenario_spec import (FieldmapTruth, ManifestEntry, ManifestFieldmap, ManifestRun, RoiSpec, RunSpec,
+                            ScenarioManifest, ScenarioSpec, parse_definition, parse_labels)
 from .simulate.epi import epi_sidecar, fine_coordinates, simulate_epi_run
 from .simulate.gradient_echo import simulate_gradient_echo
 
@@ -198,10 +200,7 @@ def _load(definition_or_path) -> tuple[dict, ScenarioSpec]:
         raw = definition_or_path
     else:
         source = scenario_path(definition_or_path)
-        try:
-            raw = json.loads(source.read_text(encoding="utf-8"))
-        except (OSError, ValueError) as err:
-            raise InputError(f"cannot read the scenario definition ({err})", source) from None
+        raw = read_json(source, what="scenario definition (a JSON object)")
     if not isinstance(raw, dict) or "name" not in raw:
         raise InputError("a scenario definition is a JSON object with at least a 'name'", source)
     d = _merge({k: v for k, v in _DEFAULTS.items() if k != "run"}, raw)
@@ -344,7 +343,7 @@ class _Subject:
 
 
 def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.SeedSequence,
-                  scale: float, overwrite: bool) -> dict:
+                  scale: float, overwrite: bool) -> ManifestEntry:
     rng = np.random.default_rng(seq)
     pitch = p.pitch_deg + (rng.normal(0, p.pitch_jitter_deg) if p.pitch_jitter_deg > 0 else 0.0)
     pitch = float(np.round(pitch, 3))
@@ -353,13 +352,13 @@ def _generate_one(p, d, root: Path, sub: str, ses: str | None, seq: np.random.Se
     ctx = _Subject(p, root, rel_dir, TRUTH_DIR / rel_dir, _bids_stem(sub, ses), scale, b0_model, hm, rng, overwrite)
     # EPI runs first, so that the field map can name them in IntendedFor
     runs = [_simulated_run(ctx, run) for run in p.runs]
-    intended = [str(Path(rec["bold"]).relative_to(Path(f"sub-{sub}"))) for rec in runs]
+    intended = [str(Path(rec.bold).relative_to(Path(f"sub-{sub}"))) for rec in runs]
     fieldmap, truth = _simulated_fieldmap(ctx, intended)
-    return {"subject": sub, "session": ses or "", "pitch_deg": pitch, "head_scale": scale, "runs": runs,
-            "fieldmap": fieldmap, "truth": truth}
+    return ManifestEntry(subject=sub, session=ses or "", pitch_deg=pitch, head_scale=scale, runs=runs,
+                         fieldmap=fieldmap, truth=truth)
 
 
-def _simulated_run(ctx: _Subject, run: RunSpec) -> dict:
+def _simulated_run(ctx: _Subject, run: RunSpec) -> ManifestRun:
     """One EPI run acquired in k-space (with motion and noise), its sidecar and its truth on the run grid."""
     aff = _grid_affine(run.voxel_mm, run.shape, run.center_mm)
     # Two sub-samples along the phase-encode axis (field variation within a voxel) and along
@@ -390,25 +389,20 @@ def _simulated_run(ctx: _Subject, run: RunSpec) -> dict:
     cx, cy, cz = _world(aff, [np.arange(n, dtype=float) for n in run.shape])
     brain_run = sus.head_labels_at(cx, cy, cz, ctx.scale) == sus.HEAD_LABELS["brain"]
     folder, tstem = ctx.truth_dir / "func", f"{ctx.stem}_task-{run.task}"
-    rec = {
-        "task": run.task, "bold": str(bold_rel), "pe_code": run.pe_code,
-        "total_readout_time_s": sidecar["TotalReadoutTime"], "effective_echo_spacing_s": sidecar["EffectiveEchoSpacing"],
-        "echo_time_s": run.echo_time_s, "slice_thickness_mm": float(run.voxel_mm[2]),
-        "motion": motion.round(6).tolist(),
-        "truth_b0_hz": ctx.save(folder / f"{tstem}_desc-truth_fieldmap.nii.gz", ctx.b0_at(cx, cy, cz), aff,
-                                sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),
-        "brain_mask": ctx.save(folder / f"{tstem}_desc-brain_mask.nii.gz", brain_run, aff, dtype=np.uint8),
-        "undistorted": ctx.save(folder / f"{tstem}_desc-undistorted_bold.nii.gz", reference[..., 0] * scale_signal,
-                                aff),
-    }
     roi = _roi_mask(ctx.p.roi, ctx.scale, cx, cy, cz, brain_run)
-    if roi is not None:
-        rec["roi_mask"] = ctx.save(folder / f"{tstem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
-                                   dtype=np.uint8)
-    return rec
+    return ManifestRun(
+        task=run.task, bold=str(bold_rel), pe_code=run.pe_code, total_readout_time_s=sidecar["TotalReadoutTime"],
+        effective_echo_spacing_s=sidecar["EffectiveEchoSpacing"], echo_time_s=run.echo_time_s,
+        slice_thickness_mm=float(run.voxel_mm[2]), motion=motion.round(6).tolist(),
+        truth_b0_hz=ctx.save(folder / f"{tstem}_desc-truth_fieldmap.nii.gz", ctx.b0_at(cx, cy, cz), aff,
+                             sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),
+        brain_mask=ctx.save(folder / f"{tstem}_desc-brain_mask.nii.gz", brain_run, aff, dtype=np.uint8),
+        undistorted=ctx.save(folder / f"{tstem}_desc-undistorted_bold.nii.gz", reference[..., 0] * scale_signal, aff),
+        roi_mask=None if roi is None else ctx.save(folder / f"{tstem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
+                                                   dtype=np.uint8))
 
 
-def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[dict, dict]:
+def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[ManifestFieldmap, FieldmapTruth]:
     """The dual-echo gradient-echo field map of the subject, and its truth on the field-map grid."""
     fm, field_t = ctx.p.fieldmap, ctx.p.field_strength_t
     aff = _grid_affine(fm.voxel_mm, fm.shape, fm.center_mm)
@@ -434,19 +428,16 @@ def _simulated_fieldmap(ctx: _Subject, intended: list[str]) -> tuple[dict, dict]
                                           sidecar={"EchoTime": te, "Units": "rad", **common})
     brain_fm = sus.head_labels_at(cx, cy, cz, ctx.scale) == sus.HEAD_LABELS["brain"]
     folder = ctx.truth_dir / "fmap"
-    truth = {
-        "b0_hz": ctx.save(folder / f"{stem}_desc-truth_fieldmap.nii.gz", b0_fm, aff,
-                          sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
-        "brain_mask": ctx.save(folder / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff, dtype=np.uint8),
-    }
     roi = _roi_mask(ctx.p.roi, ctx.scale, cx, cy, cz, brain_fm)
-    if roi is not None:
-        truth["roi_mask"] = ctx.save(folder / f"{stem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
-                                     dtype=np.uint8)
     brain_b0 = b0_fm[brain_fm]
-    truth["brain_b0_hz_percentiles"] = {q: float(np.percentile(brain_b0, v)) for q, v in
-                                        (("p1", 1), ("p50", 50), ("p99", 99))}
-    return {"kind": fm.kind, "echo_times_s": [te1, te2], "files": files}, truth
+    truth = FieldmapTruth(
+        b0_hz=ctx.save(folder / f"{stem}_desc-truth_fieldmap.nii.gz", b0_fm, aff,
+                       sidecar={"Units": "Hz", "Description": "modelled B0 map on the field-map grid"}),
+        brain_mask=ctx.save(folder / f"{stem}_desc-brain_mask.nii.gz", brain_fm, aff, dtype=np.uint8),
+        brain_b0_hz_percentiles={q: float(np.percentile(brain_b0, v)) for q, v in (("p1", 1), ("p50", 50), ("p99", 99))},
+        roi_mask=None if roi is None else ctx.save(folder / f"{stem}_desc-{ctx.p.roi.name}_mask.nii.gz", roi, aff,
+                                                   dtype=np.uint8))
+    return ManifestFieldmap(kind=fm.kind, echo_times_s=[te1, te2], files=files), truth
 
 
 def _tr_template(affine, tr_s: float):
@@ -534,18 +525,11 @@ def _write_dataset(d: dict, p: ScenarioSpec, root: Path, seed: int, overwrite: b
             seq = np.random.SeedSequence([seed, i, j + 1])
             entries.append(_generate_one(p, d, root, sub, ses, seq, scale, overwrite))
     _write_text(root / "participants.tsv", "\n".join(rows) + "\n", overwrite)
-    manifest = {
-        "scenario": d["name"],
-        "title": d.get("title", d["name"]),
-        "generator_version": GENERATOR_VERSION,
-        "definition_sha256": definition_hash(d),
-        "definition": public,
-        "seed": seed,
-        "field_strength_t": p.field_strength_t,
-        "roi_name": p.roi.name if p.roi else None,
-        "entries": entries,
-    }
-    write_json(root / TRUTH_DIR / "manifest.json", manifest, overwrite=overwrite)
+    manifest = ScenarioManifest(scenario=d["name"], title=d.get("title", d["name"]), generator_version=GENERATOR_VERSION,
+                                definition_sha256=definition_hash(d), definition=public, seed=seed,
+                                field_strength_t=p.field_strength_t, roi_name=p.roi.name if p.roi else None,
+                                entries=entries)
+    write_json(root / TRUTH_DIR / "manifest.json", manifest.to_json(), overwrite=overwrite)
     return root
 
 
@@ -556,16 +540,16 @@ def _write_text(path: Path, text: str, overwrite: bool) -> None:
         temporary.write_text(text, encoding="utf-8")
 
 
-def load_manifest(root) -> dict:
+def load_manifest(root) -> ScenarioManifest:
     """The manifest written by :func:`generate_scenario` (paths relative to ``root``).
 
     Raises
     ------
     InputError
-        When ``root`` holds no generated scenario.
+        When ``root`` holds no generated scenario, or a manifest that does not match
+        :class:`fieldfix.scenario_spec.ScenarioManifest` (one of an older generator).
     """
     path = Path(root) / TRUTH_DIR / "manifest.json"
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        raise InputError("not a generated scenario (no readable manifest)", path) from None
+    if not path.is_file():
+        raise InputError("not a generated scenario (no manifest)", path)
+    return ScenarioManifest.read(path)

@@ -42,19 +42,19 @@ def tiny(tmp_path_factory):
 
 def test_layout_and_sidecars(tiny):
     m = scenarios.load_manifest(tiny)
-    assert m["scenario"] == "tiny-test" and m["seed"] == 7
-    (entry,) = m["entries"]
+    assert m.scenario == "tiny-test" and m.seed == 7
+    (entry,) = m.entries
     assert (tiny / "dataset_description.json").is_file()
     assert (tiny / "participants.tsv").read_text().startswith("participant_id")
-    files = entry["fieldmap"]["files"]
+    files = entry.fieldmap.files
     assert set(files) == {"phasediff", "magnitude1", "magnitude2"}
     pd_json = json.loads((tiny / files["phasediff"].replace(".nii.gz", ".json")).read_text())
     assert pd_json["EchoTime1"] == pytest.approx(0.00492) and pd_json["EchoTime2"] == pytest.approx(0.00738)
-    (run,) = entry["runs"]
+    (run,) = entry.runs
     # IntendedFor is relative to the subject folder and names the run that exists
     assert pd_json["IntendedFor"] == ["func/sub-01_task-rest_bold.nii.gz"]
     assert (tiny / "sub-01" / pd_json["IntendedFor"][0]).is_file()
-    bold = tiny / run["bold"]
+    bold = tiny / run.bold
     side = json.loads(bold.with_name(bold.name.replace(".nii.gz", ".json")).read_text())
     assert side["PhaseEncodingDirection"] == "j-"
     # TotalReadoutTime = effective echo spacing x (PE lines - 1) (BIDS definition)
@@ -64,10 +64,24 @@ def test_layout_and_sidecars(tiny):
     assert img.shape == (20, 24, 8, 2)
     assert img.header.get_zooms()[3] == pytest.approx(2.0)
     for key in ("truth_b0_hz", "brain_mask", "undistorted", "roi_mask"):
-        assert (tiny / run[key]).is_file(), key
-    roi = np.asanyarray(nib.load(tiny / run["roi_mask"]).dataobj) > 0
-    brain = np.asanyarray(nib.load(tiny / run["brain_mask"]).dataobj) > 0
+        assert (tiny / getattr(run, key)).is_file(), key
+    roi = np.asanyarray(nib.load(tiny / run.roi_mask).dataobj) > 0
+    brain = np.asanyarray(nib.load(tiny / run.brain_mask).dataobj) > 0
     assert roi.any() and not (roi & ~brain).any()
+
+
+def test_manifest_is_typed_and_a_renamed_key_is_refused(tiny, tmp_path):
+    m = scenarios.load_manifest(tiny)
+    assert m.entries[0].runs[0].roi_mask and m.entries[0].truth.roi_mask and m.roi_name == "orbitofrontal"
+    data = json.loads((tiny / scenarios.TRUTH_DIR / "manifest.json").read_text())
+    data["entries"][0]["runs"][0]["bold_image"] = data["entries"][0]["runs"][0].pop("bold")
+    copy = tmp_path / scenarios.TRUTH_DIR / "manifest.json"
+    copy.parent.mkdir(parents=True)
+    copy.write_text(json.dumps(data))
+    with pytest.raises(InputError, match="bold_image"):
+        scenarios.load_manifest(tmp_path)
+    with pytest.raises(InputError, match="no manifest"):
+        scenarios.load_manifest(tmp_path / "elsewhere")
 
 
 def test_deterministic_same_seed_same_arrays(tiny, tmp_path):
@@ -85,10 +99,10 @@ def test_deterministic_same_seed_same_arrays(tiny, tmp_path):
 def test_phasediff_encodes_the_true_field(tiny):
     # The field follows from the phase gained between the two echo times (fact of the trade):
     # b0 = dphi / (2 pi dTE), valid where |b0| < 1 / (2 dTE) (no wrap).
-    entry = scenarios.load_manifest(tiny)["entries"][0]
-    dphi = nib.load(tiny / entry["fieldmap"]["files"]["phasediff"]).get_fdata()
-    truth = nib.load(tiny / entry["truth"]["b0_hz"]).get_fdata()
-    brain = nib.load(tiny / entry["truth"]["brain_mask"]).get_fdata() > 0
+    entry = scenarios.load_manifest(tiny).entries[0]
+    dphi = nib.load(tiny / entry.fieldmap.files["phasediff"]).get_fdata()
+    truth = nib.load(tiny / entry.truth.b0_hz).get_fdata()
+    brain = nib.load(tiny / entry.truth.brain_mask).get_fdata() > 0
     dte = 0.00738 - 0.00492
     ok = brain & (np.abs(truth) < 0.4 / dte)
     est = dphi / (2 * np.pi * dte)
@@ -97,10 +111,9 @@ def test_phasediff_encodes_the_true_field(tiny):
 
 
 def test_epi_shows_distortion_relative_to_reference(tiny):
-    entry = scenarios.load_manifest(tiny)["entries"][0]
-    run = entry["runs"][0]
-    bold = nib.load(tiny / run["bold"]).get_fdata()[..., 0]
-    ref = nib.load(tiny / run["undistorted"]).get_fdata()
+    run = scenarios.load_manifest(tiny).entries[0].runs[0]
+    bold = nib.load(tiny / run.bold).get_fdata()[..., 0]
+    ref = nib.load(tiny / run.undistorted).get_fdata()
     assert bold.shape == ref.shape
     # Same object: distortion moves signal without creating it, and through-slice dephasing
     # (dropout) only removes some, so the total is somewhat lower, never higher; not the same image.
@@ -112,11 +125,10 @@ def test_multi_subject_sessions_and_batch_discovery(tmp_path):
     root = scenarios.generate_scenario(TINY | {"fieldmap": TINY["fieldmap"] | {"kind": "phase-pair"}},
                                        tmp_path / "multi", subjects=2, sessions=2, seed=1)
     m = scenarios.load_manifest(root)
-    assert [(e["subject"], e["session"]) for e in m["entries"]] == [("01", "1"), ("01", "2"), ("02", "1"),
-                                                                     ("02", "2")]
+    assert [(e.subject, e.session) for e in m.entries] == [("01", "1"), ("01", "2"), ("02", "1"), ("02", "2")]
     # the same subject keeps its head size; sessions differ in pitch (repositioning)
-    assert m["entries"][0]["head_scale"] == m["entries"][1]["head_scale"]
-    assert m["entries"][0]["pitch_deg"] != m["entries"][1]["pitch_deg"]
+    assert m.entries[0].head_scale == m.entries[1].head_scale
+    assert m.entries[0].pitch_deg != m.entries[1].pitch_deg
     p1 = json.loads((root / "sub-02/ses-2/fmap/sub-02_ses-2_phase1.json").read_text())
     assert p1["EchoTime"] == pytest.approx(0.00492)
     assert p1["IntendedFor"] == ["ses-2/func/sub-02_ses-2_task-rest_bold.nii.gz"]
@@ -178,10 +190,10 @@ def test_field_map_workflow_recovers_modelled_field_through_wraps(tmp_path):
     d["fieldmap"].update({"kind": "phase-pair", "echo_times": ["4ms", "6ms"], "voxel_size": "5mm",
                           "shape": [34, 42, 42], "snr": 100})
     root = scenarios.generate_scenario(d, tmp_path / "ds")
-    e = scenarios.load_manifest(root)["entries"][0]
-    f = {k: root / v for k, v in e["fieldmap"]["files"].items()}
-    truth = load_image(root / e["truth"]["b0_hz"]).get_fdata()
-    brain = load_image(root / e["truth"]["brain_mask"]).get_fdata() > 0
+    e = scenarios.load_manifest(root).entries[0]
+    f = {k: root / v for k, v in e.fieldmap.files.items()}
+    truth = load_image(root / e.truth.b0_hz).get_fdata()
+    brain = load_image(root / e.truth.brain_mask).get_fdata() > 0
     wrapped = brain & (np.abs(truth) > 250.0)
     assert wrapped.sum() >= 20
     run_fieldmap(tmp_path / "fm", phase=[f["phase1"], f["phase2"]], magnitude=[f["magnitude1"], f["magnitude2"]],

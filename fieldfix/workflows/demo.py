@@ -32,6 +32,7 @@ from ..io import load_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
 from ..outputs import DemoChecks, DemoStep, DemoSummary, JobOptions, PlanSummary
+from ..scenario_spec import ManifestEntry, ManifestRun, ScenarioManifest
 from .dropout import run_dropout
 from .fieldmap import run_fieldmap
 from .plan import run_plan
@@ -55,17 +56,17 @@ def dataset_location(scenario: str, out_dir) -> Path:
     return Path(out_dir) / "dataset"
 
 
-def _ensure_dataset(scenario: str, root: Path, seed: int = 0) -> tuple[dict, bool]:
+def _ensure_dataset(scenario: str, root: Path, seed: int = 0) -> tuple[ScenarioManifest, bool]:
     """Reuse a generated dataset whose manifest matches the definition; build it otherwise."""
     definition = scenarios.load_definition(scenario)
     want = scenarios.definition_hash(definition)
     try:
         manifest = scenarios.load_manifest(root)
-        if (manifest.get("definition_sha256") == want and manifest.get("seed") == seed
-                and manifest.get("generator_version") == scenarios.GENERATOR_VERSION
-                and all((root / e["runs"][0]["bold"]).is_file() for e in manifest["entries"])):
+        if (manifest.definition_sha256 == want and manifest.seed == seed
+                and manifest.generator_version == scenarios.GENERATOR_VERSION
+                and all(e.runs and (root / e.runs[0].bold).is_file() for e in manifest.entries)):
             return manifest, False
-    except (InputError, KeyError, IndexError, TypeError):
+    except InputError:  # no manifest, or one of an older generator: build it again
         pass
     if root.is_dir() and any(p.name != ".fieldfix" for p in root.iterdir()):
         # Only a folder that holds an earlier generation (it has a manifest) is rebuilt in place.
@@ -140,14 +141,14 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
     steps.bar.update(1)
     dataset_step = DemoStep(status="built" if built else "reused", seconds=round(time.perf_counter() - t0, 2),
                             path=str(root))
-    entry = dict(manifest["entries"][0], field_strength_t=manifest["field_strength_t"])
+    entry = manifest.entries[0]
     job = JobOptions(out_dir=out, overwrite=overwrite, progress=progress, command=command or "fieldfix demo")
     with output_folder(out):
         checks, report_path, warnings = _run_steps(steps, job, root, entry, manifest, scenario)
         steps.bar.close()
         summary = DemoSummary(
-            scenario=manifest["scenario"], title=manifest.get("title", manifest["scenario"]),
-            field_strength_t=float(manifest["field_strength_t"]), subject=entry["subject"], dataset=str(root),
+            scenario=manifest.scenario, title=manifest.title, field_strength_t=manifest.field_strength_t,
+            subject=entry.subject, dataset=str(root),
             out_dir=str(out), steps={"dataset": dataset_step, **steps.done}, checks_against_truth=checks,
             report=str(report_path) if report_path else None, seconds=round(time.perf_counter() - t_start, 1),
             warnings=warnings)
@@ -155,11 +156,13 @@ def run_demo(out_dir, *, scenario: str = DEFAULT_SCENARIO, overwrite: bool = Fal
     return summary
 
 
-def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: dict, manifest: dict, scenario: str):
-    run = entry["runs"][0]
-    bold = root / run["bold"]
+def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: ManifestEntry, manifest: ScenarioManifest,
+               scenario: str):
+    run = entry.runs[0]
+    bold = root / run.bold
     checks: dict = {}
-    fm = steps.run("field map", lambda: _call_fieldmap(job, root, entry), lambda s: [job.path(s.outputs.b0_hz)])
+    fm = steps.run("field map", lambda: _call_fieldmap(job, root, entry, manifest.field_strength_t),
+                   lambda s: [job.path(s.outputs.b0_hz)])
     b0_path, mask_path = job.path(fm.outputs.b0_hz), job.path(fm.outputs.mask)
     checks.update(_field_checks(root, entry, b0_path))
     uw = steps.run("unwarping", lambda: run_unwarp([bold], b0_path, job, b0_mask=mask_path),
@@ -167,26 +170,26 @@ def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: dict, manifest
     checks.update(max_abs_shift_vox=round(uw.max_abs_shift_vox, 2),
                   percent_shifted_over_1_voxel=round(uw.percent_shifted_over_1_voxel, 1))
     checks.update(_unwarp_checks(root, run, bold, job.path(uw.outputs.corrected), job.path(uw.outputs.shift_vox)))
-    dr = steps.run("dropout", lambda: run_dropout(b0_path, job, te_s=float(run["echo_time_s"]),
-                                                  thickness_mm=float(run["slice_thickness_mm"]), like=bold,
-                                                  mask=root / entry["truth"]["brain_mask"]),
+    dr = steps.run("dropout", lambda: run_dropout(b0_path, job, te_s=run.echo_time_s,
+                                                  thickness_mm=run.slice_thickness_mm, like=bold,
+                                                  mask=root / entry.truth.brain_mask),
                    lambda s: [job.path(s.outputs.retention)])
     checks.update(_dropout_checks(dr, job, entry, root))
-    if "roi_mask" in entry["truth"]:
+    if entry.truth.roi_mask is not None:
         pl = steps.run("plan", lambda: _call_plan(job, b0_path, run, entry, root), lambda s: [job.path(s.outputs.csv)])
         checks.update(_plan_checks(pl))
     from ..report import build_report
 
     report_path = steps.run("report", lambda: build_report(
-        job.out_dir, title=f"fieldfix demo: {manifest.get('title', scenario)}", overwrite=job.overwrite,
+        job.out_dir, title=f"fieldfix demo: {manifest.title}", overwrite=job.overwrite,
         truth=DemoChecks(**checks)), lambda p: [p])
     return DemoChecks(**checks), report_path, [f"unwarping: {w}" for w in uw.warnings]
 
 
-def _field_checks(root: Path, entry: dict, b0_path: Path) -> dict:
-    truth = _load_on(root / entry["truth"]["b0_hz"], b0_path)
+def _field_checks(root: Path, entry: ManifestEntry, b0_path: Path) -> dict:
+    truth = _load_on(root / entry.truth.b0_hz, b0_path)
     est = load_image(b0_path).get_fdata(np.float64)
-    brain = _load_on(root / entry["truth"]["brain_mask"], b0_path, order=0) > 0.5
+    brain = _load_on(root / entry.truth.brain_mask, b0_path, order=0) > 0.5
     err = np.abs(est - truth)[brain]
     return {"b0_brain_p1_p99_hz": [round(float(np.percentile(truth[brain], 1)), 1),
                                    round(float(np.percentile(truth[brain], 99)), 1)],
@@ -194,7 +197,7 @@ def _field_checks(root: Path, entry: dict, b0_path: Path) -> dict:
             "b0_error_vs_truth_p95_hz": round(float(np.percentile(err, 95)), 2)}
 
 
-def _unwarp_checks(root: Path, run: dict, bold: Path, corrected: Path, shift_path: Path) -> dict:
+def _unwarp_checks(root: Path, run: ManifestRun, bold: Path, corrected: Path, shift_path: Path) -> dict:
     """First volume before and after unwarping, compared with the undistorted simulation.
 
     * edge agreement before / after: agreement of image edges with those of the undistorted
@@ -208,7 +211,7 @@ def _unwarp_checks(root: Path, run: dict, bold: Path, corrected: Path, shift_pat
     """
     from ..report import edge_agreement
 
-    ref_img = load_image(root / run["undistorted"])
+    ref_img = load_image(root / run.undistorted)
     ref = ref_img.get_fdata(np.float64)
     before = load_image(bold).volume(0).astype(np.float64)
     after = load_image(corrected).volume(0).astype(np.float64)
@@ -220,40 +223,39 @@ def _unwarp_checks(root: Path, run: dict, bold: Path, corrected: Path, shift_pat
         for key, image in (("before", before), ("after", after)):
             checks[f"edge_agreement_shifted_{key}"] = round(float(edge_agreement(image, ref, ref_img.affine,
                                                                                   shifted)), 3)
-    if "roi_mask" in run:
-        roi = load_image(root / run["roi_mask"]).get_fdata() > 0
+    if run.roi_mask is not None:
+        roi = load_image(root / run.roi_mask).get_fdata() > 0
         if roi.any() and ref[roi].mean() > 0:
             checks["roi_signal_kept"] = round(float(after[roi].mean() / ref[roi].mean()), 3)
     return checks
 
 
-def _call_fieldmap(job: JobOptions, root: Path, entry: dict):
-    files = {k: root / v for k, v in entry["fieldmap"]["files"].items()}
+def _call_fieldmap(job: JobOptions, root: Path, entry: ManifestEntry, field_t: float):
+    files = {k: root / v for k, v in entry.fieldmap.files.items()}
     mags = [files["magnitude1"], files["magnitude2"]]
-    field_t = entry.get("field_strength_t")
     if "phasediff" in files:
         return run_fieldmap(job, phase_diff=files["phasediff"], magnitude=mags, field_strength_t=field_t)
     return run_fieldmap(job, phase=[files["phase1"], files["phase2"]], magnitude=mags, field_strength_t=field_t)
 
 
-def _call_plan(job: JobOptions, b0_path: Path, run: dict, entry: dict, root: Path) -> PlanSummary:
-    truth = entry["truth"]
-    pe_lines = int(round(run["total_readout_time_s"] / run["effective_echo_spacing_s"])) + 1
-    bold = load_image(root / run["bold"])
+def _call_plan(job: JobOptions, b0_path: Path, run: ManifestRun, entry: ManifestEntry, root: Path) -> PlanSummary:
+    truth = entry.truth
+    pe_lines = int(round(run.total_readout_time_s / run.effective_echo_spacing_s)) + 1
+    bold = load_image(root / run.bold)
     inplane = float(np.mean(np.sort(bold.zooms[:3])[:2]))
-    return run_plan(b0_path, job, roi_path=root / truth["roi_mask"], brain_mask_path=root / truth["brain_mask"],
+    return run_plan(b0_path, job, roi_path=root / truth.roi_mask, brain_mask_path=root / truth.brain_mask,
                     te_s=PLAN_TE_S, thickness_mm=PLAN_THICKNESS_MM, tilt_deg=PLAN_TILT_DEG, pe_signs=(1, -1),
-                    echo_spacing_s=float(run["effective_echo_spacing_s"]), pe_lines=pe_lines, inplane_mm=inplane)
+                    echo_spacing_s=run.effective_echo_spacing_s, pe_lines=pe_lines, inplane_mm=inplane)
 
 
-def _dropout_checks(result, job: JobOptions, entry: dict, root: Path) -> dict:
+def _dropout_checks(result, job: JobOptions, entry: ManifestEntry, root: Path) -> dict:
     checks = {}
     if result.retention.median is not None:
         checks["dropout_brain_median_retention"] = round(result.retention.median, 3)
         checks["dropout_brain_percent_below_threshold"] = round(result.retention.percent_below_threshold, 1)
-    if "roi_mask" in entry["truth"]:
+    if entry.truth.roi_mask is not None:
         ret = load_image(job.path(result.outputs.retention)).get_fdata(np.float64)
-        roi = load_image(root / entry["truth"]["roi_mask"]).get_fdata() > 0
+        roi = load_image(root / entry.truth.roi_mask).get_fdata() > 0
         if roi.shape == ret.shape and roi.any():
             checks["dropout_roi_mean_retention"] = round(float(ret[roi].mean()), 3)
     return checks
