@@ -58,7 +58,7 @@ def _tile(**fields) -> dict:
 
 
 def _state(measure) -> str:
-    if measure is None or measure.get("change") is None:
+    if measure is None or measure["change"] is None:
         return "none"
     change = measure["change"] if measure["higher_is_better"] else -measure["change"]
     return "ok" if change > 0.01 else ("bad" if change < -0.01 else "look")
@@ -68,16 +68,16 @@ def _field_tile(data) -> dict:
     fms = data["field_maps"]
     if not fms:
         return _tile(empty="no field map in this report")
-    beyond = fms[0].get("percent_mask_beyond_unaliased_range")
+    beyond = fms[0]["percent_mask_beyond_unaliased_range"]
     lines = [("1st to 99th percentile", [num(data, "field_maps.0.field_percentiles_hz.p1", "{:+.1f}", "Hz"),
                                          num(data, "field_maps.0.field_percentiles_hz.p99", "{:+.1f}", "Hz")])]
-    if fms[0].get("unaliased_range_hz") is not None:
+    if fms[0]["unaliased_range_hz"] is not None:
         lines.append(("beyond the unaliased range",
                       [num(data, "field_maps.0.percent_mask_beyond_unaliased_range", "{:.2f}", "% of mask")]))
     for j, m in enumerate(data["headline"]):
         if m["kind"] == "truth_b0_error":
             lines.append((f"{m['label']} ({m['region']})", [num(data, f"headline.{j}.after", "{:.2f}", m["unit"])]))
-    coverage = fms[0].get("mask_coverage")
+    coverage = fms[0]["mask_coverage"]
     look = bool(beyond) or (coverage is not None and coverage < 0.7)
     return _tile(state="look" if look else "ok", lines=lines, more=len(fms) - 1)
 
@@ -126,7 +126,7 @@ def _suspicious_tile(data) -> dict:
 def _overview(data) -> list[list[object]]:
     rows = []
     for i, run in enumerate(data["runs"]):
-        rows.append([Text(run.get("subject") or "\u2013"), Text(run["stem"]),
+        rows.append([Text(run["subject"] or "\u2013"), Text(run["stem"]),
                      num(data, f"runs.{i}.edge_agreement_shifted_before", "{:.3f}", "NGF, 0\u20131"),
                      num(data, f"runs.{i}.edge_agreement_shifted_after", "{:.3f}", "NGF, 0\u20131"),
                      num(data, f"runs.{i}.edge_agreement_before", "{:.3f}", "NGF, 0\u20131"),
@@ -164,7 +164,7 @@ def _notes(data) -> list[str]:
     notes = list(data["notes"])
     for kind in ("field_maps", "runs", "dropout"):
         for item in data[kind]:
-            notes += [f"{item['name']}: {n}" for n in item.get("notes", [])]
+            notes += [f"{item['name']}: {n}" for n in item["notes"]]
     return notes
 
 
@@ -179,7 +179,7 @@ def render_page(data: dict, pictures) -> str:
     env.filters["tojson_attr"] = lambda value: json.dumps(value, separators=(",", ":"))
     env.tests["num"] = lambda cell: isinstance(cell, Num)
     template = env.from_string(asset("page.html.j2"))
-    uses_edges = any(r.get("edge_agreement_after") is not None for r in data["runs"])
+    uses_edges = any(r["edge_agreement_after"] is not None for r in data["runs"])
     return template.render(
         data=data, css=css, script=script, csp=content_security_policy(css, script),
         tiles={"field": _field_tile(data), "correction": _correction_tile(data), "loss": _loss_tile(data),

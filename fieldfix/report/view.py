@@ -29,12 +29,17 @@ METRIC_WORDS = {"bold_sensitivity": "BOLD sensitivity", "retention": "through-pl
 
 
 def lookup(data, key: str):
-    """The value at a dotted key path (list indices as numbers); None when absent.
+    """The value at a dotted key path (list indices as numbers); None where it, or a part of the
+    path, is null. A path the data does not have is a KeyError: a page value whose field was
+    renamed fails the build instead of showing 'n/a'.
 
     Examples
     --------
-    >>> lookup({"a": [{"b": 3}]}, "a.0.b")
-    3
+    >>> lookup({"a": [{"b": 3}], "c": None}, "a.0.b"), lookup({"c": None}, "c.d")
+    (3, None)
+    >>> lookup({"a": [{"b": 3}]}, "a.0.x")
+    Traceback (most recent call last):
+    KeyError: "the report data has no 'a.0.x' (no field 'x')"
     """
     value = data
     for part in key.split("."):
@@ -42,11 +47,13 @@ def lookup(data, key: str):
             try:
                 value = value[int(part)]
             except (ValueError, IndexError):
-                return None
+                raise KeyError(f"the report data has no {key!r} (no item {part})") from None
         elif isinstance(value, dict):
-            value = value.get(part)
+            if part not in value:  # a page key no record field has: a bug, never shown as 'n/a'
+                raise KeyError(f"the report data has no {key!r} (no field {part!r})")
+            value = value[part]
         else:
-            return None
+            raise KeyError(f"the report data has no {key!r} ({part!r} below a plain value)")
         if value is None:
             return None
     return value
@@ -144,7 +151,7 @@ def run_facts(data, i: int) -> list[tuple[str, list[tuple[str, object]]]]:
     p = f"runs.{i}"
     run = lookup(data, p) or {}
     acquisition = [
-        ("Phase encoding", Text(f"{run.get('pe_code')} ({run.get('pe_direction_world')})")),
+        ("Phase encoding", Text(f"{run['pe_code']} ({run['pe_direction_world']})")),
         ("Total readout time", num(data, f"{p}.timing.readout_time_s", "{:.2f}", "ms", 1000.0)),
         ("Effective echo spacing", num(data, f"{p}.timing.echo_spacing_s", "{:.3f}", "ms", 1000.0)),
         ("Phase-encode lines", num(data, f"{p}.timing.n_pe_lines", "{:d}", "lines")),
