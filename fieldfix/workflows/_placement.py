@@ -45,7 +45,7 @@ class Placement:
 
 def find_b0_magnitude(b0_path: Path, given) -> Path | None:
     """The given magnitude, else ``<tag>b0_magnitude.nii.gz`` beside a ``<tag>b0_hz.nii.gz``, else None."""
-    return find_beside_b0(b0_path, given, "b0_magnitude")
+    return find_beside_b0(b0_path, given, "magnitude")
 
 
 def read_magnitude_on_map(path: Path | None, b0: Image) -> np.ndarray | None:

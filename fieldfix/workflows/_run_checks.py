@@ -15,6 +15,7 @@ import numpy as np
 from ..errors import GeometryError, InputError, MetadataError
 from ..geometry import parse_pe_code
 from ..io import Image, sidecar_path
+from ..outputs import FieldMapFiles
 
 __all__ = ["resolve_pe_code", "check_recon_matrix", "finite_volume", "check_shift_size", "signal_mask",
            "ShiftCheck", "find_b0_mask", "find_beside_b0", "MAX_SHIFT_FOV_FRACTION", "LARGE_SHIFT_FOV_FRACTION"]
@@ -60,22 +61,24 @@ def resolve_pe_code(pe_code: str | None, image: Image, timing_win: str | None) -
 
 
 def find_beside_b0(b0_path: Path, given, role: str) -> Path | None:
-    """The given file, else ``<tag><role>.nii[.gz]`` beside a ``<tag>b0_hz.nii[.gz]`` (as the field-map
-    job names its outputs), else None."""
+    """The given file, else the field-map job's output `role` (a :class:`FieldMapFiles` field:
+    ``'mask'``, ``'magnitude'``) beside a B0 map it named, with the map's tag, gzipped or not;
+    else None."""
     if given is not None:
         return Path(given)
     name = b0_path.name
-    for suffix in ("b0_hz.nii.gz", "b0_hz.nii"):
+    plain = FieldMapFiles.named().b0_hz
+    for suffix, ending in ((plain, ""), (plain.removesuffix(".gz"), ".gz")):
         if name.endswith(suffix):
-            candidate = b0_path.with_name(name[: -len(suffix)] + role + suffix[len("b0_hz"):])
+            candidate = b0_path.with_name(getattr(FieldMapFiles.named(name[: -len(suffix)]), role).removesuffix(ending))
             if candidate.is_file():
                 return candidate
     return None
 
 
 def find_b0_mask(b0_path: Path, b0_mask_path) -> Path | None:
-    """The given mask, else ``<tag>b0_mask.nii.gz`` beside a ``<tag>b0_hz.nii.gz``, else None."""
-    return find_beside_b0(b0_path, b0_mask_path, "b0_mask")
+    """The given mask, else the field-map job's mask beside its B0 map (same tag), else None."""
+    return find_beside_b0(b0_path, b0_mask_path, "mask")
 
 
 def check_recon_matrix(image: Image, n_lines: int) -> None:
