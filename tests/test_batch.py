@@ -420,7 +420,7 @@ def test_backends_give_identical_outputs(three_runs):
             assert np.array_equal(np.asanyarray(a.dataobj), np.asanyarray(b.dataobj)), (mode, rel)
         def rows(folder):  # the alignment gain comes from the reports, made in jobs1 only
             table = json.loads((folder / "group" / "group_runs.json").read_text())["rows"]
-            return [{k: v for k, v in r.items() if k != "alignment_gain"} for r in table]
+            return [{k: v for k, v in r.items() if k != "edge_agreement_gain"} for r in table]
 
         assert rows(base / mode) == rows(base / "jobs1")
         no_reports = dict(summaries["jobs1"]["tasks"])

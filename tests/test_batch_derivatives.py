@@ -317,4 +317,4 @@ def test_group_table_columns_come_from_the_typed_summaries(derivatives):
         # the invented runs were distorted along the phase-encode axis: correcting them aligns the edges
         # better with the undistorted field-map magnitude (normalised gradient fields, Haber and
         # Modersitzki 2006), so the report's gain is positive
-        assert row.alignment_gain is not None and row.alignment_gain > 0
+        assert row.edge_agreement_gain is not None and row.edge_agreement_gain > 0

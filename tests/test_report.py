@@ -267,14 +267,17 @@ def test_scales_fit_the_data():
 
 
 def test_math_text_is_off_for_names():
-    from fieldfix.report.figures import GroupRow, figure_png, group_figure
+    from fieldfix.outputs import GroupRow
+    from fieldfix.report.figures import figure_png, group_figure
 
     name = r"$\frac{x^2$ run"  # an unbalanced math expression would make mathtext fail
-    rows = [GroupRow(subject=name, run="a", max_shift_vox=1.5), GroupRow(subject="sub-02", run="b", max_shift_vox=2.0)]
+    common = dict(session="", fieldmap="", status="ok", reason="")
+    rows = [GroupRow(subject=name, run="a", max_abs_shift_vox=1.5, **common),
+            GroupRow(subject="02", run="b", max_abs_shift_vox=2.0, **common)]
     fig = group_figure(rows, title=name)
     assert figure_png(fig)[:4] == b"\x89PNG"
     assert name in [t.get_text() for t in fig.axes[0].get_xticklabels()]
-    assert group_figure([GroupRow(subject="x", run="r")]) is None
+    assert group_figure([GroupRow(subject="x", run="r", **common)]) is None
 
 
 def _plan_rows():

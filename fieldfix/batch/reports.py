@@ -11,7 +11,7 @@ from ..outputs import ReportFiles, ReportSummary
 from ..records import Record
 from ..report import build_report
 
-__all__ = ["SubjectReport", "subject_report", "report_alignment"]
+__all__ = ["SubjectReport", "subject_report", "report_edge_gains"]
 
 
 @dataclass(frozen=True)
@@ -31,14 +31,7 @@ def subject_report(summaries: list[Path], out_dir: Path, *, title: str) -> Subje
     return SubjectReport(outputs=ReportFiles.named(Path(html).stem))
 
 
-def report_alignment(numbers_path: Path) -> dict[str, float]:
-    """Run stem -> alignment gain: edge agreement after - before where the correction moved voxels
-    (over the whole mask when no moved region was measured), from a report's ``report.json``."""
-    gains = {}
-    for run in ReportSummary.read(numbers_path).runs:
-        before, after = run.edge_agreement_shifted_before, run.edge_agreement_shifted_after
-        if before is None or after is None:
-            before, after = run.edge_agreement_before, run.edge_agreement_after
-        if before is not None and after is not None:
-            gains[run.stem] = after - before
-    return gains
+def report_edge_gains(numbers_path: Path) -> dict[str, float]:
+    """Run stem -> :meth:`fieldfix.outputs.ReportRun.edge_agreement_gain`, from a report's ``report.json``."""
+    runs = ReportSummary.read(numbers_path).runs
+    return {run.stem: run.edge_agreement_gain() for run in runs if run.edge_agreement_gain() is not None}

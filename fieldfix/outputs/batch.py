@@ -79,7 +79,7 @@ class GroupRow(Record):
     max_abs_shift_vox: float | None = None
     max_abs_shift_mm: float | None = None
     retention_percent_below_threshold: float | None = None
-    alignment_gain: float | None = None
+    edge_agreement_gain: float | None = None
 
 
 @dataclass(frozen=True)

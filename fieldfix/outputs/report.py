@@ -84,6 +84,14 @@ class ReportRun(ShiftNumbers):
     job_warnings: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
 
+    def edge_agreement_gain(self) -> float | None:
+        """Edge agreement after minus before correction where it moved voxels (over the whole
+        mask when no moved region was measured); None when not measured."""
+        before, after = self.edge_agreement_shifted_before, self.edge_agreement_shifted_after
+        if before is None or after is None:
+            before, after = self.edge_agreement_before, self.edge_agreement_after
+        return after - before if before is not None and after is not None else None
+
 
 @dataclass(frozen=True)
 class ReportDropout(DropoutNumbers):

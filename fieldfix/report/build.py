@@ -13,10 +13,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import OutputError
-from ..outputs import CAUTION, DemoChecks, ReportFiles, ReportSummary
+from ..outputs import CAUTION, DemoChecks, GroupRow, ReportFiles, ReportSummary
 from .checks import collect_warnings
 from .figures import style
-from .figures.charts import GroupRow, group_figure
+from .figures.charts import group_figure
 from .headline import headline
 from .measure import measure_dropout, measure_field_map, measure_plan
 from .page import EDGE_METHOD, render_page
@@ -102,12 +102,12 @@ def _group_picture(record: ReportSummary, dpi: int) -> Picture | None:
     subjects = {r.subject for r in [*record.runs, *record.dropout] if r.subject}
     if len(subjects) < 2:
         return None
-    rows = [GroupRow(subject=r.subject or "?", run=r.stem, max_shift_vox=r.max_abs_shift_vox,
-                     edge_gain_moved=(r.edge_agreement_shifted_after - r.edge_agreement_shifted_before)
-                     if r.edge_agreement_shifted_after is not None and r.edge_agreement_shifted_before is not None
-                     else None) for r in record.runs]
-    rows += [GroupRow(subject=d.subject or "?", run=d.name, dropout_percent=d.retention.percent_below_threshold)
-             for d in record.dropout]
+    common = dict(session="", fieldmap="", status="ok", reason="")
+    rows = [GroupRow(subject=r.subject or "?", run=r.stem, max_abs_shift_vox=r.max_abs_shift_vox,
+                     max_abs_shift_mm=r.max_abs_shift_mm, edge_agreement_gain=r.edge_agreement_gain(), **common)
+            for r in record.runs]
+    rows += [GroupRow(subject=d.subject or "?", run=d.name, **common,
+                      retention_percent_below_threshold=d.retention.percent_below_threshold) for d in record.dropout]
     fig = group_figure(rows)
     if fig is None:
         return None

@@ -8,10 +8,10 @@
 """
 
 from .style import figure_png, literal
-from .charts import GroupRow, Profile, field_histogram, group_figure, profile_figure, tradeoff_figure
+from .charts import Profile, field_histogram, group_figure, profile_figure, tradeoff_figure
 from .paper import PaperPanel, summary_figure
 from .panels import Layers, Scale, colourbar_png, draw_axial, panel_figure, panel_png, pick_slices, reference_edges
 
-__all__ = ["figure_png", "literal", "GroupRow", "Profile", "field_histogram", "group_figure", "profile_figure",
+__all__ = ["figure_png", "literal", "Profile", "field_histogram", "group_figure", "profile_figure",
            "tradeoff_figure", "PaperPanel", "summary_figure", "Layers", "Scale", "colourbar_png", "draw_axial",
            "panel_figure", "panel_png", "pick_slices", "reference_edges"]

@@ -21,7 +21,7 @@ import numpy as np
 
 from .style import LINE_COLOURS, literal, new_figure, text_literal
 
-__all__ = ["field_histogram", "Profile", "profile_figure", "tradeoff_figure", "GroupRow", "group_figure"]
+__all__ = ["field_histogram", "Profile", "profile_figure", "tradeoff_figure", "group_figure"]
 
 
 def _tidy(ax) -> None:
@@ -209,32 +209,15 @@ def tradeoff_figure(rows: Sequence, *, recommended=None, title: str | None = Non
 
 # ----------------------------------------------------------------------------- group strips
 
-@dataclass(frozen=True)
-class GroupRow:
-    """One run of a group: its subject (as shown, e.g. ``"sub-01"``) and the numbers the
-    group figure shows (None: not measured).
-
-    ``edge_gain_moved`` is the report's edge agreement where voxels moved, after minus
-    before (NGF, 0 to 1 scale); ``dropout_percent`` the percentage of mask voxels whose
-    predicted retention is under the dropout job's threshold.
-    """
-
-    subject: str
-    run: str
-    status: str = "ok"
-    max_shift_vox: float | None = None
-    dropout_percent: float | None = None
-    edge_gain_moved: float | None = None
+_GROUP_PANELS = (("max_abs_shift_vox", "largest shift (voxels)"),
+                 ("retention_percent_below_threshold", "predicted dropout (% of mask voxels)"),
+                 ("edge_agreement_gain", "edge agreement gain by the correction (NGF, 0\u20131)"))
 
 
-_GROUP_PANELS = (("max_shift_vox", "largest shift (voxels)"),
-                 ("dropout_percent", "predicted dropout (% of mask voxels)"),
-                 ("edge_gain_moved", "edge agreement gain where voxels moved (NGF, 0\u20131)"))
-
-
-def group_figure(rows: Sequence[GroupRow], *, title: str = "Runs across subjects"):
-    """Strip plots of each measured quantity across subjects (one dot per run); None when
-    nothing was measured. Subjects whose runs failed are marked."""
+def group_figure(rows: Sequence, *, title: str = "Runs across subjects"):
+    """Strip plots of each measured quantity of :class:`fieldfix.outputs.GroupRow` rows across
+    subjects (one dot per row); None when nothing was measured. Subjects with a failed run are marked.
+    The batch's group figure and the report's (several subjects) are this one."""
     panels = [(key, label) for key, label in _GROUP_PANELS if any(getattr(r, key) is not None for r in rows)]
     if not panels:
         return None
@@ -249,7 +232,7 @@ def group_figure(rows: Sequence[GroupRow], *, title: str = "Runs across subjects
             if any(r.subject == subject and r.status == "failed" for r in rows):
                 ax.annotate("failed", (x, 0.02), xycoords=("data", "axes fraction"), ha="center", fontsize=7,
                             color=LINE_COLOURS[1])
-        if key == "edge_gain_moved":
+        if key == "edge_agreement_gain":
             ax.axhline(0.0, color="#6b7280", lw=0.8)
         else:
             top = max([getattr(r, key) for r in rows if getattr(r, key) is not None] + [0.0])
