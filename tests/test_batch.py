@@ -488,8 +488,11 @@ def test_cli_interrupted_batch_resumes_without_redoing(dataset, tmp_path):
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline and proc.poll() is None:
-        if list(out.rglob("*.fieldfix-task.json")):
-            break
+        try:
+            if list(out.rglob("*.fieldfix-task.json")):
+                break
+        except FileNotFoundError:  # a staging folder the batch removed while we walked the tree
+            pass
         time.sleep(0.02)
     proc.send_signal(signal.SIGTERM)
     _, err = proc.communicate(timeout=60)
