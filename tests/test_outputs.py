@@ -8,6 +8,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 from pathlib import Path
 
@@ -117,6 +118,36 @@ def test_one_name_per_quantity_across_records():
     fields = {f for cls in (MapStatistics, DemoChecks) for f in cls.__dataclass_fields__}
     assert "percent_below_threshold" in fields
     assert not [f for f in fields if "pct_below" in f or f.endswith("_percent_below_half")]
+
+
+def test_a_quantity_has_one_unit_across_records_unless_reported_in_several():
+    """A stem with two unit suffixes (``te_s`` beside ``te_ms``) is one quantity with two names;
+    only the quantities fieldfix reports in several units on purpose may have them."""
+    import collections
+
+    import fieldfix.batch.params  # noqa: F401  (records of these modules join the census)
+    import fieldfix.batch.tasks  # noqa: F401
+    import fieldfix.scenario_spec  # noqa: F401
+    from fieldfix.records import Record
+
+    def subclasses(cls):
+        for sub in cls.__subclasses__():
+            yield sub
+            yield from subclasses(sub)
+
+    units = ("_s", "_ms", "_mm", "_hz", "_deg", "_rad", "_t", "_ppm", "_vox", "_percent")
+    seen = collections.defaultdict(set)
+    records = set(subclasses(Record))
+    assert len(records) > 40
+    for cls in records:
+        for f in dataclasses.fields(cls):
+            for unit in units:
+                if f.name.endswith(unit):
+                    seen[f.name[: -len(unit)]].add(unit)
+    several = {stem for stem, found in seen.items() if len(found) > 1}
+    # B0 maps and their percentiles in Hz and ppm, shifts in voxels and mm; coverage_mm (a slab's
+    # extent) and coverage_percent (a share of voxels) are two quantities.
+    assert several <= {"b0", "field_percentiles", "max_abs_shift", "coverage"}, several
 
 
 def test_job_options_route_keywords_and_refuse_unknown_ones(tmp_path):
