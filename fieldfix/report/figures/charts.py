@@ -237,7 +237,8 @@ def group_figure(rows: Sequence, *, title: str = "Runs across subjects"):
         else:
             top = max([getattr(r, key) for r in rows if getattr(r, key) is not None] + [0.0])
             ax.set_ylim(0.0, top * 1.15 if top > 0 else 1.0)
-        ax.set_xticks(range(len(subjects)), subjects, rotation=40, ha="right")
+        ax.set_xticks(range(len(subjects)), [f"sub-{s}" if s.isalnum() else s for s in subjects], rotation=40,
+                      ha="right")  # a BIDS label as its folder name
         for tick in ax.get_xticklabels():
             text_literal(tick)
         ax.set_xlim(-0.6, len(subjects) - 0.4)
