@@ -33,5 +33,5 @@ def subject_report(summaries: list[Path], out_dir: Path, *, title: str) -> Subje
 
 def report_edge_gains(numbers_path: Path) -> dict[str, float]:
     """Run stem -> :meth:`fieldfix.outputs.ReportRun.edge_agreement_gain`, from a report's ``report.json``."""
-    runs = ReportSummary.read(numbers_path).runs
-    return {run.stem: run.edge_agreement_gain() for run in runs if run.edge_agreement_gain() is not None}
+    gains = {run.stem: run.edge_agreement_gain() for run in ReportSummary.read(numbers_path).runs}
+    return {stem: gain for stem, gain in gains.items() if gain is not None}

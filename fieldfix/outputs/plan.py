@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 
-from ..records import Record
+from ..records import Record, fields_of
 from .base import CAUTION, JobFiles
 
 
@@ -66,7 +66,7 @@ class PlanRow(PlanChoice):
 
     def choice(self) -> PlanChoice:
         """The row's :class:`PlanChoice` part (what a summary keeps of a recommended protocol)."""
-        return PlanChoice(**{f.name: getattr(self, f.name) for f in fields(PlanChoice)})
+        return PlanChoice(**fields_of(self, PlanChoice))
 
 
 @dataclass(frozen=True, kw_only=True)
