@@ -292,6 +292,31 @@ class StopRule:
 
 
 @dataclass(frozen=True)
+class PyramidSearch:
+    """A coarse-to-fine pose search and its convergence rule, shared by the public options
+    (:class:`fieldfix.align.AlignOptions`, :class:`fieldfix.motion.MotionOptions`).
+
+    Attributes
+    ----------
+    levels : tuple of int, block sizes of the resolution pyramid, coarse to fine
+    max_iterations : int, cost evaluations (or Gauss-Newton passes) per level
+    step_mm, step_deg, relative_cost : float, the :class:`StopRule` on the finest level; on a
+        level of `factor`-voxel blocks the steps are scaled by the factor
+    """
+
+    levels: tuple = (4, 2, 1)
+    max_iterations: int = 60
+    step_mm: float = 0.01
+    step_deg: float = 0.01
+    relative_cost: float = 1e-7
+
+    def rule(self, factor: int) -> StopRule:
+        """The stop rule on a level of `factor`-voxel blocks."""
+        return StopRule(self.step_mm * factor, self.step_deg * factor, self.relative_cost,
+                        self.max_iterations)
+
+
+@dataclass(frozen=True)
 class Solution:
     params: np.ndarray
     cost: float

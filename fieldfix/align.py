@@ -68,32 +68,21 @@ __all__ = [
 ]
 
 @dataclass(frozen=True)
-class AlignOptions:
+class AlignOptions(_pose.PyramidSearch):
     """Options of :func:`align_fieldmap`.
 
     Attributes
     ----------
-    levels : tuple of int, block sizes of the resolution pyramid, coarse to fine
-    max_iterations : int, per level
-    step_mm, step_deg : float, convergence rule on the finest level (see the module docstring)
-    relative_cost : float, convergence rule on the cost change
+    levels, max_iterations, step_mm, step_deg, relative_cost : the pyramid and its convergence
+        rule (see :class:`fieldfix._pose.PyramidSearch` and the module docstring)
     edge_fraction : float, NGF edge parameter as a fraction of the mean gradient magnitude
     min_overlap : float, fraction of run voxels the field map must cover at the start (else refused)
     warn_overlap : float, below this fraction after alignment the result carries a warning
     """
 
-    levels: tuple = (4, 2, 1)
-    max_iterations: int = 60
-    step_mm: float = 0.01
-    step_deg: float = 0.01
-    relative_cost: float = 1e-7
     edge_fraction: float = 0.3
     min_overlap: float = 0.05
     warn_overlap: float = 0.5
-
-    def rule(self, factor: int) -> _pose.StopRule:
-        return _pose.StopRule(self.step_mm * factor, self.step_deg * factor, self.relative_cost,
-                              self.max_iterations)
 
 
 @dataclass(frozen=True)

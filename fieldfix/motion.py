@@ -102,15 +102,14 @@ LARGE_MOTION = 10.0
 
 
 @dataclass(frozen=True)
-class MotionOptions:
+class MotionOptions(_pose.PyramidSearch):
     """Options of the motion model.
 
     Attributes
     ----------
-    levels : tuple of int, pyramid block sizes for the pose estimation, coarse to fine
-    max_iterations : int, cost evaluations per level (Gauss-Newton passes)
-    step_mm, step_deg, relative_cost : convergence rule (see :func:`fieldfix._pose.gauss_newton`),
-        on the finest level; scaled by the block size on coarse levels
+    levels, max_iterations, step_mm, step_deg, relative_cost : the pose pyramid and its
+        convergence rule (see :class:`fieldfix._pose.PyramidSearch`); `max_iterations` counts
+        Gauss-Newton passes per level
     voxels_per_level : int, most voxels the cost counts on one level (the strongest edges of
         the reference at rest; all candidates when there are fewer)
     margin_vox : int, voxels of the run grid next to its faces that the cost leaves out: the
@@ -120,19 +119,11 @@ class MotionOptions:
     parallel : bool or None, numba threads for the resampling (None: by grid size)
     """
 
-    levels: tuple = (4, 2, 1)
     max_iterations: int = 20
-    step_mm: float = 0.01
-    step_deg: float = 0.01
-    relative_cost: float = 1e-7
     voxels_per_level: int = 20000
     margin_vox: int = 3
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
     parallel: bool | None = None
-
-    def rule(self, factor: int) -> _pose.StopRule:
-        return _pose.StopRule(self.step_mm * factor, self.step_deg * factor, self.relative_cost,
-                              self.max_iterations)
 
 
 @dataclass(frozen=True)
