@@ -170,24 +170,6 @@ def _edge_key(da, db, n_keys, lo, hi):
     return min(np.int64((lc - lo) / (hi - lo) * (n_keys - 2)), n_keys - 2)
 
 
-@njit(cache=True)
-def _edge_count(mask):
-    nx, ny, nz = mask.shape
-    n = 0
-    for i in range(nx):
-        for j in range(ny):
-            for k in range(nz):
-                if not mask[i, j, k]:
-                    continue
-                if i + 1 < nx and mask[i + 1, j, k]:
-                    n += 1
-                if j + 1 < ny and mask[i, j + 1, k]:
-                    n += 1
-                if k + 1 < nz and mask[i, j, k + 1]:
-                    n += 1
-    return n
-
-
 def quantise_reliability(rel_sum, n_keys=N_KEYS):
     """Plain-numpy key of an edge from its reliability sum ``1/D[a] + 1/D[b]``.
 
@@ -309,6 +291,39 @@ def _step(pa, pb):
     return np.int8(0)
 
 
+@njit(cache=True, inline="always")
+def _edge_pass(phase, mask, ids, dvalue, keys, counts, edges, scatter):
+    """One walk over the edges of :func:`sorted_edges_nb` in their listing order; returns how
+    many there are. Without `scatter`, each edge's key goes to `keys` and is counted in
+    ``counts[key + 1]``; with it, each edge is scattered to ``edges[counts[key]]`` (`counts`
+    holding each key's next free row). Inlined with a constant `scatter`, so each call site
+    compiles to its own loop."""
+    nx, ny, nz = mask.shape
+    n_keys = counts.shape[0] - 1
+    e = 0
+    for i in range(nx):
+        for j in range(ny):
+            for k in range(nz):
+                if not mask[i, j, k]:
+                    continue
+                for ax in range(3):
+                    i1, j1, k1 = i + (ax == 0), j + (ax == 1), k + (ax == 2)
+                    if i1 >= nx or j1 >= ny or k1 >= nz or not mask[i1, j1, k1]:
+                        continue
+                    if scatter:
+                        kk = keys[e]
+                        pos = counts[kk]
+                        counts[kk] = pos + 1
+                        edges[pos, 0] = ids[i, j, k]
+                        edges[pos, 1] = 4 * ids[i1, j1, k1] + _step(phase[i, j, k], phase[i1, j1, k1]) + 1
+                    else:
+                        kk = _edge_key(dvalue[ids[i, j, k]], dvalue[ids[i1, j1, k1]], n_keys, LOG10_LO, LOG10_HI)
+                        keys[e] = kk
+                        counts[kk + 1] += 1
+                    e += 1
+    return e
+
+
 @njit(cache=True)
 def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
     """Edges between 6-neighbours inside the mask, sorted from most to least reliable.
@@ -321,46 +336,13 @@ def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
     of edges listed by voxel ``a`` in C order, then its +axis0, +axis1, +axis2 neighbour;
     the second pass scatters each edge straight to its sorted place.
     """
-    nx, ny, nz = mask.shape
-    n_edges = _edge_count(mask)
-    keys = np.empty(n_edges, dtype=np.uint16)
+    keys = np.empty(3 * dvalue.shape[0], dtype=np.uint16)  # at most three edges per mask voxel
     counts = np.zeros(n_keys + 1, dtype=np.int64)
-    e = 0
-    for i in range(nx):
-        for j in range(ny):
-            for k in range(nz):
-                if not mask[i, j, k]:
-                    continue
-                da = dvalue[ids[i, j, k]]
-                for ax in range(3):
-                    i1, j1, k1 = i + (ax == 0), j + (ax == 1), k + (ax == 2)
-                    if i1 >= nx or j1 >= ny or k1 >= nz or not mask[i1, j1, k1]:
-                        continue
-                    kk = _edge_key(da, dvalue[ids[i1, j1, k1]], n_keys, LOG10_LO, LOG10_HI)
-                    keys[e] = kk
-                    counts[kk + 1] += 1
-                    e += 1
+    n_edges = _edge_pass(phase, mask, ids, dvalue, keys, counts, np.empty((0, 2), dtype=np.int32), False)
     for t in range(n_keys):
         counts[t + 1] += counts[t]
     edges = np.empty((n_edges, 2), dtype=np.int32)
-    e = 0
-    for i in range(nx):
-        for j in range(ny):
-            for k in range(nz):
-                if not mask[i, j, k]:
-                    continue
-                ca = ids[i, j, k]
-                pa = phase[i, j, k]
-                for ax in range(3):
-                    i1, j1, k1 = i + (ax == 0), j + (ax == 1), k + (ax == 2)
-                    if i1 >= nx or j1 >= ny or k1 >= nz or not mask[i1, j1, k1]:
-                        continue
-                    kk = keys[e]
-                    pos = counts[kk]
-                    counts[kk] = pos + 1
-                    edges[pos, 0] = ca
-                    edges[pos, 1] = 4 * ids[i1, j1, k1] + _step(pa, phase[i1, j1, k1]) + 1
-                    e += 1
+    _edge_pass(phase, mask, ids, dvalue, keys, counts, edges, True)
     return edges
 
 
