@@ -397,12 +397,6 @@ class SliceProfile:
         out = np.interp(idx, np.arange(self.table.size), self.table, right=0.0)
         return out
 
-    def as_dict(self) -> dict:
-        out = {"profile": self.kind}
-        if self.tbw is not None:
-            out.update(time_bandwidth=self.tbw, window=self.window)
-        return out
-
 
 @functools.lru_cache(maxsize=2)
 def _closed_form_table(kind: str) -> np.ndarray:

@@ -7,6 +7,8 @@ its gradient. Agreement is required within 0.01 absolute.
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
@@ -407,6 +409,23 @@ def test_run_dropout_writes_maps_matching_formula(tmp_path):
     assert summary.retention.median == pytest.approx(abs(np.sinc(u)), abs=1e-5)
     with pytest.raises(OutputError):
         run_dropout(b0_path, out, te_s=0.03, thickness_mm=3.0, like=like, tag="s1_")
+
+
+def test_run_dropout_records_the_rf_pulse_under_the_plans_names(tmp_path):
+    # One name per quantity: the dropout job's parameters carry the pulse's time-bandwidth
+    # product as the planner's parameters do (``tbw``), and the written JSON reads back.
+    from fieldfix.outputs import DropoutSummary
+    from fieldfix.plan import SweepSpec
+    from fieldfix.workflows.dropout import run_dropout
+
+    _, _, _, b0_path = _linear_b0_files(tmp_path)
+    summary = run_dropout(b0_path, tmp_path / "rf", te_s=0.03, thickness_mm=3.0, profile="rf", tbw=6.0)
+    written = json.loads((tmp_path / "rf" / "dropout.json").read_text())["parameters"]
+    assert (written["profile"], written["tbw"], written["window"]) == ("rf", 6.0, "hamming")
+    assert set(written) & set(SweepSpec().as_dict()) >= {"profile", "tbw", "threshold", "echo_spacing_s"}
+    assert DropoutSummary.read(tmp_path / "rf" / "dropout.json") == summary
+    rect = run_dropout(b0_path, tmp_path / "rect", te_s=0.03, thickness_mm=3.0)
+    assert (rect.parameters.tbw, rect.parameters.window) == (None, None)
 
 
 def test_run_dropout_also_writes_maps_on_a_different_epi_grid(tmp_path):

@@ -312,7 +312,8 @@ class MapStatistics(Record):
 
 @dataclass(frozen=True)
 class DropoutParameters(Record):
-    """The protocol a dropout prediction was made for."""
+    """The protocol a dropout prediction was made for (``tbw``, ``window``: the windowed-sinc
+    pulse of the 'rf' profile, None for the others; ``tbw`` as in the plan's parameters)."""
 
     te_s: float
     thickness_mm: float
@@ -324,7 +325,7 @@ class DropoutParameters(Record):
     zshim_mtms_per_m: float
     threshold: float
     profile: str
-    time_bandwidth: float | None = None
+    tbw: float | None = None
     window: str | None = None
 
 

@@ -351,7 +351,8 @@ def _predict_and_write(field: FieldModel, b0_img: Image | None, like, mask, geom
     parameters = DropoutParameters(
         te_s=s.te_s, thickness_mm=s.thickness_mm, tilt_deg=s.tilt_deg, slice_axis="ijk"[geometry.slice_axis],
         pe_code=geometry.pe_code, echo_spacing_s=geometry.echo_spacing_s, partial_fourier=geometry.partial_fourier,
-        zshim_mtms_per_m=s.zshim_mtms_per_m, threshold=s.threshold, **_profile_fields(profile))
+        zshim_mtms_per_m=s.zshim_mtms_per_m, threshold=s.threshold, profile=profile.kind, tbw=profile.tbw,
+        window=profile.window)
     provenance = Provenance(job.command, parameters.to_json(), inputs)
     common = dict(inputs=inputs, overwrite=job.overwrite, provenance=provenance)
     if files.modelled_b0_hz is not None:
@@ -387,9 +388,3 @@ def _mask_words(mask_path, given, modelled: bool) -> str:
     if mask_path is None:
         return MODEL_BRAIN if modelled else "non-zero B0 voxels (no mask given and none beside the B0 map)"
     return str(mask_path) if given is not None else f"{mask_path} (the field map's mask, found beside it)"
-
-
-def _profile_fields(profile) -> dict:
-    fields = profile.as_dict()
-    return {"profile": fields["profile"], "time_bandwidth": fields.get("time_bandwidth"),
-            "window": fields.get("window")}
