@@ -354,7 +354,6 @@ def test_bad_inputs_are_refused():
 
 # --------------------------------------------------------------------------- workflow and command line
 
-import json
 import subprocess
 import sys
 from pathlib import Path
