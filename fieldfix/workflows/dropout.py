@@ -43,10 +43,12 @@ from ..plan_field import FieldModel, ModelledField
 from ..shift import Readout
 from ._placement import alignment, find_b0_magnitude, read_magnitude_on_map
 from ._run_checks import find_b0_mask
+from ..records import fields_of
 from ..units import PLAUSIBLE, check_plausible
 from ..outputs import (
     CAUTION,
     DropoutFiles,
+    DropoutNumbers,
     DropoutParameters,
     DropoutSummary,
     FrameRecord,
@@ -281,16 +283,17 @@ def run_dropout(b0_path, job: JobOptions | str, settings: DropoutSettings | None
         on_epi = like is not None and not same_grid(like.shape[:3], like.affine, b0.shape, field.affine)
         files = DropoutFiles.named(job.tag, bold=geometry.pe_code is not None, on_epi=on_epi, modelled=b0_img is None)
         output_paths_guard(files.guarded(job.out_dir), inputs, job.overwrite)
-        mask = _mask(mask_path, field)
-        if not np.isfinite(b0[mask]).all():
+        mask = _stats_mask(mask_path, s.mask, field, modelled=b0_img is None)
+        if not np.isfinite(b0[mask.voxels]).all():
             raise InputError("the B0 map has non-finite values inside the mask", b0_path)
         field = dataclasses.replace(field, b0_hz=np.where(np.isfinite(b0), b0, 0.0))
         matrix, placement = _epi_placement(s, b0_path, b0_img, field.b0_hz, like, geometry) if on_epi \
             else (np.eye(4), None)
-        summary = dataclasses.replace(_predict_and_write(field, b0_img, like, mask, geometry, files, s, job, inputs,
-                                                         matrix),
-                                      b0_units=b0_units, mask=_mask_words(mask_path, s.mask, b0_img is None),
-                                      epi_placement=placement)
+        numbers = _predict_and_write(field, b0_img, like, mask, geometry, files, s, job, inputs, matrix)
+        summary = DropoutSummary(
+            **fields_of(numbers, DropoutNumbers), b0=str(b0_img.path) if b0_img is not None else field.source,
+            b0_units=b0_units, geometry_from=str(s.like) if s.like is not None else "B0 grid",
+            frame=FrameRecord.from_json(geometry.frame.as_dict()), outputs=files, epi_placement=placement)
         write_json(job.path(files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
@@ -316,13 +319,22 @@ def _read_field(b0_path: Path | None, model: ModelledField | None,
     return field, b0_img, b0_units
 
 
-def _mask(mask_path: Path | None, field: FieldModel) -> np.ndarray:
-    """The statistics mask on the field's grid: given or found, else the model's brain, else non-zero B0."""
+@dataclass(frozen=True)
+class _StatsMask:
+    """The statistics mask on the field's grid, and the words naming it in the summary."""
+
+    voxels: np.ndarray
+    words: str
+
+
+def _stats_mask(mask_path: Path | None, given, field: FieldModel, *, modelled: bool) -> _StatsMask:
+    """The statistics mask: given or found, else the model's brain, else non-zero B0."""
+    words = _mask_words(mask_path, given, modelled)
     if mask_path is not None:
-        return load_mask_on_grid(mask_path, field.b0_hz.shape, field.affine, what="mask")
+        return _StatsMask(load_mask_on_grid(mask_path, field.b0_hz.shape, field.affine, what="mask"), words)
     if field.brain_mask is not None:
-        return field.brain_mask
-    return np.isfinite(field.b0_hz) & (field.b0_hz != 0)
+        return _StatsMask(field.brain_mask, words)
+    return _StatsMask(np.isfinite(field.b0_hz) & (field.b0_hz != 0), words)
 
 
 def _epi_placement(s: DropoutSettings, b0_path: Path | None, b0_img: Image | None, b0, like: Image,
@@ -340,8 +352,10 @@ def _epi_placement(s: DropoutSettings, b0_path: Path | None, b0_img: Image | Non
     return matrix, how
 
 
-def _predict_and_write(field: FieldModel, b0_img: Image | None, like, mask, geometry: _Geometry,
-                       files: DropoutFiles, s: DropoutSettings, job: JobOptions, inputs, matrix) -> DropoutSummary:
+def _predict_and_write(field: FieldModel, b0_img: Image | None, like, stats_mask: _StatsMask, geometry: _Geometry,
+                       files: DropoutFiles, s: DropoutSettings, job: JobOptions, inputs, matrix) -> DropoutNumbers:
+    """Predict the maps, write them (and a modelled field) and return their numbers."""
+    mask = stats_mask.voxels
     profile = slice_profile(s.profile, tbw=s.tbw)
     maps = dropout_maps(field.b0_hz, field.affine, geometry.frame, te_s=s.te_s, thickness_mm=s.thickness_mm,
                         profile=profile, zshim_cyc_per_mm=zshim_cyc_per_mm(s.zshim_mtms_per_m),
@@ -370,13 +384,9 @@ def _predict_and_write(field: FieldModel, b0_img: Image | None, like, mask, geom
             save_image(job.path(getattr(files, f"{kind}_on_epi")), resampled, like.affine, template=like, **common,
                        sidecar_extra={"Description": note})
     bold = geometry.pe_code is not None
-    return DropoutSummary(
-        b0=str(b0_img.path) if b0_img is not None else field.source,
-        field_source="measured" if b0_img is not None else "modelled",
-        geometry_from=str(s.like) if s.like is not None else "B0 grid",
-        frame=FrameRecord.from_json(geometry.frame.as_dict()), parameters=parameters,
-        mask=str(s.mask) if s.mask is not None else "non-zero B0 voxels",
-        retention=_stats(maps["retention"], mask, s.threshold), outputs=files,
+    return DropoutNumbers(
+        parameters=parameters, mask=stats_mask.words, field_source="measured" if b0_img is not None else "modelled",
+        retention=_stats(maps["retention"], mask, s.threshold),
         bold_sensitivity=_stats(maps["bold_sensitivity"], mask, s.threshold) if bold else None,
         pe_direction_world=pe_world_direction(geometry.pe_code, geometry.source_affine) if bold else None,
         percent_echo_lost=float(100.0 * np.count_nonzero(~maps["echo_inside"][mask]) / max(mask.sum(), 1))
