@@ -33,7 +33,7 @@ from _batch_dataset import dataset, pristine  # noqa: E402,F401 (fixtures)
 from test_batch import fake_workflows  # noqa: E402,F401  (fixture)
 
 from fieldfix import batch  # noqa: E402
-from fieldfix.outputs import BatchSummary, UnwarpSummary  # noqa: E402
+from fieldfix.outputs import UnwarpSummary  # noqa: E402
 
 EXE = Path(sys.executable).with_name("fieldfix")
 #: The BIDS entity table's order (specification 1.9, from memory), written out apart from the library's.
@@ -166,8 +166,10 @@ def test_a_run_with_an_unusable_field_map_is_a_failure(dataset, tmp_path, fake_w
     assert summary.exit_status == 1
     run = next(r for r in summary.runs if "ses-2" in r.run)
     assert run.action == "failed" and "EchoTime2" in run.reason
-    log = json.loads((tmp_path / "out" / summary.log).read_text())
-    assert BatchSummary.from_json(log["summary"]) == summary  # the log holds the same typed record
+    log = batch.BatchLog.read(tmp_path / "out" / summary.log)  # read strictly: every key named
+    assert log.summary == summary  # the log holds the same typed record
+    assert {t.task_id: t.status for t in log.tasks}["fieldmap:sub-01_ses-2"] == "failed"
+    assert log.inventory["root"] == str(dataset.resolve()) and log.started <= log.finished
 
 
 def test_magnitude2_alone_is_used_with_a_warning(dataset, tmp_path):
@@ -182,7 +184,7 @@ def test_magnitude2_alone_is_used_with_a_warning(dataset, tmp_path):
 
 
 def _statuses(out: Path, summary) -> dict[str, str]:
-    return {t["task_id"]: t["status"] for t in json.loads((out / summary.log).read_text())["tasks"]}
+    return {t.task_id: t.status for t in batch.BatchLog.read(out / summary.log).tasks}
 
 
 def test_options_from_the_command_line_or_a_config_redo_exactly_the_affected_tasks(dataset, tmp_path, capsys,

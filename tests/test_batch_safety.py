@@ -279,7 +279,7 @@ def test_markers_of_an_earlier_format_are_redone_and_their_outputs_removed(datas
                             "outputs": {"b0_mask.nii.gz": {"path": f"sub-01/ses-1/fmap/{old_name}", "size": 1}}},
                    overwrite=True)
     again = batch.run_batch(dataset, out, participant_labels=["01"], reports=False)
-    log = json.loads((out / again.log).read_text())
-    assert {t["task_id"]: t["status"] for t in log["tasks"]}["fieldmap:sub-01_ses-1"] == "done"
+    log = batch.BatchLog.read(out / again.log)
+    assert {t.task_id: t.status for t in log.tasks}["fieldmap:sub-01_ses-1"] == "done"
     assert not (fmap / old_name).exists() and (fmap / "sub-01_ses-1_desc-b0_mask.nii.gz").is_file()
     assert again.exit_status == 0

@@ -34,11 +34,11 @@ import logging
 from .bids import BidsName, derivative_name, parse_bids_name
 from .derivatives import write_dataset_description
 from .discovery import discover
-from .execution import execute_plan
+from .execution import BatchExecution, execute_plan
 from .inventory import FieldMapAcquisition, Inventory, Run
 from .options import BatchOptions, read_batch_config
 from .plan import Task, TaskResult, plan_tasks, run_entries, task_hash
-from .run import run_batch
+from .run import BatchLog, run_batch
 from .runners import RUNNERS
 from .tasks import ThreadLimit, YoungObjectsOnly, execute_task, marker_path
 
@@ -51,5 +51,5 @@ __all__ = [
     "run_batch", "discover", "plan_tasks", "run_entries", "task_hash", "execute_plan", "execute_task",
     "marker_path", "write_dataset_description", "BidsName", "parse_bids_name", "derivative_name",
     "FieldMapAcquisition", "Run", "Inventory", "Task", "TaskResult", "BatchOptions", "read_batch_config",
-    "ThreadLimit", "YoungObjectsOnly",
+    "ThreadLimit", "YoungObjectsOnly", "BatchExecution", "BatchLog",
 ]

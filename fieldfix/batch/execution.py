@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import ctypes
 import dataclasses
+from dataclasses import dataclass
 import multiprocessing
 import os
 import signal
@@ -27,7 +28,7 @@ from ..errors import InputError
 from .plan import Task, TaskResult
 from .tasks import execute_task
 
-__all__ = ["InProcessExecutor", "LocalPool", "DaskExecutor", "execute_plan", "WORKER_THREAD_ENV"]
+__all__ = ["BatchExecution", "InProcessExecutor", "LocalPool", "DaskExecutor", "execute_plan", "WORKER_THREAD_ENV"]
 
 #: Environment for local worker processes: one thread each, the tasks are the parallelism.
 WORKER_THREAD_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1",
@@ -150,6 +151,55 @@ class DaskExecutor:
         if self.client is not None:
             self.client.close()
         return False
+
+
+@dataclass(frozen=True)
+class BatchExecution:
+    """Where and how a batch's tasks run.
+
+    Attributes
+    ----------
+    jobs : int, worker processes on this machine (1: the tasks run in this process)
+    scheduler, scheduler_file : str or None, a dask.distributed scheduler address
+        (``tcp://host:8786``) or scheduler file; its workers then run the tasks
+    command : str or None, the command line recorded in the provenance sidecars
+    progress : bool, a progress bar over tasks on standard error
+    redo : bool, redo every task, even those whose finished outputs are up to date
+
+    Examples
+    --------
+    >>> BatchExecution(jobs=2).mode
+    '2 local processes'
+    """
+
+    jobs: int = 1
+    scheduler: str | None = None
+    scheduler_file: str | None = None
+    command: str | None = None
+    progress: bool = False
+    redo: bool = False
+
+    def check(self) -> None:
+        """Refuse a jobs count that is not a whole number >= 1, both scheduler forms, or a missing file."""
+        if isinstance(self.jobs, bool) or not isinstance(self.jobs, int) or self.jobs < 1:
+            raise InputError(f"jobs must be a whole number of at least 1, got {self.jobs!r}", parameter="jobs")
+        if self.scheduler and self.scheduler_file:
+            raise InputError("give a scheduler address or a scheduler file, not both")
+        if self.scheduler_file is not None and not Path(self.scheduler_file).is_file():
+            raise InputError("scheduler file not found", path=self.scheduler_file)
+
+    @property
+    def mode(self) -> str:
+        """Where the tasks run, in words (the batch summary's ``execution``)."""
+        if self.scheduler or self.scheduler_file:
+            return f"dask ({self.scheduler or self.scheduler_file})"
+        return f"{self.jobs} local processes" if self.jobs > 1 else "in this process"
+
+    def executor(self):
+        """A new executor (a context manager) for this execution."""
+        if self.scheduler or self.scheduler_file:
+            return DaskExecutor(self.scheduler, str(self.scheduler_file) if self.scheduler_file else None)
+        return LocalPool(self.jobs) if self.jobs > 1 else InProcessExecutor()
 
 
 def _not_run(task: Task, status: str, reason: str) -> TaskResult:

@@ -8,6 +8,7 @@ from __future__ import annotations
 import datetime
 import logging
 import os
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
@@ -15,10 +16,11 @@ from .._progress import progress_bar
 from ..errors import InputError
 from ..jsonfile import write_json
 from ..outdir import output_folder, output_paths_guard
-from ..outputs import BatchFiles, BatchPlan, BatchSummary, RunPlanEntry, TaskFailure
+from ..outputs import BatchFiles, BatchPlan, BatchSummary, ConfigRecord, RunPlanEntry, TaskFailure
+from ..records import Record
 from .derivatives import write_bidsignore, write_dataset_description
 from .discovery import discover
-from .execution import DaskExecutor, InProcessExecutor, LocalPool, execute_plan
+from .execution import BatchExecution, execute_plan
 from .group import group_rows, write_group_summary
 from .inventory import Inventory
 from .lock import BatchLock, clean_leftovers
@@ -26,21 +28,40 @@ from .options import BatchOptions, merge_options
 from .plan import Task, TaskResult, plan_tasks, run_entries
 from .tasks import WORK_FOLDER, now_iso
 
-__all__ = ["run_batch"]
+__all__ = ["run_batch", "BatchLog"]
 
 _log = logging.getLogger(__name__)
 
 
-def _check_call(root: Path, deriv: Path, jobs, scheduler, scheduler_file) -> None:
-    if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
-        raise InputError(f"jobs must be a whole number of at least 1, got {jobs!r}", parameter="jobs")
-    if scheduler and scheduler_file:
-        raise InputError("give a scheduler address or a scheduler file, not both")
-    if scheduler_file is not None and not Path(scheduler_file).is_file():
-        raise InputError("scheduler file not found", path=scheduler_file)
+def _check_folders(root: Path, deriv: Path) -> None:
     if deriv == root or (deriv.is_relative_to(root) and deriv.relative_to(root).parts[0].startswith("sub-")):
         raise InputError("the output folder must not be the dataset or one of its subject folders (use e.g. "
                          "<dataset>/derivatives/fieldfix)", path=deriv)
+
+
+@dataclass(frozen=True)
+class BatchLog(Record):
+    """The batch log (``logs/batch_<UTC time>.json``): the command, when it ran, the batch's
+    summary, the dataset's inventory and every task's result."""
+
+    command: str | None
+    started: str
+    finished: str
+    summary: BatchSummary
+    inventory: dict[str, object]
+    tasks: list[TaskResult]
+
+
+@dataclass(frozen=True)
+class _Batch:
+    """What one batch works on: the dataset, its derivatives folder, what was found and planned."""
+
+    root: Path
+    deriv: Path
+    inventory: Inventory
+    tasks: list[Task]
+    options: BatchOptions
+    config: ConfigRecord | None
 
 
 def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
@@ -103,7 +124,10 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
     (0, [])
     """
     root, deriv = Path(bids_root).expanduser().resolve(), Path(out_dir).expanduser().resolve()
-    _check_call(root, deriv, jobs, scheduler, scheduler_file)
+    execution = BatchExecution(jobs=jobs, scheduler=scheduler, scheduler_file=scheduler_file, command=command,
+                               progress=progress, redo=redo)
+    execution.check()
+    _check_folders(root, deriv)
     options, config_record = merge_options(options, config)
     inventory = discover(root, participant_labels, allow_outside_inputs=allow_outside_inputs)
     tasks = plan_tasks(inventory, deriv, reports=reports, options=options)
@@ -112,56 +136,51 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
                          tasks=[t.task_id for t in tasks], dataset_remarks=list(inventory.problems),
                          options=options.changed(), config=config_record)
     with output_folder(deriv), BatchLock(deriv, command) as lock:
-        return _run_held(root, deriv, inventory, tasks, lock, dict(
-            jobs=jobs, scheduler=scheduler, scheduler_file=scheduler_file, command=command, progress=progress,
-            redo=redo), options=options, config=config_record)
+        return _run_held(_Batch(root, deriv, inventory, tasks, options, config_record), lock, execution)
 
 
-def _run_held(root: Path, deriv: Path, inventory: Inventory, tasks: list[Task], lock: BatchLock, how: dict, *,
-              options: BatchOptions, config) -> BatchSummary:
+def _run_held(batch: _Batch, lock: BatchLock, execution: BatchExecution) -> BatchSummary:
     """The batch once it holds its output folder: checks, cleanup, execution, summaries."""
     started = datetime.datetime.now(datetime.timezone.utc)
     files = BatchFiles.named(started.strftime("%Y%m%dT%H%M%SZ"))
     # files of the whole batch: refused up front when someone else's file has their name
-    output_paths_guard([deriv / p for p in (files.group_csv, files.group_json, files.group_figure)], overwrite=True)
+    output_paths_guard([batch.deriv / p for p in (files.group_csv, files.group_json, files.group_figure)],
+                       overwrite=True)
     notices = [lock.notice] if lock.notice else []
-    removed = clean_leftovers(deriv, WORK_FOLDER)
+    removed = clean_leftovers(batch.deriv, WORK_FOLDER)
     if removed:
         notices.append(f"removed {len(removed)} leftovers of killed runs: " + ", ".join(removed[:5])
                        + (" ..." if len(removed) > 5 else ""))
     for notice in notices:
         _log.warning("%s", notice)
-    write_dataset_description(deriv, root)
-    write_bidsignore(deriv)
-    results, mode = _execute(tasks, deriv, **how)
-    return _finish(root, deriv, inventory, tasks, results, files, mode=mode, started=started, command=how["command"],
-                   options=options, config=config, notices=notices)
+    write_dataset_description(batch.deriv, batch.root)
+    write_bidsignore(batch.deriv)
+    results = _execute(batch.tasks, batch.deriv, execution)
+    summary = _summary(batch, results, files, execution.mode, notices)
+    log = BatchLog(command=execution.command, started=started.isoformat(timespec="seconds"),
+                   finished=now_iso("seconds"), summary=summary, inventory=batch.inventory.as_dict(),
+                   tasks=list(results.values()))
+    write_json(batch.deriv / files.log, log.to_json(), overwrite=True)
+    return summary
 
 
-def _execute(tasks: list[Task], deriv: Path, *, jobs, scheduler, scheduler_file, command, progress, redo):
-    bar = progress_bar(total=len(tasks), desc="batch tasks", enabled=progress, unit="task")
+def _execute(tasks: list[Task], deriv: Path, execution: BatchExecution) -> dict[str, TaskResult]:
+    bar = progress_bar(total=len(tasks), desc="batch tasks", enabled=execution.progress, unit="task")
 
     def on_result(result: TaskResult) -> None:
         if result.status == "failed":
             _log.warning("%s failed: %s", result.task_id, result.reason)
         bar.update(1)
 
-    if scheduler or scheduler_file:
-        backend, mode = DaskExecutor(scheduler, str(scheduler_file) if scheduler_file else None), \
-            f"dask ({scheduler or scheduler_file})"
-    elif jobs > 1:
-        backend, mode = LocalPool(jobs), f"{jobs} local processes"
-    else:
-        backend, mode = InProcessExecutor(), "in this process"
     try:
-        with backend as executor:
-            results = execute_plan(tasks, executor, str(deriv), command=command, on_result=on_result, redo=redo)
+        with execution.executor() as executor:
+            return execute_plan(tasks, executor, str(deriv), command=execution.command, on_result=on_result,
+                                redo=execution.redo)
     finally:
         bar.close()
         work = deriv / WORK_FOLDER
         if work.is_dir() and not work.is_symlink() and not any(work.iterdir()):
             work.rmdir()
-    return results, mode
 
 
 def _run_outcomes(inventory: Inventory, tasks: list[Task], results: dict[str, TaskResult]) -> list[RunPlanEntry]:
@@ -178,24 +197,22 @@ def _run_outcomes(inventory: Inventory, tasks: list[Task], results: dict[str, Ta
     return outcomes
 
 
-def _finish(root: Path, deriv: Path, inventory: Inventory, tasks, results: dict[str, TaskResult],
-            files: BatchFiles, *, mode, started, command, options, config, notices) -> BatchSummary:
-    """Write the group summary and the batch log; return the batch's summary."""
+def _summary(batch: _Batch, results: dict[str, TaskResult], files: BatchFiles, mode: str,
+             notices: list[str]) -> BatchSummary:
+    """Write the group summary; return the batch's summary."""
     counts = {s: 0 for s in ("done", "reused", "failed", "skipped")}
     for result in results.values():
         counts[result.status] = counts.get(result.status, 0) + 1
     failures = [TaskFailure(task=r.task_id, subject=f"sub-{r.subject}", status=r.status, reason=r.reason)
                 for r in results.values() if not r.ok]
-    files = write_group_summary(deriv, group_rows(inventory, results, deriv), files)
+    inventory = batch.inventory
+    files = write_group_summary(batch.deriv, group_rows(inventory, results, batch.deriv), files)
     warnings = list(dict.fromkeys(w for fm in inventory.fieldmaps for w in fm.warnings))
-    summary = BatchSummary(
-        dataset=str(root), derivatives=str(deriv), execution=mode, subjects=[f"sub-{s}" for s in inventory.subjects],
-        tasks=counts, failures=failures, runs=_run_outcomes(inventory, tasks, results),
+    return BatchSummary(
+        dataset=str(batch.root), derivatives=str(batch.deriv), execution=mode,
+        subjects=[f"sub-{s}" for s in inventory.subjects], tasks=counts, failures=failures,
+        runs=_run_outcomes(inventory, batch.tasks, results),
         fieldmaps_without_target=[f.key for f in inventory.fieldmaps_without_target],
-        dataset_remarks=list(inventory.problems), warnings=warnings, notices=notices, options=options.changed(),
-        outputs=files, log=files.log, exit_status=1 if failures else 0, config=config)
-    write_json(deriv / files.log, {"command": command, "started": started.isoformat(timespec="seconds"),
-                                   "finished": now_iso("seconds"), "summary": summary.to_json(),
-                                   "inventory": inventory.as_dict(), "tasks": [r.to_json() for r in results.values()]},
-               overwrite=True)
-    return summary
+        dataset_remarks=list(inventory.problems), warnings=warnings, notices=notices,
+        options=batch.options.changed(), outputs=files, log=files.log, exit_status=1 if failures else 0,
+        config=batch.config)
