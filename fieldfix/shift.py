@@ -80,6 +80,7 @@ __all__ = [
     "fold_mask",
     "intensity_weight",
     "displacement_field_mm",
+    "ShiftStatistics",
     "shift_summary",
 ]
 
@@ -393,6 +394,29 @@ def displacement_field_mm(shift_vox: np.ndarray, pe_axis: int, affine: np.ndarra
     return np.asarray(shift_vox, dtype=float)[..., None] * column
 
 
+@dataclass(frozen=True)
+class ShiftStatistics:
+    """Summary numbers of a shift map inside a mask (see :func:`shift_summary`).
+
+    Attributes
+    ----------
+    max_abs_shift_vox, max_abs_shift_mm : float, largest shift magnitude (voxels; mm along the PE axis)
+    percent_shifted_over_1_voxel : float, share of mask voxels shifted by more than one voxel
+    folded_voxels : int, mask voxels whose Jacobian is at or below `jacobian_floor`
+    voxels_in_mask : int
+    pe_voxel_size_mm : float, voxel size along the phase-encode axis
+    jacobian_floor : float
+    """
+
+    max_abs_shift_vox: float
+    max_abs_shift_mm: float
+    percent_shifted_over_1_voxel: float
+    folded_voxels: int
+    voxels_in_mask: int
+    pe_voxel_size_mm: float
+    jacobian_floor: float
+
+
 def shift_summary(
     shift_vox: np.ndarray,
     jacobian: np.ndarray,
@@ -400,18 +424,14 @@ def shift_summary(
     affine: np.ndarray,
     mask: np.ndarray | None = None,
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR,
-) -> dict:
+) -> ShiftStatistics:
     """Summary numbers of a shift map inside a mask (the whole grid if None).
-
-    Returns a JSON-serialisable dict with ``max_abs_shift_vox``, ``max_abs_shift_mm``,
-    ``percent_shifted_over_1_voxel``, ``folded_voxels``, ``voxels_in_mask``,
-    ``pe_voxel_size_mm`` and ``jacobian_floor``.
 
     Examples
     --------
     >>> import numpy as np
     >>> s = np.zeros((2, 4, 2)); s[0, 0, 0] = -2.0
-    >>> shift_summary(s, np.ones_like(s), 1, np.eye(4))["max_abs_shift_mm"]
+    >>> shift_summary(s, np.ones_like(s), 1, np.eye(4)).max_abs_shift_mm
     2.0
     """
     shift_vox = np.asarray(shift_vox, dtype=float)
@@ -419,12 +439,9 @@ def shift_summary(
     size_mm = float(voxel_sizes_mm(affine)[pe_axis])
     inside = np.abs(shift_vox[mask])
     n = int(inside.size)
-    return {
-        "max_abs_shift_vox": float(inside.max()) if n else 0.0,
-        "max_abs_shift_mm": float(inside.max() * size_mm) if n else 0.0,
-        "percent_shifted_over_1_voxel": float(100.0 * np.count_nonzero(inside > 1.0) / n) if n else 0.0,
-        "folded_voxels": int(np.count_nonzero(fold_mask(np.asarray(jacobian)[mask], jacobian_floor))),
-        "voxels_in_mask": n,
-        "pe_voxel_size_mm": size_mm,
-        "jacobian_floor": float(jacobian_floor),
-    }
+    return ShiftStatistics(
+        max_abs_shift_vox=float(inside.max()) if n else 0.0,
+        max_abs_shift_mm=float(inside.max() * size_mm) if n else 0.0,
+        percent_shifted_over_1_voxel=float(100.0 * np.count_nonzero(inside > 1.0) / n) if n else 0.0,
+        folded_voxels=int(np.count_nonzero(fold_mask(np.asarray(jacobian)[mask], jacobian_floor))),
+        voxels_in_mask=n, pe_voxel_size_mm=size_mm, jacobian_floor=float(jacobian_floor))

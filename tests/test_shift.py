@@ -117,8 +117,8 @@ def test_shift_summary():
     jac = np.ones(shift.shape)
     jac[0, 0, 0] = -0.2
     summary = shift_summary(shift, jac, 1, np.diag([2.0, 3.0, 4.0, 1.0]), mask)
-    assert summary["max_abs_shift_vox"] == pytest.approx(2.5)
-    assert summary["max_abs_shift_mm"] == pytest.approx(7.5)
-    assert summary["percent_shifted_over_1_voxel"] == pytest.approx(100 * 2 / 59)
-    assert summary["folded_voxels"] == 1
-    assert summary["voxels_in_mask"] == 59
+    assert summary.max_abs_shift_vox == pytest.approx(2.5)
+    assert summary.max_abs_shift_mm == pytest.approx(7.5)
+    assert summary.percent_shifted_over_1_voxel == pytest.approx(100 * 2 / 59)
+    assert summary.folded_voxels == 1
+    assert summary.voxels_in_mask == 59

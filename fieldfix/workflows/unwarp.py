@@ -35,7 +35,8 @@ from ..geometry import parse_pe_code, pe_world_direction, voxel_sizes_mm
 from ..io import GZIP_EFFORTS, NIFTI_INTENT_DISPVECT, Image, Provenance, image_stem, load_image, output_paths_guard, save_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
-from ..outputs import CAUTION, CombinedFiles, JobOptions, TimingRecord, UnwarpFiles, UnwarpSummary, job_and_settings
+from ..outputs import (CAUTION, CombinedFiles, JobOptions, MotionRecord, TimingRecord, UnwarpFiles, UnwarpSummary,
+                       job_and_settings)
 from ..shift import DEFAULT_JACOBIAN_FLOOR, DISPLACEMENT_FRAMES, Timing, displacement_field_mm, resolve_timing, shift_summary
 from ..units import check_plausible
 from ..unwarp import INTERPOLATIONS, ShiftMaps, apply_tables, build_tables, shift_maps
@@ -171,6 +172,15 @@ class UnwarpSettings:
         return ".nii.gz" if self.compress == "gzip" else ".nii"
 
 
+@dataclass(frozen=True)
+class _FieldMapInput:
+    """The B0 map a job unwarps with: its image, the mask found or given, how its units were known."""
+
+    image: Image
+    mask_path: Path | None
+    units: str
+
+
 @dataclass
 class _RunPlan:
     """One run, checked and ready: its image, direction, timing, shift maps and outputs."""
@@ -256,7 +266,8 @@ def run_unwarp(run_paths, b0_path, job: JobOptions | str, settings: UnwarpSettin
                  for image, f in zip(runs, files)]
         if s.combine_polarities:
             check_combinable(plans)
-        summaries = [_unwarp_one(plan, b0, mask_path, job, s, inputs, b0_units) for plan in plans]
+        field_map = _FieldMapInput(b0, mask_path, b0_units)
+        summaries = [_unwarp_one(plan, field_map, job, s, inputs) for plan in plans]
         if s.combine_polarities:
             parameters = {"runs": [str(p.image.path) for p in plans], "pe_codes": [p.pe_code for p in plans]}
             write_combined_run(plans, job, inputs, Provenance(job.command, parameters, inputs))
@@ -302,8 +313,8 @@ def _parameters(plan: _RunPlan, s: UnwarpSettings) -> dict:
             "jacobian_floor": float(s.jacobian_floor), "force": bool(s.force)}
 
 
-def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: UnwarpSettings, inputs,
-                b0_units: str) -> UnwarpSummary:
+def _unwarp_one(plan: _RunPlan, field_map: _FieldMapInput, job: JobOptions, s: UnwarpSettings,
+                inputs) -> UnwarpSummary:
     image, maps = plan.image, plan.maps
     affine = image.affine
     # NIfTI volumes come Fortran-ordered from nibabel and are written the same way.
@@ -329,15 +340,14 @@ def _unwarp_one(plan: _RunPlan, b0: Image, mask_path, job: JobOptions, s: Unwarp
     save_image(job.path(plan.files.displacement_mm), displacement[:, :, :, None, :], affine,
                intent=NIFTI_INTENT_DISPVECT, **common,
                sidecar_extra={"Units": "mm", "DisplacementConvention": _DISPLACEMENT_WORDS[s.displacement_frame]})
-    summary = dataclasses.replace(_summary(plan, b0, mask_path, s, n_volumes), b0_units=b0_units,
-                                  field_placement=plan.placement.how, alignment=plan.placement.alignment,
-                                  motion=motion)
+    summary = _summary(plan, field_map, s, n_volumes, motion)
     write_json(job.path(plan.files.summary), summary.to_json(), inputs=inputs, overwrite=job.overwrite)
     return summary
 
 
-def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes: int) -> UnwarpSummary:
-    maps, affine = plan.maps, plan.image.affine
+def _summary(plan: _RunPlan, field_map: _FieldMapInput, s: UnwarpSettings, n_volumes: int,
+             motion: MotionRecord | None) -> UnwarpSummary:
+    maps, affine, mask_path = plan.maps, plan.image.affine, field_map.mask_path
     stats = shift_summary(maps.shift_vox, maps.jacobian, maps.pe_axis, affine, plan.mask, s.jacobian_floor)
     coverage_percent = float(100.0 * maps.inside.mean())
     warnings = ([plan.shift_check.warning] if plan.shift_check.warning else []) + plan.placement.warnings
@@ -347,11 +357,12 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
                         "there is a guess (see the run's B0 coverage in the report)")
     floor = s.jacobian_floor
     return UnwarpSummary(
-        run=str(plan.image.path), b0_map=str(b0.path), b0_mask=str(mask_path) if mask_path is not None else None,
+        run=str(plan.image.path), b0_map=str(field_map.image.path), b0_units=field_map.units, b0_mask=str(mask_path) if mask_path is not None else None,
         statistics_region="field-map mask" if mask_path is not None else "run voxels covered by the B0 map",
         n_volumes=int(n_volumes), pe_code=plan.pe_code, pe_axis=int(maps.pe_axis),
         pe_direction_world=pe_world_direction(plan.pe_code, affine),
-        timing=TimingRecord(**plan.timing.as_dict()), interp=s.interp, jacobian=bool(s.jacobian), **stats,
+        timing=TimingRecord(**plan.timing.as_dict()), interp=s.interp, jacobian=bool(s.jacobian),
+        **dataclasses.asdict(stats),
         folded_voxels_total=int(np.count_nonzero(maps.fold)), coverage_percent=coverage_percent,
         partial_coverage=coverage_percent < PARTIAL_COVERAGE_PERCENT, warnings=warnings,
         signal_max_abs_shift_vox=plan.shift_check.max_abs_shift_vox,
@@ -360,4 +371,4 @@ def _summary(plan: _RunPlan, b0: Image, mask_path, s: UnwarpSettings, n_volumes:
         displacement_convention=_DISPLACEMENT_WORDS[s.displacement_frame],
         folded_voxel_rule=f"voxels with Jacobian <= {floor:g} are flagged in the fold mask and weighted by {floor:g} "
                           "instead of the Jacobian; their intensity is not reliable",
-        outputs=plan.files)
+        field_placement=plan.placement.how, alignment=plan.placement.alignment, motion=motion, outputs=plan.files)
