@@ -258,5 +258,5 @@ def _put_in_place(task: Task, summary, upstream, deriv: Path, staging: Path) -> 
             adopt_output(sidecar_path(source), sidecar_path(destination))
         adopt_output(source, destination)
         placed[role] = MarkerOutput(path=destination.relative_to(deriv).as_posix(), size=destination.stat().st_size)
-    summary_path = placed.get("summary") or placed.get("json")  # the report's numbers are its summary
+    summary_path = placed.get(summary.outputs.SUMMARY_ROLE)
     return placed, summary_path.path if summary_path else None

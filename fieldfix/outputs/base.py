@@ -80,9 +80,11 @@ def job_and_settings(job, settings_type, settings, changes: dict):
 
 
 class JobFiles(Record):
-    """A job's output names (relative to its folder); image roles get provenance sidecars."""
+    """A job's output names (relative to its folder); image roles get provenance sidecars;
+    ``SUMMARY_ROLE`` names the role of the job's typed summary (its numbers)."""
 
     SUMMARY_SUFFIX = ""
+    SUMMARY_ROLE = "summary"
     IMAGES: tuple = ()
 
     @classmethod

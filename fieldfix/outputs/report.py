@@ -19,6 +19,7 @@ class ReportFiles(JobFiles):
     json: str
 
     SUMMARY_SUFFIX = "report.json"
+    SUMMARY_ROLE = "json"
 
     @classmethod
     def named(cls, stem: str = "report") -> "ReportFiles":
