@@ -59,8 +59,11 @@ __all__ = [
     "recommend",
     "plot_tradeoffs",
     "CSV_COLUMNS",
+    "SWEEP_AXES",
 ]
 
+#: The SweepSpec fields that hold one value per protocol axis (every other field is held fixed).
+SWEEP_AXES = ("thickness_mm", "te_s", "tilt_deg", "pe_signs", "zshim_mtms_per_m")
 _WORLD_WORDS = {"x": ("left", "right"), "y": ("posterior", "anterior"), "z": ("inferior", "superior")}
 
 #: Columns of the ranked table, in order.
@@ -259,7 +262,7 @@ class SweepSpec:
     tolerance: float = 0.01
 
     def __post_init__(self):
-        for name in ("thickness_mm", "te_s", "tilt_deg", "pe_signs", "zshim_mtms_per_m"):
+        for name in SWEEP_AXES:
             object.__setattr__(self, name, tuple(np.atleast_1d(getattr(self, name)).tolist()))
         if self.coverage not in ("brain", "roi"):
             raise InputError(f"coverage must be 'brain' or 'roi', got {self.coverage!r}")

@@ -710,3 +710,14 @@ def test_unwarp_report_includes_the_field_map_kept_beside_the_b0_map(study, tmp_
     data = json.loads((tmp_path / "u" / "report.json").read_text())
     assert data["runs"][0]["field_map"] == "b0_summary.json" and data["field_maps"]
     assert data["runs"][0]["before_view"] is True
+
+
+def test_every_planner_parameter_is_on_the_page_as_swept_or_held_fixed():
+    # A new SweepSpec knob fails here until the page has a label for it, instead of being
+    # left out of the "held fixed" table without a word.
+    from fieldfix.plan import SWEEP_AXES, SweepSpec
+    from fieldfix.report.view import PLAN_FIXED
+
+    parameters = set(SweepSpec().as_dict())
+    assert parameters - set(SWEEP_AXES) == set(PLAN_FIXED)
+    assert set(SWEEP_AXES) <= parameters

@@ -23,14 +23,11 @@ from ..records import fields_of
 from .figures.panels import pick_slices, worst_slices
 from .orientation import DisplayGrid
 from .stats import mask_coverage, symmetric_limit
+from .view import PLAN_FIXED
 
 __all__ = ["FieldView", "DropoutView", "PlanView", "measure_field_map", "measure_dropout", "measure_plan",
            "read_volume", "mask_name"]
 
-#: Parameters of a plan held fixed across its protocols, in page order (run_plan's names).
-PLAN_FIXED = ("orientation", "pe_world_axis", "inplane_mm", "pe_lines", "echo_spacing_s", "partial_fourier",
-              "profile", "tbw", "threshold", "slice_gap_mm", "time_per_slice_s", "multiband", "max_tr_s",
-              "fixed_tr_s", "tolerance", "coverage", "rank_by", "t2star_s", "field_strength_t", "lambda_physio")
 PLAN_TABLE_ROWS = 8
 
 

@@ -21,7 +21,7 @@ import json
 from dataclasses import dataclass
 
 __all__ = ["Num", "Text", "num", "lookup", "format_number", "field_map_facts", "run_facts", "dropout_facts",
-           "plan_facts", "plan_table", "MISSING"]
+           "plan_facts", "plan_table", "MISSING", "PLAN_FIXED"]
 
 MISSING = "n/a"
 #: How a plan's metric is named on the page.
@@ -203,8 +203,10 @@ def dropout_facts(data, i: int) -> tuple[list, list]:
     return protocol, stats
 
 
-#: Fixed plan parameters: key -> (label, format, unit, scale); None format: a text.
-_PLAN_FIXED = {
+#: Plan parameters held fixed, in page order (``SweepSpec.as_dict`` names): key -> (label,
+#: format, unit, scale); None format: a text. The others are the swept axes
+#: (``fieldfix.plan.SWEEP_AXES``); a test holds the two to the planner's parameters.
+PLAN_FIXED = {
     "orientation": ("Slice orientation", None, "", 1.0), "pe_world_axis": ("Phase-encode world axis", None, "", 1.0),
     "inplane_mm": ("In-plane voxel size", "{:g}", "mm", 1.0), "pe_lines": ("Phase-encode lines", "{:d}", "lines", 1.0),
     "echo_spacing_s": ("Effective echo spacing", "{:.3f}", "ms", 1000.0),
@@ -212,11 +214,13 @@ _PLAN_FIXED = {
     "tbw": ("RF time-bandwidth product", "{:g}", "(time \u00d7 bandwidth)", 1.0),
     "threshold": ("Loss threshold", "{:g}", "fraction of signal", 1.0),
     "slice_gap_mm": ("Slice gap", "{:g}", "mm", 1.0), "time_per_slice_s": ("Time per slice", "{:g}", "ms", 1000.0),
+    "overhead_s": ("Excitation, rewinder and spoiler time per slice", "{:g}", "ms", 1000.0),
     "multiband": ("Multiband factor", "{:d}", "slices at once", 1.0), "max_tr_s": ("TR limit", "{:g}", "s", 1.0),
     "tolerance": ("Tolerance on the ranked figure", "{:g}", "fraction", 1.0), "coverage": ("Slices cover", None, "", 1.0),
     "fixed_tr_s": ("TR of every protocol", "{:g}", "s", 1.0), "rank_by": ("Ranking", None, "", 1.0),
     "t2star_s": ("T2* of the tissue", "{:g}", "ms", 1000.0), "field_strength_t": ("Field strength", "{:g}", "T", 1.0),
     "lambda_physio": ("Physiological noise", "{:g}", "fraction of the signal", 1.0),
+    "snr_reference": ("Reference image SNR", "{:g}", "(3 mm voxel, 30 ms readout, TE 0, 3 T)", 1.0),
 }
 
 
@@ -229,7 +233,7 @@ def plan_facts(data, i: int) -> tuple[list, list]:
             ("Protocols compared", num(data, f"{p}.protocols", "{:d}", "protocols")),
             ("Ranked by", Text(METRIC_WORDS.get(lookup(data, f"{p}.metric"), MISSING)))]
     fixed = []
-    for key, (label, fmt, unit, scale) in _PLAN_FIXED.items():
+    for key, (label, fmt, unit, scale) in PLAN_FIXED.items():
         if key in (lookup(data, f"{p}.fixed") or {}):
             value = lookup(data, f"{p}.fixed.{key}")
             fixed.append((label, text(data, f"{p}.fixed.{key}") if fmt is None or value is None
