@@ -198,7 +198,7 @@ class BatchExecution:
     def executor(self):
         """A new executor (a context manager) for this execution."""
         if self.scheduler or self.scheduler_file:
-            return DaskExecutor(self.scheduler, str(self.scheduler_file) if self.scheduler_file else None)
+            return DaskExecutor(self.scheduler, self.scheduler_file)
         return LocalPool(self.jobs) if self.jobs > 1 else InProcessExecutor()
 
 

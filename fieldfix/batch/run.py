@@ -124,8 +124,8 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
     (0, [])
     """
     root, deriv = Path(bids_root).expanduser().resolve(), Path(out_dir).expanduser().resolve()
-    execution = BatchExecution(jobs=jobs, scheduler=scheduler, scheduler_file=scheduler_file, command=command,
-                               progress=progress, redo=redo)
+    execution = BatchExecution(jobs=jobs, scheduler=scheduler, command=command, progress=progress, redo=redo,
+                               scheduler_file=str(scheduler_file) if scheduler_file is not None else None)
     execution.check()
     _check_folders(root, deriv)
     options, config_record = merge_options(options, config)

@@ -357,7 +357,8 @@ def _summary(plan: _RunPlan, field_map: _FieldMapInput, s: UnwarpSettings, n_vol
                         "there is a guess (see the run's B0 coverage in the report)")
     floor = s.jacobian_floor
     return UnwarpSummary(
-        run=str(plan.image.path), b0_map=str(field_map.image.path), b0_units=field_map.units, b0_mask=str(mask_path) if mask_path is not None else None,
+        run=str(plan.image.path), b0_map=str(field_map.image.path), b0_units=field_map.units,
+        b0_mask=str(mask_path) if mask_path is not None else None,
         statistics_region="field-map mask" if mask_path is not None else "run voxels covered by the B0 map",
         n_volumes=int(n_volumes), pe_code=plan.pe_code, pe_axis=int(maps.pe_axis),
         pe_direction_world=pe_world_direction(plan.pe_code, affine),
