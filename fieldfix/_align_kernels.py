@@ -114,13 +114,13 @@ def _sample_row(mag, field, vmap, u, f, gu, gf, i):  # pragma: no cover - compil
 
 # Parallel loops and their single-threaded twins (as in fieldfix._unwarp_kernels): small grids
 # and busy machines run faster on one thread than with threads waiting for each other.
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _sample_pair_parallel(mag, field, vmap, u, f, gu, gf):  # pragma: no cover - compiled
     for i in prange(u.shape[0]):
         _sample_row(mag, field, vmap, u, f, gu, gf, i)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def _sample_pair_serial(mag, field, vmap, u, f, gu, gf):  # pragma: no cover - compiled
     for i in range(u.shape[0]):
         _sample_row(mag, field, vmap, u, f, gu, gf, i)
@@ -233,13 +233,13 @@ def _distort_line(values, shift, out, line):  # pragma: no cover - compiled
                 out[line, cell] += density * (b - a)
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _distort_lines_parallel(values, shift, out):  # pragma: no cover - compiled
     for line in prange(values.shape[0]):
         _distort_line(values, shift, out, line)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def _distort_lines_serial(values, shift, out):  # pragma: no cover - compiled
     for line in range(values.shape[0]):
         _distort_line(values, shift, out, line)
@@ -326,13 +326,13 @@ def _adjoint_line(values, shift, g, a_out, b_out, line):  # pragma: no cover - c
     b_out[line, n - 2] -= 0.5 * de[n]
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _distort_adjoint_parallel(values, shift, g, a_out, b_out):  # pragma: no cover - compiled
     for line in prange(values.shape[0]):
         _adjoint_line(values, shift, g, a_out, b_out, line)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def _distort_adjoint_serial(values, shift, g, a_out, b_out):  # pragma: no cover - compiled
     for line in range(values.shape[0]):
         _adjoint_line(values, shift, g, a_out, b_out, line)
@@ -420,13 +420,13 @@ def _pose_row(a, b, gu, gf, kappa, world, origin, partial, i):  # pragma: no cov
         partial[i, c] = acc[c]
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _pose_sums_parallel(a, b, gu, gf, kappa, world, origin, partial):  # pragma: no cover - compiled
     for i in prange(a.shape[0]):
         _pose_row(a, b, gu, gf, kappa, world, origin, partial, i)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def _pose_sums_serial(a, b, gu, gf, kappa, world, origin, partial):  # pragma: no cover - compiled
     for i in range(a.shape[0]):
         _pose_row(a, b, gu, gf, kappa, world, origin, partial, i)

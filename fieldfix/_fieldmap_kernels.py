@@ -21,7 +21,7 @@ from ._select_kernels import median_of
 __all__ = ["local_residuals_nb", "local_residuals_reference"]
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def local_residuals_nb(field, mask):  # pragma: no cover - compiled
     """Residual against the local median, and the local scale of the neighbours' residuals.
 

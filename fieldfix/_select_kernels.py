@@ -14,7 +14,7 @@ from numba import njit
 __all__ = ["select_kth", "middle_of", "median_of"]
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def select_kth(a, n, k):
     """Partially order a[:n] in place so that a[k] is the k-th smallest; return it."""
     lo = 0
@@ -52,7 +52,7 @@ def select_kth(a, n, k):
     return a[k]
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def middle_of(a, n, k, even):
     """The k-th smallest of a[:n] (reorders a); with `even`, its mean with the (k-1)-th (k >= 1)."""
     upper = select_kth(a, n, k)
@@ -65,7 +65,7 @@ def middle_of(a, n, k, even):
     return 0.5 * (lower + upper)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def median_of(a, n):
     """Exact median of a[:n] by quickselect (reorders a)."""
     if n == 0:

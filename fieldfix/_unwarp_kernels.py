@@ -64,7 +64,7 @@ def _gather_loop(row, parallel: bool):
     single-threaded form serves callers that already run one job per core (several
     processes), where extra threads would only compete for the same cores."""
 
-    @njit(parallel=parallel, cache=True)
+    @njit(nogil=True, parallel=parallel, cache=True)
     def loop(source, index, weight, out):  # pragma: no cover - compiled
         for v in prange(index.shape[0]):
             out[v] = row(source, index, weight, v)
@@ -143,7 +143,7 @@ def mirror_index(virtual, n):  # pragma: no cover - compiled
     return src
 
 
-@njit(cache=True, fastmath={"contract"})
+@njit(nogil=True, cache=True, fastmath={"contract"})
 def _prefilter_rows(buf, n, width):  # pragma: no cover - compiled
     """Cubic B-spline prefilter of the `width` lanes of the flat buffer `buf`, in place (float32).
 
@@ -203,7 +203,7 @@ def _prefilter_rows(buf, n, width):  # pragma: no cover - compiled
             buf[dst + u] = buf[src + u]
 
 
-@njit(cache=True, fastmath={"contract"})
+@njit(nogil=True, cache=True, fastmath={"contract"})
 def _cubic_block(volume, position, scale, out, start, step_j, step_t, n, lanes, buf, poly):  # pragma: no cover
     """One block of `lanes` lines of length `n` in flat arrays.
 
@@ -303,7 +303,7 @@ def _block_start(task, blocks, n, inner):  # pragma: no cover - compiled
     return o * n * inner + i0, inner, 1, i0
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _cubic_parallel(volume, position, scale, out, outer, n, inner):  # pragma: no cover - compiled
     lines = outer if inner == 1 else inner
     width = min(CUBIC_LANES, lines)
@@ -316,7 +316,7 @@ def _cubic_parallel(volume, position, scale, out, outer, n, inner):  # pragma: n
         _cubic_block(volume, position, scale, out, start, step_j, step_t, n, min(width, lines - first), buf, poly)
 
 
-@njit(cache=True)
+@njit(nogil=True, cache=True)
 def _cubic_serial(volume, position, scale, out, outer, n, inner):  # pragma: no cover - compiled
     lines = outer if inner == 1 else inner
     width = min(CUBIC_LANES, lines)
@@ -409,7 +409,7 @@ def cubic_lines_reference(volume: np.ndarray, position: np.ndarray, scale: np.nd
     return (out * scale).astype(np.float32)
 
 
-@njit(parallel=True, cache=True)
+@njit(nogil=True, parallel=True, cache=True)
 def _splat_kernel(values, left, right, out):  # pragma: no cover - compiled
     n_lines, n = values.shape
     for line in prange(n_lines):
