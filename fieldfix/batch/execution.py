@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import ctypes
 import dataclasses
-from dataclasses import dataclass
 import multiprocessing
 import os
 import signal
@@ -21,6 +20,7 @@ import threading
 import time
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
