@@ -135,7 +135,7 @@ def run_batch(bids_root: str | os.PathLike, out_dir: str | os.PathLike, *,
         return BatchPlan(dataset=str(root), derivatives=str(deriv), runs=run_entries(inventory, tasks),
                          tasks=[t.task_id for t in tasks], dataset_remarks=list(inventory.problems),
                          options=options.changed(), config=config_record)
-    with output_folder(deriv), BatchLock(deriv, command) as lock:
+    with output_folder(deriv), BatchLock(deriv, execution.command) as lock:
         return _run_held(_Batch(root, deriv, inventory, tasks, options, config_record), lock, execution)
 
 
@@ -156,7 +156,7 @@ def _run_held(batch: _Batch, lock: BatchLock, execution: BatchExecution) -> Batc
     write_dataset_description(batch.deriv, batch.root)
     write_bidsignore(batch.deriv)
     results = _execute(batch.tasks, batch.deriv, execution)
-    summary = _summary(batch, results, files, execution.mode, notices)
+    summary = _write_group_summary(batch, results, files, execution.mode, notices)
     log = BatchLog(command=execution.command, started=started.isoformat(timespec="seconds"),
                    finished=now_iso("seconds"), summary=summary, inventory=batch.inventory.as_dict(),
                    tasks=list(results.values()))
@@ -197,9 +197,9 @@ def _run_outcomes(inventory: Inventory, tasks: list[Task], results: dict[str, Ta
     return outcomes
 
 
-def _summary(batch: _Batch, results: dict[str, TaskResult], files: BatchFiles, mode: str,
-             notices: list[str]) -> BatchSummary:
-    """Write the group summary; return the batch's summary."""
+def _write_group_summary(batch: _Batch, results: dict[str, TaskResult], files: BatchFiles, mode: str,
+                         notices: list[str]) -> BatchSummary:
+    """Write the group table and figure; return the batch's summary."""
     counts = {s: 0 for s in ("done", "reused", "failed", "skipped")}
     for result in results.values():
         counts[result.status] = counts.get(result.status, 0) + 1
