@@ -28,6 +28,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._kernel import kernel
+
 __all__ = [
     "sample_pair", "sample_pair_reference",
     "distort_lines", "distort_lines_reference",
@@ -114,13 +116,13 @@ def _sample_row(mag, field, vmap, u, f, gu, gf, i):  # pragma: no cover - compil
 
 # Parallel loops and their single-threaded twins (as in fieldfix._unwarp_kernels): small grids
 # and busy machines run faster on one thread than with threads waiting for each other.
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _sample_pair_parallel(mag, field, vmap, u, f, gu, gf):  # pragma: no cover - compiled
     for i in prange(u.shape[0]):
         _sample_row(mag, field, vmap, u, f, gu, gf, i)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _sample_pair_serial(mag, field, vmap, u, f, gu, gf):  # pragma: no cover - compiled
     for i in range(u.shape[0]):
         _sample_row(mag, field, vmap, u, f, gu, gf, i)
@@ -233,13 +235,13 @@ def _distort_line(values, shift, out, line):  # pragma: no cover - compiled
                 out[line, cell] += density * (b - a)
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _distort_lines_parallel(values, shift, out):  # pragma: no cover - compiled
     for line in prange(values.shape[0]):
         _distort_line(values, shift, out, line)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _distort_lines_serial(values, shift, out):  # pragma: no cover - compiled
     for line in range(values.shape[0]):
         _distort_line(values, shift, out, line)
@@ -326,13 +328,13 @@ def _adjoint_line(values, shift, g, a_out, b_out, line):  # pragma: no cover - c
     b_out[line, n - 2] -= 0.5 * de[n]
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _distort_adjoint_parallel(values, shift, g, a_out, b_out):  # pragma: no cover - compiled
     for line in prange(values.shape[0]):
         _adjoint_line(values, shift, g, a_out, b_out, line)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _distort_adjoint_serial(values, shift, g, a_out, b_out):  # pragma: no cover - compiled
     for line in range(values.shape[0]):
         _adjoint_line(values, shift, g, a_out, b_out, line)
@@ -420,13 +422,13 @@ def _pose_row(a, b, gu, gf, kappa, world, origin, partial, i):  # pragma: no cov
         partial[i, c] = acc[c]
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _pose_sums_parallel(a, b, gu, gf, kappa, world, origin, partial):  # pragma: no cover - compiled
     for i in prange(a.shape[0]):
         _pose_row(a, b, gu, gf, kappa, world, origin, partial, i)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _pose_sums_serial(a, b, gu, gf, kappa, world, origin, partial):  # pragma: no cover - compiled
     for i in range(a.shape[0]):
         _pose_row(a, b, gu, gf, kappa, world, origin, partial, i)

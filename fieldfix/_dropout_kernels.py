@@ -41,6 +41,7 @@ import math
 import numba
 import numpy as np
 
+from ._kernel import kernel
 from ._select_kernels import median_of, middle_of, select_kth
 
 __all__ = ["sweep_stats", "sweep_stats_reference", "protocol_values_reference", "project_gradient",
@@ -83,7 +84,7 @@ def sample_stride(n_vox: int) -> int:
     return max(1, n_vox // _SAMPLE_SIZE)
 
 
-@numba.njit(nogil=True, cache=True, error_model="numpy")
+@kernel(error_model="numpy")
 def _terms(start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
     """For voxels start, start+stride, ... < stop: wv = |through-plane cycles per mm of thickness|,
     fv = TE ratio (1 for mode 0), 0 where no echo is acquired."""
@@ -103,7 +104,7 @@ def _terms(start, stop, stride, gn, gro, inv, te, zs, lo, hi, mode, wv, fv):
 
 # fastmath "contract" only lets LLVM fuse a * b + c into one FMA (one rounding instead of two):
 # no reassociation, no assumptions about NaN or infinity.
-@numba.njit(nogil=True, cache=True, error_model="numpy", fastmath={"contract"})
+@kernel(error_model="numpy", fastmath={"contract"})
 def _evaluate(wv, fv, n, thick, analytic, table, step, tail_sinc, vals):
     """vals[:n] = R(wv * thick) * fv: a closed form (analytic 1: rect, 2: Gaussian) or the table."""
     if analytic == 1:  # |sin(pi u)| / (pi u) from the argument reduced to [-1/2, 1/2]: vectorises
@@ -155,7 +156,7 @@ def _evaluate(wv, fv, n, thick, analytic, table, step, tail_sinc, vals):
                 vals[v] = _lookup(x, table, tail_sinc, step) * fv[v]
 
 
-@numba.njit(nogil=True, cache=True)
+@kernel()
 def _count(vals, n, threshold, b_lo, b_hi):
     """Counts over vals[:n]: under the threshold, under the bracket, inside the bracket."""
     below = 0
@@ -169,7 +170,7 @@ def _count(vals, n, threshold, b_lo, b_hi):
     return below, under, inside
 
 
-@numba.njit(nogil=True, cache=True)
+@kernel()
 def _append_inside(vals, n, b_lo, b_hi, out, c):
     """Append the values of vals[:n] inside [b_lo, b_hi] to out[c:]; return the new length."""
     for v in range(n):  # branch-free: always store, advance only for an inside value
@@ -179,7 +180,7 @@ def _append_inside(vals, n, b_lo, b_hi, out, c):
     return c
 
 
-@numba.njit(nogil=True, cache=True, error_model="numpy")
+@kernel(error_model="numpy")
 def _project(grad, dirs_t, signed_t_pe_s, gn, gro, inv):
     """Gradient along the normal and per readout step, and the echo-time factor 1 / (1 + s g_pe T_pe)."""
     n0, n1, n2 = dirs_t[0, 0], dirs_t[0, 1], dirs_t[0, 2]
@@ -203,7 +204,7 @@ def _index_difference(flat, i, stride, index, n):
     return (flat[i + stride * up] - flat[i - stride * down]) / (1.0 * up + down)
 
 
-@numba.njit(nogil=True, cache=True)
+@kernel()
 def gradient_rows(field, at, inverse_transpose):
     """(3, N) world gradient of a 3D map at flat (C-order) indices `at`, one row per world axis.
 
@@ -223,7 +224,7 @@ def gradient_rows(field, at, inverse_transpose):
     return out
 
 
-@numba.njit(nogil=True, cache=True, parallel=True)
+@kernel(parallel=True)
 def _sweep_grouped(grad, dirs, n_roi, group_block, block_start, block_tilt, block_sign, te_s, thickness_mm,
                    zshim_cpmm, mode, t_pe_s, before_s, after_s, analytic, table, step, tail_sinc, threshold,
                    stride, half_width, out, misses):

@@ -14,14 +14,15 @@ The ``*_reference`` function computes the same with plain numpy; the tests compa
 from __future__ import annotations
 
 import numpy as np
-from numba import njit, prange
+from numba import prange
 
+from ._kernel import kernel
 from ._select_kernels import median_of
 
 __all__ = ["local_residuals_nb", "local_residuals_reference"]
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def local_residuals_nb(field, mask):  # pragma: no cover - compiled
     """Residual against the local median, and the local scale of the neighbours' residuals.
 

@@ -31,6 +31,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._kernel import kernel
 from ._align_kernels import use_parallel
 from ._unwarp_kernels import mirror_index
 
@@ -54,7 +55,7 @@ PARALLEL_POSE_VOXELS = 1 << 16
 # Cubic B-spline prefilter
 # ---------------------------------------------------------------------------------------------
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _filter_rows(c):  # pragma: no cover - compiled
     """Prefilter a 2D array along its first axis, all columns at once, mirror boundary, exact start."""
     n, m = c.shape
@@ -88,7 +89,7 @@ def _filter_rows(c):  # pragma: no cover - compiled
             c[k, q] *= 6.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _filter_last(c, i):  # pragma: no cover - compiled
     """Prefilter plane i along the last axis (transposed so that the recursion is vectorised)."""
     t = np.ascontiguousarray(c[i].T)
@@ -99,7 +100,7 @@ def _filter_last(c, i):  # pragma: no cover - compiled
             c[i, j, k] = t[k, j]
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _prefilter_parallel(c):  # pragma: no cover - compiled
     nx, ny, nz = c.shape
     columns = c.reshape(nx, ny * nz)
@@ -111,7 +112,7 @@ def _prefilter_parallel(c):  # pragma: no cover - compiled
         _filter_last(c, i)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _prefilter_serial(c):  # pragma: no cover - compiled
     nx, ny, nz = c.shape
     _filter_rows(c.reshape(nx, ny * nz))
@@ -159,7 +160,7 @@ def prefilter_cubic_reference(volume):
 _PAD = 2
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _pad_small(coef, out):  # pragma: no cover - compiled
     """Mirror padding for any axis length (several reflections on axes shorter than the pad)."""
     nx, ny, nz = coef.shape
@@ -258,14 +259,14 @@ def _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, 
         _line_values(flat, row, plane, w, start, scale, out[i, j])
 
 
-@njit(nogil=True, parallel=True, cache=True, fastmath=_FMA)  # inlined callees compile with these flags
+@kernel(parallel=True, fastmath=_FMA)  # inlined callees compile with these flags
 def _resample_parallel(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
     flat = padded.ravel()
     for i in prange(out.shape[0]):
         _resample_plane(flat, shape, vmap, shift, gradient, column, floor, pe, out, i)
 
 
-@njit(nogil=True, cache=True, fastmath=_FMA)
+@kernel(fastmath=_FMA)
 def _resample_serial(padded, shape, vmap, shift, gradient, column, floor, pe, out):  # pragma: no cover
     flat = padded.ravel()
     for i in range(out.shape[0]):
@@ -353,7 +354,7 @@ def resample_rigid_shift_reference(coef, vmap, shift, gradient, column, floor, p
 # Pyramid
 # ---------------------------------------------------------------------------------------------
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _block_mean(volume, factor, out):  # pragma: no cover - compiled
     nx, ny, nz = volume.shape
     scale = 1.0 / (factor * factor * factor)
@@ -448,7 +449,7 @@ def _interior(p, shape):  # pragma: no cover - compiled
     return (1.0 <= p[0] < shape[0] - 2.0) and (1.0 <= p[1] < shape[1] - 2.0) and (1.0 <= p[2] < shape[2] - 2.0)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _pull_values(samples, ijk, shift, ymap, pmap, pe_axis, out):  # pragma: no cover - compiled
     y, p = np.empty(3), np.empty(3)
     w, dw = np.empty((3, 4)), np.empty((3, 4))
@@ -486,7 +487,7 @@ def _accumulate(acc, wn, r, row, still):  # pragma: no cover - compiled
     acc[29] += wn * still * still
 
 
-@njit(nogil=True, cache=True, fastmath=_FMA)
+@kernel(fastmath=_FMA)
 def _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, lo, hi,
                   acc):  # pragma: no cover - compiled
     y, p, row = np.empty(3), np.empty(3), np.empty(6)
@@ -512,7 +513,7 @@ def _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap
         _accumulate(acc, weight[n], r, row, still[n])
 
 
-@njit(nogil=True, parallel=True, cache=True, fastmath=_FMA)
+@kernel(parallel=True, fastmath=_FMA)
 def _normal_parallel(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
                      out):  # pragma: no cover - compiled
     n, chunks = ijk.shape[0], out.shape[0]
@@ -521,7 +522,7 @@ def _normal_parallel(samples, ijk, shift, gradient, weight, still, ymap, pmap, j
                       n * c // chunks, n * (c + 1) // chunks, out[c])
 
 
-@njit(nogil=True, cache=True, fastmath=_FMA)
+@kernel(fastmath=_FMA)
 def _normal_serial(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis,
                    out):  # pragma: no cover - compiled
     _normal_chunk(samples, ijk, shift, gradient, weight, still, ymap, pmap, jmap, floor, pe_axis, 0,

@@ -28,6 +28,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from ._kernel import kernel
+
 __all__ = ["apply_nb", "residual_nb", "gauss_seidel_nb", "restrict_nb", "prolong_add_nb", "apply_reference",
            "gauss_seidel_reference", "restrict_reference", "prolong_add_reference"]
 
@@ -46,7 +48,7 @@ def _row(x, c0, c1, c2, i, j, k, dij):  # pragma: no cover - compiled
     return (dij + _diagonal(x.shape[2] - 2, c2, k)) * x[i, j, k] - acc
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def residual_nb(x, b, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
     """``out = b - A x`` at unknown voxels, 0 elsewhere (padded arrays, see `gauss_seidel_nb`)."""
     p0, p1, p2 = x.shape
@@ -57,7 +59,7 @@ def residual_nb(x, b, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
                 out[i, j, k] = b[i, j, k] - _row(x, c0, c1, c2, i, j, k, dij) if unknown[i, j, k] else 0.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def apply_nb(x, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
     """``out = A x`` at unknown voxels, 0 elsewhere (padded arrays)."""
     p0, p1, p2 = x.shape
@@ -68,7 +70,7 @@ def apply_nb(x, unknown, c0, c1, c2, out):  # pragma: no cover - compiled
                 out[i, j, k] = _row(x, c0, c1, c2, i, j, k, dij) if unknown[i, j, k] else 0.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def gauss_seidel_nb(x, b, unknown, c0, c1, c2, parity):  # pragma: no cover - compiled
     """Red-black Gauss-Seidel half-sweep over unknown voxels with ``(i + j + k) % 2 == parity``.
 
@@ -88,7 +90,7 @@ def gauss_seidel_nb(x, b, unknown, c0, c1, c2, parity):  # pragma: no cover - co
                     x[i, j, k] = (b[i, j, k] + acc) / (dij + _diagonal(p2 - 2, c2, k))
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def restrict_nb(fine, unknown_coarse, coarse):  # pragma: no cover - compiled
     """``coarse[I] = sum of fine over the children of I`` where I is unknown, else 0 (padded)."""
     p0, p1, p2 = coarse.shape
@@ -105,7 +107,7 @@ def restrict_nb(fine, unknown_coarse, coarse):  # pragma: no cover - compiled
                 coarse[i, j, k] = acc
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def prolong_add_nb(coarse, unknown_coarse, fine, weight):  # pragma: no cover - compiled
     """``fine[i] += weight * coarse[parent(i)]`` where the coarse parent is unknown (padded)."""
     f0, f1, f2 = fine.shape
@@ -122,7 +124,7 @@ def prolong_add_nb(coarse, unknown_coarse, fine, weight):  # pragma: no cover - 
 # ------------------------------------------------------------------------------------------
 # plain-numpy twins
 # ------------------------------------------------------------------------------------------
-@njit(nogil=True, cache=True)
+@kernel()
 def dot_nb(a, b):  # pragma: no cover - compiled
     """``a . b`` over flat float32 arrays, accumulated in float64."""
     acc = 0.0
@@ -131,7 +133,7 @@ def dot_nb(a, b):  # pragma: no cover - compiled
     return acc
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def cg_step_nb(x, r, p, ap, alpha):  # pragma: no cover - compiled
     """``x += alpha p`` and ``r -= alpha ap`` in one pass (flat float32); returns ``r . r`` (float64 sum)."""
     rr = 0.0

@@ -33,6 +33,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._kernel import kernel
 from ._unwarp_kernels import mirror_index as _mirror
 
 __all__ = [
@@ -44,7 +45,7 @@ __all__ = [
 ]
 
 
-@njit(nogil=True, cache=True, parallel=True)
+@kernel(parallel=True)
 def _warp_kernel(coef, shift, dshift, corrected, value, dvalue):  # pragma: no cover - compiled
     n_a, n_b, n = coef.shape
     for a in prange(n_a):
@@ -128,7 +129,7 @@ def warp_lines_reference(coef, shift, dshift):
     return v * (1.0 + dshift), v, dv
 
 
-@njit(nogil=True, cache=True, parallel=True)
+@kernel(parallel=True)
 def _accumulate_kernel(residual, dshift, value, dvalue, factor, g_field, g_deriv):  # pragma: no cover
     n_a, n_b, n = residual.shape
     for a in prange(n_a):
@@ -174,7 +175,7 @@ def _cell(matrix, offset, x, y, z, shape):  # pragma: no cover - compiled
     return i, j, k, min(i + 1, n0 - 1), min(j + 1, n1 - 1), min(k + 1, n2 - 1), f, g, h
 
 
-@njit(nogil=True, cache=True, parallel=True)
+@kernel(parallel=True)
 def _pull_kernel(volume, matrix, offset, out):  # pragma: no cover - compiled
     for x in prange(volume.shape[0]):
         for y in range(volume.shape[1]):
@@ -186,7 +187,7 @@ def _pull_kernel(volume, matrix, offset, out):  # pragma: no cover - compiled
                                        + g * ((1 - h) * volume[i1, j1, k] + h * volume[i1, j1, k1])))
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _pull_adjoint_kernel(grad, matrix, offset, out):  # pragma: no cover - compiled
     for x in range(grad.shape[0]):
         for y in range(grad.shape[1]):
@@ -275,7 +276,7 @@ def _bspline3(t):  # pragma: no cover - compiled
     return 0.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _line_nodes(shift, xnode, wnode):  # pragma: no cover - compiled
     """Nodes of the piecewise-linear map w(x) = x + s(x) on [-1/2, n - 1/2] (ends extrapolated)."""
     n = shift.shape[0]
@@ -288,7 +289,7 @@ def _line_nodes(shift, xnode, wnode):  # pragma: no cover - compiled
     wnode[n + 1] = n - 0.5 + shift[n - 1] + 0.5 * (shift[n - 1] - shift[n - 2])
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _mark_folded(xnode, wnode, floor, bad):  # pragma: no cover - compiled
     """Rows whose kernel reaches a segment with slope <= floor (folded or compressed beyond recovery)."""
     n = bad.shape[0]
@@ -305,7 +306,7 @@ def _mark_folded(xnode, wnode, floor, bad):  # pragma: no cover - compiled
                 bad[j] = True
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _quadrature_piece(a, b, x0, w0, slope, n, bad, any_bad, amat, first, last, along_x, along_w):  # pragma: no cover
     """Add the exact integrals over [a, b] (both kernels polynomial there) to the rows of `amat`."""
     for g in range(4):
@@ -354,7 +355,7 @@ def _add_to_row(amat, j, hk, slope, cols, taps, low, high, first, last, along_x,
     last[j] = max(last[j], high)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along_x, along_w):  # pragma: no cover
     """Rows of the forward model of one line into `amat` (zero on entry); row Jacobians into `jac`.
 
@@ -392,7 +393,7 @@ def _forward_rows(shift, floor, amat, first, last, jac, bad, xnode, wnode, along
         jac[j] = along_w[j] / along_x[j] if along_x[j] > 0.0 else 0.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _accumulate_normal(amat, first, last, jac, y, normal, rhs):  # pragma: no cover - compiled
     """Add one image's weighted normal equations (weights jac**2) and clear the used parts of `amat`."""
     band = 0
@@ -414,7 +415,7 @@ def _accumulate_normal(amat, first, last, jac, y, normal, rhs):  # pragma: no co
     return band
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _add_penalty(normal, penalty):  # pragma: no cover - compiled
     """Scale-free second-difference penalty on the coefficients, plus a tiny ridge; returns the scale."""
     n = normal.shape[0]
@@ -467,7 +468,7 @@ def _band_cholesky_solve(mat, rhs, band):  # pragma: no cover - compiled
 _RESTORE_CHUNK = 64
 
 
-@njit(nogil=True, cache=True, parallel=True)
+@kernel(parallel=True)
 def _restore_kernel(images, shifts, penalty, floor, output_rows, out):  # pragma: no cover - compiled
     n_img, n_outer, n, n_inner = images.shape
     n_lines = n_outer * n_inner
@@ -511,7 +512,7 @@ def _restore_kernel(images, shifts, penalty, floor, output_rows, out):  # pragma
                 normal[i, max(0, i - band):i + 1] = 0.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _forward_matrix_kernel(shift, floor, amat, jac, bad):  # pragma: no cover - compiled
     n = shift.shape[0]
     first = np.empty(n, np.int64)

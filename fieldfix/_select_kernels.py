@@ -9,12 +9,13 @@ find"): expected linear time, in place. The tests compare the results with ``np.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+
+from ._kernel import kernel
 
 __all__ = ["select_kth", "middle_of", "median_of"]
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def select_kth(a, n, k):
     """Partially order a[:n] in place so that a[k] is the k-th smallest; return it."""
     lo = 0
@@ -52,7 +53,7 @@ def select_kth(a, n, k):
     return a[k]
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def middle_of(a, n, k, even):
     """The k-th smallest of a[:n] (reorders a); with `even`, its mean with the (k-1)-th (k >= 1)."""
     upper = select_kth(a, n, k)
@@ -65,7 +66,7 @@ def middle_of(a, n, k, even):
     return 0.5 * (lower + upper)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def median_of(a, n):
     """Exact median of a[:n] by quickselect (reorders a)."""
     if n == 0:

@@ -31,6 +31,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from ._kernel import kernel
+
 __all__ = ["gather", "gather_reference", "cubic_lines", "cubic_lines_reference", "bspline_prefilter_reference",
            "splat_lines", "splat_lines_reference"]
 
@@ -64,7 +66,7 @@ def _gather_loop(row, parallel: bool):
     single-threaded form serves callers that already run one job per core (several
     processes), where extra threads would only compete for the same cores."""
 
-    @njit(nogil=True, parallel=parallel, cache=True)
+    @kernel(parallel=parallel)
     def loop(source, index, weight, out):  # pragma: no cover - compiled
         for v in prange(index.shape[0]):
             out[v] = row(source, index, weight, v)
@@ -143,7 +145,7 @@ def mirror_index(virtual, n):  # pragma: no cover - compiled
     return src
 
 
-@njit(nogil=True, cache=True, fastmath={"contract"})
+@kernel(fastmath={"contract"})
 def _prefilter_rows(buf, n, width):  # pragma: no cover - compiled
     """Cubic B-spline prefilter of the `width` lanes of the flat buffer `buf`, in place (float32).
 
@@ -203,7 +205,7 @@ def _prefilter_rows(buf, n, width):  # pragma: no cover - compiled
             buf[dst + u] = buf[src + u]
 
 
-@njit(nogil=True, cache=True, fastmath={"contract"})
+@kernel(fastmath={"contract"})
 def _cubic_block(volume, position, scale, out, start, step_j, step_t, n, lanes, buf, poly):  # pragma: no cover
     """One block of `lanes` lines of length `n` in flat arrays.
 
@@ -303,7 +305,7 @@ def _block_start(task, blocks, n, inner):  # pragma: no cover - compiled
     return o * n * inner + i0, inner, 1, i0
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _cubic_parallel(volume, position, scale, out, outer, n, inner):  # pragma: no cover - compiled
     lines = outer if inner == 1 else inner
     width = min(CUBIC_LANES, lines)
@@ -316,7 +318,7 @@ def _cubic_parallel(volume, position, scale, out, outer, n, inner):  # pragma: n
         _cubic_block(volume, position, scale, out, start, step_j, step_t, n, min(width, lines - first), buf, poly)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _cubic_serial(volume, position, scale, out, outer, n, inner):  # pragma: no cover - compiled
     lines = outer if inner == 1 else inner
     width = min(CUBIC_LANES, lines)
@@ -409,7 +411,7 @@ def cubic_lines_reference(volume: np.ndarray, position: np.ndarray, scale: np.nd
     return (out * scale).astype(np.float32)
 
 
-@njit(nogil=True, parallel=True, cache=True)
+@kernel(parallel=True)
 def _splat_kernel(values, left, right, out):  # pragma: no cover - compiled
     n_lines, n = values.shape
     for line in prange(n_lines):

@@ -30,6 +30,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from ._kernel import kernel
+
 TWO_PI = 2.0 * np.pi
 
 # The 13 directions through the centre of a 3x3x3 neighbourhood (one of each +/- pair):
@@ -96,7 +98,7 @@ def _second_difference_at(phase, mask, i, j, k, directions):
     return np.sqrt(acc * nd / n)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def second_difference_nb(phase, mask, directions):
     """Second-difference measure ``D`` per voxel (inf where none is available).
 
@@ -155,7 +157,7 @@ LOG10_LO = -9.0
 LOG10_HI = 3.0
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def _edge_key(da, db, n_keys, lo, hi):
     ra = 1.0 / da if da > 0 else 1e300
     rb = 1.0 / db if db > 0 else 1e300
@@ -214,7 +216,7 @@ def edges_reference(mask, dvalue, n_keys=N_KEYS):
     return a[order], b[order], quantise_reliability(c[order], n_keys)
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def prepare_nb(phase, mask, keep_outside=False):
     """Wrap ``phase`` into [-pi, pi) and drop non-finite voxels from ``mask``.
 
@@ -244,7 +246,7 @@ def prepare_reference(phase, mask, keep_outside=False):
         return np.where(m, _wrap_np(np.where(m, phase, 0.0)), rest), m
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def voxel_ids_nb(mask):
     """Compact id of every mask voxel in C order (int32; -1 outside) and their number."""
     mf = mask.ravel()
@@ -266,7 +268,7 @@ def voxel_ids_reference(mask):
     return ids, int(m.sum())
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def second_difference_compact_nb(phase, mask, ids, n, directions):
     """``D`` of the mask voxels only, indexed by their compact id (see :func:`voxel_ids_nb`)."""
     nx, ny, nz = phase.shape
@@ -324,7 +326,7 @@ def _edge_pass(phase, mask, ids, dvalue, keys, counts, edges, scatter):
     return e
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def sorted_edges_nb(phase, mask, ids, dvalue, n_keys):
     """Edges between 6-neighbours inside the mask, sorted from most to least reliable.
 
@@ -390,7 +392,7 @@ def _find(node, v):
         v = gp
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def merge_nb(edges, n_nodes):
     """Visit the sorted, packed edges of :func:`sorted_edges_nb` in turn and merge groups.
 
@@ -460,7 +462,7 @@ def merge_reference(first, second, step, n_nodes):
 # --------------------------------------------------------------------------------------
 # the whole quality-guided unwrap in one compiled call
 # --------------------------------------------------------------------------------------
-@njit(nogil=True, cache=True)
+@kernel()
 def unwrap_quality_nb(phase, mask, directions, n_keys):
     """Prepare, rank edges and merge; one call, so a fresh process loads one cached kernel.
 
@@ -487,7 +489,7 @@ def unwrap_quality_nb(phase, mask, directions, n_keys):
     return wrapped, inside, multiple, n_regions
 
 
-@njit(nogil=True, cache=True)
+@kernel()
 def apply_multiple_nb(wrapped, inside, multiple, shift):
     """In place: ``multiple -= shift`` and ``wrapped += 2*pi*multiple`` inside the mask.
 
