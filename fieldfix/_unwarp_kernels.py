@@ -125,6 +125,7 @@ CUBIC_LANES = 128
 #: Terms of the causal initial sum when the line is long; |z|**16 < 7e-10, far below the
 #: float32 rounding of the coefficients.
 _HORIZON = 16
+_U0 = np.uint64(0)
 _U1 = np.uint64(1)
 _U4 = np.uint64(4)
 
@@ -216,55 +217,43 @@ def _cubic_block(volume, position, scale, out, start, step_j, step_t, n, lanes, 
     `poly`, so a voxel costs one 16-byte read and one Horner evaluation. With lanes along
     memory (``step_t == 1``) `poly` is laid out ``[k, lane, 4]`` and the voxels are visited
     row by row; with contiguous lines it is ``[lane, k, 4]`` and visited line by line, so
-    consecutive voxels read neighbouring entries in both cases.
+    consecutive voxels read neighbouring entries in both cases. One loop nest serves both
+    orders: only its outer and inner steps differ.
     """
     w = np.uint64(lanes)
-    sj = np.uint64(step_j)
-    st = np.uint64(step_t)
     origin = np.uint64(start)
-    un = np.uint64(n)
-    if step_t == 1:  # copy the block into rows 1..n of the buffer
-        for j in range(n):
-            row = np.uint64(j + 1) * w
-            at = origin + np.uint64(j) * sj
-            for t in range(lanes):
-                u = np.uint64(t)
-                buf[row + u] = volume[at + u]
-    else:
-        for t in range(lanes):
-            u = np.uint64(t)
-            at = origin + u * st
-            for j in range(n):
-                buf[np.uint64(j + 1) * w + u] = volume[at + np.uint64(j)]
+    rows = step_t == 1
+    pk, pt = (w * _U4, _U4) if rows else (_U4, np.uint64(n) * _U4)
+    n_outer, n_inner = (n, lanes) if rows else (lanes, n)
+    # Each index below is linear in (j, t) and is split into its outer and inner loop steps.
+    # The inner loop runs along memory, so its volume step is 1 and its polynomial step 4.
+    vo = np.uint64(step_j) if rows else np.uint64(step_t)  # volume, position, out
+    bo, bi = _loop_steps(w, _U1, rows)  # buffer row j, lane t
+    po = pk if rows else pt  # polynomial of interval j, lane t
+    lo, li = _loop_steps(_U0, pt, rows)  # polynomial lane offset
+    for a in range(n_outer):  # copy the block into rows 1..n of the buffer
+        ua = np.uint64(a)
+        for b in range(n_inner):
+            ub = np.uint64(b)
+            buf[w + ua * bo + ub * bi] = volume[origin + ua * vo + ub]
     _prefilter_rows(buf, n, lanes)
-    if step_t == 1:
-        pk, pt = w * _U4, _U4
-        for k in range(n):
-            uk = np.uint64(k)
-            at = origin + uk * sj
-            for t in range(lanes):
-                u = np.uint64(t)
-                _interval(buf, poly, uk * w + u, w, uk * pk + u * _U4, volume[at + u])
-    else:
-        pk, pt = _U4, un * _U4
-        for t in range(lanes):
-            u = np.uint64(t)
-            at = origin + u * st
-            for k in range(n):
-                uk = np.uint64(k)
-                _interval(buf, poly, uk * w + u, w, uk * _U4 + u * pt, volume[at + uk])
-    if step_t == 1:  # lanes are neighbouring voxels: long inner loops over lanes
-        for j in range(n):
-            at = origin + np.uint64(j) * sj
-            for t in range(lanes):
-                u = np.uint64(t)
-                _horner(position, scale, out, poly, at + u, u * pt, pk)
-    else:  # lanes are contiguous lines: long inner loops along each line
-        for t in range(lanes):
-            u = np.uint64(t)
-            at = origin + u * st
-            for j in range(n):
-                _horner(position, scale, out, poly, at + np.uint64(j), u * pt, pk)
+    for a in range(n_outer):
+        ua = np.uint64(a)
+        for b in range(n_inner):
+            ub = np.uint64(b)
+            _interval(buf, poly, ua * bo + ub * bi, w, ua * po + ub * _U4, volume[origin + ua * vo + ub])
+    for a in range(n_outer):
+        ua = np.uint64(a)
+        for b in range(n_inner):
+            ub = np.uint64(b)
+            _horner(position, scale, out, poly, origin + ua * vo + ub, ua * lo + ub * li, pk)
+
+
+@njit(cache=True, inline="always")
+def _loop_steps(step_j, step_t, rows):  # pragma: no cover - compiled
+    """(outer, inner) loop steps of an index ``j * step_j + t * step_t``: rows (j) outside
+    when lanes lie along memory, lanes (t) outside when lines do."""
+    return (step_j, step_t) if rows else (step_t, step_j)
 
 
 @njit(cache=True, inline="always", fastmath={"contract"})
