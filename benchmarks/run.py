@@ -9,6 +9,7 @@ Usage::
     python benchmarks/run.py fieldmap        # the 7 T field map, fresh processes (bench_fieldmap.py)
     python benchmarks/run.py align          # field-map alignment and motion (bench_align.py)
     python benchmarks/run.py unwarp_files    # the unwarp command on .nii.gz runs, fresh processes
+    python benchmarks/run.py placement       # where the field map lands, against the scenarios' truth
     python benchmarks/run.py --json results.json
 """
 
