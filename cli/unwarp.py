@@ -54,6 +54,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     timing.add_argument("--echo-spacing", metavar="TIME", default=None,
                         help=f"effective echo spacing with its unit, e.g. 0.5ms (default: the sidecar; "
                              f"{plausible('echo_spacing_s')})")
+    parser.add_argument("--te", metavar="TIME", default=None,
+                        help="echo time of the runs with its unit, e.g. 30ms (default: the sidecar's EchoTime); "
+                             "the field-map alignment models the signal each run loses under the field at it")
     parser.add_argument("--timing-wins", choices=("arguments", "sidecar"), default=None,
                         help="which source wins when the options contradict a sidecar (default: stop with an error)")
     parser.add_argument("--interp", choices=("cubic", "linear", "sinc"), default="cubic",
@@ -80,7 +83,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 #: Library parameters -> the options that set them (for error messages).
 FLAGS = {"pe_code": "--phase-encoding", "readout_time_s": "--readout-time", "echo_spacing_s": "--echo-spacing",
-         "timing_win": "--timing-wins", "interp": "--interp", "b0_mask": "--b0-mask", "force": "--force",
+         "te_s": "--te", "timing_win": "--timing-wins", "interp": "--interp", "b0_mask": "--b0-mask", "force": "--force",
          "tag": "--tag", "combine_polarities": "--combine-polarities", "compress": "--compress",
          "gzip_effort": "--gzip-effort"}
 DASH_VALUES = ("--phase-encoding",)
@@ -98,6 +101,7 @@ def run(args) -> dict:
         pe_code=args.phase_encoding,
         readout_time_s=parse_checked(args.readout_time, "readout_time_s") if args.readout_time is not None else None,
         echo_spacing_s=parse_checked(args.echo_spacing, "echo_spacing_s") if args.echo_spacing is not None else None,
+        te_s=parse_checked(args.te, "te_s") if args.te is not None else None,
         timing_win=args.timing_wins, interp=args.interp, jacobian=not args.no_jacobian, b0_mask=args.b0_mask,
         force=args.force, combine_polarities=args.combine_polarities, align_fieldmap=not args.no_align,
         b0_magnitude=args.b0_magnitude, motion=args.motion, displacement_frame=args.displacement_frame, compress=args.compress,

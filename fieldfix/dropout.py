@@ -80,6 +80,7 @@ __all__ = [
     "bold_sensitivity",
     "project_gradient",
     "dropout_maps",
+    "epi_signal_fraction",
 ]
 
 PROFILES = ("rect", "gaussian", "rf")
@@ -681,3 +682,54 @@ def dropout_maps(
                               profile=prof, zshim_cyc_per_mm=zshim_cyc_per_mm)
         out.update(bs)
     return out
+
+
+def epi_signal_fraction(
+    b0_hz: np.ndarray,
+    affine: np.ndarray,
+    frame: SliceFrame,
+    *,
+    te_s: float,
+    thickness_mm: float,
+    pe_sign: int,
+    echo_spacing_s: float,
+    partial_fourier: float = 1.0,
+    profile: str | SliceProfile = "rect",
+) -> np.ndarray:
+    """Fraction of its signal a gradient-echo EPI voxel keeps under the field (0 to 1).
+
+    The through-plane retention at the voxel's local echo time where its echo is acquired, else
+    0 (Deichmann et al. 2002, NeuroImage 15:120-135; the maps of :func:`dropout_maps`). This is
+    the image intensity factor, not the BOLD sensitivity: the ``TE'/TE`` contrast factor and the
+    T2* decay between ``TE'`` and ``TE`` are left out. An EPI image is the anatomy times this
+    factor, then distorted; a field-map magnitude taken at a short echo time keeps nearly all of it.
+
+    Parameters
+    ----------
+    b0_hz : (X, Y, Z) array
+        The field (Hz) on its grid.
+    affine : (4, 4) array
+        The field's grid.
+    frame : SliceFrame
+        The EPI's slices: normal, PE and readout steps and ``pe_lines`` (:func:`frame_from_affine`).
+    te_s, thickness_mm, pe_sign, echo_spacing_s, partial_fourier, profile
+        The EPI's echo time (s), slice thickness (mm), polarity (+1 or -1), effective echo
+        spacing (s), partial Fourier fraction and slice profile.
+
+    Returns
+    -------
+    (X, Y, Z) float64 array on the field's grid.
+
+    Example
+    -------
+    >>> import numpy as np
+    >>> k = np.arange(6.0)[None, None, :] * np.ones((4, 4, 1))
+    >>> frame = frame_from_affine(np.eye(4), 2, 1, shape=(4, 4, 6))
+    >>> kept = epi_signal_fraction(15.0 * k, np.eye(4), frame, te_s=0.03, thickness_mm=1.0, pe_sign=1,
+    ...                            echo_spacing_s=5e-4)
+    >>> round(float(kept[2, 2, 3]), 4)  # no in-plane gradient: the retention at the nominal TE
+    0.6986
+    """
+    maps = dropout_maps(b0_hz, affine, frame, te_s=te_s, thickness_mm=thickness_mm, profile=profile,
+                        pe_sign=pe_sign, echo_spacing_s=echo_spacing_s, partial_fourier=partial_fourier)
+    return np.where(maps["echo_inside"], maps["retention_local"], 0.0)

@@ -28,6 +28,7 @@ __all__ = [
     "PE_CODES",
     "pe_code_hint",
     "parse_pe_code",
+    "slice_axis_of",
     "pe_code",
     "axis_direction_world",
     "pe_world_direction",
@@ -75,6 +76,28 @@ def parse_pe_code(code: str) -> tuple[int, int]:
         raise InputError(f"unknown phase-encode code {code!r}; expected one of {', '.join(PE_CODES)}"
                          + pe_code_hint(code))
     return "ijk".index(text[0]), (-1 if text.endswith("-") else 1)
+
+
+def slice_axis_of(sidecar: dict) -> int:
+    """The slice voxel axis of an EPI from its BIDS sidecar: ``SliceEncodingDirection``, else k.
+
+    Parameters
+    ----------
+    sidecar : dict
+        The run's sidecar (may be empty).
+
+    Returns
+    -------
+    int
+        0, 1 or 2 (2 when the key is absent or empty).
+
+    Examples
+    --------
+    >>> slice_axis_of({"SliceEncodingDirection": "i"}), slice_axis_of({})
+    (0, 2)
+    """
+    code = sidecar.get("SliceEncodingDirection")
+    return parse_pe_code(code)[0] if isinstance(code, str) and code.strip() else 2
 
 
 _ANATOMICAL = {"ap", "pa", "lr", "rl", "si", "is", "ras", "lps"}

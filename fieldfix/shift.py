@@ -304,6 +304,8 @@ class Readout:
     pe_code : str, BIDS phase-encode code
     echo_spacing_s : float, effective echo spacing, s
     n_pe_lines : int, optional, reconstructed PE matrix (default: the grid's size)
+    te_s : float, optional, echo time (s), when the readout passes the k-space centre: sets the
+        signal the run keeps under the field (:func:`fieldfix.dropout.epi_signal_fraction`), not the shift
 
     Examples
     --------
@@ -314,6 +316,7 @@ class Readout:
     pe_code: str
     echo_spacing_s: float
     n_pe_lines: int | None = None
+    te_s: float | None = None
 
     def shift_per_hz(self, shape) -> float:
         """Shift in voxels along the PE axis per hertz (signed by the polarity), on a grid of `shape`."""

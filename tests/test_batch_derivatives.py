@@ -128,6 +128,9 @@ def test_the_corrected_series_sidecar_is_complete(derivatives):
     assert correction["FieldMapPlacement"] == summary.field_placement
     if summary.alignment is not None:
         assert correction["FieldMapToRunTransform"]["Matrix"] == summary.alignment.matrix
+        # the run's EchoTime (0.03 s, inherited) set the signal the magnitude was weighted by
+        assert correction["FieldMapToRunTransform"]["SignalModel"] == summary.alignment.signal_model
+        assert "TE 30 ms" in summary.alignment.signal_model
     assert "B0FieldSource" not in sidecar and "IntendedFor" not in sidecar  # needs no further correction
     # the summary names its outputs relative to its own folder, by their derivative names
     assert (corrected.parent / summary.outputs.corrected).is_file()

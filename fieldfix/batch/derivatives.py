@@ -185,7 +185,8 @@ def _transform(alignment) -> dict | None:
             "Convention": "field-map world (NIfTI RAS+ mm) -> run world; rotations about world x, y, z through the "
                           "centre, R = Rz Ry Rx, right-handed",
             "MatchBefore": alignment.measure_before, "MatchAfter": alignment.measure_after,
-            "MatchMeasure": "normalised mutual information (1 independent, 2 identical)"}
+            "MatchMeasure": "normalised mutual information (1 independent, 2 identical)",
+            "SignalModel": alignment.signal_model}
 
 
 def write_dataset_description(deriv: Path, bids_root: Path) -> Path:

@@ -7,7 +7,7 @@ None where a sidecar did not say.
 
 Examples
 --------
->>> UnwarpParams(pe_code="j-", readout_time_s=0.03, echo_spacing_s=None, interp="cubic",
+>>> UnwarpParams(pe_code="j-", readout_time_s=0.03, echo_spacing_s=None, te_s=0.03, interp="cubic",
 ...              masks="fieldmap", align_fieldmap=True, motion=False).to_json()["readout_time_s"]
 0.03
 """
@@ -71,8 +71,10 @@ class RunTiming(Record):
 
 @dataclass(frozen=True)
 class UnwarpParams(RunTiming):
-    """Unwarping a run: interpolation, which masks, field-map alignment, motion."""
+    """Unwarping a run: interpolation, which masks, field-map alignment, motion; the run's echo time
+    (its sidecar's ``EchoTime``, inherited; None without one) for the alignment's signal model."""
 
+    te_s: float | None
     interp: str
     masks: str
     align_fieldmap: bool

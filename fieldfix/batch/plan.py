@@ -26,6 +26,7 @@ from ..errors import InputError
 from ..outdir import sha256_file
 from ..outputs import RunPlanEntry
 from ..records import Record
+from ..units import PLAUSIBLE
 from .bids import pe_code_problem
 from .fieldmaps import declared_phase_units, number
 from .inventory import FieldMapAcquisition, Inventory, Run
@@ -160,6 +161,13 @@ def _fieldmap_task(fm: FieldMapAcquisition, root: Path, deriv: Path, options: Ba
                 problems=list(fm.problems), warnings=list(fm.warnings))
 
 
+def _echo_time(meta: dict) -> float | None:
+    """The run's ``EchoTime`` (s) when it is a plausible EPI echo time, else None (the alignment then
+    compares the magnitude alone, and says so)."""
+    te, bounds = number(meta, "EchoTime"), PLAUSIBLE["te_s"]
+    return te if te is not None and bounds.low <= te <= bounds.high else None
+
+
 def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, options: BatchOptions) -> list[Task]:
     meta = run.metadata
     problems = list(run.problems)
@@ -179,7 +187,7 @@ def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, optio
                   grids={"run": run.path, "fieldmap": fm.primary})
     timing = dict(pe_code=pe if problem is None else None, readout_time_s=readout, echo_spacing_s=spacing)
     unwarp = Task(task_id=f"unwarp:{run.stem}", kind="unwarp",
-                  params=UnwarpParams(**timing, **options.unwarp_params()), problems=problems, **common)
+                  params=UnwarpParams(**timing, te_s=_echo_time(meta), **options.unwarp_params()), problems=problems, **common)
     dropout_problems = list(run.problems) + ([] if te is not None else [f"{sidecar}: sidecar has no EchoTime"])
     dropout = Task(task_id=f"dropout:{run.stem}", kind="dropout",
                    params=DropoutParams(**timing, te_s=te, slice_thickness_mm=number(meta, "SliceThickness"),

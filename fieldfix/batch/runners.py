@@ -121,7 +121,7 @@ def run_unwarp_task(task: Task, upstream, deriv: Path, staging: Path, command):
               else {"echo_spacing_s": p.echo_spacing_s})
     magnitude = _fieldmap_of(upstream).outputs.get("magnitude")
     summaries = run_unwarp([task.inputs["run"]], b0, _job(staging, command), pe_code=p.pe_code,
-                           timing_win="arguments", b0_mask=mask, interp=p.interp,
+                           timing_win="arguments", te_s=p.te_s, b0_mask=mask, interp=p.interp,
                            align_fieldmap=p.align_fieldmap, motion=p.motion,
                            b0_magnitude=deriv / magnitude if magnitude else None, **timing)
     return summaries[0]

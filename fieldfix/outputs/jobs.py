@@ -195,6 +195,8 @@ class AlignmentRecord(Record):
     ``centre_mm`` (the run grid's centre), ``R = Rz Ry Rx``; ``matrix`` maps field-map world to run
     world. ``measure_*``: normalised mutual information of the forward-distorted field-map
     magnitude and the run (1 independent, 2 identical) at the affine placement and after.
+    ``signal_model``: what the magnitude was weighted by before the comparison (the signal the run
+    keeps under the field, or nothing).
     """
 
     translation_mm: list[float]
@@ -208,6 +210,7 @@ class AlignmentRecord(Record):
     coverage: float
     warnings: list[str]
     method: str
+    signal_model: str = ""
 
 
 @dataclass(frozen=True)

@@ -32,7 +32,7 @@ import numpy as np
 
 from ..dropout import PROFILES, acquisition_window_s, dropout_maps, frame_from_affine, slice_profile, zshim_cyc_per_mm
 from ..errors import GeometryError, InputError, MetadataError
-from ..geometry import overlap_fraction, parse_pe_code, pe_world_direction, resample_to_grid, same_grid
+from ..geometry import overlap_fraction, parse_pe_code, pe_world_direction, resample_to_grid, same_grid, slice_axis_of
 from ..io import Image, Provenance, load_image, output_paths_guard, save_image, sidecar_path
 from ..jsonfile import write_json
 from ..outdir import output_folder
@@ -195,8 +195,7 @@ def _geometry(s: DropoutSettings, field: FieldModel, like: Image | None) -> _Geo
     affine, shape = (like.affine, like.shape[:3]) if like is not None else (field.affine, field.b0_hz.shape)
     slice_axis, pe_code, echo_spacing_s = s.slice_axis, s.pe_code, s.echo_spacing_s
     if slice_axis is None:
-        code = sidecar.get("SliceEncodingDirection")
-        slice_axis = parse_pe_code(code)[0] if isinstance(code, str) and code.strip() else 2
+        slice_axis = slice_axis_of(sidecar)
     if pe_code is None and isinstance(sidecar.get("PhaseEncodingDirection"), str):
         pe_code = sidecar["PhaseEncodingDirection"]
     pe_axis = pe_sign = None

@@ -88,6 +88,9 @@ class UnwarpSettings:
     timing_win : {None, 'arguments', 'sidecar'}
         Which source wins when the arguments contradict a sidecar (timing and phase-encode
         code); None makes a contradiction an error.
+    te_s : float, optional
+        Echo time of the runs (s); default: each run's sidecar ``EchoTime``. It sets the signal loss
+        under the field that the field-map alignment models (:mod:`fieldfix.workflows._placement`).
     interp : {'cubic', 'linear', 'sinc'}
         Interpolation along the phase-encode axis (default cubic B-spline: exact on samples,
         smoother and closer to the true image than linear; see :mod:`fieldfix.unwarp`).
@@ -140,6 +143,7 @@ class UnwarpSettings:
     readout_time_s: float | None = None
     echo_spacing_s: float | None = None
     timing_win: str | None = None
+    te_s: float | None = None
     interp: str = "cubic"
     jacobian: bool = True
     jacobian_floor: float = DEFAULT_JACOBIAN_FLOOR
@@ -158,6 +162,8 @@ class UnwarpSettings:
 
     def check(self) -> None:
         check_choice("displacement_frame", self.displacement_frame, DISPLACEMENT_FRAMES, "frame")
+        if self.te_s is not None:
+            check_plausible("te_s", self.te_s, parameter="te_s")
         for name in ("readout_time_s", "echo_spacing_s"):
             if getattr(self, name) is not None:
                 check_plausible(name, getattr(self, name))
@@ -295,7 +301,7 @@ def _plan_run(image: Image, files: UnwarpFiles, s: UnwarpSettings, b0: Image, fi
     except MetadataError as err:
         raise MetadataError(err.message, image.path) from None
     reference = finite_volume(image, image.volume(0), 0)
-    readout = Readout(code, timing.echo_spacing_s, timing.n_pe_lines)
+    readout = Readout(code, timing.echo_spacing_s, timing.n_pe_lines, s.te_s)
     placement = place_field(image, reference, readout, b0, field_hz, *magnitude, s.align_fieldmap)
     mask = mask_on_run(mask_values, b0, image, placement)
     maps = shift_maps(placement.field_hz, code, timing.echo_spacing_s, n_pe_lines=timing.n_pe_lines,
