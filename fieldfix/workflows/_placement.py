@@ -6,9 +6,9 @@ field (:func:`fieldfix.dropout.epi_signal_fraction`; without the run's ``EchoTim
 magnitude alone), is aligned rigidly to the run's first volume with the distortion in the loop
 (:func:`fieldfix.align.align_fieldmap`); the field and its mask are then resampled onto the run
 through that transform (:func:`fieldfix.align.align_field_to_run`). Without a magnitude, with the
-step turned off, or when the alignment does not improve the match of the forward-distorted
-magnitude and the run (normalised mutual information), the map is placed through the two
-images' affines alone, and the summary says which and why.
+step turned off, or when the alignment does not raise the match of the forward-distorted
+magnitude and the run (normalised mutual information) by more than :data:`MIN_MATCH_GAIN`, the
+map is placed through the two images' affines alone, and the summary says which and why.
 """
 
 from __future__ import annotations
@@ -29,13 +29,21 @@ from ..units import PLAUSIBLE
 from ..outputs import AlignmentRecord
 from ._run_checks import find_beside_b0
 
-__all__ = ["Placement", "place_field", "alignment", "read_magnitude_on_map", "find_b0_magnitude", "ALIGN_METHOD"]
+__all__ = ["Placement", "place_field", "alignment", "read_magnitude_on_map", "find_b0_magnitude", "ALIGN_METHOD",
+           "MIN_MATCH_GAIN"]
 
 ALIGN_METHOD = ("rigid alignment of the field-map magnitude to the run's first volume, the magnitude distorted "
                 "by the field at each pose before the comparison; cost: normalised gradient fields (Haber and "
                 "Modersitzki 2006); the magnitude weighted by the signal the run keeps under the field "
                 "(through-plane dephasing at the local echo time, Deichmann et al. 2002), so that its dropout "
                 "does not pull the alignment; match measured by normalised mutual information (Studholme et al. 1999)")
+
+
+#: The least rise of the normalised mutual information for which an alignment is kept. On heads that
+#: did not move between the scans (12 invented subjects, scenarios orbitofrontal-3t and temporal-7t,
+#: seeds 3 and 4) the alignment's pose was off by 0.5-1.5 mm and the measure rose by at most 0.0006;
+#: after a move of 1 degree and 1.3 mm it rose by more than 0.001 in 10 of 12 cases.
+MIN_MATCH_GAIN = 1e-3
 
 
 @dataclass
@@ -147,11 +155,12 @@ def alignment(image: Image, reference: np.ndarray, readout: Readout, b0: Image, 
         raise type(err)(err.message, magnitude_path) from None
     warnings = [f"alignment: {w}" for w in result.warnings]
     record = _record(result, signal_model)
-    if result.measure_after > result.measure_before:
+    if result.measure_after - result.measure_before > MIN_MATCH_GAIN:
         return np.asarray(result.matrix, float), f"aligned to the run ({magnitude_path.name})", record, warnings
-    # the match did not improve: the scanner coordinates were already as good as it gets
-    return np.eye(4), (f"affines only: aligning {magnitude_path.name} did not improve the match (normalised mutual "
-                       f"information {result.measure_before:.3f} -> {result.measure_after:.3f})"), record, warnings
+    # no gain beyond what a head that did not move gives: the scanner coordinates are as good as it gets
+    return np.eye(4), (f"affines only: aligning {magnitude_path.name} did not improve the match by more than "
+                       f"{MIN_MATCH_GAIN:g} (normalised mutual information {result.measure_before:.4f} -> "
+                       f"{result.measure_after:.4f})"), record, warnings
 
 
 def place_field(image: Image, reference: np.ndarray, readout: Readout, b0: Image, field_hz: np.ndarray,
