@@ -48,14 +48,19 @@ def _human(summary) -> dict:
         results["shift along phase encoding"] = (
             f"largest {n.max_abs_shift_vox:.1f} voxels, {n.percent_shifted_over_1_voxel:.1f}% of voxels moved by "
             "more than 1 voxel")
+    if n.shift_error_vs_truth_median_vox is not None:
+        results["shift vs the true field's shift, in the brain"] = (
+            f"median error {n.shift_error_vs_truth_median_vox:.2f} voxels, 95% within "
+            f"{n.shift_error_vs_truth_p95_vox:.2f} voxels")
     if n.edge_agreement_before is not None:
         text = ""
         if n.edge_agreement_shifted_before is not None:
-            text = (f"where voxels moved: {n.edge_agreement_shifted_before:.3f} -> "
-                    f"{n.edge_agreement_shifted_after:.3f}; ")
+            text = (f"in the brain where voxels moved: {n.edge_agreement_shifted_before:.3f} before -> "
+                    f"{n.edge_agreement_shifted_after:.3f} after unwarping "
+                    f"({n.edge_agreement_shifted_true_field:.3f} with the true field); ")
         results["edges vs undistorted simulation"] = text + (
-            f"whole head: {n.edge_agreement_before:.3f} before -> {n.edge_agreement_after:.3f} after unwarping "
-            "(1 = all in place)")
+            f"whole brain: {n.edge_agreement_before:.3f} -> {n.edge_agreement_after:.3f} "
+            f"({n.edge_agreement_true_field:.3f}; 1 = all in place)")
     if n.dropout_brain_median_retention is not None:
         text = (f"brain keeps a median {100 * n.dropout_brain_median_retention:.0f}% of its signal, "
                 f"{n.dropout_brain_percent_below_threshold:.1f}% of voxels under half")

@@ -23,9 +23,11 @@ class DemoStep(Record):
 class DemoChecks(Record):
     """The demo's results checked against the scenario's ground truth (None: not measured).
 
-    Edge agreements are normalised-gradient-field agreements with the undistorted
-    simulation (1: every edge in place), over the head and where the correction moved
-    voxels by more than half a voxel.
+    Shift errors: the unwarping's shift map against the true field's shift, in the brain
+    (voxels). Edge agreements are normalised-gradient-field agreements with the undistorted
+    simulation (1: every edge in place), over the brain and in the brain where the correction
+    moved voxels by more than half a voxel: before, after, and for the run unwarped by the
+    scenario's true field (``*_true_field``, the best a field map can give).
     """
 
     b0_brain_p1_p99_hz: list[float] | None = None
@@ -33,10 +35,14 @@ class DemoChecks(Record):
     b0_error_vs_truth_p95_hz: float | None = None
     max_abs_shift_vox: float | None = None
     percent_shifted_over_1_voxel: float | None = None
+    shift_error_vs_truth_median_vox: float | None = None
+    shift_error_vs_truth_p95_vox: float | None = None
     edge_agreement_before: float | None = None
     edge_agreement_after: float | None = None
+    edge_agreement_true_field: float | None = None
     edge_agreement_shifted_before: float | None = None
     edge_agreement_shifted_after: float | None = None
+    edge_agreement_shifted_true_field: float | None = None
     roi_signal_kept: float | None = None
     dropout_brain_median_retention: float | None = None
     dropout_brain_percent_below_threshold: float | None = None

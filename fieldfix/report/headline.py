@@ -75,7 +75,7 @@ def truth_measures(item: str, runs: list[ReportRun], truth: DemoChecks | None) -
     if truth.edge_agreement_shifted_after is not None and runs:
         out.append(_measure(item=runs[0].stem, kind="truth_edges_moved",
                                    label="Edge agreement with the undistorted simulation where voxels moved",
-                                   region="the demo's own check: head voxels moved by more than half a voxel, "
+                                   region="the demo's own check: brain voxels moved by more than half a voxel, "
                                           "every edge counted", unit=NGF_UNIT,
                                    before=truth.edge_agreement_shifted_before,
                                    after=truth.edge_agreement_shifted_after, higher_is_better=True))
