@@ -201,6 +201,15 @@ class Plausible:
     def __init__(self, dimension: str, low: float, high: float, what: str, why: str):
         self.dimension, self.low, self.high, self.what, self.why = dimension, low, high, what, why
 
+    def contains(self, value) -> bool:
+        """Whether `value` is a finite number (not a bool) within the bounds.
+
+        >>> PLAUSIBLE["te_s"].contains(0.03), PLAUSIBLE["te_s"].contains(30.0), PLAUSIBLE["te_s"].contains(True)
+        (True, False, False)
+        """
+        return (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+                and self.low <= value <= self.high)
+
     def text(self) -> str:
         """``"1ms to 200ms"`` in the units a user types."""
         return f"{format_quantity(self.low, self.dimension)} to {format_quantity(self.high, self.dimension)}"
@@ -260,8 +269,7 @@ def check_plausible(name: str, value: float, typed: str | None = None, parameter
     fieldfix.errors.UnitError: te_s: 30us is not plausible as an EPI echo time ...
     """
     rule = PLAUSIBLE[name]
-    if value is None or not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value) \
-            or not rule.low <= value <= rule.high:
+    if not rule.contains(value):
         shown = typed.strip() if isinstance(typed, str) else (format_quantity(value, rule.dimension)
                                                                if isinstance(value, (int, float)) else repr(value))
         raise UnitError(f"{shown} is not plausible as {rule.what} (expected {rule.text()}: {rule.why}); check the "

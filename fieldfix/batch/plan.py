@@ -164,8 +164,8 @@ def _fieldmap_task(fm: FieldMapAcquisition, root: Path, deriv: Path, options: Ba
 def _echo_time(meta: dict) -> float | None:
     """The run's ``EchoTime`` (s) when it is a plausible EPI echo time, else None (the alignment then
     compares the magnitude alone, and says so)."""
-    te, bounds = number(meta, "EchoTime"), PLAUSIBLE["te_s"]
-    return te if te is not None and bounds.low <= te <= bounds.high else None
+    te = number(meta, "EchoTime")
+    return te if PLAUSIBLE["te_s"].contains(te) else None
 
 
 def _run_tasks(run: Run, fm: FieldMapAcquisition, root: Path, deriv: Path, options: BatchOptions) -> list[Task]:

@@ -87,7 +87,8 @@ def expected_epi_signal(image: Image, readout: Readout, b0: Image, field_hz: np.
     angles of an alignment is left out).
     """
     sidecar = image.sidecar or {}
-    te_s = readout.te_s if readout.te_s is not None else _sidecar_number(sidecar, "EchoTime", *_TE_RANGE_S)
+    te_s = readout.te_s if readout.te_s is not None else sidecar.get("EchoTime")
+    te_s = float(te_s) if PLAUSIBLE["te_s"].contains(te_s) else None
     if te_s is None:
         return magnitude, "magnitude alone (no echo time given and no usable EchoTime in the run's sidecar)"
     pe_axis, pe_sign = parse_pe_code(readout.pe_code)
@@ -104,10 +105,6 @@ def expected_epi_signal(image: Image, readout: Readout, b0: Image, field_hz: np.
                                pe_sign=pe_sign, echo_spacing_s=readout.echo_spacing_s, partial_fourier=partial_fourier)
     return magnitude * kept, (f"magnitude times the signal kept at TE {te_s * 1e3:.3g} ms with "
                               f"{thickness_mm:.3g} mm slices along {'ijk'[slice_axis]}")
-
-
-#: The plausible EPI echo times (s) of :data:`fieldfix.units.PLAUSIBLE`.
-_TE_RANGE_S = (PLAUSIBLE["te_s"].low, PLAUSIBLE["te_s"].high)
 
 
 def _sidecar_number(sidecar: dict, key: str, low: float, high: float) -> float | None:
