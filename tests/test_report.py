@@ -632,12 +632,13 @@ def test_headline_shows_truth_and_polarities_when_they_exist(study, tmp_path):
     from fieldfix.report.headline import polarity_measures
 
     expected, _, _ = study
-    truth = DemoChecks(b0_error_vs_truth_median_hz=0.9, edge_agreement_shifted_before=0.44,
-                       edge_agreement_shifted_after=0.46)
+    truth = DemoChecks(b0_error_vs_truth_median_hz=0.9, shift_error_vs_truth_median_vox=0.03,
+                       edge_agreement_shifted_before=0.44, edge_agreement_shifted_after=0.46)
     data = json.loads(rp.build_report(expected["out"], tmp_path, truth=truth).with_name("report.json").read_text())
     kinds = [m["kind"] for m in data["headline"]]
-    assert kinds == ["edges_moved", "truth_edges_moved", "edges_whole", "truth_b0_error"]
+    assert kinds == ["edges_moved", "truth_edges_moved", "truth_shift_error", "edges_whole", "truth_b0_error"]
     assert data["headline"][1]["change"] == pytest.approx(0.02)
+    assert data["headline"][2]["after"] == 0.03 and data["headline"][2]["unit"] == "voxels"
     pair = polarity_measures("run", SimpleNamespace(nrmsd_before=0.31, nrmsd_after=0.08))[0]
     assert pair.kind == "polarities" and not pair.higher_is_better and pair.change == pytest.approx(-0.23)
 

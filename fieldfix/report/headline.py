@@ -7,7 +7,8 @@ For each run, in this order:
    reversed phase-encode pair and its summary carries that record (``pair_agreement``,
    with ``nrmsd_before`` / ``nrmsd_after``: the normalised RMS difference of the
    polarities, :func:`fieldfix.pairs.pair_agreement`; lower is better);
-3. where a scenario's ground truth exists (the demo), the error against it;
+3. where a scenario's ground truth exists (the demo), the errors against it (edge agreement
+   and shift map of the first run beside its own numbers, then the field map's);
 4. beside them, the edge agreement over the whole mask, which a local correction barely
    moves (most voxels do not move at all).
 
@@ -79,7 +80,15 @@ def truth_measures(item: str, runs: list[ReportRun], truth: DemoChecks | None) -
                                           "every edge counted", unit=NGF_UNIT,
                                    before=truth.edge_agreement_shifted_before,
                                    after=truth.edge_agreement_shifted_after, higher_is_better=True))
+    if truth.shift_error_vs_truth_median_vox is not None and runs:
+        out.append(_measure(item=runs[0].stem, kind="truth_shift_error", label="Shift against the true field's shift",
+                            region="brain, median absolute error", unit="voxels", before=None,
+                            after=truth.shift_error_vs_truth_median_vox, higher_is_better=False))
     return out
+
+
+#: The truth measures of the first run, shown beside its own edge agreement.
+_RUN_TRUTH = ("truth_edges_moved", "truth_shift_error")
 
 
 def headline(runs: list[ReportRun], pair_records: dict, truth: DemoChecks | None, field_map: str | None
@@ -94,7 +103,7 @@ def headline(runs: list[ReportRun], pair_records: dict, truth: DemoChecks | None
         first, beside = run_measures(run)
         out += first + polarity_measures(run.stem, pair_records.get(run.stem))
         if n == 0:
-            out += [m for m in truth_items if m.kind == "truth_edges_moved"]
+            out += [m for m in truth_items if m.kind in _RUN_TRUTH]
         out += beside
-    out += [m for m in truth_items if m.kind != "truth_edges_moved" or not runs]
+    out += [m for m in truth_items if m.kind not in _RUN_TRUTH or not runs]
     return out

@@ -97,6 +97,9 @@ def _correction_tile(data) -> dict:
         if other["item"] == m["item"] and other["kind"] in ("edges_whole", "truth_edges_moved"):
             lines.append((other["label"], [num(data, f"headline.{j}.before", "{:.3f}", other["unit"]),
                                            num(data, f"headline.{j}.after", "{:.3f}", other["unit"])]))
+        elif other["item"] == m["item"] and other["kind"] == "truth_shift_error":
+            lines.append((f"{other['label']} ({other['region']})",
+                          [num(data, f"headline.{j}.after", "{:.2f}", other["unit"])]))
     return _tile(state=_state(m), lines=lines, more=len(data["runs"]) - 1, item=m["item"])
 
 
