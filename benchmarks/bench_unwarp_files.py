@@ -216,7 +216,7 @@ def _nrmse_record(quick: bool) -> dict:
     record = {"benchmark": "unwarp_simulated_nrmse_cubic_vs_linear", "grid": "x".join(map(str, shape)),
               "simulator": "fieldfix.simulate.simulate_epi, gradient echo, TE 30 ms, echo spacing 0.5 ms"}
     for code in ("j", "j-"):
-        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ECHO_SPACING_S, echo_time_s=0.03,
+        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ECHO_SPACING_S, te_s=0.03,
                              oversample=oversample)
         maps = shift_maps(field_grid, code, ECHO_SPACING_S)
         key = code.replace("-", "minus")

@@ -53,7 +53,7 @@ class RunSpec:
     center_mm: np.ndarray
     pe_code: str
     echo_spacing_s: float
-    echo_time_s: float
+    te_s: float
     repetition_time_s: float
     volumes: int
     acceleration: int
@@ -181,7 +181,7 @@ def _run(r: dict, where: str) -> RunSpec:
     return RunSpec(
         task=task, voxel_mm=_voxel(r["voxel_size"], f"{where}.voxel_size"), shape=_shape(r["shape"], f"{where}.shape"),
         center_mm=_vec_mm(r["center"], f"{where}.center"), pe_code=str(r["phase_encoding_direction"]),
-        echo_spacing_s=parse_time_s(r["echo_spacing"]), echo_time_s=parse_time_s(r["echo_time"]),
+        echo_spacing_s=parse_time_s(r["echo_spacing"]), te_s=parse_time_s(r["echo_time"]),
         repetition_time_s=parse_time_s(r["repetition_time"]), volumes=int(r["volumes"]),
         acceleration=int(r["acceleration"]), partial_fourier=float(r["partial_fourier"]),
         t2star_s=parse_time_s(r["t2star"]), noise=float(r["noise"]),
@@ -208,7 +208,7 @@ class ManifestRun(Record):
     pe_code: str
     total_readout_time_s: float
     effective_echo_spacing_s: float
-    echo_time_s: float
+    te_s: float
     slice_thickness_mm: float
     motion: list[list[float]]
     truth_b0_hz: str

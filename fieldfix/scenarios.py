@@ -370,7 +370,7 @@ def _simulated_run(ctx: _Subject, run: RunSpec) -> ManifestRun:
     obj_fine = tissue_image(fx, fy, fz, ctx.scale)
     b0_fine = ctx.b0_at(fx, fy, fz)
     b0_fine[obj_fine <= 0] = 0.0  # no signal there; keeps the air's extreme values out
-    options = dict(pe_code=run.pe_code, echo_spacing_s=run.echo_spacing_s, echo_time_s=run.echo_time_s,
+    options = dict(pe_code=run.pe_code, echo_spacing_s=run.echo_spacing_s, te_s=run.te_s,
                    oversample=factors, acceleration=run.acceleration, partial_fourier=run.partial_fourier,
                    t2star_s=run.t2star_s)
     mean_vox = float(np.mean(run.voxel_mm))
@@ -380,7 +380,7 @@ def _simulated_run(ctx: _Subject, run: RunSpec) -> ManifestRun:
     reference, _ = simulate_epi_run(obj_fine, np.zeros_like(b0_fine), 1, **options)
     scale_signal = 1000.0  # scanner-like numbers
     bold_rel = ctx.rel_dir / "func" / f"{ctx.stem}_task-{run.task}_bold.nii.gz"
-    sidecar = epi_sidecar(run.pe_code, run.shape[pe_axis], run.echo_spacing_s, run.echo_time_s,
+    sidecar = epi_sidecar(run.pe_code, run.shape[pe_axis], run.echo_spacing_s, run.te_s,
                           run.acceleration)
     sidecar.update({"TaskName": run.task, "RepetitionTime": run.repetition_time_s,
                     "MagneticFieldStrength": ctx.p.field_strength_t, "SliceThickness": float(run.voxel_mm[2]),
@@ -392,7 +392,7 @@ def _simulated_run(ctx: _Subject, run: RunSpec) -> ManifestRun:
     roi = _roi_mask(ctx.p.roi, ctx.scale, cx, cy, cz, brain_run)
     return ManifestRun(
         task=run.task, bold=str(bold_rel), pe_code=run.pe_code, total_readout_time_s=sidecar["TotalReadoutTime"],
-        effective_echo_spacing_s=sidecar["EffectiveEchoSpacing"], echo_time_s=run.echo_time_s,
+        effective_echo_spacing_s=sidecar["EffectiveEchoSpacing"], te_s=run.te_s,
         slice_thickness_mm=float(run.voxel_mm[2]), motion=motion.round(6).tolist(),
         truth_b0_hz=ctx.save(folder / f"{tstem}_desc-truth_fieldmap.nii.gz", ctx.b0_at(cx, cy, cz), aff,
                              sidecar={"Units": "Hz", "Description": "modelled B0 map on the run grid"}),

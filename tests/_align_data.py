@@ -93,7 +93,7 @@ class Acquisition:
 
 
 def acquire_epi(shape, affine, pose, *, pe_code="j-", echo_spacing_s=5e-4, oversample=2, noise_sd=0.0,
-                seed=0, smooth_fine=0.0, echo_time_s=0.03) -> Acquisition:
+                seed=0, smooth_fine=0.0, te_s=0.03) -> Acquisition:
     """EPI of the head moved by `pose` (4x4, head world -> run world), k-space simulator."""
     fine = grid_points(shape, affine, oversample)
     source = moved_back(fine, pose)
@@ -102,7 +102,7 @@ def acquire_epi(shape, affine, pose, *, pe_code="j-", echo_spacing_s=5e-4, overs
     if smooth_fine > 0:
         obj = ndimage.gaussian_filter(obj, smooth_fine)
     field = field_at(source)
-    epi = simulate_epi(obj, field, pe_code=pe_code, echo_spacing_s=echo_spacing_s, echo_time_s=echo_time_s,
+    epi = simulate_epi(obj, field, pe_code=pe_code, echo_spacing_s=echo_spacing_s, te_s=te_s,
                        oversample=oversample, noise_sd=noise_sd, rng=np.random.default_rng(seed))
     o = oversample
     truth = obj.reshape(shape[0], o, shape[1], o, shape[2], o).mean(axis=(1, 3, 5))

@@ -74,10 +74,10 @@ def head(n_slices: int = 20, z_centre_mm: float = -10.0, oversample=(1, 2, 2)) -
                 _block_mean(field_fine, oversample), brain, affine)
 
 
-def acquire(h: Head, pe_code: str, *, spin_echo: bool, echo_time_s: float, noise_sd: float, seed: int,
+def acquire(h: Head, pe_code: str, *, spin_echo: bool, te_s: float, noise_sd: float, seed: int,
             gain: float = 1.0) -> np.ndarray:
     """One EPI volume of the head by the k-space simulator (magnitude)."""
     image = simulate_epi(h.object_fine, h.field_fine, pe_code=pe_code, echo_spacing_s=ECHO_SPACING_S,
-                         echo_time_s=echo_time_s, oversample=h.oversample, spin_echo=spin_echo,
+                         te_s=te_s, oversample=h.oversample, spin_echo=spin_echo,
                          noise_sd=noise_sd, rng=np.random.default_rng(seed))
     return gain * image

@@ -512,7 +512,7 @@ def test_retention_matches_epi_simulator(pe_code):
     obj = np.ones((8, 8, 5 * 24))
     for g_hz_per_mm, te_s in [(4.0, 0.03), (7.0, 0.035), (11.0, 0.02)]:
         field = np.broadcast_to(g_hz_per_mm * z_mm, obj.shape).copy()
-        kw = dict(pe_code=pe_code, echo_spacing_s=5e-4, echo_time_s=te_s, oversample=oversample, slice_axis=2)
+        kw = dict(pe_code=pe_code, echo_spacing_s=5e-4, te_s=te_s, oversample=oversample, slice_axis=2)
         ratio = epi.simulate_epi(obj, field, **kw) / epi.simulate_epi(obj, np.zeros_like(field), **kw)
         predicted = dp.through_plane_retention(g_hz_per_mm, te_s, thickness_mm)
         assert np.max(np.abs(ratio - predicted)) < 0.01, (g_hz_per_mm, te_s, predicted, ratio.mean())

@@ -54,7 +54,7 @@ def _pair_images(folder, obj, field) -> dict:
     rng = np.random.default_rng(3)
     paths = {}
     for code, label in (("j", "pa"), ("j-", "ap")):
-        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ESP_S, echo_time_s=0.05, oversample=2,
+        image = simulate_epi(obj, field, pe_code=code, echo_spacing_s=ESP_S, te_s=0.05, oversample=2,
                              noise_sd=4.0, rng=rng, spin_echo=True)
         paths[code] = _save(folder / f"sub-01_dir-{label}_epi.nii.gz", image,
                             {"PhaseEncodingDirection": code, "TotalReadoutTime": READOUT_S})
@@ -66,7 +66,7 @@ def pair(tmp_path_factory):
     folder = tmp_path_factory.mktemp("epi")
     obj, field = _truth()
     paths = _pair_images(folder, obj, field)
-    run = simulate_epi(obj, field, pe_code="j-", echo_spacing_s=ESP_S, echo_time_s=0.03, oversample=2)
+    run = simulate_epi(obj, field, pe_code="j-", echo_spacing_s=ESP_S, te_s=0.03, oversample=2)
     run_path = _save(folder / "sub-01_task-rest_bold.nii.gz", np.stack([run, run * 1.01], axis=-1),
                      {"PhaseEncodingDirection": "j-", "TotalReadoutTime": READOUT_S, "RepetitionTime": 2.0})
     return folder, paths, run_path, _coarse(field), _coarse(obj)

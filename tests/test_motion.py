@@ -265,7 +265,7 @@ def test_motion_of_the_run_simulator_is_recovered():
     centre = affine[:3, :3] @ ((np.array(shape) - 1) / 2) + affine[:3, 3]
     fine = data.grid_points(shape, affine, 2)
     run, motion = simulate_epi_run(data.head_intensity(fine, data.EPI_CONTRAST, -1.0), data.field_at(fine), 4,
-                                   pe_code="j-", echo_spacing_s=ESP, echo_time_s=0.03, oversample=2,
+                                   pe_code="j-", echo_spacing_s=ESP, te_s=0.03, oversample=2,
                                    translation_sd_vox=0.15, rotation_sd_deg=0.7, noise_sd=0.005,
                                    rng=np.random.default_rng(4))
     moves = [align_rigid_matrix(m[:3] * voxel, m[3:], centre) for m in motion]

@@ -76,7 +76,7 @@ def test_linear_field_gives_an_affine_stretch_with_the_analytic_jacobian():
 def _simulated_pair(shape, oversample, field_fine, obj_fine, noise_sd=0.0, seed=0, codes=("j", "j-")):
     images = []
     for n, code in enumerate(codes):
-        images.append(simulate_epi(obj_fine, field_fine, pe_code=code, echo_spacing_s=ESP, echo_time_s=0.05,
+        images.append(simulate_epi(obj_fine, field_fine, pe_code=code, echo_spacing_s=ESP, te_s=0.05,
                                    oversample=oversample, spin_echo=True, noise_sd=noise_sd,
                                    rng=np.random.default_rng(seed + n)))
     return images
@@ -189,7 +189,7 @@ def test_restoration_forward_model_predicts_kspace_distortion_better_than_the_bo
     field = 220.0 * np.exp(-0.5 * ((y - 35.0) / 7.7) ** 2)  # pull-back Jacobians 0.45 .. 1.55
 
     def acquire(field_fine, code):
-        return simulate_epi(obj, field_fine, pe_code=code, echo_spacing_s=ESP, echo_time_s=0.05,
+        return simulate_epi(obj, field_fine, pe_code=code, echo_spacing_s=ESP, te_s=0.05,
                             oversample=oversample, spin_echo=True)
 
     still = acquire(np.zeros_like(field), "j")

@@ -21,7 +21,7 @@ from fieldfix.unwarp import unwarp_volume
 @pytest.mark.slow
 def test_head_at_3t_meets_the_acceptance_figures():
     head = ph.head()
-    pair = [ph.acquire(head, code, spin_echo=True, echo_time_s=0.06, noise_sd=0.02, seed=seed)
+    pair = [ph.acquire(head, code, spin_echo=True, te_s=0.06, noise_sd=0.02, seed=seed)
             for code, seed in (("j", 1), ("j-", 2))]
     result = field_from_pairs(pair, [PhaseEncoding("j", ph.ECHO_SPACING_S), PhaseEncoding("j-", ph.ECHO_SPACING_S)],
                               head.affine)
@@ -31,7 +31,7 @@ def test_head_at_3t_meets_the_acceptance_figures():
     error = np.abs(result.b0_hz - head.b0_hz)[modest]
     median, p90 = float(np.median(error)), float(np.percentile(error, 90))
     assert median <= 3.0 and p90 <= 10.0, (median, p90)
-    gre = ph.acquire(head, "j", spin_echo=False, echo_time_s=0.03, noise_sd=0.02, seed=3)
+    gre = ph.acquire(head, "j", spin_echo=False, te_s=0.03, noise_sd=0.02, seed=3)
 
     def rms_after(field_hz):
         corrected = unwarp_volume(gre, field_hz * per_hz, 1, interp="cubic")

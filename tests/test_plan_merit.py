@@ -114,7 +114,7 @@ def test_merit_follows_the_simulated_roi_signal():
     rows = plan.sweep(b0, affine, roi, brain, **spec)
     simulated = {}
     for te in spec["te_s"]:
-        image = simulate_epi(obj, fine_b0, pe_code="j", echo_spacing_s=2e-5, echo_time_s=te,
+        image = simulate_epi(obj, fine_b0, pe_code="j", echo_spacing_s=2e-5, te_s=te,
                              oversample=(1, 1, sub), slice_axis=2, t2star_s=None)
         simulated[te] = float(np.median(image[roi])) * float(pm.bold_contrast(te, T2STAR))
     order_sim = sorted(simulated, key=simulated.get, reverse=True)

@@ -44,8 +44,8 @@ def test_measured_shift_matches_prediction(code, acceleration, partial_fourier):
     oversample = (2, 2, 2)
     obj = _blob(shape, oversample, [n / 2 - 0.3 for n in shape])
     field_hz = -143.0
-    sidecar = epi_sidecar(code, shape[axis], echo_spacing_s=0.0007, echo_time_s=0.03, acceleration=acceleration)
-    options = dict(pe_code=code, echo_spacing_s=0.0007, echo_time_s=0.03, oversample=oversample,
+    sidecar = epi_sidecar(code, shape[axis], echo_spacing_s=0.0007, te_s=0.03, acceleration=acceleration)
+    options = dict(pe_code=code, echo_spacing_s=0.0007, te_s=0.03, oversample=oversample,
                    acceleration=acceleration, partial_fourier=partial_fourier)
     still = simulate_epi(obj, np.zeros_like(obj), **options)
     moved = simulate_epi(obj, np.full(obj.shape, field_hz), **options)
@@ -65,7 +65,7 @@ def test_simulator_agrees_with_forward_model_and_unwarp_inverts_it():
     x, y, _ = np.meshgrid(*fine_coordinates(shape, oversample), indexing="ij")
     obj = np.exp(-(((x - 11.5) / 6) ** 2 + ((y - 19.5) / 9) ** 2) / 2) * (1 + 0.3 * np.cos(y / 3))
     field = 60 * np.sin(2 * np.pi * y / 40 + 0.4) * np.cos(np.pi * x / 24) + 20
-    image = simulate_epi(obj, field, pe_code="j-", echo_spacing_s=0.0005, echo_time_s=0.03, oversample=oversample)
+    image = simulate_epi(obj, field, pe_code="j-", echo_spacing_s=0.0005, te_s=0.03, oversample=oversample)
     truth = _block_mean(obj, shape, oversample)
     maps = shift_maps(_block_mean(field, shape, oversample), "j-", 0.0005)
 
@@ -88,7 +88,7 @@ def test_through_slice_dropout_analytic():
     for te in (0.02, 0.04):
         g = 15.0  # Hz across one slice
         field = g * z
-        image = simulate_epi(obj, field, pe_code="j", echo_spacing_s=0.0005, echo_time_s=te, oversample=oversample)
+        image = simulate_epi(obj, field, pe_code="j", echo_spacing_s=0.0005, te_s=te, oversample=oversample)
         phase = np.pi * g * te
         expected = abs(np.sin(phase) / (8 * np.sin(phase / 8)))
         assert np.allclose(image, expected, rtol=1e-6)
@@ -107,7 +107,7 @@ def test_thinner_slices_lose_less():
         shape = (4, 8, 2)
         _, _, z = np.meshgrid(*fine_coordinates(shape, oversample), indexing="ij")
         image = simulate_epi(np.ones(z.shape), 20.0 * thickness * z, pe_code="j", echo_spacing_s=0.0005,
-                             echo_time_s=0.03, oversample=oversample)
+                             te_s=0.03, oversample=oversample)
         losses.append(1 - image.mean())
     assert losses[1] < losses[0]
 
@@ -115,20 +115,20 @@ def test_thinner_slices_lose_less():
 def test_noise_level_and_reproducibility():
     shape, oversample = (16, 16, 2), (1, 1, 1)
     zeros = np.zeros((16, 16, 2))
-    image = simulate_epi(zeros, zeros, pe_code="i", echo_spacing_s=0.0005, echo_time_s=0.03, oversample=oversample,
+    image = simulate_epi(zeros, zeros, pe_code="i", echo_spacing_s=0.0005, te_s=0.03, oversample=oversample,
                          noise_sd=2.0, rng=np.random.default_rng(5), complex_output=True)
     assert image.shape == shape
     assert np.std(image.real) == pytest.approx(2.0, rel=0.1)
     assert np.std(image.imag) == pytest.approx(2.0, rel=0.1)
     with pytest.raises(InputError):
-        simulate_epi(zeros, zeros, pe_code="i", echo_spacing_s=0.0005, echo_time_s=0.03, oversample=1, noise_sd=1.0)
+        simulate_epi(zeros, zeros, pe_code="i", echo_spacing_s=0.0005, te_s=0.03, oversample=1, noise_sd=1.0)
 
 
 def test_4d_run_motion_and_determinism():
     shape, oversample = (10, 12, 4), (2, 2, 2)
     obj = _blob(shape, oversample, (4.7, 5.5, 1.5), sigma=2.0)
     field = np.full(obj.shape, 30.0)
-    options = dict(pe_code="j", echo_spacing_s=0.0005, echo_time_s=0.03, oversample=oversample,
+    options = dict(pe_code="j", echo_spacing_s=0.0005, te_s=0.03, oversample=oversample,
                    translation_sd_vox=0.3, rotation_sd_deg=1.0, noise_sd=0.01)
     first, motion = simulate_epi_run(obj, field, 3, rng=np.random.default_rng(7), **options)
     second, motion2 = simulate_epi_run(obj, field, 3, rng=np.random.default_rng(7), **options)
@@ -140,13 +140,13 @@ def test_4d_run_motion_and_determinism():
         assert _centroid(first[..., t], 0) - _centroid(first[..., 0], 0) == pytest.approx(
             motion[t, 0] - motion[0, 0], abs=0.1)
     with pytest.raises(InputError):
-        simulate_epi_run(obj, field, 2, pe_code="j", echo_spacing_s=0.0005, echo_time_s=0.03, oversample=2,
+        simulate_epi_run(obj, field, 2, pe_code="j", echo_spacing_s=0.0005, te_s=0.03, oversample=2,
                          noise_sd=0.1)
 
 
 def test_input_checks():
     obj = np.ones((8, 8, 8))
-    common = dict(echo_spacing_s=0.0005, echo_time_s=0.03, oversample=2)
+    common = dict(echo_spacing_s=0.0005, te_s=0.03, oversample=2)
     with pytest.raises(GeometryError):
         simulate_epi(obj, np.ones((8, 8, 6)), pe_code="j", **common)
     with pytest.raises(GeometryError):
@@ -156,7 +156,7 @@ def test_input_checks():
     with pytest.raises(InputError):
         simulate_epi(obj, obj, pe_code="j", partial_fourier=0.4, **common)
     with pytest.raises(InputError):
-        simulate_epi(obj, obj, pe_code="j", echo_spacing_s=0.01, echo_time_s=0.005, oversample=2)
+        simulate_epi(obj, obj, pe_code="j", echo_spacing_s=0.01, te_s=0.005, oversample=2)
 
 
 def test_spin_echo_refocuses_dropout_but_keeps_the_distortion():
@@ -167,7 +167,7 @@ def test_spin_echo_refocuses_dropout_but_keeps_the_distortion():
     shape, oversample = (6, 8, 3), (1, 1, 8)
     _, _, z = np.meshgrid(*fine_coordinates(shape, oversample), indexing="ij")
     obj, g, te = np.ones(z.shape), 15.0, 0.04
-    common = dict(pe_code="j", echo_spacing_s=0.0005, echo_time_s=te, oversample=oversample)
+    common = dict(pe_code="j", echo_spacing_s=0.0005, te_s=te, oversample=oversample)
     gradient_echo = simulate_epi(obj, g * z, **common)
     spin_echo = simulate_epi(obj, g * z, spin_echo=True, **common)
     phase = np.pi * g * te
@@ -178,7 +178,7 @@ def test_spin_echo_refocuses_dropout_but_keeps_the_distortion():
     shape, oversample = (8, 24, 4), (2, 2, 2)
     blob = _blob(shape, oversample, (3.7, 11.6, 1.5))
     field = np.full(blob.shape, -120.0)
-    options = dict(pe_code="j-", echo_spacing_s=0.0007, echo_time_s=0.03, oversample=oversample)
+    options = dict(pe_code="j-", echo_spacing_s=0.0007, te_s=0.03, oversample=oversample)
     se = simulate_epi(blob, field, spin_echo=True, **options)
     assert np.allclose(se, simulate_epi(blob, field, **options), atol=1e-12)
     predicted = shift_vox_from_field(np.full(shape, -120.0), "j-", 0.0007)[0, 0, 0]

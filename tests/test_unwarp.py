@@ -379,7 +379,7 @@ def test_workflow_recovers_simulated_run(tmp_path):
     x, y, _ = np.meshgrid(*fine_coordinates(shape, oversample), indexing="ij")
     obj = np.exp(-(((x - 7.5) / 4) ** 2 + ((y - 15.5) / 7) ** 2) / 2)
     field = 50 * np.sin(2 * np.pi * y / 32 + 0.4) + 15
-    data, _ = simulate_epi_run(obj, field, 4, pe_code="j-", echo_spacing_s=0.0008, echo_time_s=0.03,
+    data, _ = simulate_epi_run(obj, field, 4, pe_code="j-", echo_spacing_s=0.0008, te_s=0.03,
                                oversample=oversample, noise_sd=0.002, rng=np.random.default_rng(0))
     affine = np.diag([3.0, 3.0, 3.0, 1.0])
     run = _write_run(tmp_path / "sim_bold.nii.gz", data, affine,

@@ -47,7 +47,7 @@ Examples
 >>> import numpy as np
 >>> obj = np.ones((8, 16, 4))
 >>> img = simulate_epi(obj, np.zeros_like(obj), pe_code="j", echo_spacing_s=5e-4,
-...                    echo_time_s=0.03, oversample=(2, 2, 2))
+...                    te_s=0.03, oversample=(2, 2, 2))
 >>> img.shape, round(float(img.mean()), 6)
 ((4, 8, 2), 1.0)
 """
@@ -112,7 +112,7 @@ def effective_echo_spacing_s(echo_spacing_s: float, acceleration: int = 1) -> fl
     return float(echo_spacing_s) / int(acceleration)
 
 
-def epi_sidecar(pe_code: str, n_pe_lines: int, echo_spacing_s: float, echo_time_s: float,
+def epi_sidecar(pe_code: str, n_pe_lines: int, echo_spacing_s: float, te_s: float,
                 acceleration: int = 1) -> dict:
     """BIDS timing keys describing a simulated run (seconds).
 
@@ -126,7 +126,7 @@ def epi_sidecar(pe_code: str, n_pe_lines: int, echo_spacing_s: float, echo_time_
         "PhaseEncodingDirection": pe_code,
         "EffectiveEchoSpacing": esp,
         "TotalReadoutTime": esp * (int(n_pe_lines) - 1),
-        "EchoTime": float(echo_time_s),
+        "EchoTime": float(te_s),
         "ParallelReductionFactorInPlane": int(acceleration),
     }
 
@@ -143,7 +143,7 @@ def simulate_epi(
     *,
     pe_code: str,
     echo_spacing_s: float,
-    echo_time_s: float,
+    te_s: float,
     oversample=2,
     acceleration: int = 1,
     partial_fourier: float = 1.0,
@@ -166,7 +166,7 @@ def simulate_epi(
         BIDS phase-encode code (axis and polarity).
     echo_spacing_s : float
         Time between successively acquired k-space lines, s.
-    echo_time_s : float
+    te_s : float
         Time of the k-space centre line after excitation, s.
     oversample : int or 3 ints
         Fine samples per output voxel along each axis (those along the slice axis are
@@ -226,7 +226,7 @@ def simulate_epi(
 
     esp = effective_echo_spacing_s(echo_spacing_s, acceleration)
     k_lines = np.arange(npe) - npe // 2
-    times = echo_time_s + polarity * k_lines * esp  # acquisition time of each line
+    times = te_s + polarity * k_lines * esp  # acquisition time of each line
     n_acquired = int(math.ceil(partial_fourier * npe - 1e-9))
     traversal = np.argsort(times, kind="stable")  # lines in the order they are acquired
     acquired = np.zeros(npe, bool)
@@ -237,7 +237,7 @@ def simulate_epi(
     kspace = np.zeros((ns, nr, npe), complex)
     first = traversal[npe - n_acquired]
     # Phase of every fine sample, advanced from line to line by a constant step.
-    reference_s = echo_time_s if spin_echo else 0.0
+    reference_s = te_s if spin_echo else 0.0
     current = rho * np.exp(-2j * np.pi * f_hz * (times[first] - reference_s))
     step = np.exp(-2j * np.pi * f_hz * esp)
     if t2star_s is not None:
@@ -294,7 +294,7 @@ def simulate_epi_run(
     """Simulate a 4D EPI run with small rigid motion and noise.
 
     `epi_options` are the keywords of :func:`simulate_epi` (``pe_code``, ``echo_spacing_s``
-    and ``echo_time_s`` are required; ``oversample`` defaults to 2 as there).
+    and ``te_s`` are required; ``oversample`` defaults to 2 as there).
 
     Each volume draws an independent small rigid displacement of the head (translation
     with standard deviation `translation_sd_vox` output voxels per axis, rotation with

@@ -172,7 +172,7 @@ def _run_steps(steps: _Steps, job: JobOptions, root: Path, entry: ManifestEntry,
     checks.update(max_abs_shift_vox=round(uw.max_abs_shift_vox, 2),
                   percent_shifted_over_1_voxel=round(uw.percent_shifted_over_1_voxel, 1))
     checks.update(_unwarp_checks(root, run, bold, job.path(uw.outputs.corrected), job.path(uw.outputs.shift_vox)))
-    dr = steps.run("dropout", lambda: run_dropout(b0_path, job, te_s=run.echo_time_s,
+    dr = steps.run("dropout", lambda: run_dropout(b0_path, job, te_s=run.te_s,
                                                   thickness_mm=run.slice_thickness_mm, like=bold,
                                                   mask=root / entry.truth.brain_mask),
                    lambda s: [job.path(s.outputs.retention)])
