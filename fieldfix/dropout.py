@@ -730,6 +730,14 @@ def epi_signal_fraction(
     >>> round(float(kept[2, 2, 3]), 4)  # no in-plane gradient: the retention at the nominal TE
     0.6986
     """
-    maps = dropout_maps(b0_hz, affine, frame, te_s=te_s, thickness_mm=thickness_mm, profile=profile,
-                        pe_sign=pe_sign, echo_spacing_s=echo_spacing_s, partial_fourier=partial_fourier)
-    return np.where(maps["echo_inside"], maps["retention_local"], 0.0)
+    if not te_s > 0:
+        raise InputError(f"the echo time must be positive, got {te_s}")
+    if frame.pe_step_mm is None or frame.pe_lines is None:
+        raise InputError("the signal fraction needs the phase-encode axis and the number of phase-encode lines")
+    proj = project_gradient(field_gradient_hz_per_mm(b0_hz, affine), frame)
+    # the local-echo-time half of dropout_maps only: its retention at the nominal TE is not needed here
+    local = bold_sensitivity(proj["normal_hz_per_mm"], proj["pe_hz_per_voxel"], te_s, thickness_mm, pe_sign=pe_sign,
+                             echo_spacing_s=echo_spacing_s, pe_lines=frame.pe_lines,
+                             ro_hz_per_voxel=proj["ro_hz_per_voxel"], partial_fourier=partial_fourier,
+                             profile=slice_profile(profile))
+    return np.where(local["echo_inside"], local["retention_local"], 0.0)

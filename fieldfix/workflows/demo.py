@@ -27,7 +27,7 @@ import numpy as np
 from .. import scenarios
 from .._progress import progress_bar
 from ..errors import InputError, OutputError
-from ..geometry import resample_to_grid
+from ..geometry import parse_pe_code, resample_to_grid
 from ..io import load_image
 from ..jsonfile import write_json
 from ..outdir import output_folder
@@ -227,7 +227,7 @@ def _unwarp_checks(root: Path, run: ManifestRun, bold: Path, corrected: Path, sh
     shift_vox = load_image(shift_path).get_fdata()
     true_shift = shift_vox_from_field(load_image(root / run.truth_b0_hz, sidecar=False).get_fdata(), run.pe_code,
                                       run.effective_echo_spacing_s)
-    true_field = unwarp_volume(before, true_shift, "ijk".index(run.pe_code[0]), interp="cubic")
+    true_field = unwarp_volume(before, true_shift, parse_pe_code(run.pe_code)[0], interp="cubic")
     error = np.abs(shift_vox - true_shift)[brain]
 
     def agreement(image, where):
